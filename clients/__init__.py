@@ -1,0 +1,1 @@
+"""twistrate.clients: programs that talk to the service only over the documented wire protocol."""

@@ -1,0 +1,1 @@
+"""Example arms and service configs shipped with twistrate (data only)."""

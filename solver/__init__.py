@@ -1,0 +1,1 @@
+"""twistrate.solver: pure synchronous numpy kinematics and rate resolution (no I/O, no clock, no globals)."""

@@ -142,8 +142,9 @@ class Arm:
         put(self, "q_max", np.array([j.position_max for j in self.joints], dtype=float))
         put(self, "v_max", np.array([j.velocity_max for j in self.joints], dtype=float))
         put(self, "a_max", np.array([j.acceleration_max for j in self.joints], dtype=float))
-        for a in (F, motion_const, motion_basis, axes, revolute, self.q_min, self.q_max, self.v_max, self.a_max):
-            a.setflags(write=False)
+        for name in ("F_base", "motion_const", "motion_basis", "axes", "revolute",
+                     "q_min", "q_max", "v_max", "a_max"):
+            getattr(self, name).setflags(write=False)
 
     @property
     def n(self) -> int:
@@ -189,7 +190,8 @@ class Arm:
                 if not (np.isfinite(val) and val > 0):
                     raise field_error(ModelError, f"{where}.{key}", val, "a finite number > 0")
             checked.append(
-                Joint(j.name, j.kind, T, axis / norm, lo, hi, float(j.velocity_max), float(j.acceleration_max))
+                Joint(j.name, j.kind, T, axis / norm, lo, hi,
+                      float(j.velocity_max), float(j.acceleration_max))
             )
         T_root = check_transform(np.eye(4) if T_base_root is None else T_base_root, "mount")
         T_tool = check_transform(np.eye(4) if T_last_tool is None else T_last_tool, "tool")

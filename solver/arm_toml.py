@@ -20,7 +20,7 @@ from typing import Annotated, Any, Literal
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from twistrate.solver.arm import PRISMATIC, REVOLUTE, Arm, Joint, check_transform
+from twistrate.solver.arm import AXIS_NORM_TOLERANCE, PRISMATIC, REVOLUTE, Arm, Joint, check_transform
 from twistrate.solver.dh import DHRow, dh_chain
 from twistrate.solver.errors import ModelError, field_error
 
@@ -163,12 +163,11 @@ def arm_from_spec(spec: ArmSpec) -> Arm:
     styles = {("dh" if j.dh is not None else "frame") for j in spec.joint}
     if len(styles) > 1:
         i, j = next((i, j) for i, j in enumerate(spec.joint) if j.dh is None)
-        raise field_error(ModelError, f"{_where(i, j.name)}.dh", None,
-                          "`dh` in every joint, or `frame` + `axis` in every joint (one style per file)")
+        raise _missing(f"{_where(i, j.name)}.dh",
+                       "`dh` in every joint, or `frame` + `axis` in every joint (one style per file)")
     use_dh = styles == {"dh"}
     if use_dh and spec.dh_convention is None:
-        raise field_error(ModelError, "dh_convention", None,
-                          "'standard' or 'modified' (required when joints use `dh`)")
+        raise _missing("dh_convention", "'standard' or 'modified' (required when joints use `dh`)")
     if not use_dh and spec.dh_convention is not None:
         raise field_error(ModelError, "dh_convention", spec.dh_convention,
                           "only in files whose joints use `dh`; remove it")
@@ -207,12 +206,14 @@ def arm_from_spec(spec: ArmSpec) -> Arm:
             T_prev, axis = np.eye(4), np.array([0.0, 0.0, 1.0])  # replaced from dh_chain below
         else:
             if j.frame is None:
-                raise field_error(ModelError, f"{where}.frame", None,
-                                  "a table {xyz_m = [..], rpy_deg = [..]} (or `dh` in every joint)")
+                raise _missing(f"{where}.frame",
+                               "a table {xyz_m = [..], rpy_deg = [..]} (or `dh` in every joint)")
             if j.axis is None:
-                raise field_error(ModelError, f"{where}.axis", None,
-                                  "a non-zero 3-vector in the joint's own frame, e.g. [0, 0, 1]")
+                raise _missing(f"{where}.axis",
+                               "a non-zero 3-vector in the joint's own frame, e.g. [0, 0, 1]")
             T_prev, axis = _frame(f"{where}.frame", j.frame), np.array(j.axis, dtype=float)
+            if np.linalg.norm(axis) < AXIS_NORM_TOLERANCE:
+                raise field_error(ModelError, f"{where}.axis", j.axis, "a non-zero 3-vector")
         joints.append(Joint(j.name, j.kind, T_prev, axis, lo, hi, velocity, acceleration))
         homes.append(home)
 
@@ -229,6 +230,11 @@ def arm_from_spec(spec: ArmSpec) -> Arm:
         q_home = [arm.q_home[i] if h is None else h for i, h in enumerate(homes)]
         arm = Arm.build(spec.name, joints, T_base_root, T_last_tool, q_home)
     return arm
+
+
+def _missing(field: str, accepted: str) -> ModelError:
+    """The house-style error for a required key that is absent."""
+    return ModelError(f"{field}: missing; accepted: {accepted}")
 
 
 def _where(i: int, name: object) -> str:
@@ -256,7 +262,7 @@ def _scalar(where: str, j: JointSpec, quantity: str, required: bool) -> float | 
     if key is None:
         if required:
             accepted = " or ".join(_UNITS[quantity][j.kind])
-            raise field_error(ModelError, f"{where}.{quantity}", None, f"{accepted} (required)")
+            raise _missing(f"{where}.{quantity}", f"{accepted} (required)")
         return None
     return float(getattr(j, key)) * _UNITS[quantity][j.kind][key]
 
@@ -275,7 +281,7 @@ def _limits(where: str, j: JointSpec) -> tuple[float, float]:
     if key is None:
         accepted = " or ".join(_UNITS["range"][j.kind])
         extra = ", or unlimited = true" if j.kind == REVOLUTE else ""
-        raise field_error(ModelError, f"{where}.range", None, f"{accepted} = [min, max]{extra} (required)")
+        raise _missing(f"{where}.range", f"{accepted} = [min, max]{extra} (required)")
     factor = _UNITS["range"][j.kind][key]
     lo, hi = (float(v) * factor for v in getattr(j, key))
     if not lo < hi:
@@ -293,7 +299,7 @@ def _angle(where: str, table: BaseModel, stem: str, required: bool) -> float:
     if rad is not None:
         return float(rad)
     if required:
-        raise field_error(ModelError, f"{where}.{stem}", None, f"{stem}_deg or {stem}_rad (required)")
+        raise _missing(f"{where}.{stem}", f"{stem}_deg or {stem}_rad (required)")
     return 0.0
 
 
@@ -349,7 +355,8 @@ def _describe(err: Any, data: dict) -> str:
         known = ", ".join(model.model_fields) if model is not None else "see docs/arm-format.md"
         return str(field_error(ModelError, field, value, f"a known key ({known})"))
     if etype == "missing":
-        return f"{field}: missing; accepted: a value (this key is required)"
+        accepted = "at least one [[joint]] table" if keys == ["joint"] else "a value (this key is required)"
+        return str(_missing(field, accepted))
     if etype in ("too_short", "too_long"):
         if keys == ["joint"]:
             accepted = "at least one [[joint]] table"

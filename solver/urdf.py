@@ -145,7 +145,7 @@ def _link_of(el: ET.Element, tag: str) -> str:
     sub = el.find(tag)
     link = sub.get("link") if sub is not None else None
     if not link:
-        raise field_error(ModelError, f"joint {el.get('name')!r}.{tag}", None, f'<{tag} link="..."/>')
+        raise ModelError(f"joint {el.get('name')!r}.{tag}: missing; accepted: <{tag} link=\"...\"/>")
     return link
 
 
@@ -189,8 +189,8 @@ def _limits(el: ET.Element, where: str, jtype: str) -> tuple[float, float, float
     limit = el.find("limit")
     needed = ("velocity",) if jtype == "continuous" else ("lower", "upper", "velocity")
     if limit is None:
-        raise field_error(ModelError, f"{where}.limit", None,
-                          f"a <limit> with {', '.join(needed)} on a {jtype} joint")
+        raise ModelError(f"{where}.limit: missing; accepted: a <limit> with {', '.join(needed)} "
+                         f"on a {jtype} joint")
     got: dict[str, float] = {}
     for attr in needed:
         raw = limit.get(attr)

@@ -25,6 +25,7 @@ from typing import Any
 import msgpack
 import numpy as np
 
+from twistrate.service.state import E_BAD_ARGUMENT, E_FAULT, E_LEASE_HELD, E_NO_LEASE, E_SHUTDOWN, MODES
 from twistrate.solver.errors import InputError, WireError, field_error
 from twistrate.solver.resolve import DesiredTwist
 
@@ -50,15 +51,14 @@ OUTPUT_TOPICS: tuple[bytes, ...] = (TOPIC_COMMAND, TOPIC_HEALTH, TOPIC_EVENT)
 
 # --- enumerations --------------------------------------------------------------------------------
 TWIST_FRAMES: tuple[str, ...] = ("base", "tool")
-#: service modes (state machine of the service), see docs/protocol.md "Modes"
-MODES: tuple[str, ...] = ("idle", "enabled", "stopping", "fault")
 #: health states (singularity classifier with hysteresis)
 HEALTH_STATES: tuple[str, ...] = ("normal", "approaching", "holding")
 OPS: tuple[str, ...] = ("claim", "renew", "release", "enable", "disable", "status", "arm", "counters",
                         "set", "clear_fault")
-#: stable error codes of a refused control request (reply.error.code)
-ERROR_CODES: tuple[str, ...] = ("bad_request", "unknown_op", "lease_held", "no_lease", "bad_param",
-                                "bad_state", "internal")
+#: stable error codes of a refused control request (reply.error.code): the state machine's own
+#: (service/state.py) plus bad_request (undecodable request) and unknown_op (op not in OPS)
+ERROR_CODES: tuple[str, ...] = ("bad_request", "unknown_op", E_NO_LEASE, E_LEASE_HELD, E_FAULT, E_SHUTDOWN,
+                                E_BAD_ARGUMENT, "internal")
 JOINT_KINDS: tuple[str, ...] = ("revolute", "prismatic")
 
 #: stable reason keys of a refused message (WireError.reason; also the service's counter names)
@@ -76,6 +76,7 @@ REASONS: tuple[str, ...] = (
     "non_finite",     # NaN or infinity
     "too_large",      # magnitude beyond the protocol's bound
     "bad_value",      # right type but not an accepted value (enum, negative counter, empty string)
+    "unknown_op",     # a control request whose op is not one of OPS
 )
 
 # --- size caps (bytes of the map frame; checked before unpacking) --------------------------------
@@ -860,7 +861,7 @@ def encode_request(*, seq: int, op: str, stamp_ns: int | None = None, **args: An
 
 
 def decode_request(data: bytes) -> RequestMessage:
-    """Decode and check a control request. Raises WireError (an op not in OPS: reason bad_value)."""
+    """Decode and check a control request. Raises WireError (an op not in OPS: reason unknown_op)."""
     m = _unpack(data, MAX_CONTROL_BYTES, KIND_REQUEST, _UNPACK_WIDE)
     _check_header(m, KIND_REQUEST)
     for key in ("seq", "stamp_ns", "op"):
@@ -868,13 +869,22 @@ def decode_request(data: bytes) -> RequestMessage:
             raise _fail("missing_field", f"request.{key}", None,
                         f"required fields {', '.join(sorted(_REQUEST_HEADER))}")
     seq, stamp = _seq_stamp(m, KIND_REQUEST)
-    op = _str(m["op"], "request.op", MAX_NAME_CHARS, OPS)
+    op = m["op"]
+    if op not in OPS:
+        if type(op) is not str:
+            raise _fail("bad_type", "request.op", op, f"one of {', '.join(OPS)}")
+        raise _fail("unknown_op", "request.op", op, f"one of {', '.join(OPS)}")
     required, optional = REQUEST_ARGS[op]
     given = frozenset(m.keys() - _REQUEST_HEADER)
     if not required <= given <= required | optional:
         reason, name, accepted = _args_error(op, given)
         raise _fail(reason, name, m.get(name.split(".", 1)[1]), accepted)
     return RequestMessage(seq, stamp, op, _check_args({k: m[k] for k in given}))
+
+
+def error_code(exc: WireError) -> str:
+    """The reply error code for a request that failed to decode: unknown_op or bad_request."""
+    return "unknown_op" if exc.reason == "unknown_op" else "bad_request"
 
 
 def peek_request(data: bytes) -> tuple[int, str]:

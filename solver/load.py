@@ -59,6 +59,28 @@ def read_arm_source(name_or_path: str | Path) -> tuple[bytes, str, str]:
     return data, label, path.suffix.lower()
 
 
+def parse_arm_source(
+    data: bytes,
+    label: str,
+    suffix: str,
+    base_link: str | None = None,
+    tool_link: str | None = None,
+    acceleration: float | Mapping[str, float] | None = None,
+) -> Arm:
+    """Parse content already read by `read_arm_source` with the parser for its suffix (no I/O).
+
+    base_link, tool_link, acceleration : URDF only (see `twistrate.solver.urdf.parse_urdf`); giving
+        them for a TOML arm is an InputError.
+    """
+    if suffix == ".urdf":
+        return parse_urdf(data, base_link, tool_link, acceleration, source=label)
+    for key, value in (("base_link", base_link), ("tool_link", tool_link), ("acceleration", acceleration)):
+        if value is not None:
+            raise field_error(InputError, key, value,
+                              "only for .urdf files (a TOML arm states its own chain)")
+    return parse_arm_toml(data, source=label)
+
+
 def load_arm(
     name_or_path: str | Path,
     base_link: str | None = None,
@@ -67,15 +89,7 @@ def load_arm(
 ) -> Arm:
     """Load an arm from a .toml or .urdf file path or a packaged example name.
 
-    base_link, tool_link, acceleration : URDF only (see `twistrate.solver.urdf.parse_urdf`); giving
-        them for a TOML arm is an InputError.
+    base_link, tool_link, acceleration : URDF only (see `twistrate.solver.urdf.parse_urdf`).
     Raises InputError (file not found, wrong suffix, URDF-only argument) or ModelError (content).
     """
-    data, label, suffix = read_arm_source(name_or_path)
-    if suffix == ".urdf":
-        return parse_urdf(data, base_link, tool_link, acceleration, source=label)
-    for key, value in (("base_link", base_link), ("tool_link", tool_link), ("acceleration", acceleration)):
-        if value is not None:
-            raise field_error(InputError, key, value,
-                              "only for .urdf files (a TOML arm states its own chain)")
-    return parse_arm_toml(data, source=label)
+    return parse_arm_source(*read_arm_source(name_or_path), base_link, tool_link, acceleration)

@@ -1,0 +1,153 @@
+"""`twistrate arm`: the JSON report parses, its Jacobian matches finite differences of its own tool
+pose, and bad input exits with code 2 and a message naming the option."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+
+from twistrate.service import arm_cmd
+from twistrate.solver.kinematics import tool_pose
+from twistrate.solver.load import load_arm
+
+FD_STEP = 1e-6  # rad or m
+FD_TOL = 1e-7  # central differences: error O(h^2) plus rounding O(eps / h) ~ 1e-10
+
+
+def run(capsys, *argv: str) -> tuple[int, str, str]:
+    code = arm_cmd.main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def report(capsys, *argv: str) -> dict:
+    code, out, err = run(capsys, *argv, "--json")
+    assert code == 0, err
+    return json.loads(out)
+
+
+def fd_jacobian(arm, q: np.ndarray) -> np.ndarray:
+    """(6, n) Jacobian by central finite differences of the tool pose (common practice): linear
+    rows from the tool position, angular rows from the rotation vector of R(q + h) R(q - h)^T / 2h
+    (scipy Rotation.as_rotvec), base frame."""
+    J = np.empty((6, arm.n))
+    for i in range(arm.n):
+        dq = np.zeros(arm.n)
+        dq[i] = FD_STEP
+        Tp, Tm = tool_pose(arm, q + dq), tool_pose(arm, q - dq)
+        J[:3, i] = (Tp[:3, 3] - Tm[:3, 3]) / (2 * FD_STEP)
+        J[3:, i] = Rotation.from_matrix(Tp[:3, :3] @ Tm[:3, :3].T).as_rotvec() / (2 * FD_STEP)
+    return J
+
+
+@pytest.mark.parametrize("argv", [
+    ["bench6"],
+    ["reach7", "--at", "10,-20,30,40,-50,60,-70", "--deg"],
+    ["planar3"],
+    ["rail4", "--at", "0.3,0.5,1.0,-0.5"],
+    ["desk4", "--tool", "flange", "--at", "-0.4,0.3,0.8,2.5"],
+    ["desk4", "--base", "turret", "--tool", "wrist"],
+])
+def test_json_report_jacobian_matches_finite_differences(capsys, argv):
+    rep = report(capsys, *argv)
+    link_args = {"base_link": None, "tool_link": None}
+    if "--tool" in argv:
+        link_args["tool_link"] = argv[argv.index("--tool") + 1]
+    if "--base" in argv:
+        link_args["base_link"] = argv[argv.index("--base") + 1]
+    arm = load_arm(argv[0], **link_args)
+    q = np.array(rep["configuration"]["q"])
+    assert q.shape == (arm.n,)
+    T = np.array(rep["tool_pose"])
+    J = np.array(rep["jacobian"])
+    assert T.shape == (4, 4) and J.shape == (6, arm.n)
+    np.testing.assert_allclose(T, tool_pose(arm, q), atol=1e-14)
+    np.testing.assert_allclose(J, fd_jacobian(arm, q), atol=FD_TOL)
+    assert rep["report"] == "twistrate-arm" and rep["version"] == arm_cmd.REPORT_VERSION
+    assert [j["name"] for j in rep["joints"]] == list(arm.joint_names)
+    assert rep["arm"]["joint_count"] == arm.n
+
+
+def test_configuration_home_and_degrees(capsys):
+    home = report(capsys, "bench6")
+    assert home["configuration"]["source"] == "home"
+    np.testing.assert_allclose(home["configuration"]["q"], load_arm("bench6").q_home)
+    deg = report(capsys, "rail4", "--at", "0.3,-45,90,10", "--deg")
+    # prismatic value stays in metres; revolute values are degrees
+    np.testing.assert_allclose(deg["configuration"]["q"], [0.3, -math.pi / 4, math.pi / 2, math.radians(10)])
+    assert deg["configuration"]["source"] == "--at"
+
+
+def test_json_limits_and_unlimited_joint(capsys):
+    rep = report(capsys, "bench6")
+    roll = rep["joints"][5]
+    assert roll["name"] == "flange_roll" and roll["position_min"] is None and roll["position_max"] is None
+    waist = rep["joints"][0]
+    assert waist["position_min"] == pytest.approx(math.radians(-170))
+    assert waist["velocity_max"] == pytest.approx(math.radians(150))
+    assert waist["acceleration_max"] == pytest.approx(math.radians(450))
+    assert waist["kind"] == "revolute"
+
+
+def test_urdf_note_on_acceleration_default(capsys):
+    rep = report(capsys, "desk4", "--tool", "flange")
+    assert any("acceleration limits are not part of URDF" in n for n in rep["notes"])
+    assert report(capsys, "bench6")["notes"] == []
+
+
+def test_text_report(capsys):
+    code, out, err = run(capsys, "reach7")
+    assert code == 0 and err == ""
+    for fragment in ("arm reach7", "shoulder_pitch", "tool pose", "geometric Jacobian",
+                     "configuration: home"):
+        assert fragment in out
+
+
+BAD = [
+    (["bench6", "--at", "1,2,3"], "--at", "6 comma-separated values"),
+    (["bench6", "--at", "0,0,x,0,0,0"], "--at value 3 (joint 'elbow')", "a finite number"),
+    (["bench6", "--at", "0,0,nan,0,0,0"], "--at value 3 (joint 'elbow')", "a finite number"),
+    (["bench6", "--at", "0,0,0,0,0,inf"], "--at value 6 (joint 'flange_roll')", "a finite number"),
+    (["bench6", "--at", "0,-120,0,0,0,0", "--deg"], "--at value 2 (joint 'shoulder')", "[-110, 110] deg"),
+    (["bench6", "--at", "0,2.5,0,0,0,0"], "--at value 2 (joint 'shoulder')", "rad"),
+    (["rail4", "--at", "1.5,0,0,0"], "--at value 1 (joint 'carriage')", "[0, 1.2] m"),
+    (["bench6", "--deg"], "--deg", "only together with --at"),
+    (["bench6", "--tool", "flange"], "--tool", "only with a .urdf file"),
+    (["desk4"], "tool_link", "--tool LINK"),
+    (["desk4", "--tool", "nowhere"], "tool_link: got 'nowhere'", "a link of the document"),
+    (["no_such_arm"], "arm file", "bench6"),
+    ([], "FILE", "required"),
+    (["bench6", "--speed", "3"], "unrecognized arguments", "--speed"),
+]
+
+
+@pytest.mark.parametrize("argv, option, accepted", BAD, ids=[" ".join(b[0]) or "(none)" for b in BAD])
+def test_bad_input_exits_2_naming_the_option(capsys, argv, option, accepted):
+    code, out, err = run(capsys, *argv)
+    assert code == 2
+    assert out == ""
+    assert "Traceback" not in err
+    assert option in err and accepted in err, err
+
+
+def test_negative_values_after_at(capsys):
+    # "--at -10,20,..." must not be mistaken for an option
+    rep = report(capsys, "planar3", "--at", "-10,20,-30", "--deg")
+    np.testing.assert_allclose(rep["configuration"]["q"], np.radians([-10, 20, -30]))
+
+
+def test_bad_arm_file_exits_2(capsys, tmp_path):
+    path = tmp_path / "broken.toml"
+    path.write_text('name = "b"\n[[joint]]\nname = "j"\nkind = "revolute"\n')
+    code, out, err = run(capsys, str(path))
+    assert code == 2 and out == "" and "Traceback" not in err
+    assert "broken.toml" in err and "joint[0] ('j')" in err
+
+
+def test_help_exits_0(capsys):
+    code, out, _ = run(capsys, "--help")
+    assert code == 0 and "--at" in out

@@ -18,9 +18,8 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
 from functools import partial
-from typing import Any
+from typing import Any, NamedTuple
 
 import msgpack
 import numpy as np
@@ -119,11 +118,14 @@ MAX_MAP_ENTRIES = 128
 SEQ_MAX = 2**64 - 1
 STAMP_MAX = 2**63 - 1
 
-# msgpack unpack bounds: lengths beyond these fail inside the unpacker, before any allocation
-_UNPACK_HOT = {"max_str_len": MAX_NAME_CHARS, "max_bin_len": 0, "max_array_len": MAX_JOINTS,
-               "max_map_len": 16, "max_ext_len": 0}
-_UNPACK_WIDE = {"max_str_len": MAX_TEXT_CHARS * 4, "max_bin_len": 0, "max_array_len": 256,
-                "max_map_len": MAX_MAP_ENTRIES, "max_ext_len": 0}
+# msgpack unpack bounds: lengths beyond these fail inside the unpacker, before any allocation.
+# "hot" for twist, joints and command (short strings, joint arrays, small maps); "wide" for the rest.
+_HOT_MAX_STR = MAX_NAME_CHARS
+_HOT_MAX_ARRAY = MAX_JOINTS
+_HOT_MAX_MAP = 16
+_WIDE_MAX_STR = MAX_TEXT_CHARS * 4  # UTF-8 bytes of MAX_TEXT_CHARS characters
+_WIDE_MAX_ARRAY = 256
+_WIDE_MAX_MAP = MAX_MAP_ENTRIES
 
 _HEADER = ("proto", "kind", "seq", "stamp_ns")
 
@@ -143,12 +145,11 @@ def now_ns() -> int:
 
 
 # =================================================================================================
-# decoded messages
+# decoded messages (named tuples: cheap to build on the hot path, immutable)
 # =================================================================================================
 
 
-@dataclass(frozen=True, slots=True)
-class TwistMessage:
+class TwistMessage(NamedTuple):
     """A decoded twist. twist : the desired tool twist (linear m/s, angular rad/s, frame, point m)."""
 
     seq: int
@@ -157,8 +158,7 @@ class TwistMessage:
     twist: DesiredTwist
 
 
-@dataclass(frozen=True, slots=True)
-class JointsMessage:
+class JointsMessage(NamedTuple):
     """A decoded joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None."""
 
     seq: int
@@ -167,8 +167,7 @@ class JointsMessage:
     velocity: np.ndarray | None
 
 
-@dataclass(frozen=True, slots=True)
-class CommandMessage:
+class CommandMessage(NamedTuple):
     """A decoded command (one per tick).
 
     rate : (n,) commanded joint rates, rad/s or m/s, joint order.
@@ -188,8 +187,7 @@ class CommandMessage:
     health: str
 
 
-@dataclass(frozen=True, slots=True)
-class HealthMessage:
+class HealthMessage(NamedTuple):
     """A decoded health report.
 
     manipulability, manipulability_linear, manipulability_angular : Yoshikawa measures (whole,
@@ -224,8 +222,7 @@ class HealthMessage:
     overruns: int
 
 
-@dataclass(frozen=True, slots=True)
-class EventMessage:
+class EventMessage(NamedTuple):
     """A decoded event: a state change or fault. event : name; detail : human-readable text."""
 
     seq: int
@@ -236,27 +233,25 @@ class EventMessage:
     mode: str
 
 
-@dataclass(frozen=True, slots=True)
-class RequestMessage:
+class RequestMessage(NamedTuple):
     """A decoded control request. args : the op's own fields (see REQUEST_ARGS)."""
 
     seq: int
     stamp_ns: int
     op: str
-    args: dict[str, Any] = field(default_factory=dict)
+    args: dict[str, Any]
 
 
-@dataclass(frozen=True, slots=True)
-class ReplyMessage:
+class ReplyMessage(NamedTuple):
     """A decoded control reply. result : the op's result map when ok; error_code/message when not."""
 
     seq: int
     stamp_ns: int
     op: str
     ok: bool
-    result: dict[str, Any] = field(default_factory=dict)
-    error_code: str | None = None
-    error_message: str | None = None
+    result: dict[str, Any]
+    error_code: str | None
+    error_message: str | None
 
 
 # =================================================================================================
@@ -264,7 +259,7 @@ class ReplyMessage:
 # =================================================================================================
 
 
-def _unpack(data: bytes, cap: int, kind: str, bounds: Mapping[str, int]) -> dict:
+def _unpack(data: bytes, cap: int, kind: str, hot: bool) -> dict:
     """Size-check then unpack one msgpack map; raise WireError oversize / not_msgpack / bad_type."""
     if type(data) is not bytes:
         if isinstance(data, (bytearray, memoryview)):
@@ -274,7 +269,12 @@ def _unpack(data: bytes, cap: int, kind: str, bounds: Mapping[str, int]) -> dict
     if len(data) > cap:
         raise _fail("oversize", kind, f"{len(data)} bytes", f"at most {cap} bytes")
     try:
-        m = msgpack.unpackb(data, raw=False, strict_map_key=True, **bounds)
+        if hot:
+            m = msgpack.unpackb(data, max_str_len=_HOT_MAX_STR, max_bin_len=0, max_array_len=_HOT_MAX_ARRAY,
+                                max_map_len=_HOT_MAX_MAP, max_ext_len=0)
+        else:
+            m = msgpack.unpackb(data, max_str_len=_WIDE_MAX_STR, max_bin_len=0, max_array_len=_WIDE_MAX_ARRAY,
+                                max_map_len=_WIDE_MAX_MAP, max_ext_len=0)
     except ValueError as exc:  # msgpack's FormatError, ExtraData, StackError, limits, bad UTF-8
         text = str(exc)
         if "exceeds max" in text:
@@ -473,7 +473,7 @@ def encode_twist(*, seq: int, lease: str, linear: Sequence[float] | np.ndarray,
 
 def decode_twist(data: bytes) -> TwistMessage:
     """Decode and check a twist map (the second frame). Raises WireError."""
-    m = _unpack(data, MAX_TWIST_BYTES, KIND_TWIST, _UNPACK_HOT)
+    m = _unpack(data, MAX_TWIST_BYTES, KIND_TWIST, True)
     _check_header(m, KIND_TWIST)
     keys = m.keys()
     if keys != _TWIST_REQUIRED and keys != _TWIST_KEYS_WITH_POINT:
@@ -515,7 +515,7 @@ def encode_joints(*, seq: int, position: Sequence[float] | np.ndarray,
 
 def decode_joints(data: bytes, n: int) -> JointsMessage:
     """Decode and check a joint state of an n-joint arm. Raises WireError (bad_length when not n)."""
-    m = _unpack(data, MAX_JOINTS_BYTES, KIND_JOINTS, _UNPACK_HOT)
+    m = _unpack(data, MAX_JOINTS_BYTES, KIND_JOINTS, True)
     _check_header(m, KIND_JOINTS)
     keys = m.keys()
     if keys != _JOINTS_REQUIRED and keys != _JOINTS_KEYS_WITH_VELOCITY:
@@ -568,7 +568,7 @@ def encode_command(*, seq: int, stamp_ns: int, tick: int, rate: np.ndarray, targ
 
 def decode_command(data: bytes, n: int | None = None) -> CommandMessage:
     """Decode and check a command; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m = _unpack(data, MAX_COMMAND_BYTES, KIND_COMMAND, _UNPACK_HOT)
+    m = _unpack(data, MAX_COMMAND_BYTES, KIND_COMMAND, True)
     _check_header(m, KIND_COMMAND)
     if m.keys() != _COMMAND_KEYS:
         raise _key_error(m, KIND_COMMAND, _COMMAND_KEYS, frozenset())
@@ -653,7 +653,7 @@ def _submap(v: object, name: str, keys: frozenset[str]) -> dict:
 
 def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
     """Decode and check a health report; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m = _unpack(data, MAX_HEALTH_BYTES, KIND_HEALTH, _UNPACK_WIDE)
+    m = _unpack(data, MAX_HEALTH_BYTES, KIND_HEALTH, False)
     _check_header(m, KIND_HEALTH)
     if m.keys() != _HEALTH_KEYS:
         raise _key_error(m, KIND_HEALTH, _HEALTH_KEYS, frozenset())
@@ -718,7 +718,7 @@ def encode_event(*, seq: int, tick: int, event: str, detail: str, mode: str,
 
 def decode_event(data: bytes) -> EventMessage:
     """Decode and check an event."""
-    m = _unpack(data, MAX_EVENT_BYTES, KIND_EVENT, _UNPACK_WIDE)
+    m = _unpack(data, MAX_EVENT_BYTES, KIND_EVENT, False)
     _check_header(m, KIND_EVENT)
     if m.keys() != _EVENT_KEYS:
         raise _key_error(m, KIND_EVENT, _EVENT_KEYS, frozenset())
@@ -862,7 +862,7 @@ def encode_request(*, seq: int, op: str, stamp_ns: int | None = None, **args: An
 
 def decode_request(data: bytes) -> RequestMessage:
     """Decode and check a control request. Raises WireError (an op not in OPS: reason unknown_op)."""
-    m = _unpack(data, MAX_CONTROL_BYTES, KIND_REQUEST, _UNPACK_WIDE)
+    m = _unpack(data, MAX_CONTROL_BYTES, KIND_REQUEST, False)
     _check_header(m, KIND_REQUEST)
     for key in ("seq", "stamp_ns", "op"):
         if key not in m:
@@ -891,7 +891,7 @@ def peek_request(data: bytes) -> tuple[int, str]:
     """Best-effort (seq, op) of a request that failed to decode, for the error reply: (-1, "") when
     unreadable; op is "" unless it is one of OPS."""
     try:
-        m = msgpack.unpackb(data[:MAX_CONTROL_BYTES], raw=False, **_UNPACK_WIDE)
+        m = _unpack(data, MAX_CONTROL_BYTES, KIND_REQUEST, False)
     except Exception:
         return -1, ""
     if type(m) is not dict:
@@ -956,7 +956,7 @@ def encode_reply(*, seq: int, op: str, result: Mapping[str, Any] | None = None,
 
 def decode_reply(data: bytes) -> ReplyMessage:
     """Decode and check a control reply (result key set per op; values are plain msgpack data)."""
-    m = _unpack(data, MAX_CONTROL_BYTES, KIND_REPLY, _UNPACK_WIDE)
+    m = _unpack(data, MAX_CONTROL_BYTES, KIND_REPLY, False)
     _check_header(m, KIND_REPLY)
     ok = m.get("ok")
     if type(ok) is not bool:
@@ -977,7 +977,7 @@ def decode_reply(data: bytes) -> ReplyMessage:
     op = _str(m["op"], "reply.op", MAX_NAME_CHARS, OPS)
     result = _submap(m["result"], f"reply({op}).result", REPLY_RESULTS[op])
     _check_plain(result, f"reply({op}).result")
-    return ReplyMessage(seq, stamp, op, True, result)
+    return ReplyMessage(seq, stamp, op, True, result, None, None)
 
 
 def _check_plain(v: Any, name: str) -> None:

@@ -376,3 +376,16 @@ def test_load_arm_rejects_urdf_only_arguments_and_unknown_files(tmp_path):
     broken.write_text(edit("speed_m_s = 0.2", "speed_m_s = -1.0"))
     with pytest.raises(ModelError, match=r"broken\.toml: joint\[2\] \('slide'\)\.speed_m_s"):
         load_arm(broken)
+
+
+def test_documented_example_parses():
+    # The complete example in docs/arm-format.md must stay valid.
+    from pathlib import Path
+
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "arm-format.md").read_text()
+    blocks = [b.split("```", 1)[0] for b in doc.split("```toml\n")[1:]]
+    example = next(b for b in blocks if 'name = "example4"' in b)
+    arm = parse_arm_toml(example, source="arm-format.md")
+    assert arm.joint_names == ("turntable", "shoulder", "elbow", "wrist_roll")
+    assert not arm.joints[3].limited
+    np.testing.assert_allclose(arm.q_home, [0.0, math.radians(45.0), math.radians(-90.0), 0.0])

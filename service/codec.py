@@ -48,6 +48,11 @@ KINDS: tuple[str, ...] = (KIND_TWIST, KIND_JOINTS, KIND_COMMAND, KIND_HEALTH, KI
 INTAKE_TOPICS: tuple[bytes, ...] = (TOPIC_TWIST, TOPIC_JOINTS)
 OUTPUT_TOPICS: tuple[bytes, ...] = (TOPIC_COMMAND, TOPIC_HEALTH, TOPIC_EVENT)
 
+# --- default endpoints (the service binds, everyone else connects; loopback by default) -----------
+DEFAULT_INTAKE = "tcp://127.0.0.1:47310"
+DEFAULT_OUTPUT = "tcp://127.0.0.1:47311"
+DEFAULT_CONTROL = "tcp://127.0.0.1:47312"
+
 # --- enumerations --------------------------------------------------------------------------------
 TWIST_FRAMES: tuple[str, ...] = ("base", "tool")
 #: health states (singularity classifier with hysteresis)

@@ -22,6 +22,7 @@ from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from twistrate.service.codec import DEFAULT_CONTROL, DEFAULT_INTAKE, DEFAULT_OUTPUT, LEASE_MS_MAX
 from twistrate.service.security import check_endpoints, load_allow_list, load_secret_keypair
 from twistrate.service.state import E_BAD_ARGUMENT
 from twistrate.solver.errors import ConfigError, ControlError, field_error
@@ -84,9 +85,9 @@ class TickSection(_Section):
 class EndpointsSection(_Section):
     """Where the service binds (docs/protocol.md, section 1)."""
 
-    intake: str = "tcp://127.0.0.1:47310"
-    output: str = "tcp://127.0.0.1:47311"
-    control: str = "tcp://127.0.0.1:47312"
+    intake: str = DEFAULT_INTAKE
+    output: str = DEFAULT_OUTPUT
+    control: str = DEFAULT_CONTROL
 
 
 class SecuritySection(_Section):
@@ -193,9 +194,9 @@ class WatchdogSection(_Section):
 class LeaseSection(_Section):
     """Lease durations, ms: default_ms when a claim names none; claims may ask within [min_ms, max_ms]."""
 
-    default_ms: Annotated[int, Field(ge=1, le=600_000)] = 1000
-    min_ms: Annotated[int, Field(ge=1, le=600_000)] = 50
-    max_ms: Annotated[int, Field(ge=1, le=600_000)] = 60_000
+    default_ms: Annotated[int, Field(ge=1, le=LEASE_MS_MAX)] = 1000
+    min_ms: Annotated[int, Field(ge=1, le=LEASE_MS_MAX)] = 50
+    max_ms: Annotated[int, Field(ge=1, le=LEASE_MS_MAX)] = 60_000
 
     @model_validator(mode="after")
     def _ordered(self) -> LeaseSection:

@@ -80,6 +80,29 @@ def _skew(a: np.ndarray) -> np.ndarray:
     return np.array([[0.0, -a[2], a[1]], [a[2], 0.0, -a[0]], [-a[1], a[0], 0.0]])
 
 
+# Rz(q) = _RZ_CONST + sin q _RZ_SIN + cos q _RZ_COS; Tz(q) = I + q _TZ_LINEAR (4x4 homogeneous).
+_RZ_CONST = np.diag([0.0, 0.0, 1.0, 1.0])
+_RZ_SIN = np.array([[0.0, -1, 0, 0], [1, 0, 0, 0], [0, 0, 0, 0], [0, 0, 0, 0]])
+_RZ_COS = np.diag([1.0, 1.0, 0.0, 0.0])
+_TZ_LINEAR = np.array([[0.0, 0, 0, 0], [0, 0, 0, 0], [0, 0, 0, 1], [0, 0, 0, 0]])
+
+
+def _turn_z_to(axis: np.ndarray) -> np.ndarray:
+    """(4, 4) rotation T_joint_axis whose +z column is the unit `axis` (3,); the identity when the
+    axis is exactly +z. The x column is the unit vector along whichever of x, y is less parallel
+    to the axis, made orthogonal to it (Gram-Schmidt), so the construction is exact for any axis."""
+    T = np.eye(4)
+    if np.array_equal(axis, (0.0, 0.0, 1.0)):
+        return T
+    seed = np.eye(3)[0] if abs(axis[0]) < abs(axis[1]) else np.eye(3)[1]
+    x = seed - axis * (seed @ axis)
+    x /= np.linalg.norm(x)
+    T[:3, 0] = x
+    T[:3, 1] = _skew(axis) @ x  # axis x x
+    T[:3, 2] = axis
+    return T
+
+
 @dataclass(frozen=True)
 class Arm:
     """A serial arm: ordered joints, mount, tool, home posture, plus stacked kernel arrays.
@@ -97,6 +120,23 @@ class Arm:
     axes : (n, 3) unit axes in each joint's own frame.
     revolute : (n,) bool mask; prismatic is its negation.
     q_min, q_max, v_max, a_max : (n,) limits, SI.
+
+    Arrays of the fast forward-kinematics pass (`twistrate.solver.kinematics.forward`). The kernels
+    run the chain in *axis frames*: joint i's frame turned about its origin by T_joint_axis[i] so
+    that its +z is the joint axis (then every joint motion is Rz(q) or Tz(q), and the base-frame
+    axis is a column of the chain product). The tool is appended as chain element n.
+
+    all_revolute : True when every joint is revolute (skips the prismatic corrections).
+    T_axis_joint : (n, 4, 4) joint frame in its axis frame (inverse of the turn), or None when
+        every axis already is +z (the axis frames are the joint frames).
+    chain_coef_template : (n + 1, 1, 4) per chain element (joints, then the tool) its coefficient
+        row [sin q, cos q, q, 1] with the q-dependent entries zeroed (the tool's row is constant).
+    chain_basis : (n + 1, 4, 16) element e's local transform, linear in its coefficient row:
+        A_e (4x4, row-major flattened) = c_e @ chain_basis[e]; A_e = T_axis(e-1)_axis(e)(q_e), the
+        axis frame of joint e in that of joint e - 1 (the base frame for e = 0), A_n the tool in
+        the last axis frame.
+    jacobian_column_mask : (6, n) 1.0 where a revolute column has its cross-product / axis entries,
+        0.0 for prismatic columns; prismatic_float : (n,) 1.0 for prismatic joints.
     """
 
     name: str
@@ -113,6 +153,12 @@ class Arm:
     q_max: np.ndarray = field(init=False, repr=False)
     v_max: np.ndarray = field(init=False, repr=False)
     a_max: np.ndarray = field(init=False, repr=False)
+    all_revolute: bool = field(init=False, repr=False)
+    T_axis_joint: np.ndarray | None = field(init=False, repr=False)
+    chain_coef_template: np.ndarray = field(init=False, repr=False)
+    chain_basis: np.ndarray = field(init=False, repr=False)
+    jacobian_column_mask: np.ndarray = field(init=False, repr=False)
+    prismatic_float: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         n = len(self.joints)
@@ -142,9 +188,44 @@ class Arm:
         put(self, "q_max", np.array([j.position_max for j in self.joints], dtype=float))
         put(self, "v_max", np.array([j.velocity_max for j in self.joints], dtype=float))
         put(self, "a_max", np.array([j.acceleration_max for j in self.joints], dtype=float))
+        self._derive_chain(F, axes, revolute)
         for name in ("F_base", "motion_const", "motion_basis", "axes", "revolute",
-                     "q_min", "q_max", "v_max", "a_max"):
+                     "q_min", "q_max", "v_max", "a_max", "chain_coef_template", "chain_basis",
+                     "jacobian_column_mask", "prismatic_float"):
             getattr(self, name).setflags(write=False)
+        if self.T_axis_joint is not None:
+            self.T_axis_joint.setflags(write=False)
+
+    def _derive_chain(self, F: np.ndarray, axes: np.ndarray, revolute: np.ndarray) -> None:
+        """Derive the axis-frame chain arrays of the fast FK pass (see the class docstring)."""
+        n = len(axes)
+        turn = np.array([_turn_z_to(a) for a in axes])  # (n, 4, 4) T_joint_axis
+        # Local element i in axis frames: T_axis(i-1)_axis(i)(q) = turn[i-1]^T F_i turn[i] @ Mz(q_i).
+        prev_inv = np.concatenate([np.eye(4)[None], np.transpose(turn[:-1], (0, 2, 1))])
+        G = prev_inv @ F @ turn
+        # L[e, k]: element e's 4x4 coefficient of c_k, c = [sin q, cos q, q, 1]; e = n is the tool.
+        L = np.zeros((n + 1, 4, 4, 4))
+        for i in range(n):
+            if revolute[i]:
+                L[i, 0] = G[i] @ _RZ_SIN
+                L[i, 1] = G[i] @ _RZ_COS
+                L[i, 3] = G[i] @ _RZ_CONST
+            else:
+                L[i, 2] = G[i] @ _TZ_LINEAR
+                L[i, 3] = G[i]
+        L[n, 3] = turn[-1].T @ self.T_last_tool
+        template = np.zeros((n + 1, 1, 4))
+        template[:, 0, 3] = 1.0
+        column_mask = np.zeros((6, n))
+        column_mask[:, revolute] = 1.0
+        put = object.__setattr__
+        put(self, "all_revolute", bool(np.all(revolute)))
+        identity = all(np.array_equal(t, np.eye(4)) for t in turn)
+        put(self, "T_axis_joint", None if identity else np.ascontiguousarray(np.transpose(turn, (0, 2, 1))))
+        put(self, "chain_coef_template", template)
+        put(self, "chain_basis", L.reshape(n + 1, 4, 16))
+        put(self, "jacobian_column_mask", column_mask)
+        put(self, "prismatic_float", (~revolute).astype(float))
 
     @property
     def n(self) -> int:

@@ -1,31 +1,73 @@
 """Forward kinematics of every joint frame in one pass, and the geometric Jacobian of the tool point.
 
 Kernels trust their input (finite q of the right length); validation happens at the edges.
+
+How the pass stays cheap (a dozen numpy calls, each on a whole stack): the chain runs in *axis
+frames* (each joint frame turned about its origin so +z is the joint axis; see `Arm`), with the tool
+as one more element. All local transforms come from one batched matmul of their coefficient rows
+[sin q, cos q, q, 1] with a precomputed basis; a Hillis-Steele prefix scan (ceil(log2(n + 1))
+batched matmuls) turns them into every prefix product. Base-frame axes and origins are then
+columns of the result, and the tool pose its last element.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
 from twistrate.solver.arm import Arm
 
+#: (3, 9) Levi-Civita symbol: LEVI_CIVITA @ outer(a, b).ravel() == cross(a, b).
+LEVI_CIVITA = np.array([
+    [0.0, 0, 0, 0, 0, 1, 0, -1, 0],
+    [0, 0, -1, 0, 0, 0, 1, 0, 0],
+    [0, 1, 0, -1, 0, 0, 0, 0, 0],
+])
+LEVI_CIVITA.setflags(write=False)
 
-@dataclass(frozen=True)
+
+@dataclass(frozen=True, eq=False, init=False)
 class Frames:
     """Result of one forward-kinematics pass at configuration q.
 
+    T_base_axis : (n, 4, 4) each joint's axis frame after its motion: the joint frame turned about
+        its origin so that +z is the joint axis (identical to the joint frame when the arm's axis
+        is +z); base frame, metres.
+    T_base_tool : (4, 4) tool pose, base frame, metres.
+    T_axis_joint : (n, 4, 4) constant joint frame in axis frame (from the arm), or None when the
+        axis frames are the joint frames.
+
+    Derived (read-only views, or computed on first use):
     T_base_joint : (n, 4, 4) each joint's frame after its motion, base frame, metres.
     z_base : (n, 3) each joint's unit axis, base frame.
     p_base : (n, 3) each joint frame's origin, base frame, metres (a point on the joint axis).
-    T_base_tool : (4, 4) tool pose, base frame, metres.
     """
 
-    T_base_joint: np.ndarray
-    z_base: np.ndarray
-    p_base: np.ndarray
+    T_base_axis: np.ndarray
     T_base_tool: np.ndarray
+    T_axis_joint: np.ndarray | None
+
+    def __init__(
+        self, T_base_axis: np.ndarray, T_base_tool: np.ndarray, T_axis_joint: np.ndarray | None = None
+    ) -> None:
+        # Frozen: fill __dict__ once (a third of the cost of the generated per-field setattr).
+        self.__dict__.update(T_base_axis=T_base_axis, T_base_tool=T_base_tool, T_axis_joint=T_axis_joint)
+
+    @property
+    def z_base(self) -> np.ndarray:
+        return self.T_base_axis[:, :3, 2]
+
+    @property
+    def p_base(self) -> np.ndarray:
+        return self.T_base_axis[:, :3, 3]
+
+    @cached_property
+    def T_base_joint(self) -> np.ndarray:
+        if self.T_axis_joint is None:
+            return self.T_base_axis
+        return self.T_base_axis @ self.T_axis_joint
 
 
 def forward(arm: Arm, q: np.ndarray) -> Frames:
@@ -33,26 +75,21 @@ def forward(arm: Arm, q: np.ndarray) -> Frames:
 
     q : (n,) joint positions, rad (revolute) or m (prismatic), in the arm's joint order.
     """
-    n = arm.n
-    # Local transforms A_i = F_i @ M_i(q_i) for all joints at once (see Arm.motion_basis).
-    coef = np.empty((n, 1, 3))
-    np.sin(q, out=coef[:, 0, 0])
-    np.cos(q, out=coef[:, 0, 1])
-    coef[:, 0, 2] = q
-    A = np.matmul(coef, arm.motion_basis)
-    A += arm.motion_const[:, None, :]
-    A = A.reshape(n, 4, 4)
-    # The chain is sequential; a Python list of 4x4 products is cheaper than writes into a stack.
-    T_prev = A[0]
-    chain = [T_prev]
-    for i in range(1, n):
-        T_prev = T_prev @ A[i]
-        chain.append(T_prev)
-    T = np.stack(chain)
-    T_base_tool = T_prev @ arm.T_last_tool
-    z_base = np.matmul(T[:, :3, :3], arm.axes[:, :, None])[:, :, 0]
-    p_base = T[:, :3, 3]
-    return Frames(T, z_base, p_base, T_base_tool)
+    # Coefficient rows [sin q, cos q, q, 1] of the n + 1 chain elements (joints, tool).
+    c = arm.chain_coef_template.copy()
+    np.sin(q, c[:-1, 0, 0])
+    np.cos(q, c[:-1, 0, 1])
+    if not arm.all_revolute:
+        c[:-1, 0, 2] = q
+    m = len(c)
+    P = (c @ arm.chain_basis).reshape(m, 4, 4)  # local transforms A_e
+    # Prefix scan: after the step with stride d, P[e] is the product of the (up to) 2d elements
+    # ending at e, so finally P[e] = A_0 ... A_e.
+    d = 1
+    while d < m:
+        P[d:] = P[:-d] @ P[d:]
+        d *= 2
+    return Frames(P[:-1], P[-1], arm.T_axis_joint)
 
 
 def cross_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -71,16 +108,16 @@ def geometric_jacobian(arm: Arm, frames: Frames) -> np.ndarray:
     angular velocity (rad/s), per unit joint rate. Revolute column [z x (p_e - p); z], prismatic
     column [z; 0].
     """
-    n = arm.n
-    z = frames.z_base
-    d = frames.T_base_tool[:3, 3] - frames.p_base
+    T = frames.T_base_axis
+    n = len(T)
+    z = T[:, :3, 2].T  # (3, n) axes
+    d = (frames.T_base_tool[:3, 3] - T[:, :3, 3]).T  # (3, n) p_e - p_i
     J = np.empty((6, n))
-    Jv = cross_rows(z, d)
-    rev = arm.revolute
-    Jv[~rev] = z[~rev]
-    J[:3] = Jv.T
-    J[3:] = z.T
-    J[3:, ~rev] = 0.0
+    np.matmul(LEVI_CIVITA, (z[:, None, :] * d[None, :, :]).reshape(9, n), out=J[:3])
+    J[3:] = z
+    if not arm.all_revolute:
+        J *= arm.jacobian_column_mask
+        J[:3] += z * arm.prismatic_float
     return J
 
 

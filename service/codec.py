@@ -282,6 +282,8 @@ def _unpack(data: bytes, cap: int, kind: str, hot: bool) -> dict:
                                 max_map_len=_WIDE_MAX_MAP, max_ext_len=0)
     except ValueError as exc:  # msgpack's FormatError, ExtraData, StackError, limits, bad UTF-8
         text = str(exc)
+        if "map key" in text:  # strict_map_key: only str (and bin, bounded to b"") keys
+            raise _fail("bad_type", kind, text, "a map with string keys") from None
         if "exceeds max" in text:
             raise _fail("oversize", kind, text,
                         "arrays, maps and strings within the protocol's bounds") from None
@@ -559,6 +561,10 @@ def encode_command(*, seq: int, stamp_ns: int, tick: int, rate: np.ndarray, targ
         raise _bad_input("command.target", f"{len(t)} entries", f"as many entries as rate ({len(r)})")
     if not 0.0 <= scale <= 1.0:
         raise _bad_input("command.scale", scale, "a finite number in [0, 1]")
+    if type(seq) is not int or type(stamp_ns) is not int or type(tick) is not int \
+            or type(answers) is not int or seq < 0 or stamp_ns < 0 or tick < 0 or answers < -1:
+        raise _bad_input("command", {"seq": seq, "stamp_ns": stamp_ns, "tick": tick, "answers": answers},
+                         "Python ints: seq, stamp_ns, tick >= 0 and answers >= -1")
     if mode not in MODES:
         raise _bad_input("command.mode", mode, f"one of {', '.join(MODES)}")
     if health not in HEALTH_STATES:
@@ -567,8 +573,9 @@ def encode_command(*, seq: int, stamp_ns: int, tick: int, rate: np.ndarray, targ
         return msgpack.packb({"proto": PROTOCOL_VERSION, "kind": KIND_COMMAND, "seq": seq,
                               "stamp_ns": stamp_ns, "tick": tick, "rate": r, "target": t,
                               "answers": answers, "scale": float(scale), "mode": mode, "health": health})
-    except (TypeError, ValueError, OverflowError) as exc:  # a non-int counter handed in by mistake
-        raise _bad_input("command", (seq, stamp_ns, tick, answers), f"integer counters ({exc})") from None
+    except OverflowError as exc:  # a counter beyond 64 bits
+        raise _bad_input("command", (seq, stamp_ns, tick, answers),
+                         f"counters within 64 bits ({exc})") from None
 
 
 def decode_command(data: bytes, n: int | None = None) -> CommandMessage:

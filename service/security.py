@@ -58,12 +58,12 @@ def parse_endpoint(endpoint: str, field_name: str = "endpoint") -> tuple[str, st
     return transport, host
 
 
-def is_loopback(endpoint: str) -> bool:
+def is_loopback(endpoint: str, field_name: str = "endpoint") -> bool:
     """True for an endpoint no other machine can reach: 127.0.0.0/8, ::1, localhost, ipc, inproc.
 
     Raises ConfigError for a malformed endpoint.
     """
-    transport, host = parse_endpoint(endpoint)
+    transport, host = parse_endpoint(endpoint, field_name)
     if transport in ("ipc", "inproc"):
         return True
     if host == "localhost":
@@ -77,7 +77,7 @@ def is_loopback(endpoint: str) -> bool:
 def check_endpoints(endpoints: Mapping[str, str], curve: bool) -> None:
     """Refuse any non-loopback endpoint unless CURVE is configured. endpoints : {key path: endpoint}."""
     for name, endpoint in endpoints.items():
-        if not is_loopback(endpoint) and not curve:
+        if not is_loopback(endpoint, name) and not curve:
             raise field_error(ConfigError, name, endpoint,
                               "a loopback endpoint (127.0.0.1, [::1], localhost, ipc://, inproc://); "
                               "or configure [security] server_secret_key and client_public_keys "

@@ -1,0 +1,213 @@
+"""The Jacobian family derived from the geometric Jacobian: body, spatial, offset point, analytical
+(roll-pitch-yaw), the derivative tensor dJ/dq, J_dot, J_dot q_dot and the manipulability gradient.
+
+Input everywhere is the geometric Jacobian of `twistrate.solver.kinematics.geometric_jacobian`:
+J : (6, n), base frame, tool point, rows (v, w): linear velocity (m/s) of the tool point, then
+angular velocity (rad/s), per unit joint rate (rad/s revolute, m/s prismatic), joint order.
+Pure numpy; kernels trust their input (shapes and finiteness are checked at the edges).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from twistrate.solver.errors import InputError, field_error
+from twistrate.solver.kinematics import LEVI_CIVITA, cross_rows
+
+#: Below this |cos(pitch)| the roll-pitch-yaw rates are undefined (det E = cos(pitch)):
+#: `analytical_jacobian_rpy` raises InputError and `rpy_from_rotation` takes its gimbal-lock branch.
+RPY_SINGULARITY_TOLERANCE = 1e-6
+
+
+def body_jacobian(J: np.ndarray, T_base_tool: np.ndarray) -> np.ndarray:
+    """Body Jacobian J_b = diag(R^T, R^T) J.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    T_base_tool : (4, 4) tool pose in the base frame (R is its rotation block).
+    Returns (6, n): velocity of the tool point (m/s) and angular velocity (rad/s), both in tool
+    coordinates, rows (v, w).
+    """
+    R = T_base_tool[:3, :3]
+    return (R.T @ J.reshape(2, 3, -1)).reshape(6, -1)
+
+
+def spatial_jacobian(J: np.ndarray, T_base_tool: np.ndarray) -> np.ndarray:
+    """Spatial Jacobian (Murray, Li & Sastry 1994) J_s = [[I, [p_e]x], [0, I]] J.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    T_base_tool : (4, 4) tool pose in the base frame (p_e is its translation, m).
+    Returns (6, n), base frame, rows (v, w): v is the velocity of the body-fixed point that is at
+    the base origin (m/s), w the angular velocity (rad/s).
+    """
+    p_e = T_base_tool[:3, 3]
+    Js = J.copy()
+    Js[:3] -= cross_rows(J[3:].T, np.broadcast_to(p_e, (J.shape[1], 3))).T  # v + p_e x w
+    return Js
+
+
+def offset_point_jacobian(J: np.ndarray, r_base: np.ndarray) -> np.ndarray:
+    """Jacobian of a point offset from the tool point: J_p = [[I, -[r]x], [0, I]] J.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    r_base : (3,) offset from the tool point to the point, base frame, m.
+    Returns (6, n), base frame, rows (v, w): velocity of the offset point (m/s), angular velocity
+    (rad/s).
+    """
+    Jp = J.copy()
+    Jp[:3] += cross_rows(J[3:].T, np.broadcast_to(r_base, (J.shape[1], 3))).T  # v + w x r
+    return Jp
+
+
+def offset_point_jacobian_tool(J: np.ndarray, T_base_tool: np.ndarray, r_tool: np.ndarray) -> np.ndarray:
+    """Jacobian of a point fixed to the tool, offset r_tool (3,) m given in tool coordinates.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    T_base_tool : (4, 4) tool pose in the base frame.
+    Returns (6, n), base frame, rows (v, w), as `offset_point_jacobian` with r_base = R r_tool.
+    """
+    return offset_point_jacobian(J, T_base_tool[:3, :3] @ r_tool)
+
+
+def rpy_from_rotation(R: np.ndarray) -> np.ndarray:
+    """Roll-pitch-yaw angles of R = Rz(yaw) Ry(pitch) Rx(roll).
+
+    R : (3, 3) rotation (e.g. the tool orientation in the base frame).
+    Returns (3,) [roll, pitch, yaw], rad; pitch in [-pi/2, pi/2], roll and yaw in (-pi, pi].
+    Gimbal-lock branch (|cos(pitch)| < RPY_SINGULARITY_TOLERANCE): roll and yaw are not separable;
+    yaw is set to 0 and roll carries the whole rotation about the locked axis.
+    """
+    pitch = np.arctan2(-R[2, 0], np.hypot(R[0, 0], R[1, 0]))
+    if np.cos(pitch) < RPY_SINGULARITY_TOLERANCE:
+        return np.array([np.arctan2(-R[1, 2], R[1, 1]), pitch, 0.0])
+    return np.array([np.arctan2(R[2, 1], R[2, 2]), pitch, np.arctan2(R[1, 0], R[0, 0])])
+
+
+def rpy_rate_matrix(rpy: np.ndarray) -> np.ndarray:
+    """E (3, 3) with w = E @ rpy_dot for R = Rz(yaw) Ry(pitch) Rx(roll).
+
+    rpy : (3,) [roll, pitch, yaw], rad. w: angular velocity, base frame, rad/s.
+    E = [[cp cy, -sy, 0], [cp sy, cy, 0], [-sp, 0, 1]], det E = cos(pitch).
+    """
+    _, p, y = rpy
+    cp, sp, cy, sy = np.cos(p), np.sin(p), np.cos(y), np.sin(y)
+    return np.array([[cp * cy, -sy, 0.0], [cp * sy, cy, 0.0], [-sp, 0.0, 1.0]])
+
+
+def analytical_jacobian_rpy(J: np.ndarray, T_base_tool: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Analytical Jacobian with roll-pitch-yaw rates: J_A = diag(I, E^-1) J.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    T_base_tool : (4, 4) tool pose in the base frame.
+    Returns (J_A, rpy): J_A (6, n) rows (v m/s, [roll_dot, pitch_dot, yaw_dot] rad/s) per unit
+    joint rate; rpy (3,) [roll, pitch, yaw] rad of the tool orientation.
+    Raises InputError (field "pitch") at the representation singularity, |cos(pitch)| <
+    RPY_SINGULARITY_TOLERANCE (pitch = +-90 deg), where E is not invertible.
+    """
+    rpy = rpy_from_rotation(T_base_tool[:3, :3])
+    _, p, y = rpy
+    cp = np.cos(p)
+    if cp < RPY_SINGULARITY_TOLERANCE:
+        raise field_error(
+            InputError, "pitch", f"{p:.9g} rad ({np.degrees(p):.6g} deg)",
+            f"|cos(pitch)| >= {RPY_SINGULARITY_TOLERANCE:g}: roll-pitch-yaw rates are undefined at "
+            "pitch = +-90 deg (use the geometric Jacobian there)",
+        )
+    sp, cy, sy = np.sin(p), np.cos(y), np.sin(y)
+    E_inv = np.array([[cy / cp, sy / cp, 0.0], [-sy, cy, 0.0], [cy * sp / cp, sy * sp / cp, 1.0]])
+    JA = J.copy()
+    JA[3:] = E_inv @ J[3:]
+    return JA, rpy
+
+
+def jacobian_derivative(J: np.ndarray) -> np.ndarray:
+    """Derivative tensor of the geometric Jacobian (the Hessian of the kinematics).
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w); prismatic columns have a
+        zero angular part, which is all this needs to know about joint types.
+    Returns dJ : (n, 6, n), dJ[j] = dJ/dq_j (6, n), units of J per rad (revolute q_j) or per m
+    (prismatic q_j). With column k = (v_k, w_k):
+        j <= k: dJ[j][:, k] = (w_j x v_k, w_j x w_k);  j > k: dJ[j][:, k] = (w_k x v_j, 0).
+    (Derivation: joint j moves every body distal to it with angular velocity w_j, so distal axes
+    and tool-point offsets rotate with w_j; for j > k only the tool point moves, by v_j. This holds
+    for revolute and prismatic j and k alike: w = 0 for a prismatic joint.)
+    """
+    n = J.shape[1]
+    w = J[3:]
+    # C[j, r, blk * n + k] = (w_j x J_blk_k)_r for blk 0 (v) and 1 (w): one Levi-Civita contraction.
+    outer = w.T[:, :, None, None, None] * J.reshape(2, 3, n).transpose(1, 0, 2)[None, None]
+    C = LEVI_CIVITA @ outer.reshape(n, 9, 2 * n)
+    idx = np.arange(n)
+    upper = (idx[:, None] <= idx[None, :])[:, None, :]  # (n, 1, n): j <= k
+    Cv = C[:, :, :n]
+    dJ = np.empty((n, 6, n))
+    dJ[:, :3] = np.where(upper, Cv, Cv.transpose(2, 1, 0))
+    dJ[:, 3:] = C[:, :, n:] * upper
+    return dJ
+
+
+def jacobian_dot(J: np.ndarray, qd: np.ndarray, dJ: np.ndarray | None = None) -> np.ndarray:
+    """Time derivative J_dot = sum_j dJ/dq_j qd_j of the geometric Jacobian.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
+    qd : (n,) joint rates, rad/s or m/s.
+    dJ : (n, 6, n) from `jacobian_derivative(J)` when already computed, else None.
+    Returns (6, n), base frame, rows (v, w), units of J per second.
+    """
+    if dJ is None:
+        dJ = jacobian_derivative(J)
+    n = J.shape[1]
+    return (qd @ dJ.reshape(n, 6 * n)).reshape(6, n)
+
+
+def jacobian_dot_qdot(J: np.ndarray, qd: np.ndarray, dJ: np.ndarray | None = None) -> np.ndarray:
+    """J_dot @ qd (6,): the velocity-product term of the tool acceleration x_ddot = J qdd + J_dot qd.
+
+    J : (6, n) geometric Jacobian; qd : (n,) joint rates; dJ : (n, 6, n) or None.
+    Returns (6,), base frame, rows (linear m/s^2 of the tool point, angular rad/s^2).
+    """
+    return jacobian_dot(J, qd, dJ) @ qd
+
+
+def manipulability_gradient(
+    J: np.ndarray,
+    dJ: np.ndarray | None = None,
+    row_weights: np.ndarray | None = None,
+    svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+) -> np.ndarray:
+    """Gradient dw/dq of the manipulability w = product of the singular values of W J (Yoshikawa
+    1985); w = sqrt(det(W J J^T W)) for n >= m, sqrt(det(J^T W^2 J)) for n < m.
+
+    J : (m, n) task rows of the geometric Jacobian, base frame, tool point (m = 6: rows (v, w)).
+    dJ : (n, m, n) dJ/dq of exactly these rows; None computes it from J, which then must be the
+        full (6, n) geometric Jacobian.
+    row_weights : (m,) task-row weights W (e.g. [1, 1, 1, L, L, L] with a characteristic length
+        L in m, so every row is m/s), or None for W = I.
+    svd : (U, s, Vt) of W J when the caller already has it: U (m, m) or (m, k), s (k,) descending,
+        Vt (n, n) or (k, n), k = min(m, n) (full or thin np.linalg.svd output); None computes it.
+    Returns (n,) dw/dq_i, units of w per rad (or per m for a prismatic joint).
+
+    Formula: dw/dq_i = sum_r (prod_{j != r} s_j) u_r^T W (dJ/dq_i) v_r, with ds_r = u_r^T d(WJ) v_r.
+    It has no division, so it stays finite at and near singular configurations. At an exact
+    singularity (s_k = 0) w is not differentiable; the value is then the slope of w along a
+    direction that leaves the singularity (its sign follows the SVD's sign choice for the
+    vanishing direction, and w grows along both it and its negative); with two or more zero
+    singular values the gradient is 0 (w is of second order there).
+    """
+    if dJ is None:
+        dJ = jacobian_derivative(J)
+    if svd is None:
+        JW = J if row_weights is None else J * row_weights[:, None]
+        U, s, Vt = np.linalg.svd(JW, full_matrices=False)
+    else:
+        U, s, Vt = svd
+    k = len(s)
+    U = U[:, :k]
+    if row_weights is not None:
+        U = U * row_weights[:, None]  # W U, so U^T W dJ = (W U)^T dJ
+    # A[i, r] = u_r^T W dJ_i v_r
+    A = np.sum((U.T @ dJ) * Vt[None, :k], axis=2)
+    # c_r = prod_{j != r} s_j from exclusive prefix and suffix products (no division).
+    ones = np.ones(1)
+    prefix = np.cumprod(np.concatenate((ones, s[:-1])))
+    suffix = np.cumprod(np.concatenate((ones, s[:0:-1])))[::-1]
+    return A @ (prefix * suffix)

@@ -81,7 +81,8 @@ class ServiceState:
 
     # -- lease ---------------------------------------------------------------------------------
 
-    def _holder(self, token: object, now_ns: int) -> Lease:
+    def holder(self, token: object, now_ns: int) -> Lease:
+        """The current lease if `token` is its token, else ControlError(no_lease)."""
         lease = self.lease
         if lease is None or now_ns >= lease.expires_ns:
             raise ControlError(E_NO_LEASE, f"lease: got {token!r}; accepted: the token of a current lease "
@@ -115,13 +116,13 @@ class ServiceState:
 
     def renew(self, token: object, now_ns: int) -> Lease:
         """Extend the current lease by its duration from now."""
-        lease = self._holder(token, now_ns)
+        lease = self.holder(token, now_ns)
         self.lease = Lease(lease.token, lease.client, lease.duration_ns, now_ns + lease.duration_ns)
         return self.lease
 
     def release(self, token: object, now_ns: int) -> None:
         """Give the lease up; motion is disabled."""
-        lease = self._holder(token, now_ns)
+        lease = self.holder(token, now_ns)
         self.lease = None
         self.events.append(("lease_released", f"by {lease.client!r}"))
         self._disable("lease released")
@@ -137,7 +138,7 @@ class ServiceState:
 
     def enable(self, token: object, now_ns: int) -> None:
         """Allow motion (needs the lease; refused in fault and shutdown)."""
-        self._holder(token, now_ns)
+        self.holder(token, now_ns)
         if self.mode == FAULT:
             raise ControlError(E_FAULT, f"enable: service in fault ({self.fault_reason}); accepted: "
                                "enable after clear_fault")
@@ -150,7 +151,7 @@ class ServiceState:
 
     def disable(self, token: object, now_ns: int) -> None:
         """Stop motion (ramp to zero) and stay disabled. Needs the lease."""
-        self._holder(token, now_ns)
+        self.holder(token, now_ns)
         self._disable("disabled by the lease holder")
 
     def _disable(self, why: str) -> None:
@@ -168,7 +169,7 @@ class ServiceState:
 
     def clear_fault(self, token: object, now_ns: int) -> None:
         """Leave fault for disabled (needs the lease). The next bad joint state faults again."""
-        self._holder(token, now_ns)
+        self.holder(token, now_ns)
         if self.mode == FAULT:
             self.fault_reason = ""
             self._set_mode(DISABLED, "fault_cleared", "fault cleared; enable to move")

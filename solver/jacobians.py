@@ -14,6 +14,20 @@ import numpy as np
 from twistrate.solver.errors import InputError, field_error
 from twistrate.solver.kinematics import LEVI_CIVITA, cross_rows
 
+
+def _cross_blocks() -> np.ndarray:
+    """(3, 36): w (3,) @ result = blockdiag(S(w), S(w)) (6x6, row-major), S(w) @ x = w x x."""
+    eps = LEVI_CIVITA.reshape(3, 3, 3)  # eps[r, a, b]: (a x b)_r
+    blocks = np.zeros((3, 6, 6))
+    for a in range(3):
+        blocks[a, :3, :3] = blocks[a, 3:, 3:] = eps[:, a, :]
+    out = blocks.reshape(3, 36)
+    out.setflags(write=False)
+    return out
+
+
+_CROSS_BLOCKS = _cross_blocks()
+
 #: Below this |cos(pitch)| the roll-pitch-yaw rates are undefined (det E = cos(pitch)):
 #: `analytical_jacobian_rpy` raises InputError and `rpy_from_rotation` takes its gimbal-lock branch.
 RPY_SINGULARITY_TOLERANCE = 1e-6
@@ -132,17 +146,16 @@ def jacobian_derivative(J: np.ndarray) -> np.ndarray:
     for revolute and prismatic j and k alike: w = 0 for a prismatic joint.)
     """
     n = J.shape[1]
-    w = J[3:]
-    # C[j, r, blk * n + k] = (w_j x J_blk_k)_r for blk 0 (v) and 1 (w): one Levi-Civita contraction.
-    outer = w.T[:, :, None, None, None] * J.reshape(2, 3, n).transpose(1, 0, 2)[None, None]
-    C = LEVI_CIVITA @ outer.reshape(n, 9, 2 * n)
+    # D[j] = blockdiag(S(w_j), S(w_j)) @ J, S(w) the cross-product matrix: D[j][:, k] = (w_j x v_k,
+    # w_j x w_k), right for j <= k. The block matrices come from one 2D product with a constant.
+    D = (J[3:].T @ _CROSS_BLOCKS).reshape(n, 6, 6) @ J
     idx = np.arange(n)
-    upper = (idx[:, None] <= idx[None, :])[:, None, :]  # (n, 1, n): j <= k
-    Cv = C[:, :, :n]
-    dJ = np.empty((n, 6, n))
-    dJ[:, :3] = np.where(upper, Cv, Cv.transpose(2, 1, 0))
-    dJ[:, 3:] = C[:, :, n:] * upper
-    return dJ
+    lower = idx[:, None, None] > idx  # (n, 1, n): j > k
+    # j > k: linear block w_k x v_j = D[k][:3, j] (read from the untouched j <= k part); angular 0.
+    Dv = D[:, :3]
+    np.copyto(Dv, Dv.transpose(2, 1, 0), where=lower)
+    np.copyto(D[:, 3:], 0.0, where=lower)
+    return D
 
 
 def jacobian_dot(J: np.ndarray, qd: np.ndarray, dJ: np.ndarray | None = None) -> np.ndarray:
@@ -186,7 +199,8 @@ def manipulability_gradient(
         Vt (n, n) or (k, n), k = min(m, n) (full or thin np.linalg.svd output); None computes it.
     Returns (n,) dw/dq_i, units of w per rad (or per m for a prismatic joint).
 
-    Formula: dw/dq_i = sum_r (prod_{j != r} s_j) u_r^T W (dJ/dq_i) v_r, with ds_r = u_r^T d(WJ) v_r.
+    Formula: dw/dq_i = sum_r (prod_{j != r} s_j) u_r^T W (dJ/dq_i) v_r, with ds_r = u_r^T d(WJ) v_r,
+    evaluated as the inner product of dJ/dq_i with dw/dJ = W U diag(c) V^T, c_r = prod_{j != r} s_j.
     It has no division, so it stays finite at and near singular configurations. At an exact
     singularity (s_k = 0) w is not differentiable; the value is then the slope of w along a
     direction that leaves the singularity (its sign follows the SVD's sign choice for the
@@ -200,14 +214,20 @@ def manipulability_gradient(
         U, s, Vt = np.linalg.svd(JW, full_matrices=False)
     else:
         U, s, Vt = svd
-    k = len(s)
-    U = U[:, :k]
+    # c_r = prod_{j != r} s_j from exclusive prefix and suffix products (no division; k <= 6 floats).
+    sv = s.tolist()
+    k = len(sv)
+    c = [1.0] * k
+    acc = 1.0
+    for r in range(k):
+        c[r] = acc
+        acc *= sv[r]
+    acc = 1.0
+    for r in range(k - 1, -1, -1):
+        c[r] *= acc
+        acc *= sv[r]
+    Uc = U[:, :k] * c
     if row_weights is not None:
-        U = U * row_weights[:, None]  # W U, so U^T W dJ = (W U)^T dJ
-    # A[i, r] = u_r^T W dJ_i v_r
-    A = np.sum((U.T @ dJ) * Vt[None, :k], axis=2)
-    # c_r = prod_{j != r} s_j from exclusive prefix and suffix products (no division).
-    ones = np.ones(1)
-    prefix = np.cumprod(np.concatenate((ones, s[:-1])))
-    suffix = np.cumprod(np.concatenate((ones, s[:0:-1])))[::-1]
-    return A @ (prefix * suffix)
+        Uc *= row_weights[:, None]
+    n = J.shape[1]
+    return dJ.reshape(n, -1) @ (Uc @ Vt[:k]).ravel()

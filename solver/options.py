@@ -31,11 +31,17 @@ class SolverOptions:
         move less (weighted least norm, q_dot^T W q_dot).
     limit_gain : gain k of the joint-range cost gradient projected into the null space (Liegeois
         1977), 1/s.
-    manipulability_gain : gain of the manipulability-gradient objective in the null space.
+    manipulability_gain : gain of the manipulability-gradient objective in the null space: joint
+        rates k * dw/dq with w the manipulability of the task-weighted Jacobian (m^6 for six
+        rows and n >= 6), so k is in rad/s per (m^6/rad).
     posture_gain : gain of the attraction to `posture` in the null space, 1/s.
     posture : (n,) preferred joint positions (rad or m), or None for the arm's home posture.
     enforce_limits : enforce joint position (with braking distance), velocity and acceleration
         limits by saturation in the null space with task scaling (Flacco, De Luca & Khatib 2012).
+
+    `twistrate.solver.resolve` validates the options against the arm once and memoises the derived
+    per-tick constants on the instance (an attribute outside the dataclass fields; equality,
+    `dataclasses.replace` and `asdict` ignore it). Build a new instance to change an option.
     """
 
     damping: DampingPolicy = "singular_value"

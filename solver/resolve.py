@@ -1,25 +1,76 @@
 """Per-tick rate resolution: desired tool twist -> joint rates (damping, null space, hard limits).
 
-CONTRACT DRAFT: the data types and the signature of `resolve` are fixed; the body is being built.
+One call of `resolve` per tick (contract: the data types and the signature are fixed):
+
+1. forward kinematics and the geometric Jacobian J at q (`twistrate.solver.kinematics`);
+2. the desired twist to the base frame at the tool point: v_tool = v_ref + w x (p_tool - p_ref);
+3. weighting: A = S J D with S = diag(1, 1, 1, L, L, L) (task weighting, L the characteristic
+   length, so singular values are in m) and D = W^-1/2 (weighted least norm, Chan & Dubey 1995:
+   minimising q_dot^T W q_dot is minimising |y|^2 for q_dot = D y);
+4. one full SVD of A (`twistrate.solver.svd`), reused for everything below and returned;
+5. task rates by the damping policy (`twistrate.solver.damping`), null-space objectives through the
+   exact projector (`twistrate.solver.nullspace`, plus the manipulability gradient of
+   `twistrate.solver.jacobians`, evaluated with the same SVD);
+6. hard limits (`twistrate.solver.limits`): if the rates break a bound, saturation in the null space
+   with task scaling.
+
+How damping and saturation combine: damping decides which twist the arm is asked for near a
+singularity, x_d = A y_task (the "damped twist"; x_d = x when no damping acts and A has full row
+rank). Saturation then realises s * x_d with the exact pseudo-inverses of the reduced Jacobians,
+so the reported twist_achieved is s * x_d: the damped twist scaled along its own direction.
+Null-space objectives are secondary: when keeping them would cost task scale (s < 1), the
+saturation is repeated without them and the larger scale wins.
+
+Non-finite q, qd_prev or twist raises InputError naming the field; finite input always gives
+finite output (exactly singular configurations included). Per-(arm, period) constants derived from
+the options are computed once and memoised on the options instance (`_PLAN_ATTR`), so the tick
+itself does no validation beyond the finiteness check.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
 
 from twistrate.solver.arm import Arm
-from twistrate.solver.kinematics import Frames
-from twistrate.solver.options import SolverOptions
+from twistrate.solver.damping import task_rates
+from twistrate.solver.errors import ConfigError, InputError, field_error
+from twistrate.solver.jacobians import jacobian_derivative, manipulability_gradient
+from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
+from twistrate.solver.limits import (
+    LIMIT_ACCELERATION,
+    LIMIT_POSITION,
+    LIMIT_VELOCITY,
+    BoundPlan,
+    active_bits,
+    brake_along,
+    obeys,
+    plan_bounds,
+    rate_bounds,
+    saturate,
+    sided_bounds,
+)
+from twistrate.solver.nullspace import LinearObjective, linear_objective, project
+from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
+from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
+
+__all__ = [
+    "LIMIT_ACCELERATION",
+    "LIMIT_POSITION",
+    "LIMIT_VELOCITY",
+    "DesiredTwist",
+    "Resolution",
+    "resolve",
+    "resolve_counted",
+]
 
 TwistFrame = Literal["base", "tool"]
 
-#: bits of Resolution.limits_active, per joint
-LIMIT_POSITION = 1
-LIMIT_VELOCITY = 2
-LIMIT_ACCELERATION = 4
+#: bits of Resolution.limits_active, per joint: LIMIT_POSITION, LIMIT_VELOCITY, LIMIT_ACCELERATION
+#: (defined in twistrate.solver.limits, re-exported here).
 
 
 @dataclass(frozen=True)
@@ -46,14 +97,19 @@ class Resolution:
     qd : (n,) joint rates, rad/s (revolute) or m/s (prismatic), joint order.
     twist_desired : (6,) the desired twist converted to base frame, tool point, rows (v, w).
     twist_achieved : (6,) J @ qd, base frame, tool point, rows (v, w); equals scale * twist_desired
-        when no damping acts.
+        when no damping acts (and the arm has full row rank: with fewer than 6 joints it is the
+        least-squares achievable part); with damping, scale times the damped twist (module
+        docstring). Exception: when no scale was feasible (see `twistrate.solver.limits`), the
+        joints brake along the previous rate, scale is 0 and twist_achieved reports that motion.
     scale : task scaling factor in [0, 1] applied by the hard limits (1: twist followed fully).
-    damping : damping factor lambda applied (0 when none), m.
+    damping : damping factor lambda applied (0 when none), m; for selective damping the
+        equivalent lambda of the most attenuated direction.
     limits_active : (n,) uint8 bit mask per joint, LIMIT_POSITION | LIMIT_VELOCITY |
         LIMIT_ACCELERATION: which bound was saturated this tick.
     frames : forward kinematics at q.
     J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w).
-    singular_values : (min(6, n),) singular values of the task-weighted Jacobian, descending, m.
+    singular_values : (min(6, n),) singular values of the task-weighted Jacobian S J D, descending,
+        m (D = W^-1/2 is the identity unless options.joint_weights is set).
     U : (6, min(6, n)) left singular vectors of the task-weighted Jacobian, base frame, (v, w)
         rows (angular rows in the weighted units).
     """
@@ -70,6 +126,120 @@ class Resolution:
     U: np.ndarray
 
 
+
+#: Attribute of a SolverOptions instance holding the memoised `_Plan` of the last (arm, period).
+_PLAN_ATTR = "_resolve_plan"
+
+
+@dataclass(frozen=True)
+class _Plan:
+    """Constants of one (arm, options, period), derived and validated once.
+
+    task_scale : (6,) S = (1, 1, 1, L, L, L). col_scale : (n,) D = W^-1/2, or None for W = I.
+    weight : (6, n) or (6, 1) multiplier with A = J * weight.
+    objective : the affine null-space objectives, or None. manipulability_gain : 1/s.
+    bounds : rate-bound constants, or None when limits are not enforced.
+    zeros_n, zeros_6 : zero vectors for the one-dot finiteness checks (nan/inf * 0 = nan).
+    """
+
+    arm: Arm
+    period: float
+    task_scale: np.ndarray
+    col_scale: np.ndarray | None
+    weight: np.ndarray
+    objective: LinearObjective | None
+    manipulability_gain: float
+    bounds: BoundPlan | None
+    zeros_n: np.ndarray
+    zeros_6: np.ndarray
+
+
+def _positive(name: str, value: float, zero_ok: bool = False) -> float:
+    v = float(value)
+    if not (math.isfinite(v) and (v >= 0.0 if zero_ok else v > 0.0)):
+        accepted = "a finite number >= 0" if zero_ok else "a finite number > 0"
+        raise field_error(ConfigError, name, value, accepted)
+    return v
+
+
+def _vector(name: str, value: object, n: int, positive: bool) -> np.ndarray:
+    try:
+        v = np.asarray(value, dtype=float).reshape(-1)
+    except (TypeError, ValueError):
+        v = np.zeros(0)
+    ok = v.shape == (n,) and bool(np.all(np.isfinite(v))) and (not positive or bool(np.all(v > 0.0)))
+    if not ok:
+        raise field_error(ConfigError, name, value, f"{n} finite numbers" + (" > 0" if positive else ""))
+    return v
+
+
+def _prepare(arm: Arm, options: SolverOptions, period: float) -> _Plan:
+    """Validate `options` and `period` for `arm` and derive the per-tick constants (not per tick)."""
+    n = arm.n
+    if not (isinstance(period, (int, float)) and math.isfinite(period) and period > 0.0):
+        raise field_error(InputError, "period", period, "a finite tick period > 0 s")
+    if options.damping not in DAMPING_POLICIES:
+        raise field_error(ConfigError, "damping", options.damping, ", ".join(DAMPING_POLICIES))
+    _positive("damping_max", options.damping_max, zero_ok=True)
+    _positive("manipulability_threshold", options.manipulability_threshold)
+    _positive("singular_value_threshold", options.singular_value_threshold)
+    _positive("selective_step_max", options.selective_step_max)
+    L = _positive("characteristic_length", options.characteristic_length)
+    for name in ("limit_gain", "manipulability_gain", "posture_gain"):
+        _positive(name, getattr(options, name), zero_ok=True)
+    task_scale = np.array([1.0, 1.0, 1.0, L, L, L])
+    if options.joint_weights is None:
+        col_scale = None
+        weight = task_scale[:, None].copy()
+        d = np.ones(n)
+    else:
+        w = _vector("joint_weights", options.joint_weights, n, positive=True)
+        col_scale = 1.0 / np.sqrt(w)
+        weight = task_scale[:, None] * col_scale[None, :]
+        d = col_scale
+    posture = arm.q_home if options.posture is None else _vector("posture", options.posture, n, False)
+    objective = linear_objective(arm, options.limit_gain, options.posture_gain, posture, d)
+    bounds = plan_bounds(arm, float(period)) if options.enforce_limits else None
+    return _Plan(arm, float(period), task_scale, col_scale, weight, objective,
+                 float(options.manipulability_gain), bounds, np.zeros(n), np.zeros(6))
+
+
+def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
+    """(6,) desired twist in the base frame at the tool point, rows (v, w), m/s and rad/s."""
+    x = np.empty(6)
+    frame = twist.frame
+    point = twist.point
+    if frame == "base":
+        x[:3] = twist.linear
+        x[3:] = twist.angular
+    elif frame == "tool":
+        R = T_base_tool[:3, :3]
+        x[:3] = R @ twist.linear
+        x[3:] = R @ twist.angular
+        point = R @ point
+    else:
+        raise field_error(InputError, "twist.frame", frame, "'base' or 'tool'")
+    if point.any():
+        # v_tool = v_ref + w x (p_tool - p_ref) = v_ref + r x w, r = p_ref - p_tool = point.
+        r0, r1, r2 = point.tolist()
+        w0, w1, w2 = x[3:].tolist()
+        x[0] += r1 * w2 - r2 * w1
+        x[1] += r2 * w0 - r0 * w2
+        x[2] += r0 * w1 - r1 * w0
+    return x
+
+
+def _raise_non_finite(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
+    """Raise InputError naming the first non-finite (or overflowing) input field."""
+    for name, value in (("q", q), ("qd_prev", qd_prev), ("twist.linear", twist.linear),
+                        ("twist.angular", twist.angular), ("twist.point", twist.point)):
+        if not np.all(np.isfinite(value)):
+            raise field_error(InputError, name, np.asarray(value).tolist(), "finite numbers only")
+    raise field_error(InputError, "twist", (np.asarray(twist.linear).tolist(),
+                                            np.asarray(twist.angular).tolist()),
+                      "magnitudes whose base-frame conversion stays finite")
+
+
 def resolve(
     arm: Arm,
     q: np.ndarray,
@@ -82,5 +252,159 @@ def resolve(
 
     q : (n,) measured joint positions (rad or m). qd_prev : (n,) rates commanded last tick.
     period : tick period T in s (acceleration bounds are per tick).
+    Raises InputError naming the field for non-finite q, qd_prev or twist (or a bad period),
+    ConfigError for options that do not fit the arm (checked once per options instance).
     """
-    raise NotImplementedError("rate resolution is being built")
+    return resolve_counted(arm, q, qd_prev, twist, period, options)[0]
+
+
+def resolve_counted(
+    arm: Arm,
+    q: np.ndarray,
+    qd_prev: np.ndarray,
+    twist: DesiredTwist,
+    period: float,
+    options: SolverOptions,
+) -> tuple[Resolution, int]:
+    """`resolve`, plus the number of saturation passes of the tick (0: no bound was hit).
+
+    Each saturation pass costs one SVD of a reduced Jacobian (see `twistrate.solver.limits`).
+    """
+    plan = options.__dict__.get(_PLAN_ATTR)
+    if plan is None or plan.arm is not arm or plan.period != period:
+        plan = _prepare(arm, options, period)
+        object.__setattr__(options, _PLAN_ATTR, plan)
+    zn = plan.zeros_n
+    if q.dot(zn) + qd_prev.dot(zn) != 0.0:  # nan/inf * 0 is nan; finite * 0 is 0
+        _raise_non_finite(q, qd_prev, twist)
+    frames = forward(arm, q)
+    J = geometric_jacobian(arm, frames)
+    x = _twist_base(twist, frames.T_base_tool)
+    if x.dot(plan.zeros_6) != 0.0:
+        _raise_non_finite(q, qd_prev, twist)
+
+    A = J * plan.weight
+    x_w = x * plan.task_scale
+    U, s, Vh = svd_full(A)
+    n = q.shape[0]
+    tol = RANK_RTOL * s[0]
+    if tol < RANK_ATOL:
+        tol = RANK_ATOL
+    rank = numerical_rank(s, tol)
+    y_task, lam = task_rates(U, s, Vh, rank, x_w, A, options)
+
+    # Null-space objectives (weighted coordinates), projected with the exact projector.
+    objective = plan.objective
+    y0 = None if objective is None else objective.c0 - objective.c1 * q
+    if plan.manipulability_gain != 0.0:
+        g = plan.manipulability_gain * _manipulability_gradient(J, U, s, Vh, plan)
+        if plan.col_scale is not None:
+            g *= plan.col_scale
+        y0 = g if y0 is None else y0 + g
+    if y0 is not None and rank < n:
+        y_null = project(Vh, rank, y0)
+        y = y_task + y_null
+    else:
+        y_null = None
+        y = y_task
+    col_scale = plan.col_scale
+    qd = y if col_scale is None else y * col_scale
+
+    scale = 1.0
+    iterations = 0
+    bits = np.zeros(n, dtype=np.uint8)
+    bplan = plan.bounds
+    if bplan is not None and not obeys(bplan, sided_bounds(bplan, q, qd_prev), qd):
+        qd, scale, bits, iterations = _enforce(A, U, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
+    if qd.dot(zn) != 0.0:  # overflow of a huge (finite) request near a singularity
+        qd, scale, bits = _finite_fallback(plan, q, qd_prev)
+    k = s.shape[0]
+    resolution = Resolution(
+        qd=qd,
+        twist_desired=x,
+        twist_achieved=J @ qd,
+        scale=scale,
+        damping=lam,
+        limits_active=bits,
+        frames=frames,
+        J=J,
+        singular_values=s,
+        U=U if k == U.shape[1] else U[:, :k],
+    )
+    return resolution, iterations
+
+
+def _enforce(
+    A: np.ndarray,
+    U: np.ndarray,
+    y_task: np.ndarray,
+    y_null: np.ndarray | None,
+    y0: np.ndarray | None,
+    rank: int,
+    tol: float,
+    plan: _Plan,
+    q: np.ndarray,
+    qd_prev: np.ndarray,
+) -> tuple[np.ndarray, float, np.ndarray, int]:
+    """Slow path: saturation in the null space with task scaling. Returns (qd, scale, bits, passes).
+
+    A : (6, n) weighted Jacobian, U : (6, 6) its left singular vectors, rank its numerical rank.
+    When rank < 6 the task equations are restricted to the range of A (U_r^T A y = s U_r^T x_d;
+    the other rows are zero to the rank tolerance for every y), so the saturation works with a
+    full-row-rank matrix and its optimality refinement applies.
+    """
+    bounds = rate_bounds(plan.bounds, q, qd_prev)
+    d = plan.col_scale
+    n = q.shape[0]
+    lo_y, hi_y = (bounds.lo, bounds.hi) if d is None else (bounds.lo / d, bounds.hi / d)
+    b0 = np.zeros(n) if y_null is None else y_null
+    iterations = 0
+    if rank == 0:  # no task direction at all: only the objectives move the arm, clipped
+        y: np.ndarray | None = np.minimum(np.maximum(b0, lo_y), hi_y)
+        scale = 1.0
+    else:
+        if rank < A.shape[0]:
+            Ur = U[:, :rank]
+            A_t, x_t = Ur.T @ A, Ur.T @ (A @ y_task)
+        else:
+            A_t, x_t = A, A @ y_task  # x_t: the damped twist, weighted units (module docstring)
+        sat = saturate(A_t, x_t, y_task, b0, y0, lo_y, hi_y, rank, tol, refine=True)
+        iterations = sat.iterations
+        if y0 is not None and sat.scale < 1.0:  # the task has priority over the objectives
+            bare = saturate(A_t, x_t, y_task, np.zeros(n), None, lo_y, hi_y, rank, tol, refine=True)
+            iterations += bare.iterations
+            if bare.y is not None and (sat.y is None or bare.scale > sat.scale):
+                sat = bare
+        y, scale = sat.y, sat.scale
+    if y is None:
+        qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
+        scale = 0.0
+    else:
+        if d is not None:
+            y = y * d
+        qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
+    # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
+    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), iterations
+
+
+def _finite_fallback(plan: _Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+    """Rates when the request overflowed: the rate nearest rest within the bounds, scale 0."""
+    n = q.shape[0]
+    if plan.bounds is None:
+        return np.zeros(n), 0.0, np.zeros(n, dtype=np.uint8)
+    bounds = rate_bounds(plan.bounds, q, qd_prev)
+    qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
+    return qd, 0.0, active_bits(bounds, qd, np.ones(n, dtype=bool))
+
+
+def _manipulability_gradient(
+    J: np.ndarray, U: np.ndarray, s: np.ndarray, Vh: np.ndarray, plan: _Plan
+) -> np.ndarray:
+    """(n,) gradient dw/dq of the manipulability w of the weighted Jacobian A = S J D (Yoshikawa
+    1985), from the tick's SVD of A (`twistrate.solver.jacobians.manipulability_gradient`; with
+    joint weights, dA/dq_i = S (dJ/dq_i) D, so the derivative tensor's columns are scaled by D).
+    Units of w (m^k for k singular values) per rad (or per m)."""
+    if plan.col_scale is None:
+        return manipulability_gradient(J, row_weights=plan.task_scale, svd=(U, s, Vh))
+    dJ = jacobian_derivative(J) * plan.col_scale
+    return manipulability_gradient(J, dJ=dJ, row_weights=plan.task_scale, svd=(U, s, Vh))

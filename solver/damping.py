@@ -1,0 +1,125 @@
+"""Damped least squares from one SVD: the damping laws and the damped task rates they produce.
+
+Notation (one tick): A = S J D is the weighted Jacobian (S = diag(1, 1, 1, L, L, L) task
+weighting, D = W^-1/2 joint weighting), A = sum_i s_i u_i v_i^T its SVD, x_w = S x the weighted
+desired twist. The task part of the rates in the weighted joint coordinates y (q_dot = D y) is
+
+    y_task = sum_{i < r} g_i v_i u_i^T x_w,
+
+with r the numerical rank (`twistrate.solver.svd`) and g_i the gain of direction i:
+
+* "none": g_i = 1 / s_i, the pseudo-inverse (the exact inverse when A is square and of full rank);
+* "constant", "manipulability", "singular_value": g_i = s_i / (s_i^2 + l^2), damped least squares
+  (Wampler 1986; Nakamura & Hanafusa 1986), solved from the SVD, never via an explicit inverse.
+  The gain in every direction is at most 1 / (2 l). The damping factor l comes from:
+  - constant: l = damping_max;
+  - manipulability (Nakamura & Hanafusa 1986): l^2 = l_max^2 (1 - w / w0)^2 for w < w0, else 0,
+    with w = prod_i s_i the manipulability of A (Yoshikawa 1985);
+  - singular_value (Chiaverini 1997): l^2 = (1 - (s_min / eps)^2) l_max^2 for s_min < eps, else 0;
+* "selective" (Buss & Kim 2005, "Selectively damped least squares for inverse kinematics"), read
+  as a per-tick bound on each singular direction's joint-rate contribution: with alpha_i = u_i^T x_w,
+  N_i = ||u_i[:3]|| + ||u_i[3:]||, rho_j = ||A[:3, j]|| + ||A[3:, j]||,
+  M_i = s_i^-1 sum_j |v_ji| rho_j, gamma_i = min(1, N_i / M_i) gamma_max, each contribution
+  phi_i = s_i^-1 alpha_i v_i is clamped to max-abs gamma_i, and the sum to max-abs gamma_max
+  (rad/s; in the weighted coordinates y when joint weights are set). The reported damping is the
+  equivalent l of the most attenuated direction: a gain c_i / s_i equals s_i / (s_i^2 + l_i^2)
+  for l_i = s_i sqrt(1 / c_i - 1).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from twistrate.solver.options import SolverOptions
+
+#: Smallest attenuation factor used when converting selective damping to an equivalent l (keeps
+#: the reported damping finite; gamma_max > 0 is required by `twistrate.solver.resolve`).
+_ATTENUATION_FLOOR = 1e-300
+
+
+def damping_factor(s: np.ndarray, options: SolverOptions) -> float:
+    """Damping factor l (m) of the policy in `options` for singular values s (descending, m).
+
+    s : (k,) singular values of the weighted Jacobian, k = min(6, n). Returns 0.0 for "none" and
+    "selective" (selective damping has no single l; see `task_rates`).
+    """
+    policy = options.damping
+    if policy == "singular_value":
+        eps = options.singular_value_threshold
+        s_min = float(s[-1])
+        if s_min >= eps:
+            return 0.0
+        return options.damping_max * math.sqrt(1.0 - (s_min / eps) ** 2)
+    if policy == "constant":
+        return options.damping_max
+    if policy == "manipulability":
+        w0 = options.manipulability_threshold
+        w = math.prod(s.tolist())
+        if w >= w0:
+            return 0.0
+        return options.damping_max * (1.0 - w / w0)
+    return 0.0
+
+
+def task_rates(
+    U: np.ndarray,
+    s: np.ndarray,
+    Vh: np.ndarray,
+    rank: int,
+    x_w: np.ndarray,
+    A: np.ndarray,
+    options: SolverOptions,
+) -> tuple[np.ndarray, float]:
+    """Task rates y_task (n,) in the weighted joint coordinates, and the damping applied (m).
+
+    U : (m, m), s : (k,), Vh : (n, n) the full SVD of A (`svd_full`); rank : numerical rank r.
+    x_w : (m,) weighted desired twist, base frame, tool point, rows (v, L w), m/s.
+    A : (m, n) the weighted Jacobian (read by the selective policy only).
+    Directions at or below the rank tolerance get gain 0 under every policy, so the result is
+    finite for any finite input, including exactly singular A.
+    """
+    if rank == 0:
+        return np.zeros(Vh.shape[0]), 0.0
+    if options.damping == "selective":
+        return _selective(U, s, Vh, rank, x_w, A, options.selective_step_max)
+    lam = damping_factor(s, options)
+    sr = s[:rank] if rank < s.shape[0] else s
+    if lam > 0.0:
+        g = sr / (sr * sr + lam * lam)
+    else:
+        g = 1.0 / sr
+    coef = (x_w @ U[:, :rank]) * g
+    return coef @ Vh[:rank], lam
+
+
+def _selective(
+    U: np.ndarray, s: np.ndarray, Vh: np.ndarray, rank: int, x_w: np.ndarray, A: np.ndarray,
+    gamma_max: float,
+) -> tuple[np.ndarray, float]:
+    """Selectively damped task rates (Buss & Kim 2005), see the module docstring."""
+    Ur = U[:, :rank]
+    Vr = Vh[:rank]
+    sr = s[:rank]
+    alpha = x_w @ Ur
+    N = np.sqrt(np.einsum("ij,ij->j", Ur[:3], Ur[:3])) + np.sqrt(np.einsum("ij,ij->j", Ur[3:], Ur[3:]))
+    rho = np.sqrt(np.einsum("ij,ij->j", A[:3], A[:3])) + np.sqrt(np.einsum("ij,ij->j", A[3:], A[3:]))
+    absV = np.abs(Vr)
+    # gamma_i = min(1, N_i / M_i) gamma_max with M_i = (|v_i| . rho) / s_i.
+    Mi_s = absV @ rho  # = M_i * s_i
+    gamma = gamma_max * np.minimum(1.0, N * sr / np.maximum(Mi_s, np.finfo(float).tiny))
+    phi = alpha / sr  # contribution_i = phi_i * v_i
+    peak = np.abs(phi) * absV.max(axis=1)  # max-abs of contribution_i
+    c = np.minimum(1.0, gamma / np.maximum(peak, np.finfo(float).tiny))
+    y = (phi * c) @ Vr
+    total = float(np.abs(y).max()) if y.size else 0.0
+    if total > gamma_max:
+        factor = gamma_max / total
+        y *= factor
+        c = c * factor
+    worst = float(c.min())
+    if worst >= 1.0:
+        return y, 0.0
+    i = int(c.argmin())
+    return y, float(sr[i]) * math.sqrt(1.0 / max(worst, _ATTENUATION_FLOOR) - 1.0)

@@ -1,0 +1,391 @@
+"""Hard joint limits per tick: rate bounds from position (with braking), velocity and acceleration
+limits, and their enforcement by saturation in the null space with task scaling.
+
+Rate bounds for one tick of period T (joint i; A acceleration, V velocity limit; q_prev_dot the
+rate commanded last tick). With d = q - q_min the distance to the lower limit:
+
+    Qmin = max( -min(V, max(0, sqrt(2 A d) - A T / 2)),  q_prev_dot - A T )
+    Qmax = min(  min(V, max(0, sqrt(2 A d') - A T / 2)),  q_prev_dot + A T ),   d' = q_max - q
+
+The braking term is the discrete-time form of -sqrt(2 A d) (Flacco, De Luca & Khatib 2015, IEEE
+T-RO 31(3), give the continuous one, from memory). Derivation: moving toward the limit at speed x
+this tick, then braking by A T per tick, travels T sum_k max(0, x - k A T) <= x^2/(2A) + xT/2 +
+A T^2/8 = (x + A T/2)^2 / (2A); keeping that <= d gives x <= sqrt(2 A d) - A T/2. Consequences
+(checked in tests/test_resolve_properties.py):
+* recursive feasibility: if this tick obeys the bound, next tick's bound is >= x - A T, so the
+  acceleration bound and the braking bound never cross on their own;
+* it implies the one-tick position bound (q_min - q)/T <= qd (since sqrt(2Ad) - AT/2 <= d/T for
+  all d >= 0: (sqrt(d/T) - sqrt(AT/2))^2 >= 0), so that term is not computed;
+* max(0, .) lets a joint rest at (or beyond) its limit; beyond it (d < 0) no motion further out.
+Unlimited joints have d = inf and keep only the velocity and acceleration bounds.
+
+Crossing bounds: the position/velocity interval always contains 0 and the acceleration interval
+is never empty, but they can be disjoint when the previous rate was already infeasible (a joint
+moving faster toward a limit than it can brake, e.g. after a measurement jump or a limit change).
+Then the safe choice is the acceleration bound nearest the position/velocity interval: the joint
+brakes as hard as it is able to (both bounds set to it). Computed as clip(P, q_prev_dot - AT,
+q_prev_dot + AT), which equals max/min of the bounds whenever they do not cross.
+
+Saturation in the null space (SNS; Flacco, De Luca & Khatib 2012, ICRA, "Motion control of
+redundant robots under joint constraints: saturation in the null space"; IEEE T-RO 31(3) 2015,
+Algorithm 1): when the unconstrained rates break a bound, the joint that most limits the task
+scale is saturated at its bound (removed from the task, W_jj = 0, its rate fixed), the task is
+re-solved with the remaining joints (exact pseudo-inverse of A W, fresh SVD) and the largest task
+scale s in [0, 1] with every bound satisfied is tracked; the loop ends when the unscaled task fits
+(s = 1) or when removing joints drops the rank of A W below that of A, where the best (s, W,
+saturated rates) is restored. The result satisfies A y = s x exactly: the twist is scaled along
+its own direction, never bent. If no s in [0, 1] was feasible (possible only when the previous
+rate cannot be brought to any task-consistent rate within one tick of acceleration, e.g. a stop
+or reversal commanded at speed), the hard bounds win: the joints decelerate together along the
+previous rate as hard as the slowest joint can (q_dot = c q_prev_dot, clipped into the bounds),
+and the reported scale is 0.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from twistrate.solver.arm import Arm
+from twistrate.solver.svd import numerical_rank, svd_full
+
+#: A joint whose task-rate coefficient |a_i| is at most this (weighted rad/s per unit scale) is
+#: treated as not moved by the task when computing the task scaling factor.
+SCALE_EPS = 1e-12
+#: Slack (weighted rad/s) when deciding that a joint not moved by the task sits inside its bounds.
+BOUND_TOL = 1e-12
+#: Relative tolerance for reporting which bound a saturated joint sits on.
+SOURCE_RTOL = 1e-9
+#: Relative tolerance on shadow prices (and on scale comparisons) in the optimality refinement.
+_SHADOW_RTOL = 1e-9
+#: The refinement stops after this many passes per joint (Bland's rule terminates much earlier).
+_REFINE_MAX_PASSES = 4
+
+LIMIT_POSITION = 1
+LIMIT_VELOCITY = 2
+LIMIT_ACCELERATION = 4
+
+
+@dataclass(frozen=True)
+class BoundPlan:
+    """Per (arm, period) constants of the rate bounds. "Sided" arrays are (2n,): entries [:n] the
+    lower side (speed toward q_min, sign -1), [n:] the upper side (speed toward q_max).
+
+    period : T, s. G : (2n, n) [-I; I], so G @ qd are the sided speeds.
+    e0 : (2n,) 2A * [-q_min; q_max] (inf for unlimited joints); G2A : (2n, n) 2A * G, so
+        e0 - G2A @ q = 2 A d, d the distances to the limits (m or rad).
+    e_lo, e_hi : (2n,) clamp of 2 A d: (A T / 2)^2 (braking speed 0) and (V + A T / 2)^2 (speed V).
+    half_AT, AT : (2n,) A T / 2 and A T (rad/s or m/s). AT_n : (n,) A T.
+    """
+
+    period: float
+    G: np.ndarray
+    e0: np.ndarray
+    G2A: np.ndarray
+    e_lo: np.ndarray
+    e_hi: np.ndarray
+    half_AT: np.ndarray
+    AT: np.ndarray
+    AT_n: np.ndarray
+
+
+@dataclass(frozen=True)
+class RateBounds:
+    """Rate bounds of one tick, crossing resolved. lo, hi : (n,) rad/s or m/s, lo <= hi.
+
+    speed : (2n,) sided position/velocity speed bound (lower side [:n], upper [n:]), >= 0, <= V.
+    velocity_bound : (2n,) bool, True where `speed` is the velocity limit (not braking).
+    acc_lo, acc_hi : (n,) acceleration bounds q_prev_dot -/+ A T.
+    """
+
+    lo: np.ndarray
+    hi: np.ndarray
+    speed: np.ndarray
+    velocity_bound: np.ndarray
+    acc_lo: np.ndarray
+    acc_hi: np.ndarray
+
+
+@dataclass(frozen=True)
+class Saturation:
+    """Outcome of `saturate`. y : (n,) weighted rates with A y = scale * x, or None when no scale in
+    [0, 1] was feasible. saturated : (n,) bool joints fixed at a bound. iterations : loop passes
+    (each pass costs one SVD of the reduced Jacobian)."""
+
+    y: np.ndarray | None
+    scale: float
+    saturated: np.ndarray
+    iterations: int
+
+
+def plan_bounds(arm: Arm, period: float) -> BoundPlan:
+    """Constants of the per-tick rate bounds of `arm` at tick period `period` (s, > 0)."""
+    n = arm.n
+    A2 = np.concatenate((arm.a_max, arm.a_max))
+    V2 = np.concatenate((arm.v_max, arm.v_max))
+    G = np.concatenate((-np.eye(n), np.eye(n)))
+    e0 = 2.0 * A2 * np.concatenate((-arm.q_min, arm.q_max))
+    half_AT = 0.5 * A2 * period
+    return BoundPlan(
+        period=float(period), G=G, e0=e0, G2A=2.0 * A2[:, None] * G,
+        e_lo=half_AT * half_AT, e_hi=(V2 + half_AT) ** 2, half_AT=half_AT, AT=A2 * period,
+        AT_n=arm.a_max * period,
+    )
+
+
+def _speed_bound(plan: BoundPlan, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sided position/velocity speed bound (2n,) and the raw 2 A d (2n,) it came from."""
+    e_raw = plan.e0 - plan.G2A @ q
+    e = np.maximum(e_raw, plan.e_lo)
+    np.minimum(e, plan.e_hi, out=e)
+    np.sqrt(e, out=e)
+    e -= plan.half_AT
+    return e, e_raw
+
+
+def sided_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> np.ndarray:
+    """(2n,) sided speed bounds U (fast per-tick check): rates qd obey every bound iff G @ qd <= U.
+
+    q : (n,) positions; qd_prev : (n,) last commanded rates. Crossing is not resolved here (when
+    bounds cross no qd passes the check, and `rate_bounds` resolves it on the slow path).
+    """
+    U, _ = _speed_bound(plan, q)
+    acc = plan.G @ qd_prev
+    acc += plan.AT
+    np.minimum(U, acc, out=U)
+    return U
+
+
+def obeys(plan: BoundPlan, U: np.ndarray, qd: np.ndarray) -> bool:
+    """True when rates qd (n,) satisfy G @ qd <= U for the sided bounds U (2n,)."""
+    slack = U - plan.G @ qd
+    return bool(slack[slack.argmin()] >= 0.0)
+
+
+def rate_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> RateBounds:
+    """Per-joint rate bounds lo <= hi (n,) of one tick, with crossing resolved (module docstring)."""
+    n = q.shape[0]
+    speed, e_raw = _speed_bound(plan, q)
+    acc_lo = qd_prev - plan.AT_n
+    acc_hi = qd_prev + plan.AT_n
+    lo = np.minimum(np.maximum(-speed[:n], acc_lo), acc_hi)
+    hi = np.minimum(np.maximum(speed[n:], acc_lo), acc_hi)
+    return RateBounds(lo, hi, speed, e_raw >= plan.e_hi, acc_lo, acc_hi)
+
+
+def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """(n,) uint8 LIMIT_* bits of the joints in `mask` (bool (n,)) for the bounds qd sits on.
+
+    A joint on its position/velocity bound gets LIMIT_VELOCITY when that side's bound is the
+    velocity limit, else LIMIT_POSITION; on its acceleration bound LIMIT_ACCELERATION. A joint
+    whose bounds crossed (pinned at the braking acceleration bound) gets LIMIT_ACCELERATION plus
+    the position/velocity bit of the side it could not meet.
+    """
+    n = qd.shape[0]
+    tol = SOURCE_RTOL * (1.0 + np.abs(qd))
+    low_p, high_p = -bounds.speed[:n], bounds.speed[n:]
+    vel_lo, vel_hi = bounds.velocity_bound[:n], bounds.velocity_bound[n:]
+    bits = np.zeros(n, dtype=np.uint8)
+    on_low = (qd <= low_p + tol) & mask
+    on_high = (qd >= high_p - tol) & mask
+    bits[on_low] |= np.where(vel_lo[on_low], LIMIT_VELOCITY, LIMIT_POSITION).astype(np.uint8)
+    bits[on_high] |= np.where(vel_hi[on_high], LIMIT_VELOCITY, LIMIT_POSITION).astype(np.uint8)
+    on_acc = ((np.abs(qd - bounds.acc_lo) <= tol) | (np.abs(qd - bounds.acc_hi) <= tol)) & mask
+    bits[on_acc] |= LIMIT_ACCELERATION
+    return bits
+
+
+def _scaling(
+    a: np.ndarray, b: np.ndarray, lo: np.ndarray, hi: np.ndarray
+) -> tuple[float, float, int, float, int, float]:
+    """Task scaling factor range of y(s) = b + s a within [lo, hi] (Flacco et al. 2015, Alg. 2).
+
+    Returns (s_min, s_max, j_max, bound_j_max, j_min, bound_j_min): j_max is the joint whose upper
+    scale limit is smallest (the most critical joint) and bound_j_max the rate bound it meets
+    there; j_min likewise for the largest lower scale limit.
+    """
+    moving = np.abs(a) > SCALE_EPS
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_lo = (lo - b) / a
+        r_hi = (hi - b) / a
+    up = a > 0.0
+    inside = (b >= lo - BOUND_TOL) & (b <= hi + BOUND_TOL)
+    s_lower = np.where(moving, np.where(up, r_lo, r_hi), np.where(inside, -np.inf, np.inf))
+    s_upper = np.where(moving, np.where(up, r_hi, r_lo), np.where(inside, np.inf, -np.inf))
+    # the bound each joint meets at its upper / lower scale limit
+    above = b > hi
+    meet_upper = np.where(moving, np.where(up, hi, lo), np.where(above, hi, lo))
+    meet_lower = np.where(moving, np.where(up, lo, hi), np.where(above, hi, lo))
+    j_max = int(s_upper.argmin())
+    j_min = int(s_lower.argmax())
+    return (float(s_lower[j_min]), float(s_upper[j_max]), j_max, float(meet_upper[j_max]),
+            j_min, float(meet_lower[j_min]))
+
+
+def _inside(y: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> bool:
+    return bool(np.all(y >= lo) and np.all(y <= hi))
+
+
+def saturate(
+    A: np.ndarray,
+    x: np.ndarray,
+    a0: np.ndarray,
+    b0: np.ndarray,
+    y0: np.ndarray | None,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    rank: int,
+    tol: float,
+    refine: bool = False,
+) -> Saturation:
+    """Saturation in the null space with task scaling (Flacco, De Luca & Khatib 2012; 2015 Alg. 1).
+
+    A : (m, n) weighted Jacobian; x : (m,) task to realise (weighted units, in the range of A).
+    a0 : (n,) A+ x; b0 : (n,) (I - A+ A) y0 (zeros when y0 is None): the unconstrained solution
+        a0 + b0 is known to break a bound.
+    y0 : (n,) null-space objective rates of the free joints, or None.
+    lo, hi : (n,) rate bounds, lo <= hi. rank, tol : numerical rank of A and its absolute tolerance.
+    refine : when the greedy loop ends below scale 1 with A of full row rank, continue from its
+        last basis with `_refine` (release saturated joints whose shadow price has the wrong sign)
+        until the scale is maximal.
+    All rates in the weighted coordinates y. See the module docstring for the algorithm.
+    """
+    m, n = A.shape
+    free = np.ones(n, dtype=bool)
+    yN = np.zeros(n) if y0 is None else y0.copy()
+    a, b = a0, b0
+    best_s = -1.0
+    best_y: np.ndarray | None = None
+    best_free = free
+    basis: tuple[np.ndarray, np.ndarray, float, int, float] | None = None
+    iterations = 0
+    while True:
+        iterations += 1
+        s_min, s_max, j_max, bound_max, j_min, bound_min = _scaling(a, b, lo, hi)
+        feasible = s_min <= s_max and s_max >= 0.0 and s_min <= 1.0
+        if feasible:
+            s = min(1.0, s_max)
+            if s >= 1.0:  # the unscaled task fits (to rounding; the caller clips)
+                return Saturation(a + b, 1.0, ~free, iterations)
+            if s > best_s:
+                best_s, best_y, best_free = s, b + s * a, free.copy()
+            if refine and rank == m and int(free.sum()) == m:
+                basis = (free.copy(), yN.copy(), s, j_max, bound_max)
+        if s_max < 1.0:
+            j, bound = j_max, bound_max
+        else:
+            j, bound = j_min, bound_min
+        free[j] = False
+        yN[j] = bound
+        if not free.any():
+            break
+        Uw, sw, Vhw = svd_full(A[:, free])
+        rw = numerical_rank(sw, tol)
+        if rw < rank:
+            break
+        Ur, Vr, sr = Uw[:, :rw], Vhw[:rw], sw[:rw]
+        a = np.zeros(n)
+        a[free] = ((x @ Ur) / sr) @ Vr
+        b = yN.copy()
+        b[free] -= (((A @ yN) @ Ur) / sr) @ Vr
+        y = a + b
+        if _inside(y, lo, hi):
+            return Saturation(y, 1.0, ~free, iterations)
+    if basis is not None:
+        refined = _refine(A, x, lo, hi, *basis)
+        iterations += refined.iterations
+        if refined.y is not None and refined.scale > best_s:
+            return Saturation(refined.y, refined.scale, refined.saturated, iterations)
+    if best_y is not None:
+        return Saturation(best_y, best_s, ~best_free, iterations)
+    return Saturation(None, 0.0, ~free, iterations)
+
+
+def _refine(
+    A: np.ndarray, x: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+    free: np.ndarray, yN: np.ndarray, s: float, k: int, bound_k: float,
+) -> Saturation:
+    """Raise the task scale from a basis of the saturation loop to its maximum (simplex pivots).
+
+    The task-scaling problem is the linear program: maximise s subject to A y = s x,
+    lo <= y <= hi, s <= 1. A state of the saturation loop with m free joints (A_F square and
+    regular), the others saturated at bounds, and the scale limited by the free joint k at its
+    bound, is a basis of that LP. It is optimal iff each saturated joint's shadow price
+    d_j = lambda^T A_j, with lambda^T A_F = e_k^T / (a_k) (lambda orthogonal to the other free
+    columns, lambda^T x = 1), has the right sign: d_j >= 0 for a joint on its upper bound, <= 0 on
+    its lower bound (d_j = ds/dy_j: moving y_j into its range would raise s otherwise). This is the
+    optimality test of Opt-SNS (Flacco, De Luca & Khatib 2015, IEEE T-RO 31(3), from memory:
+    "shadow prices"). Otherwise the first such joint (lowest index, Bland's rule against cycling)
+    is released, k is saturated in its place, and the scale is recomputed with the new square
+    free set. Each pass costs two small linear solves.
+    free : (n,) bool, m True; yN : (n,) saturated values (entries of free joints ignored).
+    """
+    m, n = A.shape
+    free = free.copy()
+    yN = yN.copy()
+    iterations = 0
+    y_best: np.ndarray | None = None
+    s_best = s
+    sat_best = ~free
+    for _ in range(_REFINE_MAX_PASSES * n):
+        iterations += 1
+        A_F = A[:, free]
+        local_k = int(np.count_nonzero(free[:k]))
+        e_k = np.zeros(m)
+        e_k[local_k] = 1.0
+        try:
+            r = np.linalg.solve(A_F.T, e_k)
+        except np.linalg.LinAlgError:
+            break
+        rx = float(r @ x)
+        if rx == 0.0:
+            break
+        d = (r @ A) / rx
+        pinned = lo >= hi
+        upper = (yN >= hi) & ~free & ~pinned
+        lower = (yN <= lo) & ~free & ~pinned
+        dtol = _SHADOW_RTOL * (1.0 + float(np.abs(d).max()))
+        wrong = (upper & (d < -dtol)) | (lower & (d > dtol))
+        if not wrong.any():
+            break
+        j = int(wrong.argmax())
+        free[j] = True
+        free[k] = False
+        yN[k] = bound_k
+        A_F = A[:, free]
+        rhs = np.stack((x, -(A[:, ~free] @ yN[~free])), axis=1)
+        try:
+            sol = np.linalg.solve(A_F, rhs)
+        except np.linalg.LinAlgError:
+            break
+        a = np.zeros(n)
+        b = yN.copy()
+        b[free] = 0.0
+        a[free] = sol[:, 0]
+        b[free] = sol[:, 1]
+        s_min, s_max, j_max, bound_max, _, _ = _scaling(a, b, lo, hi)
+        if not (s_min <= s_max + _SHADOW_RTOL and s_max >= s_best - _SHADOW_RTOL):
+            break  # numerical trouble: keep the best so far
+        if s_max >= 1.0:
+            return Saturation(a + b, 1.0, ~free, iterations)
+        s_new = max(s_max, s_min)
+        if s_new > s_best:
+            s_best, y_best, sat_best = s_new, b + s_new * a, ~free
+        k, bound_k = j_max, bound_max
+    return Saturation(y_best, s_best if y_best is not None else 0.0, sat_best, iterations)
+
+
+def brake_along(qd_prev: np.ndarray, bounds: RateBounds, AT_n: np.ndarray) -> np.ndarray:
+    """Fallback rates (n,) when no task scale is feasible: c * qd_prev clipped into the bounds.
+
+    c in [0, 1] is the smallest common factor every joint can reach within one tick of
+    acceleration (c = max_i(1 - A_i T / |qd_prev_i|), at least 0), so the joints decelerate
+    together along the previous rate (the tool keeps its path while braking) as hard as the
+    slowest joint allows.
+    """
+    speed = np.abs(qd_prev)
+    with np.errstate(divide="ignore"):
+        need = 1.0 - AT_n / speed
+    c = max(0.0, float(need.max())) if need.size else 0.0
+    return np.minimum(np.maximum(c * qd_prev, bounds.lo), bounds.hi)

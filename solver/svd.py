@@ -1,0 +1,62 @@
+"""The one singular value decomposition per tick: full SVD of a small matrix and its numerical rank.
+
+Every per-tick quantity of the rate resolution (damped inverse, null-space projector, damping
+laws, health measures, manipulability) is read off one call of `svd_full` on the weighted
+Jacobian. For a 6 x 7 matrix the public `numpy.linalg.svd` spends about a third of its time in
+Python-level argument handling and error-state setup; `svd_full` calls the same LAPACK-backed
+generalised ufunc directly (numpy's `numpy.linalg._umath_linalg.svd_f`, present in numpy 1.x and
+2.x) and falls back to `numpy.linalg.svd` if that private entry point is missing or reports a
+failure.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+try:  # the gufunc behind numpy.linalg.svd(full_matrices=True); private, hence the fallback
+    from numpy.linalg import _umath_linalg as _gufuncs
+
+    _svd_gufunc = _gufuncs.svd_f
+except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
+    _svd_gufunc = None
+
+#: Relative rank tolerance: singular values <= RANK_RTOL * s_max are treated as zero (the
+#: direction is numerically singular). Used for the pseudo-inverse of policy "none", the
+#: null-space projector and the rank test of the saturation loop.
+RANK_RTOL = 1e-10
+#: Absolute floor of the rank tolerance, in the units of the singular values (m for the
+#: task-weighted Jacobian): a matrix whose largest singular value is below it has rank 0.
+RANK_ATOL = 1e-12
+
+
+def svd_full(A: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Full SVD A = U[:, :k] diag(s) Vh[:k] of a finite float (m, n) matrix, k = min(m, n).
+
+    Returns U : (m, m), s : (k,) descending, >= 0, Vh : (n, n); rows k.. of Vh span the
+    kernel's complement directions beyond the first k (the null space when rank is k).
+    Never raises for finite input: if LAPACK does not converge (not observed for small finite
+    matrices), returns the rank-0 decomposition (U = I, s = 0, Vh = I), which every caller
+    treats as "no task direction can be followed".
+    """
+    if _svd_gufunc is not None:
+        U, s, Vh = _svd_gufunc(A, signature="d->ddd")
+        if s[0] == s[0]:  # not NaN: converged (the gufunc fills NaN on failure)
+            return U, s, Vh
+    try:
+        U, s, Vh = np.linalg.svd(A, full_matrices=True)
+    except np.linalg.LinAlgError:
+        m, n = A.shape
+        return np.eye(m), np.zeros(min(m, n)), np.eye(n)
+    return U, s, Vh
+
+
+def rank_tolerance(s: np.ndarray) -> float:
+    """Absolute tolerance below which a singular value of `s` (descending) counts as zero."""
+    return max(RANK_RTOL * float(s[0]), RANK_ATOL) if s.size else RANK_ATOL
+
+
+def numerical_rank(s: np.ndarray, tol: float) -> int:
+    """Number of singular values of `s` (descending) strictly above `tol`."""
+    if s.size == 0 or s[-1] > tol:
+        return int(s.size)
+    return int(np.count_nonzero(s > tol))

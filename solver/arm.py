@@ -108,7 +108,8 @@ class Arm:
     """A serial arm: ordered joints, mount, tool, home posture, plus stacked kernel arrays.
 
     Build it with :meth:`Arm.build`, which validates every field. The stacked arrays below are
-    derived once and read by the kernels every tick:
+    derived once (the kernels read the chain arrays further down every tick; F_base, motion_const
+    and motion_basis describe the local transforms in the joint frames themselves):
 
     F_base : (n, 4, 4) T_prev_joint per joint, with T_base_root folded into the first.
     motion_const : (n, 16) the q-independent part of F_i @ M_i(q), flattened row-major:

@@ -77,6 +77,15 @@ def random_arm(
     return dh_arm(rows, convention, mount, tool, f"random-{style}-{n}")
 
 
+def arm_cases(count: int, seed: int = 0, prismatic: bool = True):
+    """Yield `count` (arm, rng) pairs, deterministic in `seed`: case k has 2 + k % 8 joints and style
+    STYLES[k % 3], so 24 consecutive cases meet every style with every joint count 2..9; `rng` is the
+    case's own generator, for configurations."""
+    for k in range(count):
+        rng = np.random.default_rng([seed, k])
+        yield random_arm(rng, n=2 + k % 8, style=STYLES[k % 3], prismatic=prismatic), rng
+
+
 def dh_arm(
     rows: list[DHRow], convention: Literal["standard", "modified"],
     T_base_root: np.ndarray | None = None, T_flange_tool: np.ndarray | None = None, name: str = "dh",

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from arm_factory import arm_cases
 
 #: Seed of the `rng` fixture; change it only on purpose (every test using it is deterministic).
 TEST_SEED = 20_240_611
@@ -15,3 +16,10 @@ TEST_SEED = 20_240_611
 def rng() -> np.random.Generator:
     """A fresh numpy Generator with the fixed TEST_SEED for each test."""
     return np.random.default_rng(TEST_SEED)
+
+
+@pytest.fixture
+def random_arms() -> list:
+    """24 seeded random arms: every description style with every joint count 2..9, prismatic joints
+    mixed in (see arm_factory.arm_cases)."""
+    return [arm for arm, _ in arm_cases(24, seed=TEST_SEED)]

@@ -93,6 +93,13 @@ def test_random_arms_cover_styles_and_joint_kinds() -> None:
     assert any(a.all_revolute for a in arms) and not all(a.all_revolute for a in arms)
 
 
+def test_fixture_arms_match_pinocchio(random_arms: list) -> None:
+    """The shared `random_arms` fixture (tests/conftest.py) is what other tests build on."""
+    rng = np.random.default_rng(2)
+    for arm in random_arms:
+        compare_with_pinocchio(arm, random_q(rng, arm), rng.normal(size=arm.n))
+
+
 def test_zero_and_large_joint_values_match_pinocchio(rng: np.random.Generator) -> None:
     """q = 0 (the description itself) and revolute angles beyond +-2 pi."""
     for style in STYLES:

@@ -1,0 +1,361 @@
+"""Recordings: every tick to a compact file of our own format (writer thread), read back, summarised, plotted.
+
+File format ("trec", version 1; all little-endian):
+
+    offset 0   8 bytes   magic b"TWRREC1\\n"
+    offset 8   4 bytes   uint32 H: length of the header
+    offset 12  H bytes   header: UTF-8 JSON object (keys below)
+    then       records, each exactly header["record_bytes"] long, back to back, until end of file
+               (a trailing partial record, from a crash, is ignored)
+
+Header keys: format ("trec"), version (1), arm (name), joints (names, joint order), n, tick_hz,
+source ("service": written by the service itself; "output": rebuilt from the output stream by
+`twistrate record`), started_unix_ns (wall clock at the first record), modes and health_states
+(the names that the integer codes index), fields ([name, numpy type string, shape] per field, in
+record order: numpy.dtype(fields) reads the records), unavailable (fields the source could not
+know, stored as NaN or 0).
+
+Record fields (SI; base frame; twists rows (v, w) at the tool point):
+    t (<f8, s since the first record), tick (<u8), mode (u1), health (u1),
+    limits ((n,) u1, bits 1 position, 2 velocity, 4 acceleration limit active),
+    q ((n,) <f8, joint positions used this tick), qd ((n,) <f8, commanded rates),
+    twist_desired ((6,) <f4, after the speed caps; NaN when not running),
+    twist_achieved ((6,) <f4, J qd; NaN when not running),
+    scale (<f4, task scaling of the hard limits), cap (<f4, speed-cap factor),
+    damping (<f4, m), sigma_min (<f4, smallest task-weighted singular value, m),
+    manipulability (<f4, product of the task-weighted singular values; NaN when unknown).
+
+The tick thread only copies one row into a preallocated ring buffer; a writer thread appends full
+rows to the file every FLUSH_S. If the writer falls a whole ring behind, rows are dropped and
+counted (`dropped`), never waited for.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import struct
+import threading
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from twistrate.service.codec import HEALTH_STATES
+from twistrate.service.state import MODES
+from twistrate.solver.arm import Arm
+from twistrate.solver.errors import InputError, field_error
+
+MAGIC = b"TWRREC1\n"
+FORMAT = "trec"
+VERSION = 1
+#: Writer thread period, s.
+FLUSH_S = 0.1
+#: Ring buffer length, s of ticks (at least MIN_RING records).
+RING_S = 4.0
+MIN_RING = 1024
+
+
+def record_dtype(n: int) -> np.dtype:
+    """The packed little-endian record type for an n-joint arm."""
+    return np.dtype([
+        ("t", "<f8"), ("tick", "<u8"), ("mode", "u1"), ("health", "u1"), ("limits", "u1", (n,)),
+        ("q", "<f8", (n,)), ("qd", "<f8", (n,)), ("twist_desired", "<f4", (6,)),
+        ("twist_achieved", "<f4", (6,)), ("scale", "<f4"), ("cap", "<f4"), ("damping", "<f4"),
+        ("sigma_min", "<f4"), ("manipulability", "<f4"),
+    ])
+
+
+def _fields_of(dtype: np.dtype) -> list[list[Any]]:
+    out = []
+    for name in dtype.names or ():
+        sub = dtype.fields[name][0]
+        base = sub.base if sub.shape else sub
+        out.append([name, base.str, list(sub.shape)])
+    return out
+
+
+class Recorder:
+    """Append-only recording of one arm's ticks.
+
+    path : output file (created or truncated). arm : the arm (joint names, n). tick_hz : tick rate.
+    source : "service" or "output". unavailable : field names the source cannot fill.
+    """
+
+    def __init__(self, path: str | Path, arm: Arm, tick_hz: float, source: str = "service",
+                 unavailable: tuple[str, ...] = ()) -> None:
+        self.path = Path(path)
+        self.n = arm.n
+        self.dtype = record_dtype(arm.n)
+        capacity = max(MIN_RING, int(RING_S * tick_hz))
+        self._ring = np.zeros(capacity, dtype=self.dtype)
+        self._cap = capacity
+        self._w = 0  # rows pushed (tick thread)
+        self._r = 0  # rows written (writer thread)
+        self.dropped = 0
+        self.t0_ns: int | None = None
+        self._header = {
+            "format": FORMAT, "version": VERSION, "arm": arm.name, "joints": list(arm.joint_names),
+            "n": arm.n,
+            "tick_hz": float(tick_hz), "source": source, "started_unix_ns": 0, "modes": list(MODES),
+            "health_states": list(HEALTH_STATES), "fields": _fields_of(self.dtype),
+            "record_bytes": self.dtype.itemsize, "unavailable": list(unavailable),
+        }
+        try:
+            self._file = open(self.path, "wb")  # noqa: SIM115 (closed by close())
+        except OSError as exc:
+            raise field_error(InputError, "recording path", str(self.path),
+                              f"a writable file ({exc.strerror})") from None
+        self._header_written = False
+        self._stop = threading.Event()
+        self._lock = threading.Lock()
+        self._thread = threading.Thread(target=self._writer, name="twistrate-recorder", daemon=True)
+        self._thread.start()
+
+    # -- tick thread ---------------------------------------------------------------------------------
+
+    def push(self, t_ns: int, wall_ns: int, tick: int, mode: str, health: str, limits: np.ndarray,
+             q: np.ndarray, qd: np.ndarray, twist_desired: np.ndarray | None,
+             twist_achieved: np.ndarray | None, scale: float, cap: float, damping: float,
+             sigma_min: float, manipulability: float) -> None:
+        """Copy one tick into the ring (no I/O, no allocation beyond numpy scalars).
+
+        t_ns : monotonic time of the tick, ns. wall_ns : wall clock (only the first one is kept).
+        """
+        w = self._w
+        if w - self._r >= self._cap:
+            self.dropped += 1
+            return
+        if self.t0_ns is None:
+            self.t0_ns = t_ns
+            self._header["started_unix_ns"] = int(wall_ns)
+        row = self._ring[w % self._cap]
+        row["t"] = (t_ns - self.t0_ns) * 1e-9
+        row["tick"] = tick
+        row["mode"] = MODES.index(mode)
+        row["health"] = HEALTH_STATES.index(health)
+        row["limits"] = limits
+        row["q"] = q
+        row["qd"] = qd
+        row["twist_desired"] = math.nan if twist_desired is None else twist_desired
+        row["twist_achieved"] = math.nan if twist_achieved is None else twist_achieved
+        row["scale"] = scale
+        row["cap"] = cap
+        row["damping"] = damping
+        row["sigma_min"] = sigma_min
+        row["manipulability"] = manipulability
+        self._w = w + 1
+
+    # -- writer thread -------------------------------------------------------------------------------
+
+    def _write_header(self) -> None:
+        text = json.dumps(self._header, separators=(",", ":")).encode("utf-8")
+        self._file.write(MAGIC + struct.pack("<I", len(text)) + text)
+        self._header_written = True
+
+    def _flush(self) -> None:
+        with self._lock:
+            w = self._w
+            r = self._r
+            if w == r or self._file.closed:
+                return
+            if not self._header_written:
+                self._write_header()
+            cap = self._cap
+            a, b = r % cap, w % cap
+            if a < b:
+                chunks = [self._ring[a:b]]
+            else:
+                chunks = [self._ring[a:], self._ring[:b]]
+            for chunk in chunks:
+                self._file.write(chunk.tobytes())
+            self._r = w
+            self._file.flush()
+
+    def _writer(self) -> None:
+        while not self._stop.wait(FLUSH_S):
+            self._flush()
+
+    def close(self) -> None:
+        """Write what is left and close the file (any thread; idempotent)."""
+        self._stop.set()
+        if threading.current_thread() is not self._thread:
+            self._thread.join(2.0)
+        self._flush()
+        with self._lock:
+            if not self._file.closed:
+                if not self._header_written:
+                    self._write_header()
+                self._file.close()
+
+    @property
+    def rows(self) -> int:
+        return self._w
+
+
+# ==================================================================================================
+# reading, summary, plot
+# ==================================================================================================
+
+
+def read_recording(path: str | Path) -> tuple[dict[str, Any], np.ndarray]:
+    """(header, records) of a recording; records is a structured array (record_dtype fields)."""
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise field_error(InputError, "recording", str(path), f"a readable file ({exc.strerror})") from None
+    if data[:8] != MAGIC or len(data) < 12:
+        raise field_error(InputError, "recording", str(path), f"a file starting with {MAGIC!r}")
+    (h,) = struct.unpack("<I", data[8:12])
+    try:
+        header = json.loads(data[12:12 + h].decode("utf-8"))
+        dtype = np.dtype([(name, typ, tuple(shape)) if shape else (name, typ)
+                          for name, typ, shape in header["fields"]])
+    except (ValueError, KeyError, TypeError) as exc:
+        raise field_error(InputError, "recording header", str(path), f"a valid trec header ({exc})") from None
+    if header.get("format") != FORMAT or header.get("version") != VERSION:
+        raise field_error(InputError, "recording version", (header.get("format"), header.get("version")),
+                          f"format {FORMAT!r} version {VERSION}")
+    body = data[12 + h:]
+    count = len(body) // dtype.itemsize
+    records = np.frombuffer(body[:count * dtype.itemsize], dtype=dtype)
+    return header, records
+
+
+def _rising_edges(bits: np.ndarray) -> int:
+    """Number of (joint, tick) where a limit bit turns on."""
+    if len(bits) < 2:
+        return int(np.count_nonzero(bits))
+    prev = np.vstack([np.zeros((1, bits.shape[1]), dtype=bits.dtype), bits[:-1]])
+    return int(np.count_nonzero(bits & ~prev))
+
+
+def summarize(header: dict[str, Any], rec: np.ndarray) -> dict[str, Any]:
+    """Key figures of a recording: duration, ticks, time in each mode and health state, ranges."""
+    n_rec = len(rec)
+    out: dict[str, Any] = {"arm": header["arm"], "source": header["source"], "records": n_rec,
+                           "tick_hz": header["tick_hz"]}
+    if n_rec == 0:
+        out["duration_s"] = 0.0
+        return out
+    t = rec["t"]
+    dt = 1.0 / header["tick_hz"]
+    ticks = rec["tick"].astype(np.int64)
+    out["duration_s"] = float(t[-1] - t[0]) + dt
+    out["ticks"] = int(ticks[-1] - ticks[0] + 1)
+    out["missing_ticks"] = int(out["ticks"] - n_rec)
+    out["time_in_mode_s"] = {m: float(np.count_nonzero(rec["mode"] == i) * dt)
+                             for i, m in enumerate(header["modes"]) if np.any(rec["mode"] == i)}
+    out["time_in_health_s"] = {s: float(np.count_nonzero(rec["health"] == i) * dt)
+                               for i, s in enumerate(header["health_states"]) if np.any(rec["health"] == i)}
+    q, qd = rec["q"], rec["qd"]
+    out["q_min"] = q.min(axis=0).tolist()
+    out["q_max"] = q.max(axis=0).tolist()
+    out["qd_abs_max"] = np.abs(qd).max(axis=0).tolist()
+
+    def finite_min_max(name: str) -> tuple[float | None, float | None]:
+        v = rec[name].astype(float)
+        v = v[np.isfinite(v)]
+        return (float(v.min()), float(v.max())) if v.size else (None, None)
+
+    for name in ("scale", "cap", "damping", "sigma_min", "manipulability"):
+        lo, hi = finite_min_max(name)
+        out[f"{name}_min"], out[f"{name}_max"] = lo, hi
+    lin = rec["twist_achieved"][:, :3].astype(float)
+    speeds = np.linalg.norm(lin, axis=1)
+    speeds = speeds[np.isfinite(speeds)]
+    out["tool_speed_max"] = float(speeds.max()) if speeds.size else None
+    out["limit_events"] = _rising_edges(rec["limits"])
+    return out
+
+
+def format_summary(s: dict[str, Any], joints: list[str]) -> str:
+    """Readable text of `summarize`'s result."""
+    def num(v: float | None, fmt: str = ".4g") -> str:
+        return "n/a" if v is None else format(v, fmt)
+
+    lines = [f"recording of {s['arm']} ({s['source']}): {s['records']} records, "
+             f"{num(s.get('duration_s'), '.3f')} s at {s['tick_hz']:g} Hz"]
+    if not s["records"]:
+        return "\n".join(lines)
+    lines.append(f"  ticks {s['ticks']} (missing {s['missing_ticks']})")
+    lines.append("  time in mode:   " + ", ".join(f"{k} {v:.2f} s" for k, v in s["time_in_mode_s"].items()))
+    lines.append("  time in health: " + ", ".join(f"{k} {v:.2f} s" for k, v in s["time_in_health_s"].items()))
+    lines.append(f"  scale min {num(s['scale_min'])}, speed-cap factor min {num(s['cap_min'])}, damping max "
+                 f"{num(s['damping_max'])} m")
+    lines.append(f"  smallest singular value min {num(s['sigma_min_min'])} m, manipulability min "
+                 f"{num(s['manipulability_min'])}, max {num(s['manipulability_max'])}")
+    lines.append(f"  tool speed max {num(s['tool_speed_max'])} m/s, limit events {s['limit_events']}")
+    lines.append("  joint          q min      q max    |qd| max")
+    for i, name in enumerate(joints):
+        lines.append(f"  {name:<12} {s['q_min'][i]:>8.4f} {s['q_max'][i]:>10.4f} {s['qd_abs_max'][i]:>10.4f}")
+    return "\n".join(lines)
+
+
+def plot_svg(header: dict[str, Any], rec: np.ndarray, out: str | Path, width: int = 900) -> Path:
+    """Write a plain SVG of a recording: manipulability, smallest singular value, scale and damping,
+    per-joint rates, and the mode as a colour band, against time. Returns the path."""
+    panels: list[tuple[str, list[tuple[str, np.ndarray]]]] = [
+        ("manipulability", [("manipulability", rec["manipulability"].astype(float))]),
+        ("smallest singular value (m)", [("sigma_min", rec["sigma_min"].astype(float))]),
+        ("scale, speed cap", [("scale", rec["scale"].astype(float)), ("cap", rec["cap"].astype(float))]),
+        ("damping (m)", [("damping", rec["damping"].astype(float))]),
+        ("joint rates (rad/s or m/s)", [(j, rec["qd"][:, i]) for i, j in enumerate(header["joints"])]),
+    ]
+    colours = ["#1f5fa8", "#c0392b", "#2e8b57", "#8e44ad", "#d35400", "#16a085", "#7f8c8d", "#b7950b"]
+    mode_colours = {"disabled": "#dddddd", "running": "#d5f5e3", "stopping": "#fdebd0", "holding": "#fcf3cf",
+                    "fault": "#f5b7b1", "shutdown": "#d6dbdf"}
+    ph, gap, left, top = 130, 30, 70, 30
+    height = top + len(panels) * (ph + gap) + 20
+    t = rec["t"] if len(rec) else np.zeros(1)
+    t0, t1 = float(t[0]), float(t[-1]) if float(t[-1]) > float(t[0]) else float(t[0]) + 1.0
+    pw = width - left - 20
+
+    def x(tv: np.ndarray) -> np.ndarray:
+        return left + (tv - t0) / (t1 - t0) * pw
+
+    parts = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
+             f'font-family="sans-serif" font-size="11">',
+             f'<text x="{left}" y="16" font-size="13">{header["arm"]}: {len(rec)} ticks, '
+             f'{t1 - t0:.2f} s ({header["source"]})</text>']
+    modes = header["modes"]
+    for k, (title, series) in enumerate(panels):
+        y0 = top + k * (ph + gap)
+        if len(rec):
+            codes = rec["mode"]
+            starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+            ends = np.r_[starts[1:], len(codes)]
+            for a, b in zip(starts, ends, strict=True):
+                xa, xb = float(x(t[a])), float(x(t[b - 1]))
+                colour = mode_colours.get(modes[codes[a]], "#eeeeee")
+                parts.append(f'<rect x="{xa:.1f}" y="{y0}" width="{max(xb - xa, 0.5):.1f}" height="{ph}" '
+                             f'fill="{colour}"/>')
+        parts.append(f'<rect x="{left}" y="{y0}" width="{pw}" height="{ph}" fill="none" stroke="#555"/>')
+        values = np.concatenate([v[np.isfinite(v)] for _, v in series] + [np.zeros(0)])
+        lo, hi = (float(values.min()), float(values.max())) if values.size else (0.0, 1.0)
+        if hi <= lo:
+            hi = lo + 1.0
+        parts.append(f'<text x="{left}" y="{y0 - 4}">{title}</text>')
+        parts.append(f'<text x="{left - 4}" y="{y0 + 10}" text-anchor="end">{hi:.3g}</text>')
+        parts.append(f'<text x="{left - 4}" y="{y0 + ph}" text-anchor="end">{lo:.3g}</text>')
+        step = max(1, len(rec) // pw)
+        for i, (name, v) in enumerate(series):
+            vv = v[::step]
+            tt = t[::step]
+            ok = np.isfinite(vv)
+            if not ok.any():
+                continue
+            ys = y0 + ph - (vv[ok] - lo) / (hi - lo) * ph
+            pts = " ".join(f"{a:.1f},{b:.1f}" for a, b in zip(x(tt[ok]), ys, strict=True))
+            colour = colours[i % len(colours)]
+            parts.append(f'<polyline fill="none" stroke="{colour}" stroke-width="1" points="{pts}"/>')
+            parts.append(f'<text x="{left + pw - 4}" y="{y0 + 12 + 12 * i}" text-anchor="end" '
+                         f'fill="{colour}">{name}</text>')
+    yb = top + len(panels) * (ph + gap) - 8
+    parts.append(f'<text x="{left}" y="{yb}">time {t0:.2f} .. {t1:.2f} s; background: mode ('
+                 + ", ".join(f'<tspan fill="#555">{m}</tspan>' for m in mode_colours) + ")</text>")
+    parts.append("</svg>")
+    out = Path(out)
+    out.write_text("\n".join(parts), encoding="utf-8")
+    return out

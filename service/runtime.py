@@ -1,0 +1,651 @@
+"""The service runtime: the tick thread, its sockets, the per-tick pipeline, health, events, control handoff.
+
+Threads (docs/operation.md, "Threads"):
+
+* The tick thread owns the intake SUB and output PUB sockets, the state machine and the embedded
+  simulated arm. Each tick: run queued control operations (the thread-safe handoff), drain the
+  intake without blocking (newest valid twist and joint state kept, bad input counted per reason),
+  step the state machine (lease, watchdogs, fault), resolve rates or ramp to rest, publish the
+  command, health at its own rate, and events; feed the recorder; step the simulated arm.
+* The control plane (service/control.py) runs on an asyncio/uvloop loop in another thread. It never
+  touches tick state: it submits a function to `Service.submit`, which the tick thread runs at the
+  start of its next tick and whose result comes back through a concurrent.futures.Future. Read-only
+  counters are read directly (plain ints and histograms; a torn read only shifts a count).
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import logging
+import math
+import sys
+import threading
+import time
+from collections import deque
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+import zmq
+
+from twistrate.service import codec
+from twistrate.service import state as st
+from twistrate.service.config import ServiceConfig, Tunables
+from twistrate.service.motion import ramp_to_rest, speed_cap_factor
+from twistrate.service.simarm import SimArm
+from twistrate.service.tick import LatencyHistogram, Ticker, make_realtime, set_timer_slack
+from twistrate.solver.arm import Arm
+from twistrate.solver.errors import ControlError, InputError, WireError
+from twistrate.solver.health import NORMAL, assess, next_state
+from twistrate.solver.kinematics import forward, geometric_jacobian
+from twistrate.solver.resolve import DesiredTwist, Resolution, resolve
+
+log = logging.getLogger("twistrate.service")
+
+#: GIL switch interval the service sets at start, s (Python's default is 5 ms: a busy control thread
+#: could hold the GIL that long when the tick wakes). See docs/operation.md for the measurement.
+SWITCH_INTERVAL_S = 0.0005
+#: A measured joint position this far beyond its limit (rad or m) is out of range (fault). A driver
+#: whose joint stopped on a limit may report it a hair beyond (quantisation, noise): 1 mrad is
+#: about 0.06 degrees (common practice: encoder resolution of a joint is well below that).
+JOINT_RANGE_TOLERANCE = 1e-3
+#: At most this many intake messages are taken per tick (a flood cannot stall the tick; the rest
+#: wait for the next tick, and the socket's receive high-water mark bounds the queue).
+MAX_DRAIN_PER_TICK = 256
+#: How long a final command may take to leave the output socket at shutdown, ms (bounded linger).
+FINAL_LINGER_MS = 500
+#: Shutdown gives up ramping after this long, s (a ramp from the velocity limits takes < 1 s on
+#: any of the example arms; a hard bound keeps a broken clock from hanging the process).
+SHUTDOWN_TIMEOUT_S = 5.0
+
+
+
+class RateLimitedLog:
+    """Log at most `max_per_s` lines per second per key; the suppressed count rides on the next line."""
+
+    def __init__(self, logger: logging.Logger, max_per_s: float) -> None:
+        self.logger = logger
+        self.min_gap_ns = int(1e9 / max_per_s)
+        self._last: dict[str, int] = {}
+        self._suppressed: dict[str, int] = {}
+
+    def warning(self, key: str, now_ns: int, text: str) -> None:
+        last = self._last.get(key)
+        if last is not None and now_ns - last < self.min_gap_ns:
+            self._suppressed[key] = self._suppressed.get(key, 0) + 1
+            return
+        self._last[key] = now_ns
+        skipped = self._suppressed.pop(key, 0)
+        self.logger.warning("%s%s", text, f" (+{skipped} similar suppressed)" if skipped else "")
+
+
+class Service:
+    """One arm's streaming service: tick thread, sockets, state machine, simulated arm, recorder hook.
+
+    config : validated ServiceConfig. arm : the arm (default: config.load_arm()).
+    context : ZeroMQ context (default: a new one, terminated by close()).
+    realtime_priority : SCHED_FIFO priority of the tick thread when permitted (0: normal scheduling).
+    switch_interval_s : sys.setswitchinterval applied at start (None: leave Python's).
+    recorder : object with push(service, ...) called every tick on the tick thread, or None.
+    """
+
+    def __init__(self, config: ServiceConfig, arm: Arm | None = None, context: zmq.Context | None = None,
+                 realtime_priority: int = 0, switch_interval_s: float | None = SWITCH_INTERVAL_S,
+                 recorder: Any = None) -> None:
+        self.config = config
+        self.arm = config.load_arm() if arm is None else arm
+        arm = self.arm
+        self.n = arm.n
+        self.rate_hz = float(config.tick.rate_hz)
+        self.period_ns = round(1e9 / self.rate_hz)
+        self.period_s = self.period_ns / 1e9
+        self.health_every = max(1, round(self.rate_hz / config.tick.health_hz))
+        self.tunables = config.tunables()
+        self._base_options = config.solver_options(arm)
+        self.options = self.tunables.solver_options(self._base_options)
+        self.thresholds = self.tunables.health_thresholds()
+        self.health_state = NORMAL
+        self.state = st.ServiceState(config.lease.default_ms, config.lease.min_ms, config.lease.max_ms)
+        posture = config.initial_posture(arm)
+        self.sim = SimArm.from_arm(arm, config.simulation.lag_s, None if posture is None else
+                                   np.array(posture)) if config.simulation.enabled else None
+        self.twist_timeout_ns = int(config.watchdog.twist_timeout_ms * 1e6)
+        self.joints_timeout_ns = int(config.watchdog.joints_timeout_ms * 1e6)
+        self.realtime_priority = realtime_priority
+        self.switch_interval_s = switch_interval_s
+        self.recorder = recorder
+        self._own_context = context is None
+        self.context = context or zmq.Context()
+        self._rlog = RateLimitedLog(log, config.logging.max_per_s)
+        self._q_lo = np.where(np.isfinite(arm.q_min), arm.q_min - JOINT_RANGE_TOLERANCE, -np.inf)
+        self._q_hi = np.where(np.isfinite(arm.q_max), arm.q_max + JOINT_RANGE_TOLERANCE, np.inf)
+
+        # tick-thread state
+        self.q: np.ndarray | None = None if self.sim is None else self.sim.q
+        self.q_rx_ns = 0
+        self.qd = np.zeros(self.n)
+        self.twist: codec.TwistMessage | None = None
+        self.twist_rx_ns = 0
+        self._twist_unanswered = False
+        self.tick = 0
+        self.start_ns = 0
+        self.scale = 1.0
+        self.cap = 1.0
+        self.damping = 0.0
+        self.sigma_min = math.nan
+        self.manipulability = math.nan
+        self.limits_active = np.zeros(self.n, dtype=np.uint8)
+        self.last_resolution: Resolution | None = None
+        self.last_health: dict[str, Any] = {}
+        self.mode = self.state.mode
+        self.final_command_sent = False
+
+        # counters (written by the tick thread only)
+        self.rejected: dict[str, int] = {}
+        self.counts: dict[str, int] = {
+            "accepted_twist": 0, "accepted_joints": 0, "commands": 0, "health_messages": 0,
+            "events": 0, "faults": 0, "limit_events": 0, "publish_failed": 0, "solver_errors": 0,
+        }
+        self.ticker = Ticker(self.period_ns)
+        self.arrival_to_publish = LatencyHistogram()
+        self.tick_work = LatencyHistogram()
+        self._out_seq = {"command": 0, "health": 0, "event": 0}
+
+        # handoff and life cycle
+        self._pending: deque[tuple[Callable[[int], Any], concurrent.futures.Future]] = deque()
+        self._shutdown_why: str | None = None
+        self._thread: threading.Thread | None = None
+        self._ready = threading.Event()
+        self._done = threading.Event()
+        self._start_error: BaseException | None = None
+        self.scheduling = ""
+        self._auth = None
+        self._intake: zmq.Socket | None = None
+        self._output: zmq.Socket | None = None
+        self.curve_keys: tuple[bytes, bytes] | None = None
+        self._done_callbacks: list[Callable[[], None]] = []
+
+    # ============================================================================================
+    # life cycle (any thread)
+    # ============================================================================================
+
+    def start(self, timeout_s: float = 5.0) -> None:
+        """Start the CURVE authenticator (if configured) and the tick thread; return once the sockets
+        are bound. Raises the bind error (zmq.ZMQError) or ConfigError of the thread."""
+        if self.switch_interval_s is not None:
+            sys.setswitchinterval(self.switch_interval_s)
+        sec = self.config.security
+        if sec.curve:
+            from twistrate.service.security import start_authenticator
+
+            self.curve_keys = sec.server_keys()
+            self._auth = start_authenticator(self.context, sec.allowed_clients())
+        self._thread = threading.Thread(target=self._run, name="twistrate-tick", daemon=True)
+        self._thread.start()
+        if not self._ready.wait(timeout_s):
+            raise TimeoutError("tick thread did not start")
+        if self._start_error is not None:
+            self._thread.join(1.0)
+            self._stop_auth()
+            raise self._start_error
+
+    def submit(self, fn: Callable[[int], Any]) -> concurrent.futures.Future:
+        """Run fn(now_ns) on the tick thread at the start of its next tick; the future gets its result
+        or exception. Thread-safe (deque append); the only way other threads change tick state."""
+        fut: concurrent.futures.Future = concurrent.futures.Future()
+        if self._done.is_set():
+            fut.set_exception(ControlError(st.E_SHUTDOWN, "service: stopped; accepted: none"))
+        else:
+            self._pending.append((fn, fut))
+        return fut
+
+    def shutdown(self, why: str = "shutdown requested") -> None:
+        """Ask the tick thread to ramp to rest, publish a final zero command and stop (thread-safe)."""
+        if self._shutdown_why is None:
+            self._shutdown_why = why
+
+    def add_done_callback(self, fn: Callable[[], None]) -> None:
+        """fn() is called from the tick thread when it has finished (or at once if it has)."""
+        self._done_callbacks.append(fn)
+        if self._done.is_set():
+            fn()
+
+    @property
+    def done(self) -> bool:
+        return self._done.is_set()
+
+    def join(self, timeout_s: float | None = None) -> bool:
+        """Wait for the tick thread to finish; True if it has."""
+        return self._done.wait(timeout_s)
+
+    def close(self) -> None:
+        """Stop (if running), wait, release the authenticator and the context."""
+        self.shutdown("closed")
+        if self._thread is not None:
+            self._thread.join(SHUTDOWN_TIMEOUT_S + 2.0)
+        self._stop_auth()
+        if self._own_context:
+            self.context.term()
+
+    def _stop_auth(self) -> None:
+        if self._auth is not None:
+            self._auth.stop()
+            self._auth = None
+
+    # ============================================================================================
+    # sockets (tick thread)
+    # ============================================================================================
+
+    def configure_socket(self, sock: zmq.Socket) -> None:
+        """Bounds (and CURVE server keys when configured) every service socket gets before bind."""
+        sk = self.config.sockets
+        sock.setsockopt(zmq.MAXMSGSIZE, sk.max_message_bytes)
+        sock.setsockopt(zmq.SNDHWM, sk.send_hwm)
+        sock.setsockopt(zmq.RCVHWM, sk.receive_hwm)
+        sock.setsockopt(zmq.LINGER, sk.linger_ms)
+        if self.curve_keys is not None:
+            from twistrate.service.security import apply_curve_server
+
+            apply_curve_server(sock, *self.curve_keys)
+
+    def _open_sockets(self) -> None:
+        ep = self.config.endpoints
+        intake = self.context.socket(zmq.SUB)
+        output = self.context.socket(zmq.PUB)
+        try:
+            self.configure_socket(intake)
+            self.configure_socket(output)
+            for topic in codec.INTAKE_TOPICS:
+                intake.setsockopt(zmq.SUBSCRIBE, topic)
+            intake.bind(ep.intake)
+            output.bind(ep.output)
+        except BaseException:
+            intake.close(0)
+            output.close(0)
+            raise
+        self._intake, self._output = intake, output
+
+    def _close_sockets(self) -> None:
+        if self._intake is not None:
+            self._intake.close(0)
+        if self._output is not None:
+            self._output.close(FINAL_LINGER_MS)
+        self._intake = self._output = None
+
+    # ============================================================================================
+    # the tick loop (tick thread)
+    # ============================================================================================
+
+    def _run(self) -> None:
+        try:
+            self._open_sockets()
+        except BaseException as exc:  # reported to start()
+            self._start_error = exc
+            self._done.set()
+            self._ready.set()
+            return
+        set_timer_slack(1_000)
+        self.scheduling = make_realtime(self.realtime_priority)
+        ticker = self.ticker
+        ticker.start()
+        self.start_ns = ticker.deadline + self.period_ns
+        self._ready.set()
+        log.info("tick %g Hz on %s (%s); intake %s, output %s", self.rate_hz, self.arm.name, self.scheduling,
+                 self.config.endpoints.intake, self.config.endpoints.output)
+        shutdown_deadline = None
+        clock = time.monotonic_ns
+        try:
+            while True:
+                deadline = ticker.wait()
+                self._tick(deadline)
+                self.tick_work.add(clock() - deadline)
+                if self._shutdown_why is not None:
+                    if shutdown_deadline is None:
+                        shutdown_deadline = clock() + int(SHUTDOWN_TIMEOUT_S * 1e9)
+                    if self.final_command_sent or self.q is None or clock() > shutdown_deadline:
+                        break
+        except BaseException:  # the tick must not die silently: log, hold, stop
+            log.exception("tick thread failed; stopping")
+        finally:
+            self._finish()
+
+    def _finish(self) -> None:
+        self._close_sockets()
+        while self._pending:
+            _, fut = self._pending.popleft()
+            fut.set_exception(ControlError(st.E_SHUTDOWN, "service: stopped; accepted: none"))
+        if self.recorder is not None:
+            self.recorder.close()
+        self._done.set()
+        for fn in self._done_callbacks:
+            fn()
+        log.info("tick stopped after %d ticks, %d overruns", self.ticker.ticks, self.ticker.overruns)
+
+    def _tick(self, deadline: int) -> None:
+        now = time.monotonic_ns()
+        wall = time.time_ns()
+        state = self.state
+        pending = self._pending
+        replies = []
+        while pending:
+            fn, fut = pending.popleft()
+            try:
+                replies.append((fut, fn(now)))
+            except BaseException as exc:
+                fut.set_exception(exc)
+        if self._shutdown_why is not None and state.mode != st.SHUTDOWN:
+            state.shutdown(self._shutdown_why)
+        self._drain(now)
+        sim = self.sim
+        if sim is not None:
+            self.q = sim.q
+            self.q_rx_ns = now
+        q = self.q
+        if q is not None and state.mode not in (st.FAULT, st.SHUTDOWN) and \
+                (np.any(q < self._q_lo) or np.any(q > self._q_hi)):
+            self._fault(f"joint state out of range: {self._range_text(q)}")
+        twist = self.twist
+        twist_fresh = (twist is not None and now - self.twist_rx_ns <= self.twist_timeout_ns
+                       and self.twist_rx_ns >= state.epoch_ns and state.holds(twist.lease, now))
+        joints_fresh = q is not None and now - self.q_rx_ns <= self.joints_timeout_ns
+        qd_prev = self.qd
+        mode = state.step(now, twist_fresh, joints_fresh, not qd_prev.any())
+        answers = -1
+        if mode == st.RUNNING:
+            qd = self._solve(q, qd_prev, twist)
+            if qd is None:
+                mode = state.mode
+                qd = ramp_to_rest(qd_prev, self.arm.a_max, self.period_s)
+            else:
+                answers = twist.seq
+        else:
+            qd = ramp_to_rest(qd_prev, self.arm.a_max, self.period_s)
+            self.scale = 1.0
+            self.cap = 1.0
+            self.damping = 0.0
+            self.limits_active[:] = 0
+            self.last_resolution = None
+            self._twist_unanswered = False
+        self.mode = mode
+        for fut, result in replies:  # replies that report a mode report the one this tick runs in
+            if type(result) is dict and "mode" in result:
+                result["mode"] = mode
+            fut.set_result(result)
+        if q is not None:
+            self._publish_command(wall, q, qd, answers, now)
+        if self.tick % self.health_every == 0 and q is not None:
+            self._publish_health(wall, q)
+        if state.events:
+            self._publish_events(wall)
+        if self.recorder is not None and q is not None:
+            res = self.last_resolution
+            self.recorder.push(deadline, wall, self.tick, mode, self.health_state, self.limits_active, q, qd,
+                               None if res is None else res.twist_desired,
+                               None if res is None else res.twist_achieved, self.scale, self.cap,
+                               self.damping, self.sigma_min, self.manipulability)
+        if sim is not None:
+            sim.command(qd)
+            sim.step(self.period_s)
+        self.qd = qd
+        self.tick += 1
+
+    def _range_text(self, q: np.ndarray) -> str:
+        bad = np.nonzero((q < self._q_lo) | (q > self._q_hi))[0]
+        names = self.arm.joint_names
+        return ", ".join(f"{names[i]} = {q[i]:.4g} outside [{self.arm.q_min[i]:.4g}, {self.arm.q_max[i]:.4g}]"
+                         for i in bad[:3])
+
+    def _fault(self, reason: str) -> None:
+        if self.state.mode in (st.FAULT, st.SHUTDOWN):
+            return
+        self.counts["faults"] += 1
+        log.error("fault: %s", reason)
+        self.state.fault(reason)
+
+    # -- intake ----------------------------------------------------------------------------------
+
+    def _reject(self, reason: str, now: int, text: str) -> None:
+        self.rejected[reason] = self.rejected.get(reason, 0) + 1
+        self._rlog.warning(reason, now, f"intake refused ({reason}): {text}")
+
+    def _drain(self, now: int) -> None:
+        sock = self._intake
+        n = self.n
+        for _ in range(MAX_DRAIN_PER_TICK):
+            if not sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+                return
+            frames = sock.recv_multipart()
+            try:
+                msg = codec.decode_intake(frames, n)
+            except WireError as exc:
+                self._reject(exc.reason, now, str(exc))
+                if frames[0] == codec.TOPIC_JOINTS and self.sim is None and \
+                        exc.reason in ("non_finite", "too_large"):
+                    self._fault(f"joint state refused: {exc}")
+                continue
+            if type(msg) is codec.TwistMessage:
+                if not self.state.holds(msg.lease, now):
+                    self._reject("not_leased", now, f"twist seq {msg.seq} without the current lease")
+                    continue
+                self.counts["accepted_twist"] += 1
+                self.twist = msg
+                self.twist_rx_ns = now
+                self._twist_unanswered = True
+            else:
+                if self.sim is not None:
+                    self._reject("unexpected_joints", now, "joint state sent to a service simulating its arm")
+                    continue
+                self.counts["accepted_joints"] += 1
+                self.q = msg.position
+                self.q_rx_ns = now
+
+    # -- solve -----------------------------------------------------------------------------------
+
+    def _solve(self, q: np.ndarray, qd_prev: np.ndarray, msg: codec.TwistMessage) -> np.ndarray | None:
+        """Rates for the newest twist, or None after a fault (non-finite result or solver error)."""
+        tw = msg.twist
+        t = self.tunables
+        cap = speed_cap_factor(tw.linear, tw.angular, tw.point, t.tool_linear_max, t.angular_max)
+        if cap < 1.0:
+            tw = DesiredTwist(tw.linear * cap, tw.angular * cap, tw.frame, tw.point)
+        try:
+            res = resolve(self.arm, q, qd_prev, tw, self.period_s, self.options)
+        except Exception as exc:  # a solver bug must hold the arm, not kill the tick
+            self.counts["solver_errors"] += 1
+            self._fault(f"solver error: {type(exc).__name__}: {exc}")
+            return None
+        qd = res.qd
+        if not np.isfinite(qd).all():
+            self._fault("non-finite solver result")
+            return None
+        new_limits = res.limits_active
+        if (new_limits & ~self.limits_active).any():
+            self.counts["limit_events"] += 1
+        self.limits_active = new_limits
+        self.cap = cap
+        self.scale = float(res.scale)
+        self.damping = float(res.damping)
+        self.last_resolution = res
+        sv = res.singular_values
+        self.sigma_min = float(sv[-1])
+        self.manipulability = float(np.prod(sv))
+        self.health_state = next_state(self.health_state, self.sigma_min, self.thresholds)
+        return qd
+
+    # -- output ----------------------------------------------------------------------------------
+
+    def _publish_command(self, wall: int, q: np.ndarray, qd: np.ndarray, answers: int, now: int) -> None:
+        seq = self._out_seq["command"]
+        target = q + qd * self.period_s
+        try:
+            data = codec.encode_command(seq=seq, stamp_ns=wall, tick=self.tick, rate=qd, target=target,
+                                        answers=answers, scale=min(1.0, max(0.0, self.scale)), mode=self.mode,
+                                        health=self.health_state)
+        except InputError as exc:
+            self._fault(f"command not encodable: {exc}")
+            self.counts["publish_failed"] += 1
+            return
+        self._output.send_multipart((codec.TOPIC_COMMAND, data), copy=False)
+        published = time.time_ns()
+        self._out_seq["command"] = seq + 1
+        self.counts["commands"] += 1
+        if answers >= 0 and self._twist_unanswered:
+            self._twist_unanswered = False
+            self.arrival_to_publish.add(published - self.twist.stamp_ns)
+        if self.state.mode == st.SHUTDOWN and not qd.any():
+            self.final_command_sent = True
+
+    def measure_health(self, q: np.ndarray) -> dict[str, Any]:
+        """Health measures at q as encode_health's keyword arguments: from this tick's resolution when
+        running, else from the Jacobian at q (which then also drives the health state)."""
+        res = self.last_resolution
+        if res is None:
+            J = geometric_jacobian(self.arm, forward(self.arm, q))
+            h = assess(self.arm, q, J, self.options)
+            self.sigma_min = h.sigma_min
+            self.manipulability = h.manipulability
+            self.health_state = next_state(self.health_state, h.sigma_min, self.thresholds)
+        else:
+            h = assess(self.arm, q, res, self.options)
+        arm = self.arm
+        return {
+            "manipulability": h.manipulability,
+            "manipulability_linear": h.manipulability_translational,
+            "manipulability_angular": h.manipulability_rotational,
+            "singular_values": h.singular_values,
+            "inverse_condition": h.inverse_condition,
+            # the wire carries the unit direction in weighted units (docs/protocol.md 7.4)
+            "weakest_linear": h.weakest_linear,
+            "weakest_angular": h.weakest_angular * self.options.characteristic_length,
+            # the wire carries distances, rad or m (solver.health reports fractions of the range)
+            "limit_margin": np.minimum(q - arm.q_min, arm.q_max - q),
+        }
+
+    def _publish_health(self, wall: int, q: np.ndarray) -> None:
+        try:
+            h = self.measure_health(q)
+            self.last_health = h
+            data = codec.encode_health(seq=self._out_seq["health"], stamp_ns=wall, tick=self.tick,
+                                       damping=self.damping, scale=min(1.0, max(0.0, self.scale)),
+                                       state=self.health_state, mode=self.mode, rejected=self.rejected,
+                                       overruns=self.ticker.overruns, **h)
+        except (InputError, np.linalg.LinAlgError, ValueError) as exc:
+            self.counts["publish_failed"] += 1
+            self._rlog.warning("health", time.monotonic_ns(), f"health not published: {exc}")
+            return
+        self._output.send_multipart((codec.TOPIC_HEALTH, data), copy=False)
+        self._out_seq["health"] += 1
+        self.counts["health_messages"] += 1
+
+    def emit_event(self, name: str, detail: str) -> None:
+        """Queue an event for this tick's publish (tick thread only)."""
+        self.state.events.append((name, detail))
+
+    def _publish_events(self, wall: int) -> None:
+        events = self.state.events
+        for name, detail in events:
+            seq = self._out_seq["event"]
+            data = codec.encode_event(seq=seq, tick=self.tick, event=name, detail=detail, mode=self.mode,
+                                      stamp_ns=wall)
+            self._output.send_multipart((codec.TOPIC_EVENT, data), copy=False)
+            self._out_seq["event"] = seq + 1
+            self.counts["events"] += 1
+            log.info("event %s: %s (mode %s)", name, detail, self.mode)
+        events.clear()
+
+    # ============================================================================================
+    # control operations (run on the tick thread via submit)
+    # ============================================================================================
+
+    def control(self, op: str, args: dict[str, Any], now: int) -> dict[str, Any]:
+        """Carry out one decoded control op (not `arm`, `counters` or the validation half of `set`,
+        which the control plane does itself). Raises ControlError."""
+        s = self.state
+        if op == "claim":
+            lease = s.claim(args["client"], args.get("lease_ms"), now)
+            return {"lease": lease.token, "lease_ms": lease.duration_ns // 1_000_000, "client": lease.client}
+        if op == "renew":
+            lease = s.renew(args["lease"], now)
+            return {"lease_ms": lease.duration_ns // 1_000_000}
+        if op == "release":
+            s.release(args["lease"], now)
+            return {}
+        if op == "enable":
+            s.enable(args["lease"], now)
+            return {"mode": s.mode}
+        if op == "disable":
+            s.disable(args["lease"], now)
+            return {"mode": s.mode}
+        if op == "clear_fault":
+            s.clear_fault(args["lease"], now)
+            return {"mode": s.mode}
+        if op == "status":
+            return self.status(now)
+        raise ControlError("internal", f"op: got {op!r}; accepted: an op the tick thread carries out")
+
+    def apply_tunables(self, token: str, tunables: Tunables, now: int) -> dict[str, Any]:
+        """Install validated tunables at this tick boundary (needs the lease)."""
+        self.state.holder(token, now)
+        old = self.tunables
+        self.tunables = tunables
+        self.options = tunables.solver_options(self._base_options)
+        self.thresholds = tunables.health_thresholds()
+        changed = [k for k, v in tunables.model_dump().items() if getattr(old, k) != v]
+        if changed:
+            self.emit_event("parameters", ", ".join(f"{k} = {getattr(tunables, k)!r}" for k in changed))
+        return {"params": tunables.model_dump()}
+
+    def status(self, now: int) -> dict[str, Any]:
+        s = self.state
+        lease = s.lease if s.lease is not None and now < s.lease.expires_ns else None
+        q = self.q
+        return {
+            "mode": self.mode,
+            "health": self.health_state,
+            "tick": self.tick,
+            "tick_hz": self.rate_hz,
+            "arm": self.arm.name,
+            "n": self.n,
+            "holder": None if lease is None else lease.client,
+            "lease_remaining_ms": None if lease is None else (lease.expires_ns - now) // 1_000_000,
+            "fault": s.fault_reason if s.mode == st.FAULT else None,
+            "simulated": self.sim is not None,
+            "reduced_speed": self.tunables.reduced_speed,
+            "position": [0.0] * self.n if q is None else q.tolist(),
+            "twist_age_ms": None if self.twist is None else (now - self.twist_rx_ns) / 1e6,
+            "joints_age_ms": None if q is None or self.q_rx_ns == 0 else (now - self.q_rx_ns) / 1e6,
+        }
+
+    # -- read-only views for other threads ----------------------------------------------------------
+
+    def arm_description(self) -> dict[str, Any]:
+        arm = self.arm
+        return {
+            "name": arm.name,
+            "n": arm.n,
+            "joints": [{"name": j.name, "kind": j.kind,
+                        "position_min": j.position_min if math.isfinite(j.position_min) else None,
+                        "position_max": j.position_max if math.isfinite(j.position_max) else None,
+                        "velocity_max": j.velocity_max, "acceleration_max": j.acceleration_max}
+                       for j in arm.joints],
+            "home": arm.q_home.tolist(),
+        }
+
+    def counters(self) -> dict[str, int]:
+        """Every counter as an int (read from another thread; values may be one tick apart)."""
+        out = dict(self.counts)
+        out["ticks"] = self.ticker.ticks
+        out["overruns"] = self.ticker.overruns
+        for reason, count in list(self.rejected.items()):
+            out[f"rejected_{reason}"] = count
+        out["rejected_total"] = sum(self.rejected.values())
+        hists = (("lateness", self.ticker.lateness), ("arrival_to_publish", self.arrival_to_publish),
+                 ("tick_work", self.tick_work))
+        for name, hist in hists:
+            s = hist.summary()
+            out[f"{name}_median_ns"] = int(s["median_us"] * 1000)
+            out[f"{name}_p99_ns"] = int(s["p99_us"] * 1000)
+            out[f"{name}_max_ns"] = int(s["max_us"] * 1000)
+        if self.recorder is not None:
+            out["recorder_dropped"] = int(self.recorder.dropped)
+        return out

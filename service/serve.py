@@ -1,0 +1,113 @@
+"""`twistrate serve`: run the streaming service for one arm until SIGINT/SIGTERM.
+
+The tick runs on its own thread (service/runtime.py); the control plane runs here, on the main
+thread's uvloop loop, which also receives the signals. On SIGINT/SIGTERM the tick ramps the rates
+to zero within the acceleration limits, publishes a final zero command and stops; then the control
+socket closes and the process exits 0.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import logging
+import logging.handlers
+import queue
+import signal
+import sys
+
+import uvloop
+import zmq
+import zmq.asyncio
+
+from twistrate.service.config import ServiceConfig, load_config
+from twistrate.service.control import ControlServer
+from twistrate.service.runtime import Service
+from twistrate.solver.errors import TwistrateError
+
+log = logging.getLogger("twistrate.service")
+
+
+def setup_logging(level: str) -> logging.handlers.QueueListener:
+    """Log to stderr through a queue: the tick thread only enqueues, a listener thread writes."""
+    q: queue.SimpleQueue = queue.SimpleQueue()
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    listener = logging.handlers.QueueListener(q, handler)
+    root = logging.getLogger("twistrate")
+    root.handlers[:] = [logging.handlers.QueueHandler(q)]
+    root.setLevel(level.upper())
+    root.propagate = False
+    listener.start()
+    return listener
+
+
+def make_recorder(config: ServiceConfig, service_arm: object, path: str | None) -> object | None:
+    """A Recorder for `path` (or the configured path), or None."""
+    path = path or config.recorder.path
+    if not path:
+        return None
+    from twistrate.service.recorder import Recorder
+
+    return Recorder(path, service_arm, config.tick.rate_hz)  # type: ignore[arg-type]
+
+
+async def run_control(service: Service) -> None:
+    """Serve control requests until the tick thread has stopped; signals ask it to stop."""
+    loop = asyncio.get_running_loop()
+    stop = asyncio.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(sig, service.shutdown, f"signal {signal.Signals(sig).name}")
+    service.add_done_callback(lambda: loop.call_soon_threadsafe(stop.set))
+    server = ControlServer(service)
+    ctx = zmq.asyncio.Context.shadow(service.context)
+    server.open(ctx)
+    log.info("control on %s", service.config.endpoints.control)
+    try:
+        await server.serve(stop)
+    finally:
+        server.close()
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate serve", description=__doc__.splitlines()[0])
+    parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
+    parser.add_argument("--record", metavar="PATH", help="record every tick to PATH (overrides [recorder])")
+    parser.add_argument("--rt-priority", type=int, default=0, metavar="N",
+                        help="SCHED_FIFO priority 1-99 for the tick thread when permitted (default 0: off)")
+    args = parser.parse_args(argv)
+    try:
+        config = load_config(args.config)
+    except TwistrateError as exc:
+        print(f"twistrate serve: {exc}", file=sys.stderr)
+        return 2
+    listener = setup_logging(config.logging.level)
+    try:
+        return _serve(config, args)
+    finally:
+        listener.stop()
+
+
+def _serve(config: ServiceConfig, args: argparse.Namespace) -> int:
+    try:
+        arm = config.load_arm()
+        recorder = make_recorder(config, arm, args.record)
+        service = Service(config, arm, realtime_priority=args.rt_priority, recorder=recorder)
+        service.start()
+    except (TwistrateError, zmq.ZMQError, OSError) as exc:
+        log.error("cannot start: %s", exc)
+        return 1
+    try:
+        uvloop.run(run_control(service))
+    except (zmq.ZMQError, OSError) as exc:
+        log.error("control plane failed: %s", exc)
+        service.shutdown("control plane failed")
+        service.join(10.0)
+        return 1
+    finally:
+        service.close()
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,129 @@
+"""`twistrate sim`: the simulated arm as its own process, playing a robot driver over the wire protocol.
+
+It connects to a running service like a real driver would: subscribes to `command` on the output,
+applies the newest command's rates to the simulated arm (service/simarm.py, the config's lag and the
+arm's own limits), and publishes `joints` (position and velocity) to the intake at the tick rate.
+Like a drive with its own watchdog, it ramps to rest within the acceleration limits when no command
+has arrived for COMMAND_TIMEOUT_S. The service must run with `[simulation] enabled = false` to use it.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import time
+
+import numpy as np
+import zmq
+
+from twistrate.service import codec
+from twistrate.service.config import ServiceConfig, load_config
+from twistrate.service.motion import ramp_to_rest
+from twistrate.service.simarm import SimArm
+from twistrate.service.tick import Ticker, set_timer_slack
+from twistrate.solver.errors import TwistrateError, WireError
+
+#: No command for this long and the simulated drive ramps to rest on its own, s.
+COMMAND_TIMEOUT_S = 0.1
+
+
+class SimDriver:
+    """A simulated arm behind the protocol: commands in, joint state out, at `rate_hz`."""
+
+    def __init__(self, config: ServiceConfig, context: zmq.Context | None = None,
+                 rate_hz: float | None = None) -> None:
+        self.config = config
+        self.arm = config.load_arm()
+        posture = config.initial_posture(self.arm)
+        self.sim = SimArm.from_arm(self.arm, config.simulation.lag_s,
+                                   None if posture is None else np.array(posture))
+        self.rate_hz = float(rate_hz or config.tick.rate_hz)
+        self._own = context is None
+        self.ctx = context or zmq.Context()
+        ep, sk = config.endpoints, config.sockets
+        self.commands = self.ctx.socket(zmq.SUB)
+        self.joints = self.ctx.socket(zmq.PUB)
+        for sock in (self.commands, self.joints):
+            sock.setsockopt(zmq.LINGER, 0)
+            sock.setsockopt(zmq.MAXMSGSIZE, sk.max_message_bytes)
+            sock.setsockopt(zmq.RCVHWM, sk.receive_hwm)
+            sock.setsockopt(zmq.SNDHWM, sk.send_hwm)
+        self.commands.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_COMMAND)
+        self.commands.connect(ep.output)
+        self.joints.connect(ep.intake)
+        self.seq = 0
+        self.received = 0
+        self.refused = 0
+        self.stopped = False
+
+    def close(self) -> None:
+        self.commands.close(0)
+        self.joints.close(0)
+        if self._own:
+            self.ctx.term()
+
+    def run(self, seconds: float | None = None) -> None:
+        """Loop until stop() (or `seconds`): newest command in, integrate one period, joint state out."""
+        set_timer_slack(1_000)
+        n = self.arm.n
+        period_ns = round(1e9 / self.rate_hz)
+        period_s = period_ns / 1e9
+        ticker = Ticker(period_ns)
+        ticker.start()
+        end = None if seconds is None else time.monotonic_ns() + int(seconds * 1e9)
+        last_cmd_ns = 0
+        rate = np.zeros(n)
+        sock = self.commands
+        while not self.stopped and (end is None or time.monotonic_ns() < end):
+            now = ticker.wait()
+            while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+                frames = sock.recv_multipart()
+                try:
+                    msg = codec.decode_output(frames, n)
+                except WireError:
+                    self.refused += 1
+                    continue
+                if type(msg) is codec.CommandMessage:
+                    rate = msg.rate
+                    last_cmd_ns = now
+                    self.received += 1
+            if now - last_cmd_ns > COMMAND_TIMEOUT_S * 1e9:
+                rate = ramp_to_rest(self.sim.qd, self.arm.a_max, period_s)
+            self.sim.command(rate)
+            self.sim.step(period_s)
+            data = codec.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
+            self.joints.send_multipart((codec.TOPIC_JOINTS, data))
+            self.seq += 1
+
+    def stop(self, *_: object) -> None:
+        self.stopped = True
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate sim", description=__doc__.splitlines()[0])
+    parser.add_argument("--config", help="the service's TOML file (endpoints, arm, simulation settings)")
+    parser.add_argument("--rate", type=float, help="joint-state publish rate, Hz (default: the tick rate)")
+    parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")
+    args = parser.parse_args(argv)
+    try:
+        config = load_config(args.config)
+        driver = SimDriver(config, rate_hz=args.rate)
+    except TwistrateError as exc:
+        print(f"twistrate sim: {exc}", file=sys.stderr)
+        return 2
+    signal.signal(signal.SIGINT, driver.stop)
+    signal.signal(signal.SIGTERM, driver.stop)
+    print(f"twistrate sim: {driver.arm.name} ({driver.arm.n} joints) at {driver.rate_hz:g} Hz; commands from "
+          f"{config.endpoints.output}, joint state to {config.endpoints.intake}", file=sys.stderr, flush=True)
+    try:
+        driver.run(args.seconds)
+    finally:
+        driver.close()
+    print(f"twistrate sim: stopped after {driver.seq} joint states, {driver.received} commands",
+          file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,115 @@
+"""End to end over real sockets: twists in, commands out that equal the solver's rates at the same q;
+enable/disable; run-time parameter changes; health and events on the output."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+from service_harness import collect_commands, make_config, running_service, stream_until
+
+from twistrate.service import codec
+from twistrate.solver.errors import ControlError
+from twistrate.solver.resolve import DesiredTwist, resolve
+
+pytestmark = pytest.mark.timeout(90)
+
+V = [0.03, -0.02, 0.01]
+W = [0.0, 0.0, 0.1]
+
+
+def test_commands_match_the_solver_at_the_same_q():
+    cfg = make_config(simulation={"lag_s": 0.0})
+    with running_service(cfg) as run:
+        link = run.link()
+        link.claim("test")
+        assert link.enable() == "holding"  # enabled, no fresh twist yet: at rest
+
+        def enough(cs):
+            return sum(1 for c in cs if c.answers >= 0) >= 60
+
+        commands = stream_until(link, V, W, enough)
+        svc = run.service
+        arm, options, period = svc.arm, svc.options, svc.period_s
+        twist = DesiredTwist(np.array(V), np.array(W))
+        checked = 0
+        for prev, cur in itertools.pairwise(commands):
+            if cur.tick != prev.tick + 1 or cur.answers < 0 or prev.answers < 0:
+                continue
+            # The command says q implicitly: target = q + rate * T (docs/protocol.md 7.3).
+            q = cur.target - cur.rate * period
+            ref = resolve(arm, q, prev.rate, twist, period, options)
+            np.testing.assert_allclose(cur.rate, ref.qd, atol=1e-9, rtol=1e-7)
+            assert cur.scale == pytest.approx(ref.scale, abs=1e-9)
+            assert cur.mode == "running"
+            checked += 1
+        assert checked >= 20
+
+
+def test_disabled_at_start_then_enable_then_disable_stops():
+    cfg = make_config()
+    with running_service(cfg) as run:
+        link = run.link()
+        link.claim("test")
+        # twists from the holder before enable are not followed
+        cs = stream_until(link, V, W, lambda cs: len(cs) >= 30)
+        assert all(c.mode == "disabled" and c.answers == -1 and not c.rate.any() for c in cs)
+        link.enable()
+        stream_until(link, V, W, lambda cs: any(c.mode == "running" and c.answers >= 0 for c in cs))
+        assert link.status()["mode"] == "running"
+        assert link.disable() == "disabled"
+        link.drain()
+        cs = collect_commands(link, lambda cs: bool(cs) and not cs[-1].rate.any())
+        assert all(c.answers == -1 and c.mode == "disabled" for c in cs)
+
+
+def test_run_time_parameters_apply_and_are_all_or_nothing():
+    cfg = make_config()
+    with running_service(cfg) as run:
+        link = run.link()
+        link.claim("test")
+        link.enable()
+        fast = [0.4, 0.0, 0.0]
+        params = link.set(linear_max=0.05)
+        assert params["linear_max"] == 0.05
+        cs = stream_until(link, fast, [0, 0, 0], lambda cs: sum(c.answers >= 0 for c in cs) > 50)
+        # the speed cap scales the desired twist: the service's own record of it
+        assert run.service.cap == pytest.approx(0.05 / 0.4)
+        res = run.service.last_resolution
+        assert res is not None
+        assert np.linalg.norm(res.twist_desired[:3]) == pytest.approx(0.05, rel=1e-9)
+        # reduced-speed mode caps the tool point at reduced_linear_max (ISO 10218-1:2011, 5.6: 250 mm/s)
+        link.set(linear_max=1.0, reduced_speed=True)
+        stream_until(link, fast, [0, 0, 0], lambda cs: run.service.cap < 0.7)
+        assert run.service.cap == pytest.approx(0.25 / 0.4)
+        assert link.status()["reduced_speed"] is True
+        # a refused parameter changes nothing
+        before = link.set(hysteresis=0.2)
+        with pytest.raises(ControlError) as err:
+            link.set(damping_max=0.01, linear_max=99.0)
+        assert err.value.code == "bad_argument" and "linear_max" in str(err.value)
+        with pytest.raises(ControlError) as err:
+            link.set(no_such_parameter=1.0)
+        assert err.value.code == "bad_argument"
+        assert link.set(hysteresis=0.2) == before
+        counters = link.counters()
+        assert counters["control_refused_bad_argument"] == 2
+        del cs
+
+
+def test_health_and_events_are_published():
+    cfg = make_config()
+    with running_service(cfg) as run:
+        link = run.link(topics=codec.OUTPUT_TOPICS)
+        link.claim("test")
+        health = link.receive_health()
+        assert health.mode == "disabled"
+        assert health.singular_values.shape == (6,)
+        assert 0.0 < health.inverse_condition <= 1.0
+        assert health.limit_margin.shape == (7,) and np.all(health.limit_margin > 0)
+        link.enable()
+        names = []
+        while "enabled" not in names:
+            names.append(link.receive_event().event)
+        assert "lease_claimed" in names

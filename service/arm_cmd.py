@@ -1,6 +1,6 @@
 """`twistrate arm`: load an arm file and report its joints, limits, tool pose, Jacobian and health.
 
-    twistrate arm FILE [--base LINK] [--tool LINK] [--at Q1,Q2,...] [--deg] [--json]
+    twistrate arm FILE [--base LINK] [--tool LINK] [--at Q1,Q2,...] [--deg] [--length M] [--json]
 
 FILE is a .toml or .urdf path, or the short name of a packaged example arm (e.g. bench6). The
 configuration is the arm's home posture unless --at gives one value per joint (rad or m; with
@@ -21,8 +21,10 @@ import numpy as np
 
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import InputError, ModelError, TwistrateError, field_error
+from twistrate.solver.health import assess
 from twistrate.solver.kinematics import forward, geometric_jacobian
 from twistrate.solver.load import parse_arm_source, read_arm_source
+from twistrate.solver.options import HealthThresholds, SolverOptions
 from twistrate.solver.urdf import DEFAULT_ACCEL_RAMP_S
 
 #: Version of the JSON report; bumped on any incompatible change of its keys or meaning.
@@ -51,6 +53,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--at", metavar="Q1,Q2,...",
                    help="joint positions, comma-separated, one per joint (rad or m; default: home)")
     p.add_argument("--deg", action="store_true", help="--at values of revolute joints are in degrees")
+    p.add_argument("--length", metavar="M", type=str, default=None,
+                   help="characteristic length (m) weighting angular against linear rows in the health "
+                        f"measures (default {SolverOptions().characteristic_length})")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
     return p
 
@@ -100,11 +105,26 @@ def _finite_or_none(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
-def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: list[str]) -> dict[str, Any]:
+def parse_length(text: str) -> float:
+    """The --length value in m (finite, > 0), or InputError naming the option."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not (math.isfinite(value) and value > 0.0):
+        raise field_error(InputError, "--length", text, "a finite length in metres > 0")
+    return value
+
+
+def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: list[str],
+                 options: SolverOptions | None = None) -> dict[str, Any]:
     """The report as a JSON-ready dict (SI units; layout documented in docs/arm-format.md).
 
     q : (n,) joint positions, rad / m. q_source : "home" or "--at".
+    options : solver options whose characteristic length and joint weights the health measures
+        use (defaults when None).
     """
+    options = SolverOptions() if options is None else options
     frames = forward(arm, q)
     J = geometric_jacobian(arm, frames)
     report: dict[str, Any] = {
@@ -128,14 +148,30 @@ def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: lis
         "tool_pose": frames.T_base_tool.tolist(),
         "jacobian": J.tolist(),
     }
-    report.update(_health_fields(arm, q, J))
+    report.update(_health_fields(arm, q, J, options))
     report["notes"] = notes
     return report
 
 
-def _health_fields(arm: Arm, q: np.ndarray, J: np.ndarray) -> dict[str, Any]:
-    """Health measures from twistrate.solver.health (not yet available: reported as such)."""
-    return {"health_available": False}
+def _health_fields(arm: Arm, q: np.ndarray, J: np.ndarray, options: SolverOptions) -> dict[str, Any]:
+    """Health measures of twistrate.solver.health at q, from the Jacobian alone (no history)."""
+    thresholds = HealthThresholds()
+    h = assess(arm, q, J, options=options, previous=None, thresholds=thresholds)
+    return {
+        "task_weighting": {"characteristic_length": options.characteristic_length},
+        "singular_values": h.singular_values.tolist(),
+        "manipulability": {
+            "whole": h.manipulability,
+            "linear": h.manipulability_translational,
+            "angular": h.manipulability_rotational,
+        },
+        "inverse_condition": h.inverse_condition,
+        "weakest_direction": {"linear": h.weakest_linear.tolist(), "angular": h.weakest_angular.tolist()},
+        "limit_margins": [_finite_or_none(m) for m in h.limit_margin],
+        "state": h.state,
+        "state_thresholds": {"approaching_below": thresholds.approaching_below,
+                             "holding_below": thresholds.holding_below},
+    }
 
 
 def _num(v: float) -> str:
@@ -180,9 +216,28 @@ def format_text(report: dict[str, Any]) -> str:
 
 
 def _format_health(report: dict[str, Any]) -> list[str]:
-    if not report.get("health_available", True):
-        return ["health: not available (twistrate.solver.health is not installed yet)"]
-    return []
+    L = report["task_weighting"]["characteristic_length"]
+    k = len(report["singular_values"])
+    m = report["manipulability"]
+    th = report["state_thresholds"]
+    w = report["weakest_direction"]
+    margins = ", ".join(
+        f"{j['name']} {'-' if v is None else f'{100 * v:.0f}%'}"
+        for j, v in zip(report["joints"], report["limit_margins"], strict=True)
+    )
+    return [
+        f"health (task-weighted Jacobian: angular rows times L = {L:g} m):",
+        "  singular values (m)   " + " ".join(f"{v:.5f}" for v in report["singular_values"]),
+        f"  manipulability        whole {m['whole']:.4g} m^{k}, translational {m['linear']:.4g} m^3, "
+        f"rotational {m['angular']:.4g}",
+        f"  inverse condition     {report['inverse_condition']:.4f}",
+        "  weakest direction     linear [" + ", ".join(f"{round(v, 3) + 0.0:.3f}" for v in w["linear"])
+        + "] m/s, angular [" + ", ".join(f"{round(v, 3) + 0.0:.3f}" for v in w["angular"]) + "] rad/s",
+        "  limit margins         (share of the range to the nearer limit)",
+        f"                        {margins}",
+        f"  state                 {report['state']}   (approaching below {th['approaching_below']:g} m, "
+        f"holding below {th['holding_below']:g} m of the smallest singular value)",
+    ]
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -206,6 +261,9 @@ def main(argv: list[str] | None = None) -> int:
         if suffix == ".urdf":
             notes.append(f"acceleration limits are not part of URDF: each joint got velocity_max / "
                          f"{DEFAULT_ACCEL_RAMP_S} s (full speed from rest in {DEFAULT_ACCEL_RAMP_S} s)")
+        options = SolverOptions()
+        if args.length is not None:
+            options = SolverOptions(characteristic_length=parse_length(args.length))
         if args.at is None:
             if args.deg:
                 raise field_error(InputError, "--deg", True, "only together with --at")
@@ -218,7 +276,7 @@ def main(argv: list[str] | None = None) -> int:
             hint = "\n(choose the URDF chain with --base LINK and --tool LINK)"
         print(f"twistrate arm: {exc}{hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    report = build_report(arm, q, q_source, label, notes)
+    report = build_report(arm, q, q_source, label, notes, options)
     text = json.dumps(report, indent=1, allow_nan=False) if args.json else format_text(report)
     try:
         print(text)

@@ -151,3 +151,107 @@ def test_bad_arm_file_exits_2(capsys, tmp_path):
 def test_help_exits_0(capsys):
     code, out, _ = run(capsys, "--help")
     assert code == 0 and "--at" in out
+
+
+def _weighted(J: np.ndarray, L: float) -> np.ndarray:
+    A = np.array(J, dtype=float)
+    A[3:] *= L
+    return A
+
+
+@pytest.mark.parametrize("argv", [["bench6"], ["reach7", "--at", "10,-20,30,40,-50,60,-70", "--deg"],
+                                  ["bench6", "--at", "0.3,-0.2,0.5,1.0,-0.7,2.0", "--length", "0.5"]])
+def test_health_measures_follow_yoshikawa(capsys, argv):
+    # Yoshikawa 1985 (IJRR 4(2), "Manipulability of robotic mechanisms"): w = sqrt(det(J J^T)),
+    # here of the task-weighted Jacobian (angular rows times L) and of its row blocks J_v, J_w
+    # (METHODS.md: report translational and rotational separately). Inverse condition number
+    # s_min / s_max (Salisbury & Craig 1982). Singular values cross-checked with numpy's LAPACK SVD.
+    rep = report(capsys, *argv)
+    L = rep["task_weighting"]["characteristic_length"]
+    assert (float(argv[argv.index("--length") + 1]) if "--length" in argv else 0.3) == L
+    J = np.array(rep["jacobian"])
+    A = _weighted(J, L)
+    s = np.linalg.svd(A, compute_uv=False)
+    np.testing.assert_allclose(rep["singular_values"], s, rtol=1e-10)
+    m = rep["manipulability"]
+    assert m["whole"] == pytest.approx(math.sqrt(np.linalg.det(A @ A.T)), rel=1e-8)
+    assert m["linear"] == pytest.approx(math.sqrt(np.linalg.det(J[:3] @ J[:3].T)), rel=1e-8)
+    assert m["angular"] == pytest.approx(math.sqrt(np.linalg.det(J[3:] @ J[3:].T)), rel=1e-8)
+    assert rep["inverse_condition"] == pytest.approx(s[-1] / s[0], rel=1e-10)
+    # the weakest direction is a unit weighted twist along which A reaches only s_min
+    weakest = rep["weakest_direction"]
+    u = np.concatenate([weakest["linear"], L * np.array(weakest["angular"])])
+    assert np.linalg.norm(u) == pytest.approx(1.0, rel=1e-12)
+    assert np.linalg.norm(A.T @ u) == pytest.approx(s[-1], rel=1e-8, abs=1e-12)
+    assert rep["state"] == "normal"
+
+
+def test_planar3_manipulability_matches_closed_form(capsys):
+    # Planar 3R: det [x; y; phi]-Jacobian = l1 l2 sin q2 (subtract column 2 from 1 and 3 from 2; the
+    # two-link result w = l1 l2 |sin q2| of Yoshikawa 1985). The weighted 6 x 3 Jacobian has the
+    # nonzero rows vx, vy, L wz, so w_whole = L l1 l2 |sin q2|; its J_v (3 x 3) has a zero vz row: 0.
+    rng = np.random.default_rng(11)
+    for q in rng.uniform(-2.5, 2.5, size=(10, 3)):
+        rep = report(capsys, "planar3", "--at", ",".join(repr(float(v)) for v in q))
+        expected = 0.3 * 0.30 * 0.25 * abs(math.sin(q[1]))
+        assert rep["manipulability"]["whole"] == pytest.approx(expected, rel=1e-9)
+        assert rep["manipulability"]["linear"] == pytest.approx(0.0, abs=1e-12)
+
+
+def test_singular_configuration_is_holding(capsys):
+    # bench6 with the wrist straight (wrist_bend = 0): joints 4 and 6 are collinear, a wrist
+    # singularity (common practice for spherical wrists): the smallest singular value vanishes.
+    rep = report(capsys, "bench6", "--at", "0,-10,-20,0,0,0", "--deg")
+    assert rep["singular_values"][-1] < 1e-12
+    assert rep["state"] == "holding"
+    assert rep["manipulability"]["whole"] < 1e-12
+    # Bending the wrist away from it: the state follows the documented entry thresholds on s_min.
+    seen = set()
+    for bend in (0.5, 1, 2, 4, 8, 16, 32):
+        rep = report(capsys, "bench6", "--at", f"0,-10,-20,0,{bend},0", "--deg")
+        s_min, th = rep["singular_values"][-1], rep["state_thresholds"]
+        expected = ("holding" if s_min < th["holding_below"] else
+                    "approaching" if s_min < th["approaching_below"] else "normal")
+        assert rep["state"] == expected
+        seen.add(expected)
+    assert seen == {"holding", "approaching", "normal"}
+
+
+def test_limit_margins(capsys):
+    # margin = min(q - q_min, q_max - q) / (q_max - q_min) as documented; unlimited joints: null
+    rep = report(capsys, "rail4", "--at", "0.3,0,0,0")
+    assert rep["limit_margins"][0] == pytest.approx(0.25)
+    assert rep["limit_margins"][1] == pytest.approx(0.5)
+    assert report(capsys, "bench6")["limit_margins"][5] is None
+
+
+def test_bad_length_exits_2(capsys):
+    for bad in ("0", "-1", "x", "inf"):
+        code, out, err = run(capsys, "bench6", "--length", bad)
+        assert code == 2 and out == "" and "--length" in err and "> 0" in err
+
+
+def test_documented_json_example_matches_the_command(capsys):
+    # docs/arm-format.md shows `twistrate arm planar3 --json` rounded to 6 decimals: same keys, same numbers.
+    from pathlib import Path
+
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "arm-format.md").read_text()
+    documented = json.loads(doc.split("```json\n", 1)[1].split("```", 1)[0])
+    live = report(capsys, "planar3")
+    assert documented.keys() == live.keys()
+
+    def compare(a, b):
+        if isinstance(a, dict):
+            assert a.keys() == b.keys()
+            for k in a:
+                compare(a[k], b[k])
+        elif isinstance(a, list):
+            assert len(a) == len(b)
+            for x, y in zip(a, b, strict=True):
+                compare(x, y)
+        elif isinstance(a, float):
+            assert a == pytest.approx(b, abs=1e-6)
+        else:
+            assert a == b
+
+    compare(documented, live)

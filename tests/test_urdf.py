@@ -117,6 +117,8 @@ def test_desk4_limits_continuous_joint_and_default_acceleration():
     np.testing.assert_array_equal(arm.v_max, [2.0, 1.8, 2.2, 3.5])
     np.testing.assert_allclose(arm.a_max, arm.v_max / DEFAULT_ACCEL_RAMP_S)
     assert arm.name == "desk4"
+    assert np.all(arm.q_min <= arm.q_home) and np.all(arm.q_home <= arm.q_max)
+    assert "Invented for demos" in DESK4
 
 
 def test_acceleration_argument():

@@ -84,11 +84,11 @@ def manipulability(J: np.ndarray) -> float:
 def limit_margins(arm: Arm, q: np.ndarray) -> np.ndarray:
     """(n,) margin of each joint to its nearer position limit as a fraction of its range; +inf for
     unlimited joints (infinite limits); negative beyond a limit. q : (n,) rad or m."""
-    lo, hi = arm.q_min, arm.q_max
-    limited = np.isfinite(lo) & np.isfinite(hi)
-    span = np.where(limited, hi - lo, 1.0)
-    near = np.minimum(q - np.where(limited, lo, 0.0), np.where(limited, hi, 0.0) - q)
-    return np.where(limited, near / span, np.inf)
+    limited = np.isfinite(arm.q_min) & np.isfinite(arm.q_max)
+    lo = np.where(limited, arm.q_min, 0.0)
+    hi = np.where(limited, arm.q_max, 1.0)
+    near = np.minimum(q - lo, hi - q)
+    return np.where(limited, near / (hi - lo), np.inf)
 
 
 def weakest_direction(U: np.ndarray, k: int, characteristic_length: float) -> tuple[np.ndarray, np.ndarray]:

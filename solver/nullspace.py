@@ -42,15 +42,20 @@ class LinearObjective:
     c1: np.ndarray
 
 
+def _ranges(arm: Arm) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(limited (n,) bool, span (n,), mid (n,)): finite stand-ins (1, 0) for unlimited joints."""
+    limited = np.isfinite(arm.q_min) & np.isfinite(arm.q_max)
+    lo = np.where(limited, arm.q_min, 0.0)
+    hi = np.where(limited, arm.q_max, 1.0)
+    return limited, hi - lo, 0.5 * (lo + hi)
+
+
 def joint_range_gradient(arm: Arm, q: np.ndarray) -> np.ndarray:
     """(n,) gradient of the joint-range cost H (Siciliano et al. 2009 eq. 3.57), 1/rad or 1/m.
 
     Unlimited joints (infinite position limits) get 0.
     """
-    lo, hi = arm.q_min, arm.q_max
-    limited = np.isfinite(lo) & np.isfinite(hi)
-    span = np.where(limited, hi - lo, 1.0)
-    mid = np.where(limited, 0.5 * (lo + hi), 0.0)
+    limited, span, mid = _ranges(arm)
     return np.where(limited, -(q - mid) / (arm.n * span * span), 0.0)
 
 
@@ -68,10 +73,7 @@ def linear_objective(
     """
     if limit_gain == 0.0 and posture_gain == 0.0:
         return None
-    lo, hi = arm.q_min, arm.q_max
-    limited = np.isfinite(lo) & np.isfinite(hi)
-    span = np.where(limited, hi - lo, 1.0)
-    mid = np.where(limited, 0.5 * (lo + hi), 0.0)
+    limited, span, mid = _ranges(arm)
     k_range = np.where(limited, limit_gain / (arm.n * span * span), 0.0)
     c1 = (k_range + posture_gain) * col_scale
     c0 = (k_range * mid + posture_gain * posture) * col_scale

@@ -139,7 +139,6 @@ class _Plan:
     weight : (6, n) or (6, 1) multiplier with A = J * weight.
     objective : the affine null-space objectives, or None. manipulability_gain : 1/s.
     bounds : rate-bound constants, or None when limits are not enforced.
-    zeros_n, zeros_6 : zero vectors for the one-dot finiteness checks (nan/inf * 0 = nan).
     """
 
     arm: Arm
@@ -150,8 +149,6 @@ class _Plan:
     objective: LinearObjective | None
     manipulability_gain: float
     bounds: BoundPlan | None
-    zeros_n: np.ndarray
-    zeros_6: np.ndarray
 
 
 def _positive(name: str, value: float, zero_ok: bool = False) -> float:
@@ -201,7 +198,7 @@ def _prepare(arm: Arm, options: SolverOptions, period: float) -> _Plan:
     objective = linear_objective(arm, options.limit_gain, options.posture_gain, posture, d)
     bounds = plan_bounds(arm, float(period)) if options.enforce_limits else None
     return _Plan(arm, float(period), task_scale, col_scale, weight, objective,
-                 float(options.manipulability_gain), bounds, np.zeros(n), np.zeros(6))
+                 float(options.manipulability_gain), bounds)
 
 
 def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
@@ -274,13 +271,15 @@ def resolve_counted(
     if plan is None or plan.arm is not arm or plan.period != period:
         plan = _prepare(arm, options, period)
         object.__setattr__(options, _PLAN_ATTR, plan)
-    zn = plan.zeros_n
-    if q.dot(zn) + qd_prev.dot(zn) != 0.0:  # nan/inf * 0 is nan; finite * 0 is 0
+    ok = np.isfinite(q)
+    ok2 = np.isfinite(qd_prev)
+    if not (ok[ok.argmin()] and ok2[ok2.argmin()]):  # argmin finds a False, cheaper than .all()
         _raise_non_finite(q, qd_prev, twist)
     frames = forward(arm, q)
     J = geometric_jacobian(arm, frames)
     x = _twist_base(twist, frames.T_base_tool)
-    if x.dot(plan.zeros_6) != 0.0:
+    ok = np.isfinite(x)
+    if not ok[ok.argmin()]:
         _raise_non_finite(q, qd_prev, twist)
 
     A = J * plan.weight
@@ -315,8 +314,9 @@ def resolve_counted(
     bits = np.zeros(n, dtype=np.uint8)
     bplan = plan.bounds
     if bplan is not None and not obeys(bplan, sided_bounds(bplan, q, qd_prev), qd):
-        qd, scale, bits, iterations = _enforce(A, U, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
-    if qd.dot(zn) != 0.0:  # overflow of a huge (finite) request near a singularity
+        qd, scale, bits, iterations = _enforce(A, U, Vh, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
+    ok = np.isfinite(qd)
+    if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
         qd, scale, bits = _finite_fallback(plan, q, qd_prev)
     k = s.shape[0]
     resolution = Resolution(
@@ -337,6 +337,7 @@ def resolve_counted(
 def _enforce(
     A: np.ndarray,
     U: np.ndarray,
+    Vh: np.ndarray,
     y_task: np.ndarray,
     y_null: np.ndarray | None,
     y0: np.ndarray | None,
@@ -348,7 +349,8 @@ def _enforce(
 ) -> tuple[np.ndarray, float, np.ndarray, int]:
     """Slow path: saturation in the null space with task scaling. Returns (qd, scale, bits, passes).
 
-    A : (6, n) weighted Jacobian, U : (6, 6) its left singular vectors, rank its numerical rank.
+    A : (6, n) weighted Jacobian, U : (6, 6) and Vh : (n, n) its singular vectors, rank its
+    numerical rank.
     When rank < 6 the task equations are restricted to the range of A (U_r^T A y = s U_r^T x_d;
     the other rows are zero to the rank tolerance for every y), so the saturation works with a
     full-row-rank matrix and its optimality refinement applies.
@@ -370,11 +372,16 @@ def _enforce(
             A_t, x_t = A, A @ y_task  # x_t: the damped twist, weighted units (module docstring)
         sat = saturate(A_t, x_t, y_task, b0, y0, lo_y, hi_y, rank, tol, refine=True)
         iterations = sat.iterations
-        if y0 is not None and sat.scale < 1.0:  # the task has priority over the objectives
-            bare = saturate(A_t, x_t, y_task, np.zeros(n), None, lo_y, hi_y, rank, tol, refine=True)
-            iterations += bare.iterations
-            if bare.y is not None and (sat.y is None or bare.scale > sat.scale):
-                sat = bare
+        if sat.scale < 1.0:
+            # Second start: the null-space rates nearest the previous rates (least joint
+            # acceleration). Under acceleration bounds the feasible rates lie near qd_prev, which
+            # the minimum-norm start can miss; the task has priority over the objectives.
+            y_prev = qd_prev if d is None else qd_prev / d
+            near = saturate(A_t, x_t, y_task, project(Vh, rank, y_prev), y_prev, lo_y, hi_y, rank, tol,
+                            refine=True)
+            iterations += near.iterations
+            if near.y is not None and (sat.y is None or near.scale > sat.scale):
+                sat = near
         y, scale = sat.y, sat.scale
     if y is None:
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)

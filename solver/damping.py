@@ -85,12 +85,16 @@ def task_rates(
     if options.damping == "selective":
         return _selective(U, s, Vh, rank, x_w, A, options.selective_step_max)
     lam = damping_factor(s, options)
-    sr = s[:rank] if rank < s.shape[0] else s
+    if rank < s.shape[0]:
+        s = s[:rank]
+    coef = x_w @ (U if rank == U.shape[1] else U[:, :rank])
     if lam > 0.0:
-        g = sr / (sr * sr + lam * lam)
+        g = s * s
+        g += lam * lam
+        coef *= s
+        coef /= g
     else:
-        g = 1.0 / sr
-    coef = (x_w @ U[:, :rank]) * g
+        coef /= s
     return coef @ Vh[:rank], lam
 
 

@@ -53,10 +53,16 @@ from twistrate.solver.svd import numerical_rank, svd_full
 #: A joint whose task-rate coefficient |a_i| is at most this (weighted rad/s per unit scale) is
 #: treated as not moved by the task when computing the task scaling factor.
 SCALE_EPS = 1e-12
-#: Slack (weighted rad/s) when deciding that a joint not moved by the task sits inside its bounds.
+#: Slack (weighted rad/s) of the bounds in the task scaling test (rounding; the caller clips).
 BOUND_TOL = 1e-12
+#: Stand-in task coefficient of a free joint the task does not move (see `_scaling`).
+_UNMOVED = 1e-20
 #: Relative tolerance for reporting which bound a saturated joint sits on.
 SOURCE_RTOL = 1e-9
+#: Finite stand-in for 2 A d of an unlimited joint in the fused check (any value above e_hi works).
+_BIG = 1e300
+_ONE = np.ones(1)
+_ONE.setflags(write=False)
 #: Relative tolerance on shadow prices (and on scale comparisons) in the optimality refinement.
 _SHADOW_RTOL = 1e-9
 #: The refinement stops after this many passes per joint (Bland's rule terminates much earlier).
@@ -77,6 +83,8 @@ class BoundPlan:
         e0 - G2A @ q = 2 A d, d the distances to the limits (m or rad).
     e_lo, e_hi : (2n,) clamp of 2 A d: (A T / 2)^2 (braking speed 0) and (V + A T / 2)^2 (speed V).
     half_AT, AT : (2n,) A T / 2 and A T (rad/s or m/s). AT_n : (n,) A T.
+    check : (6n, 3n + 1) matrix of the fused per-tick test: check @ [q; qd; qd_prev; 1] stacks
+        min(2 A d, BIG), G qd + A T / 2 and A T - G (qd - qd_prev), each (2n,) (see `within_bounds`).
     """
 
     period: float
@@ -88,6 +96,7 @@ class BoundPlan:
     half_AT: np.ndarray
     AT: np.ndarray
     AT_n: np.ndarray
+    check: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -127,10 +136,18 @@ def plan_bounds(arm: Arm, period: float) -> BoundPlan:
     G = np.concatenate((-np.eye(n), np.eye(n)))
     e0 = 2.0 * A2 * np.concatenate((-arm.q_min, arm.q_max))
     half_AT = 0.5 * A2 * period
+    e_hi = (V2 + half_AT) ** 2
+    check = np.zeros((6 * n, 3 * n + 1))
+    check[: 2 * n, :n] = -2.0 * A2[:, None] * G
+    check[: 2 * n, -1] = np.minimum(e0, _BIG)  # unlimited joints: a finite stand-in above e_hi
+    check[2 * n: 4 * n, n: 2 * n] = G
+    check[2 * n: 4 * n, -1] = half_AT
+    check[4 * n:, n: 2 * n] = -G
+    check[4 * n:, 2 * n: 3 * n] = G
+    check[4 * n:, -1] = A2 * period
     return BoundPlan(
-        period=float(period), G=G, e0=e0, G2A=2.0 * A2[:, None] * G,
-        e_lo=half_AT * half_AT, e_hi=(V2 + half_AT) ** 2, half_AT=half_AT, AT=A2 * period,
-        AT_n=arm.a_max * period,
+        period=float(period), G=G, e0=e0, G2A=2.0 * A2[:, None] * G, e_lo=half_AT * half_AT, e_hi=e_hi,
+        half_AT=half_AT, AT=A2 * period, AT_n=arm.a_max * period, check=check,
     )
 
 
@@ -144,23 +161,25 @@ def _speed_bound(plan: BoundPlan, q: np.ndarray) -> tuple[np.ndarray, np.ndarray
     return e, e_raw
 
 
-def sided_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> np.ndarray:
-    """(2n,) sided speed bounds U (fast per-tick check): rates qd obey every bound iff G @ qd <= U.
+def within_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray, qd: np.ndarray) -> bool:
+    """Fast per-tick test: True when rates qd (n,) obey every bound at q (n,) after qd_prev (n,).
 
-    q : (n,) positions; qd_prev : (n,) last commanded rates. Crossing is not resolved here (when
-    bounds cross no qd passes the check, and `rate_bounds` resolves it on the slow path).
+    Sided speeds u = G qd must satisfy u <= sqrt(clip(2 A d, e_lo, e_hi)) - A T / 2, tested without
+    the square root as max(u + A T/2, 0)^2 <= min(2 A d, e_hi): exact wherever 2 A d >= e_lo, and
+    stricter (a False sends the tick to the exact slow path) within A T^2 / 8 of a limit or beyond
+    it; and G (qd - qd_prev) <= A T. One matrix product gives every linear term. A non-finite qd
+    fails the test.
     """
-    U, _ = _speed_bound(plan, q)
-    acc = plan.G @ qd_prev
-    acc += plan.AT
-    np.minimum(U, acc, out=U)
-    return U
-
-
-def obeys(plan: BoundPlan, U: np.ndarray, qd: np.ndarray) -> bool:
-    """True when rates qd (n,) satisfy G @ qd <= U for the sided bounds U (2n,)."""
-    slack = U - plan.G @ qd
-    return bool(slack[slack.argmin()] >= 0.0)
+    n2 = 2 * q.shape[0]
+    r = plan.check @ np.concatenate((q, qd, qd_prev, _ONE))
+    e = r[:n2]
+    u = r[n2: 2 * n2]
+    np.minimum(e, plan.e_hi, out=e)
+    np.maximum(u, 0.0, out=u)
+    u *= u
+    e -= u
+    np.minimum(e, r[2 * n2:], out=e)
+    return bool(e[e.argmin()] >= 0.0)
 
 
 def rate_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> RateBounds:
@@ -197,30 +216,37 @@ def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray) -> np.ndar
 
 
 def _scaling(
-    a: np.ndarray, b: np.ndarray, lo: np.ndarray, hi: np.ndarray
+    a: np.ndarray, b: np.ndarray, lo: np.ndarray, hi: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray,
+    free: np.ndarray,
 ) -> tuple[float, float, int, float, int, float]:
-    """Task scaling factor range of y(s) = b + s a within [lo, hi] (Flacco et al. 2015, Alg. 2).
+    """Task scaling factor range of y(s) = b + s a within [lo, hi] (Flacco et al. 2015, the task
+    scaling factor, from memory).
 
-    Returns (s_min, s_max, j_max, bound_j_max, j_min, bound_j_min): j_max is the joint whose upper
-    scale limit is smallest (the most critical joint) and bound_j_max the rate bound it meets
-    there; j_min likewise for the largest lower scale limit.
+    lo_t, hi_t : the bounds widened by BOUND_TOL, used for the scale limits (rounding slack; the
+    bound values returned are the exact lo, hi). Returns (s_min, s_max, j_max, bound_j_max, j_min,
+    bound_j_min): j_max is the joint whose upper scale limit is smallest (the most critical joint)
+    and bound_j_max the rate bound it meets there; j_min likewise for the largest lower scale limit.
+    A free joint the task does not move (|a_i| <= SCALE_EPS) is given a = _UNMOVED: its scale limits
+    are then beyond +-1e8 (no limit) when b_i is inside its widened bounds, and exclude every s in
+    [0, 1] when b_i is outside (the bound it meets is then the one b_i broke). Saturated joints
+    (free False) never limit the scale.
     """
-    moving = np.abs(a) > SCALE_EPS
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r_lo = (lo - b) / a
-        r_hi = (hi - b) / a
+    a = np.where(np.abs(a) > SCALE_EPS, a, _UNMOVED)
     up = a > 0.0
-    inside = (b >= lo - BOUND_TOL) & (b <= hi + BOUND_TOL)
-    s_lower = np.where(moving, np.where(up, r_lo, r_hi), np.where(inside, -np.inf, np.inf))
-    s_upper = np.where(moving, np.where(up, r_hi, r_lo), np.where(inside, np.inf, -np.inf))
-    # the bound each joint meets at its upper / lower scale limit
-    above = b > hi
-    meet_upper = np.where(moving, np.where(up, hi, lo), np.where(above, hi, lo))
-    meet_lower = np.where(moving, np.where(up, lo, hi), np.where(above, hi, lo))
+    d_hi = hi_t - b
+    d_lo = lo_t - b
+    s_upper = np.where(up, d_hi, d_lo)
+    s_upper /= a
+    s_lower = np.where(up, d_lo, d_hi)
+    s_lower /= a
+    saturated = ~free
+    s_upper[saturated] = np.inf
+    s_lower[saturated] = -np.inf
     j_max = int(s_upper.argmin())
     j_min = int(s_lower.argmax())
-    return (float(s_lower[j_min]), float(s_upper[j_max]), j_max, float(meet_upper[j_max]),
-            j_min, float(meet_lower[j_min]))
+    bound_max = hi[j_max] if up[j_max] else lo[j_max]
+    bound_min = lo[j_min] if up[j_min] else hi[j_min]
+    return (float(s_lower[j_min]), float(s_upper[j_max]), j_max, float(bound_max), j_min, float(bound_min))
 
 
 def _inside(y: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> bool:
@@ -252,6 +278,7 @@ def saturate(
     All rates in the weighted coordinates y. See the module docstring for the algorithm.
     """
     m, n = A.shape
+    lo_t, hi_t = lo - BOUND_TOL, hi + BOUND_TOL  # the scaling test's slack (the caller clips)
     free = np.ones(n, dtype=bool)
     yN = np.zeros(n) if y0 is None else y0.copy()
     a, b = a0, b0
@@ -262,7 +289,7 @@ def saturate(
     iterations = 0
     while True:
         iterations += 1
-        s_min, s_max, j_max, bound_max, j_min, bound_min = _scaling(a, b, lo, hi)
+        s_min, s_max, j_max, bound_max, j_min, bound_min = _scaling(a, b, lo, hi, lo_t, hi_t, free)
         feasible = s_min <= s_max and s_max >= 0.0 and s_min <= 1.0
         if feasible:
             s = min(1.0, s_max)
@@ -293,7 +320,7 @@ def saturate(
         if _inside(y, lo, hi):
             return Saturation(y, 1.0, ~free, iterations)
     if basis is not None:
-        refined = _refine(A, x, lo, hi, *basis)
+        refined = _refine(A, x, lo, hi, lo_t, hi_t, *basis)
         iterations += refined.iterations
         if refined.y is not None and refined.scale > best_s:
             return Saturation(refined.y, refined.scale, refined.saturated, iterations)
@@ -303,7 +330,7 @@ def saturate(
 
 
 def _refine(
-    A: np.ndarray, x: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+    A: np.ndarray, x: np.ndarray, lo: np.ndarray, hi: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray,
     free: np.ndarray, yN: np.ndarray, s: float, k: int, bound_k: float,
 ) -> Saturation:
     """Raise the task scale from a basis of the saturation loop to its maximum (simplex pivots).
@@ -320,6 +347,7 @@ def _refine(
     is released, k is saturated in its place, and the scale is recomputed with the new square
     free set. Each pass costs two small linear solves.
     free : (n,) bool, m True; yN : (n,) saturated values (entries of free joints ignored).
+    lo_t, hi_t : the bounds widened by BOUND_TOL (see `_scaling`).
     """
     m, n = A.shape
     free = free.copy()
@@ -364,7 +392,7 @@ def _refine(
         b[free] = 0.0
         a[free] = sol[:, 0]
         b[free] = sol[:, 1]
-        s_min, s_max, j_max, bound_max, _, _ = _scaling(a, b, lo, hi)
+        s_min, s_max, j_max, bound_max, _, _ = _scaling(a, b, lo, hi, lo_t, hi_t, free)
         if not (s_min <= s_max + _SHADOW_RTOL and s_max >= s_best - _SHADOW_RTOL):
             break  # numerical trouble: keep the best so far
         if s_max >= 1.0:

@@ -47,11 +47,10 @@ from twistrate.solver.limits import (
     BoundPlan,
     active_bits,
     brake_along,
-    obeys,
     plan_bounds,
     rate_bounds,
     saturate,
-    sided_bounds,
+    within_bounds,
 )
 from twistrate.solver.nullspace import LinearObjective, linear_objective, project
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
@@ -65,6 +64,7 @@ __all__ = [
     "Resolution",
     "resolve",
     "resolve_counted",
+    "resolve_from_kinematics",
 ]
 
 TwistFrame = Literal["base", "tool"]
@@ -125,6 +125,25 @@ class Resolution:
     singular_values: np.ndarray
     U: np.ndarray
 
+    def __init__(
+        self,
+        qd: np.ndarray,
+        twist_desired: np.ndarray,
+        twist_achieved: np.ndarray,
+        scale: float,
+        damping: float,
+        limits_active: np.ndarray,
+        frames: Frames,
+        J: np.ndarray,
+        singular_values: np.ndarray,
+        U: np.ndarray,
+    ) -> None:
+        # Frozen: fill __dict__ directly, once per tick (cheaper than ten object.__setattr__ calls).
+        self.__dict__.update(
+            qd=qd, twist_desired=twist_desired, twist_achieved=twist_achieved, scale=scale, damping=damping,
+            limits_active=limits_active, frames=frames, J=J, singular_values=singular_values, U=U,
+        )
+
 
 
 #: Attribute of a SolverOptions instance holding the memoised `_Plan` of the last (arm, period).
@@ -136,7 +155,7 @@ class _Plan:
     """Constants of one (arm, options, period), derived and validated once.
 
     task_scale : (6,) S = (1, 1, 1, L, L, L). col_scale : (n,) D = W^-1/2, or None for W = I.
-    weight : (6, n) or (6, 1) multiplier with A = J * weight.
+    weight : (6, n) multiplier with A = J * weight.
     objective : the affine null-space objectives, or None. manipulability_gain : 1/s.
     bounds : rate-bound constants, or None when limits are not enforced.
     """
@@ -187,7 +206,7 @@ def _prepare(arm: Arm, options: SolverOptions, period: float) -> _Plan:
     task_scale = np.array([1.0, 1.0, 1.0, L, L, L])
     if options.joint_weights is None:
         col_scale = None
-        weight = task_scale[:, None].copy()
+        weight = np.repeat(task_scale[:, None], n, axis=1)  # same shape as J: no broadcasting per tick
         d = np.ones(n)
     else:
         w = _vector("joint_weights", options.joint_weights, n, positive=True)
@@ -216,7 +235,7 @@ def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
         point = R @ point
     else:
         raise field_error(InputError, "twist.frame", frame, "'base' or 'tool'")
-    if point.any():
+    if point[0] or point[1] or point[2]:  # nan is truthy, so a nan point propagates into x
         # v_tool = v_ref + w x (p_tool - p_ref) = v_ref + r x w, r = p_ref - p_tool = point.
         r0, r1, r2 = point.tolist()
         w0, w1, w2 = x[3:].tolist()
@@ -267,38 +286,79 @@ def resolve_counted(
 
     Each saturation pass costs one SVD of a reduced Jacobian (see `twistrate.solver.limits`).
     """
+    plan = _plan(arm, options, period)
+    _check_states(q, qd_prev, twist)
+    frames = forward(arm, q)
+    return _rates(plan, q, qd_prev, twist, options, frames, geometric_jacobian(arm, frames))
+
+
+def resolve_from_kinematics(
+    arm: Arm,
+    q: np.ndarray,
+    qd_prev: np.ndarray,
+    twist: DesiredTwist,
+    period: float,
+    options: SolverOptions,
+    frames: Frames,
+    J: np.ndarray,
+) -> tuple[Resolution, int]:
+    """`resolve_counted` with forward kinematics and the Jacobian at q supplied by the caller.
+
+    frames : forward kinematics at q; only `frames.T_base_tool` (4, 4) is read (and the object is
+        returned in the Resolution). J : (6, n) geometric Jacobian at q, base frame, tool point,
+        rows (v, w). Used by `twistrate bench solver` to time the same tick on compiled kinematics.
+    """
+    plan = _plan(arm, options, period)
+    _check_states(q, qd_prev, twist)
+    return _rates(plan, q, qd_prev, twist, options, frames, J)
+
+
+def _plan(arm: Arm, options: SolverOptions, period: float) -> _Plan:
+    """The memoised constants of (arm, options, period), derived on first use or change."""
     plan = options.__dict__.get(_PLAN_ATTR)
     if plan is None or plan.arm is not arm or plan.period != period:
         plan = _prepare(arm, options, period)
         object.__setattr__(options, _PLAN_ATTR, plan)
+    return plan
+
+
+def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
     ok = np.isfinite(q)
     ok2 = np.isfinite(qd_prev)
     if not (ok[ok.argmin()] and ok2[ok2.argmin()]):  # argmin finds a False, cheaper than .all()
         _raise_non_finite(q, qd_prev, twist)
-    frames = forward(arm, q)
-    J = geometric_jacobian(arm, frames)
+
+
+def _rates(
+    plan: _Plan,
+    q: np.ndarray,
+    qd_prev: np.ndarray,
+    twist: DesiredTwist,
+    options: SolverOptions,
+    frames: Frames,
+    J: np.ndarray,
+) -> tuple[Resolution, int]:
+    """Steps 2-6 of the module docstring, from forward kinematics and J at q."""
     x = _twist_base(twist, frames.T_base_tool)
     ok = np.isfinite(x)
     if not ok[ok.argmin()]:
         _raise_non_finite(q, qd_prev, twist)
 
     A = J * plan.weight
-    x_w = x * plan.task_scale
     U, s, Vh = svd_full(A)
     n = q.shape[0]
     tol = RANK_RTOL * s[0]
     if tol < RANK_ATOL:
         tol = RANK_ATOL
     rank = numerical_rank(s, tol)
-    y_task, lam = task_rates(U, s, Vh, rank, x_w, A, options)
+    y_task, lam = task_rates(U, s, Vh, rank, x * plan.task_scale, A, options)
 
     # Null-space objectives (weighted coordinates), projected with the exact projector.
     objective = plan.objective
     y0 = None if objective is None else objective.c0 - objective.c1 * q
     if plan.manipulability_gain != 0.0:
-        g = plan.manipulability_gain * _manipulability_gradient(J, U, s, Vh, plan)
-        if plan.col_scale is not None:
-            g *= plan.col_scale
+        g = _manipulability_gradient(J, U, s, Vh, plan)
+        g *= plan.manipulability_gain if plan.col_scale is None else plan.manipulability_gain * plan.col_scale
         y0 = g if y0 is None else y0 + g
     if y0 is not None and rank < n:
         y_null = project(Vh, rank, y0)
@@ -311,13 +371,17 @@ def resolve_counted(
 
     scale = 1.0
     iterations = 0
-    bits = np.zeros(n, dtype=np.uint8)
     bplan = plan.bounds
-    if bplan is not None and not obeys(bplan, sided_bounds(bplan, q, qd_prev), qd):
-        qd, scale, bits, iterations = _enforce(A, U, Vh, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
-    ok = np.isfinite(qd)
-    if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
-        qd, scale, bits = _finite_fallback(plan, q, qd_prev)
+    if bplan is not None and within_bounds(bplan, q, qd_prev, qd):
+        bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
+    else:
+        if bplan is not None:
+            qd, scale, bits, iterations = _enforce(A, U, Vh, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
+        else:
+            bits = np.zeros(n, dtype=np.uint8)
+        ok = np.isfinite(qd)
+        if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
+            qd, scale, bits = _finite_fallback(plan, q, qd_prev)
     k = s.shape[0]
     resolution = Resolution(
         qd=qd,

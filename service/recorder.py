@@ -80,14 +80,16 @@ class Recorder:
 
     path : output file (created or truncated). arm : the arm (joint names, n). tick_hz : tick rate.
     source : "service" or "output". unavailable : field names the source cannot fill.
+    capacity : ring length in rows (default RING_S of ticks, at least MIN_RING).
     """
 
     def __init__(self, path: str | Path, arm: Arm, tick_hz: float, source: str = "service",
-                 unavailable: tuple[str, ...] = ()) -> None:
+                 unavailable: tuple[str, ...] = (), capacity: int | None = None) -> None:
         self.path = Path(path)
         self.n = arm.n
         self.dtype = record_dtype(arm.n)
-        capacity = max(MIN_RING, int(RING_S * tick_hz))
+        if capacity is None:
+            capacity = max(MIN_RING, int(RING_S * tick_hz))
         self._ring = np.zeros(capacity, dtype=self.dtype)
         self._cap = capacity
         self._w = 0  # rows pushed (tick thread)

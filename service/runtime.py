@@ -37,8 +37,8 @@ from twistrate.service.tick import LatencyHistogram, Ticker, make_realtime, set_
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import ControlError, InputError, WireError
 from twistrate.solver.health import NORMAL, assess, next_state
-from twistrate.solver.kinematics import forward, geometric_jacobian
-from twistrate.solver.resolve import DesiredTwist, Resolution, resolve
+from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
+from twistrate.solver.resolve import DesiredTwist, Resolution, resolve_from_kinematics
 
 log = logging.getLogger("twistrate.service")
 
@@ -52,6 +52,9 @@ JOINT_RANGE_TOLERANCE = 1e-3
 #: At most this many intake messages are taken per tick (a flood cannot stall the tick; the rest
 #: wait for the next tick, and the socket's receive high-water mark bounds the queue).
 MAX_DRAIN_PER_TICK = 256
+#: The tick thread wakes this long before each deadline to prepare (drain the intake, forward kinematics
+#: and the Jacobian at the newest joint state), so only the solve and the publish follow the deadline, ns.
+PREPARE_NS = 400_000
 #: How long a final command may take to leave the output socket at shutdown, ms (bounded linger).
 FINAL_LINGER_MS = 500
 #: Shutdown gives up ramping after this long, s (a ramp from the velocity limits takes < 1 s on
@@ -136,6 +139,9 @@ class Service:
         self.manipulability = math.nan
         self.limits_active = np.zeros(self.n, dtype=np.uint8)
         self.last_resolution: Resolution | None = None
+        #: (q, frames, J) computed before the deadline; used when q is still the newest joint state
+        self._kin: tuple[np.ndarray, Frames, np.ndarray] | None = None
+        self._health_q: np.ndarray | None = None
         self.last_health: dict[str, Any] = {}
         self.mode = self.state.mode
         self.final_command_sent = False
@@ -149,6 +155,9 @@ class Service:
         self.ticker = Ticker(self.period_ns)
         self.arrival_to_publish = LatencyHistogram()
         self.tick_work = LatencyHistogram()
+        self.solve_time = LatencyHistogram()
+        self.deadline_to_publish = LatencyHistogram()
+        self._deadline = 0
         self._out_seq = {"command": 0, "health": 0, "event": 0}
 
         # handoff and life cycle
@@ -289,6 +298,8 @@ class Service:
         ticker = self.ticker
         ticker.start()
         self.start_ns = ticker.deadline + self.period_ns
+        if self.sim is not None:
+            self.q_rx_ns = ticker.deadline
         self._ready.set()
         log.info("tick %g Hz on %s (%s); intake %s, output %s", self.rate_hz, self.arm.name, self.scheduling,
                  self.config.endpoints.intake, self.config.endpoints.output)
@@ -296,7 +307,7 @@ class Service:
         clock = time.monotonic_ns
         try:
             while True:
-                deadline = ticker.wait()
+                deadline = ticker.wait(self._prepare, PREPARE_NS)
                 self._tick(deadline)
                 self.tick_work.add(clock() - deadline)
                 if self._shutdown_why is not None:
@@ -321,7 +332,24 @@ class Service:
             fn()
         log.info("tick stopped after %d ticks, %d overruns", self.ticker.ticks, self.ticker.overruns)
 
+    def _prepare(self) -> None:
+        """Before the deadline: take what has arrived, and the kinematics at the newest joint state."""
+        self._drain(time.monotonic_ns())
+        q = self.q
+        if q is not None and (self._kin is None or self._kin[0] is not q):
+            frames = forward(self.arm, q)
+            self._kin = (q, frames, geometric_jacobian(self.arm, frames))
+
+    def _kinematics(self, q: np.ndarray) -> tuple[Frames, np.ndarray]:
+        """(frames, J) at q: the prepared ones when q is the state they were made for."""
+        kin = self._kin
+        if kin is None or kin[0] is not q:
+            frames = forward(self.arm, q)
+            kin = self._kin = (q, frames, geometric_jacobian(self.arm, frames))
+        return kin[1], kin[2]
+
     def _tick(self, deadline: int) -> None:
+        self._deadline = deadline
         now = time.monotonic_ns()
         wall = time.time_ns()
         state = self.state
@@ -337,9 +365,6 @@ class Service:
             state.shutdown(self._shutdown_why)
         self._drain(now)
         sim = self.sim
-        if sim is not None:
-            self.q = sim.q
-            self.q_rx_ns = now
         q = self.q
         if q is not None and state.mode not in (st.FAULT, st.SHUTDOWN) and \
                 (np.any(q < self._q_lo) or np.any(q > self._q_hi)):
@@ -386,6 +411,8 @@ class Service:
         if sim is not None:
             sim.command(qd)
             sim.step(self.period_s)
+            self.q = sim.q  # the joint state the next tick uses
+            self.q_rx_ns = time.monotonic_ns()
         self.qd = qd
         self.tick += 1
 
@@ -448,12 +475,15 @@ class Service:
         cap = speed_cap_factor(tw.linear, tw.angular, tw.point, t.tool_linear_max, t.angular_max)
         if cap < 1.0:
             tw = DesiredTwist(tw.linear * cap, tw.angular * cap, tw.frame, tw.point)
+        t0 = time.monotonic_ns()
         try:
-            res = resolve(self.arm, q, qd_prev, tw, self.period_s, self.options)
+            frames, J = self._kinematics(q)
+            res, _ = resolve_from_kinematics(self.arm, q, qd_prev, tw, self.period_s, self.options, frames, J)
         except Exception as exc:  # a solver bug must hold the arm, not kill the tick
             self.counts["solver_errors"] += 1
             self._fault(f"solver error: {type(exc).__name__}: {exc}")
             return None
+        self.solve_time.add(time.monotonic_ns() - t0)
         qd = res.qd
         if not np.isfinite(qd).all():
             self._fault("non-finite solver result")
@@ -485,8 +515,9 @@ class Service:
             self._fault(f"command not encodable: {exc}")
             self.counts["publish_failed"] += 1
             return
-        self._output.send_multipart((codec.TOPIC_COMMAND, data), copy=False)
+        self._output.send_multipart((codec.TOPIC_COMMAND, data))
         published = time.time_ns()
+        self.deadline_to_publish.add(time.monotonic_ns() - self._deadline)
         self._out_seq["command"] = seq + 1
         self.counts["commands"] += 1
         if answers >= 0 and self._twist_unanswered:
@@ -500,13 +531,16 @@ class Service:
         running, else from the Jacobian at q (which then also drives the health state)."""
         res = self.last_resolution
         if res is None:
-            J = geometric_jacobian(self.arm, forward(self.arm, q))
+            if self._health_q is not None and np.array_equal(q, self._health_q) and self.last_health:
+                return self.last_health  # at rest: nothing changed
+            _, J = self._kinematics(q)
             h = assess(self.arm, q, J, self.options)
             self.sigma_min = h.sigma_min
             self.manipulability = h.manipulability
             self.health_state = next_state(self.health_state, h.sigma_min, self.thresholds)
         else:
             h = assess(self.arm, q, res, self.options)
+        self._health_q = q
         arm = self.arm
         return {
             "manipulability": h.manipulability,
@@ -533,7 +567,7 @@ class Service:
             self.counts["publish_failed"] += 1
             self._rlog.warning("health", time.monotonic_ns(), f"health not published: {exc}")
             return
-        self._output.send_multipart((codec.TOPIC_HEALTH, data), copy=False)
+        self._output.send_multipart((codec.TOPIC_HEALTH, data))
         self._out_seq["health"] += 1
         self.counts["health_messages"] += 1
 
@@ -547,7 +581,7 @@ class Service:
             seq = self._out_seq["event"]
             data = codec.encode_event(seq=seq, tick=self.tick, event=name, detail=detail, mode=self.mode,
                                       stamp_ns=wall)
-            self._output.send_multipart((codec.TOPIC_EVENT, data), copy=False)
+            self._output.send_multipart((codec.TOPIC_EVENT, data))
             self._out_seq["event"] = seq + 1
             self.counts["events"] += 1
             log.info("event %s: %s (mode %s)", name, detail, self.mode)
@@ -640,7 +674,8 @@ class Service:
             out[f"rejected_{reason}"] = count
         out["rejected_total"] = sum(self.rejected.values())
         hists = (("lateness", self.ticker.lateness), ("arrival_to_publish", self.arrival_to_publish),
-                 ("tick_work", self.tick_work))
+                 ("tick_work", self.tick_work), ("solve", self.solve_time),
+                 ("deadline_to_publish", self.deadline_to_publish))
         for name, hist in hists:
             s = hist.summary()
             out[f"{name}_median_ns"] = int(s["median_us"] * 1000)

@@ -2,7 +2,7 @@
 
 It connects to a running service like a real driver would: subscribes to `command` on the output,
 applies the newest command's rates to the simulated arm (service/simarm.py, the config's lag and the
-arm's own limits), and publishes `joints` (position and velocity) to the intake at the tick rate.
+arm's own limits), and answers each command with `joints` (position and velocity) on the intake.
 Like a drive with its own watchdog, it ramps to rest within the acceleration limits when no command
 has arrived for COMMAND_TIMEOUT_S. The service must run with `[simulation] enabled = false` to use it.
 """
@@ -21,7 +21,7 @@ from twistrate.service import codec
 from twistrate.service.config import ServiceConfig, load_config
 from twistrate.service.motion import ramp_to_rest
 from twistrate.service.simarm import SimArm
-from twistrate.service.tick import Ticker, set_timer_slack
+from twistrate.service.tick import set_timer_slack
 from twistrate.solver.errors import TwistrateError, WireError
 
 #: No command for this long and the simulated drive ramps to rest on its own, s.
@@ -64,34 +64,42 @@ class SimDriver:
             self.ctx.term()
 
     def run(self, seconds: float | None = None) -> None:
-        """Loop until stop() (or `seconds`): newest command in, integrate one period, joint state out."""
+        """Loop until stop() (or `seconds`). Event-driven like a drive's command interface: each command
+        that arrives advances the simulation by the time since the previous step (at the previous
+        command's rates), takes the new rates and publishes the joint state at once. Without commands,
+        joint state still goes out every `1 / rate_hz` s (the service needs it before its first command)."""
         set_timer_slack(1_000)
         n = self.arm.n
-        period_ns = round(1e9 / self.rate_hz)
-        period_s = period_ns / 1e9
-        ticker = Ticker(period_ns)
-        ticker.start()
+        idle_ms = max(1, round(1000.0 / self.rate_hz))
         end = None if seconds is None else time.monotonic_ns() + int(seconds * 1e9)
-        last_cmd_ns = 0
+        clock = time.monotonic_ns
+        last_step = last_cmd = clock()
         rate = np.zeros(n)
         sock = self.commands
-        while not self.stopped and (end is None or time.monotonic_ns() < end):
-            now = ticker.wait()
-            while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
-                frames = sock.recv_multipart()
-                try:
-                    msg = codec.decode_output(frames, n)
-                except WireError:
-                    self.refused += 1
-                    continue
-                if type(msg) is codec.CommandMessage:
-                    rate = msg.rate
-                    last_cmd_ns = now
-                    self.received += 1
-            if now - last_cmd_ns > COMMAND_TIMEOUT_S * 1e9:
-                rate = ramp_to_rest(self.sim.qd, self.arm.a_max, period_s)
+        poller = zmq.Poller()
+        poller.register(sock, zmq.POLLIN)
+        while not self.stopped and (end is None or clock() < end):
+            got = False
+            if poller.poll(idle_ms):
+                while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+                    frames = sock.recv_multipart()
+                    try:
+                        msg = codec.decode_output(frames, n)
+                    except WireError:
+                        self.refused += 1
+                        continue
+                    if type(msg) is codec.CommandMessage:
+                        rate = msg.rate
+                        got = True
+                        self.received += 1
+            now = clock()
+            self.sim.step((now - last_step) * 1e-9)  # the motion since the last step, at the old rates
+            last_step = now
+            if got:
+                last_cmd = now
+            elif now - last_cmd > COMMAND_TIMEOUT_S * 1e9:  # the drive's own watchdog
+                rate = ramp_to_rest(self.sim.qd, self.arm.a_max, idle_ms * 1e-3)
             self.sim.command(rate)
-            self.sim.step(period_s)
             data = codec.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
             self.joints.send_multipart((codec.TOPIC_JOINTS, data))
             self.seq += 1

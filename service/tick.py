@@ -121,8 +121,13 @@ class Ticker:
             raise ValueError(f"period_ns: got {period_ns!r}; accepted: > 0")
         self.period_ns = int(period_ns)
 
-    def wait(self) -> int:
-        """Block until the next deadline; return it (ns). Counts overruns, records lateness."""
+    def wait(self, prepare: Callable[[], object] | None = None, prepare_ns: int = 0) -> int:
+        """Block until the next deadline; return it (ns). Counts overruns, records lateness.
+
+        prepare : called once, about `prepare_ns` before the deadline (or at once when less time is
+            left), for work that needs no fresh input (draining the intake, kinematics at the newest
+            joint state); then the wait continues to the deadline as usual.
+        """
         clock = self._clock
         period = self.period_ns
         d = self.deadline + period
@@ -132,6 +137,12 @@ class Ticker:
             missed = (now - d) // period + 1
             self.overruns += missed
             d += missed * period
+        if prepare is not None:
+            early = d - now - prepare_ns
+            if early > 0:
+                self._sleep(early / 1e9)
+            prepare()
+            now = clock()
         remaining = d - now - self.spin_ns
         if remaining > 0:
             self._sleep(remaining / 1e9)

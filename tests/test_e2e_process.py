@@ -8,13 +8,17 @@ import math
 import signal
 import subprocess
 import sys
+import threading
 
 import numpy as np
 import pytest
-from service_harness import collect_commands, config_dict, endpoints_of, stream_until
+from service_harness import collect_commands, config_dict, endpoints_of, running_service, stream_until
 
 from twistrate.clients.link import Link
 from twistrate.service.config import load_config
+from twistrate.service.demo import CAUTIONS
+from twistrate.service.record_cmd import record_stream
+from twistrate.service.recorder import Recorder, read_recording
 from twistrate.solver.load import load_arm
 
 pytestmark = pytest.mark.timeout(120)
@@ -106,3 +110,62 @@ def test_sim_process_drives_a_service_in_driver_mode(tmp_path):
                 p.kill()
                 p.communicate()
     assert sim.returncode == 0 and serve.returncode == 0
+
+
+def test_demo_runs_end_to_end_and_prints_the_cautions_first(tmp_path):
+    path = _write_config(tmp_path)
+    recording = tmp_path / "demo.trec"
+    proc = _twistrate("demo", "--seconds", "3", "--config", path, "--record", str(recording))
+    out, err = proc.communicate(timeout=90)
+    assert proc.returncode == 0, err
+    lines = out.splitlines()
+    assert lines[:len(CAUTIONS)] == list(CAUTIONS)
+    text = out.lower()
+    phrases = ("not a safety-rated function", "hardware emergency stop and an enabling device are required",
+               "risk assessment per the applicable standards (e.g. iso 10218-1/-2, iso 12100)",
+               "try in simulation and at reduced speed first", "defer to local codes and licensed practice")
+    for phrase in phrases:
+        assert phrase in text
+    live = [line for line in lines if "phase:" in line]
+    assert len(live) >= 4 and any("mode running" in line for line in live)
+    report = out[out.index("REPORT"):]
+    for key in ("ticks", "overruns", "p99", "min manipulability", "min scale", "limit events", "rejected",
+                str(recording)):
+        assert key in report
+    # the simulated arm stayed inside its limits on every recorded tick
+    header, rec = read_recording(recording)
+    arm = load_arm("reach7")
+    assert len(rec) > 1000 and header["arm"] == "reach7"
+    assert np.all(rec["q"] >= arm.q_min) and np.all(rec["q"] <= arm.q_max)
+    assert "running" in {header["modes"][m] for m in rec["mode"]}
+
+
+def test_record_from_the_wire_agrees_with_the_services_own_recording(tmp_path):
+    path = _write_config(tmp_path)
+    cfg = load_config(path)
+    own = tmp_path / "own.trec"
+    wire = tmp_path / "wire.trec"
+    arm = load_arm("reach7")
+    with running_service(cfg, recorder=Recorder(own, arm, cfg.tick.rate_hz)) as run:
+        stop = [False]
+        thread = threading.Thread(target=record_stream, args=(path, str(wire), 30.0, stop), daemon=True)
+        thread.start()
+        link = run.link()
+        link.claim("test")
+        link.enable()
+        stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 200)
+        stop[0] = True
+        thread.join(10.0)
+    _, r_own = read_recording(own)
+    h_wire, r_wire = read_recording(wire)
+    assert h_wire["source"] == "output" and "twist_desired" in h_wire["unavailable"]
+    common, i_own, i_wire = np.intersect1d(r_own["tick"], r_wire["tick"], return_indices=True)
+    assert len(common) > 100
+    np.testing.assert_allclose(r_wire["q"][i_wire], r_own["q"][i_own], atol=1e-12)
+    np.testing.assert_array_equal(r_wire["qd"][i_wire], r_own["qd"][i_own])
+    np.testing.assert_array_equal(r_wire["mode"][i_wire], r_own["mode"][i_own])
+    # and the summary command reads it, with a plot
+    proc = _twistrate("record", "--summary", str(own), "--svg", str(tmp_path / "own.svg"))
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 0, err
+    assert "time in mode" in out and (tmp_path / "own.svg").exists()

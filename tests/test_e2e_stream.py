@@ -103,6 +103,8 @@ def test_health_and_events_are_published():
     with running_service(cfg) as run:
         link = run.link(topics=codec.OUTPUT_TOPICS)
         link.claim("test")
+        event = link.receive_event()
+        assert event.event == "lease_claimed" and event.mode == "disabled" and "test" in event.detail
         health = link.receive_health()
         assert health.mode == "disabled"
         assert health.singular_values.shape == (6,)
@@ -112,4 +114,4 @@ def test_health_and_events_are_published():
         names = []
         while "enabled" not in names:
             names.append(link.receive_event().event)
-        assert "lease_claimed" in names
+        assert link.receive_event().event == "mode"  # disabled -> holding

@@ -1,0 +1,283 @@
+"""`twistrate bench service`: the service as deployed, timed from outside, at 500 Hz and 1 kHz.
+
+Per tick rate, in one run: `twistrate serve` (driver mode), `twistrate sim` (the simulated arm as an
+external driver) and a twist source each run as their own process; this process is the watching
+client. It reports
+
+* tick lateness (wake time - deadline: median, p99, max) and overruns, measured by the service itself
+  (counters op) over the whole run;
+* twist arrival to command publish (p99), measured by the service: from the twist's send stamp to the
+  publish of the first command answering it (same host, same wall clock, so it includes the loopback
+  transport: an upper bound of arrival to publish);
+* tick to command received by a client (median, p99): this process's receive time minus the command's
+  stamp (the service's wall clock at the tick's wake-up);
+* the service process's CPU share over the measured window (/proc/PID/stat utime + stime, as a
+  fraction of one core).
+
+Targets (this 2-core machine): lateness p99 <= 100 us at 500 Hz and <= 150 us at 1 kHz; overruns
+< 0.1 % of ticks; CPU < 35 % of one core at 500 Hz; arrival to publish p99 <= one period + 300 us.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import json
+import math
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from twistrate.clients.link import Endpoints, Link
+
+DEFAULT_RATES = (500.0, 1000.0)
+DEFAULT_SECONDS = 10.0
+#: Run before the measured window (processes start, connections settle, caches warm), s.
+WARMUP_S = 2.0
+#: Twists per second of the source.
+SOURCE_HZ = 200.0
+TARGET_LATENESS_P99_US = {500.0: 100.0, 1000.0: 150.0}
+TARGET_OVERRUN_FRACTION = 0.001
+TARGET_CPU_FRACTION_500 = 0.35
+#: Allowance of arrival to publish on top of one period, us.
+TARGET_ARRIVAL_EXTRA_US = 300.0
+CLK_TCK = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
+
+
+def _free_ports(k: int) -> list[int]:
+    socks = [socket.socket() for _ in range(k)]
+    for s in socks:
+        s.bind(("127.0.0.1", 0))
+    ports = [s.getsockname()[1] for s in socks]
+    for s in socks:
+        s.close()
+    return ports
+
+
+def _config_text(rate_hz: float) -> tuple[str, Endpoints]:
+    p = _free_ports(3)
+    ep = Endpoints(f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}", f"tcp://127.0.0.1:{p[2]}")
+    text = f"""[arm]
+file = "reach7"
+[tick]
+rate_hz = {rate_hz}
+health_hz = 50
+[endpoints]
+intake = "{ep.intake}"
+output = "{ep.output}"
+control = "{ep.control}"
+[simulation]
+enabled = false
+lag_s = 0.02
+[logging]
+level = "warning"
+"""
+    return text, ep
+
+
+def cpu_seconds(pid: int) -> float:
+    """utime + stime of a process, s (Linux /proc)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / CLK_TCK
+
+
+def _source(ep: Endpoints, seconds: float) -> int:
+    """The twist source process: a slow circle with a gentle turn, SOURCE_HZ twists per second."""
+    with Link(ep, client="bench-source", topics=(), timeout_s=2.0) as link:
+        link.wait_ready(timeout_s=10.0)
+        link.claim(lease_ms=2000)
+        link.enable()
+        t0 = time.monotonic()
+        period = 1.0 / SOURCE_HZ
+        next_send = t0
+        while (t := time.monotonic() - t0) < seconds:
+            w = 2.0 * math.pi * 0.25
+            link.send_twist((0.04 * math.cos(w * t), 0.04 * math.sin(w * t), 0.01 * math.sin(2 * w * t)),
+                            (0.0, 0.0, 0.1 * math.sin(w * t)))
+            next_send += period
+            time.sleep(max(0.0, next_send - time.monotonic()))
+        with contextlib.suppress(Exception):
+            link.disable()
+            link.release()
+    return 0
+
+
+def _spawn(args: list[str]) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            text=True)
+
+
+def _stop(proc: subprocess.Popen, timeout_s: float = 10.0) -> str:
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGTERM)
+    try:
+        _, err = proc.communicate(timeout=timeout_s)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        _, err = proc.communicate()
+    return err or ""
+
+
+def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str, Any]:
+    """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures."""
+    text, ep = _config_text(rate_hz)
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "bench.toml"
+        path.write_text(text)
+        serve_args = ["twistrate.service.cli", "serve", "--config", str(path)]
+        if rt_priority:
+            serve_args += ["--rt-priority", str(rt_priority)]
+        serve = _spawn(serve_args)
+        procs = [serve]
+        try:
+            procs.append(_spawn(["twistrate.service.cli", "sim", "--config", str(path)]))
+            with Link(ep, client="bench-watch", topics=(b"command",), timeout_s=5.0) as link:
+                link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
+                link.arm()
+                procs.append(_spawn(["twistrate.service.bench_service", "--source", ep.intake, ep.output,
+                                     ep.control, str(WARMUP_S + seconds + 1.0)]))
+                end_warmup = time.monotonic() + WARMUP_S
+                while time.monotonic() < end_warmup:
+                    link.drain()
+                    time.sleep(0.05)
+                link.drain()
+                c0 = link.counters()
+                cpu0, wall0 = cpu_seconds(serve.pid), time.monotonic()
+                received: list[int] = []
+                running = 0
+                end = wall0 + seconds
+                while time.monotonic() < end:
+                    with contextlib.suppress(TimeoutError):
+                        cmd = link.receive_command(timeout_s=0.1)
+                        received.append(time.time_ns() - cmd.stamp_ns)
+                        running += cmd.mode == "running"
+                cpu1, wall1 = cpu_seconds(serve.pid), time.monotonic()
+                c1 = link.counters()
+        finally:
+            errors = [_stop(p) for p in reversed(procs)]
+    ticks = c1["ticks"] - c0["ticks"]
+    overruns = c1["overruns"] - c0["overruns"]
+    lat = np.array(received, dtype=float) / 1000.0
+    period_us = 1e6 / rate_hz
+    result = {
+        "rate_hz": rate_hz,
+        "seconds": seconds,
+        "ticks": ticks,
+        "ticks_total": c1["ticks"],
+        "overruns": overruns,
+        "overrun_fraction": overruns / ticks if ticks else math.nan,
+        "lateness_median_us": c1["lateness_median_ns"] / 1000.0,
+        "lateness_p99_us": c1["lateness_p99_ns"] / 1000.0,
+        "lateness_max_us": c1["lateness_max_ns"] / 1000.0,
+        "tick_work_median_us": c1["tick_work_median_ns"] / 1000.0,
+        "tick_work_p99_us": c1["tick_work_p99_ns"] / 1000.0,
+        "deadline_to_publish_median_us": c1.get("deadline_to_publish_median_ns", 0) / 1000.0,
+        "deadline_to_publish_p99_us": c1.get("deadline_to_publish_p99_ns", 0) / 1000.0,
+        "solve_median_us": c1.get("solve_median_ns", 0) / 1000.0,
+        "solve_p99_us": c1.get("solve_p99_ns", 0) / 1000.0,
+        "arrival_to_publish_median_us": c1["arrival_to_publish_median_ns"] / 1000.0,
+        "arrival_to_publish_p99_us": c1["arrival_to_publish_p99_ns"] / 1000.0,
+        "tick_to_client_median_us": float(np.median(lat)) if lat.size else math.nan,
+        "tick_to_client_p99_us": float(np.percentile(lat, 99)) if lat.size else math.nan,
+        "commands_received": int(lat.size),
+        "commands_running": running,
+        "cpu_fraction": (cpu1 - cpu0) / (wall1 - wall0),
+        "rejected_total": c1.get("rejected_total", 0),
+        "rt_priority": rt_priority,
+    }
+    result["targets"] = {
+        "lateness_p99_us": TARGET_LATENESS_P99_US.get(rate_hz),
+        "overrun_fraction": TARGET_OVERRUN_FRACTION,
+        "cpu_fraction": TARGET_CPU_FRACTION_500 if rate_hz == 500.0 else None,
+        "arrival_to_publish_p99_us": period_us + TARGET_ARRIVAL_EXTRA_US,
+    }
+    bad = [e.strip().splitlines()[-1] for e in errors if "Traceback" in e]
+    if bad:
+        result["process_errors"] = bad
+    return result
+
+
+def _verdict(value: float, target: float | None) -> str:
+    if target is None:
+        return ""
+    return "  [met]" if value <= target else f"  [MISSED: target {target:g}]"
+
+
+def format_result(r: dict[str, Any]) -> str:
+    t = r["targets"]
+    lines = [
+        f"service at {r['rate_hz']:g} Hz ({r['seconds']:g} s measured, {r['ticks']} ticks; arm reach7, "
+        f"driver and twist source in their own processes{'; SCHED_FIFO' if r['rt_priority'] else ''})",
+        f"  tick lateness     median {r['lateness_median_us']:7.1f} us  p99 {r['lateness_p99_us']:7.1f} us  "
+        f"max {r['lateness_max_us']:8.1f} us{_verdict(r['lateness_p99_us'], t['lateness_p99_us'])}",
+        f"  overruns          {r['overruns']} of {r['ticks']} ticks ({100 * r['overrun_fraction']:.3f} %)"
+        f"{_verdict(r['overrun_fraction'], t['overrun_fraction'])}",
+        f"  tick work         median {r['tick_work_median_us']:7.1f} us  p99 {r['tick_work_p99_us']:7.1f} us "
+        f"(resolve median {r['solve_median_us']:.1f}, p99 {r['solve_p99_us']:.1f} us)",
+        f"  deadline -> publish median {r['deadline_to_publish_median_us']:7.1f} us  p99 "
+        f"{r['deadline_to_publish_p99_us']:7.1f} us",
+        f"  twist -> publish  median {r['arrival_to_publish_median_us']:7.1f} us  p99 "
+        f"{r['arrival_to_publish_p99_us']:7.1f} us"
+        f"{_verdict(r['arrival_to_publish_p99_us'], t['arrival_to_publish_p99_us'])}",
+        f"  tick -> client    median {r['tick_to_client_median_us']:7.1f} us  p99 "
+        f"{r['tick_to_client_p99_us']:7.1f} us ({r['commands_received']} commands, "
+        f"{r['commands_running']} running)",
+        f"  service CPU       {100 * r['cpu_fraction']:.1f} % of one core"
+        f"{_verdict(r['cpu_fraction'], t['cpu_fraction'])}",
+    ]
+    if r.get("process_errors"):
+        lines.append(f"  process errors: {r['process_errors']}")
+    return "\n".join(lines)
+
+
+def run(argv: list[str] | None = None) -> int:
+    """`twistrate bench service [--json FILE] [--seconds S] [--rates HZ,HZ] [--rt-priority N]`."""
+    parser = argparse.ArgumentParser(prog="twistrate bench service", description=__doc__.splitlines()[0])
+    parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
+    parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="measured time per rate, s")
+    parser.add_argument("--rates", default=",".join(f"{r:g}" for r in DEFAULT_RATES),
+                        help="tick rates to run, Hz, comma-separated (default 500,1000)")
+    parser.add_argument("--rt-priority", type=int, default=0, metavar="N",
+                        help="run the service's tick thread with SCHED_FIFO priority N when permitted")
+    parser.add_argument("--source", nargs=4, metavar=("INTAKE", "OUTPUT", "CONTROL", "SECONDS"),
+                        help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.source:
+        intake, output, control, secs = args.source
+        return _source(Endpoints(intake, output, control), float(secs))
+    try:
+        rates = [float(x) for x in args.rates.split(",") if x.strip()]
+    except ValueError:
+        print(f"twistrate bench service: --rates: got {args.rates!r}; accepted: numbers like 500,1000",
+              file=sys.stderr)
+        return 2
+    if not 1.0 <= args.seconds <= 3600.0:
+        print(f"twistrate bench service: --seconds: got {args.seconds:g}; accepted: 1 to 3600",
+              file=sys.stderr)
+        return 2
+    results = []
+    for rate in rates:
+        r = bench_rate(rate, args.seconds, args.rt_priority)
+        print(format_result(r), flush=True)
+        results.append(r)
+    if args.json:
+        doc = {"benchmark": "service", "machine": {"cpus": os.cpu_count(), "python": sys.version.split()[0]},
+               "rates": {f"{r['rate_hz']:g}": r for r in results}}
+        Path(args.json).write_text(json.dumps(doc, indent=2, default=float))
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    return run(argv)
+
+
+if __name__ == "__main__":
+    raise SystemExit(run(sys.argv[1:]))

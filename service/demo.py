@@ -1,0 +1,326 @@
+"""`twistrate demo`: the service with its built-in simulated arm and a scripted twist source; no hardware.
+
+The scenario (invented for this demo): an inspection pass over a curved panel with the 7-joint
+example arm (reach7). The camera tool approaches the panel, sweeps along its curve, reaches to its
+far edge, tilts to look along it (the wrist passes its aligned, near-singular posture) and rolls
+the camera until the wrist joints meet their limits, then backs off. The source is a client like
+any other: it claims the lease, enables motion and streams twists over the wire (clients/link.py).
+
+Output: the cautions first, then a live summary a few times per second (a refreshed block on a
+terminal, plain lines otherwise), then a short report and the recording's path.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import socket
+import sys
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import zmq
+
+from twistrate.clients.link import Endpoints, Link
+from twistrate.service.config import ServiceConfig, config_from_dict, load_config
+from twistrate.service.control import ControlThread
+from twistrate.service.recorder import Recorder, read_recording, summarize
+from twistrate.service.runtime import Service
+from twistrate.solver.errors import TwistrateError
+
+CAUTIONS = (
+    "CAUTIONS",
+    "  - twistrate is not a safety-rated function.",
+    "  - A hardware emergency stop and an enabling device are required.",
+    "  - Do a risk assessment per the applicable standards (e.g. ISO 10218-1/-2, ISO 12100).",
+    "  - Try in simulation and at reduced speed first.",
+    "  - Defer to local codes and licensed practice.",
+)
+#: Default run time, s (the whole scenario).
+DEFAULT_SECONDS = 24.0
+#: Twists per second the scripted source sends.
+SOURCE_HZ = 100.0
+#: Live summary refreshes per second.
+DISPLAY_HZ = 4.0
+DEFAULT_RECORDING = "twistrate-demo.trec"
+
+
+@dataclass(frozen=True)
+class Phase:
+    """One segment of the scripted pass: a twist (base frame, tool point) as a function of the time
+    since the phase began, s -> (linear m/s, angular rad/s)."""
+
+    name: str
+    seconds: float
+    twist: Callable[[float], tuple[tuple[float, float, float], tuple[float, float, float]]]
+
+
+def _sweep(t: float) -> tuple[tuple[float, float, float], tuple[float, float, float]]:
+    # along the panel's curve: out and back sideways while bowing away, turning with the surface
+    s = t / 7.0 * 2.0 * math.pi
+    return (-0.03 * math.sin(s), 0.11 * math.sin(s), 0.0), (0.0, 0.0, 0.25 * math.sin(s))
+
+
+SCENARIO: tuple[Phase, ...] = (
+    Phase("approach the panel", 3.0, lambda t: ((0.0, 0.0, -0.05), (0.0, 0.0, 0.0))),
+    Phase("sweep along its curve", 7.0, _sweep),
+    Phase("reach to the far edge", 1.5, lambda t: ((0.12, 0.0, 0.0), (0.0, 0.0, 0.0))),
+    Phase("tilt to look along it", 4.0, lambda t: ((0.0, 0.0, 0.0), (0.0, -0.3, 0.0))),
+    Phase("roll the camera", 3.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.8))),
+    Phase("back off", 3.5, lambda t: ((-0.05, 0.0, 0.05), (0.0, 0.35, -0.8))),
+    Phase("hold still", 1.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.0))),
+)
+
+
+def scripted_twist(t: float) -> tuple[str, tuple[float, float, float], tuple[float, float, float]]:
+    """(phase name, linear (3,) m/s, angular (3,) rad/s) at time t s into the scenario (base frame)."""
+    start = 0.0
+    for phase in SCENARIO:
+        if t < start + phase.seconds:
+            linear, angular = phase.twist(t - start)
+            return phase.name, linear, angular
+        start += phase.seconds
+    return "done", (0.0, 0.0, 0.0), (0.0, 0.0, 0.0)
+
+
+class ScriptedSource:
+    """The demo's twist source, on its own thread, talking to the service over the wire."""
+
+    def __init__(self, endpoints: Endpoints, seconds: float) -> None:
+        self.endpoints = endpoints
+        self.seconds = seconds
+        self.phase = "connecting"
+        self.sent = 0
+        self.error: str | None = None
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="demo-source", daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(5.0)
+
+    @property
+    def finished(self) -> bool:
+        return not self._thread.is_alive()
+
+    def _run(self) -> None:
+        try:
+            with Link(self.endpoints, client="demo-source", topics=(), timeout_s=2.0) as link:
+                link.wait_ready(timeout_s=5.0)
+                link.claim(lease_ms=1000)
+                link.enable()
+                t0 = time.monotonic()
+                period = 1.0 / SOURCE_HZ
+                next_send = t0
+                while not self._stop.is_set():
+                    t = time.monotonic() - t0
+                    if t >= self.seconds:
+                        break
+                    self.phase, linear, angular = scripted_twist(t)
+                    link.send_twist(linear, angular)
+                    self.sent += 1
+                    next_send += period
+                    self._stop.wait(max(0.0, next_send - time.monotonic()))
+                self.phase = "stopping"
+                link.disable()
+                link.release()
+                self.phase = "done"
+        except (TwistrateError, zmq.ZMQError, TimeoutError) as exc:
+            self.error = str(exc)
+            self.phase = "failed"
+
+
+class Display:
+    """Live summary lines: a refreshed block on a terminal, plain lines otherwise."""
+
+    def __init__(self, service: Service, source: ScriptedSource, out=sys.stdout) -> None:
+        self.service = service
+        self.source = source
+        self.out = out
+        self.tty = bool(getattr(out, "isatty", lambda: False)())
+        self._last: tuple[float, int] | None = None
+        self._lines = 0
+
+    def lines(self) -> list[str]:
+        svc = self.service
+        now = time.monotonic()
+        ticks = svc.ticker.ticks
+        rate = 0.0
+        if self._last is not None and now > self._last[0]:
+            rate = (ticks - self._last[1]) / (now - self._last[0])
+        self._last = (now, ticks)
+        names = svc.arm.joint_names
+        active = [names[i] for i in np.flatnonzero(svc.limits_active)]
+        h = svc.last_health
+        margin = h.get("limit_margin")
+        near = ""
+        if margin is not None and len(margin):
+            i = int(np.argmin(margin))
+            if svc.arm.revolute[i]:
+                away = f"{math.degrees(float(margin[i])):.1f} deg"
+            else:
+                away = f"{margin[i]:.3f} m"
+            near = f"; nearest limit {names[i]} {away} away"
+        manip = svc.manipulability
+        return [
+            f"t {svc.tick * svc.period_s:6.2f} s  phase: {self.source.phase}",
+            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g})  mode {svc.mode:<9} "
+            f"health {svc.health_state:<11} overruns {svc.ticker.overruns}",
+            f"  manipulability {manip:9.3e}  sigma_min {svc.sigma_min:6.4f} m  scale {svc.scale:4.2f}"
+            f"  speed cap {svc.cap:4.2f}  damping {svc.damping:6.4f} m",
+            f"  limits in play: {', '.join(active) if active else 'none'}{near}",
+        ]
+
+    def show(self) -> None:
+        lines = self.lines()
+        if self.tty:
+            if self._lines:
+                self.out.write(f"\x1b[{self._lines}F")
+            self.out.write("".join(f"\x1b[2K{line}\n" for line in lines))
+            self._lines = len(lines)
+        else:
+            self.out.write(" | ".join(s.strip() for s in lines) + "\n")
+        self.out.flush()
+
+
+def _free_endpoints() -> dict[str, str]:
+    ports = []
+    socks = []
+    for _ in range(3):
+        s = socket.socket()
+        s.bind(("127.0.0.1", 0))
+        socks.append(s)
+        ports.append(s.getsockname()[1])
+    for s in socks:
+        s.close()
+    names = ("intake", "output", "control")
+    return {name: f"tcp://127.0.0.1:{p}" for name, p in zip(names, ports, strict=True)}
+
+
+def _with_endpoints(config: ServiceConfig, endpoints: dict[str, str]) -> ServiceConfig:
+    data = config.model_dump()
+    data["endpoints"] = endpoints
+    return config_from_dict(data)
+
+
+def start_service(config: ServiceConfig, recorder: Recorder | None) -> tuple[Service, ControlThread, str]:
+    """Start the service and its control thread; when the configured ports are taken, use free ones."""
+    note = ""
+    for attempt in range(2):
+        service = Service(config, recorder=recorder)
+        try:
+            service.start()
+            control = ControlThread(service)
+            control.start()
+            return service, control, note
+        except zmq.ZMQError as exc:
+            service.close()
+            if attempt or exc.errno != zmq.EADDRINUSE:
+                raise
+            config = _with_endpoints(config, _free_endpoints())
+            note = f"(configured ports busy: using {config.endpoints.control} and neighbours)"
+    raise AssertionError("unreachable")
+
+
+def report(service: Service, source: ScriptedSource, recording: Path | None,
+           counters: dict[str, int]) -> list[str]:
+    """The closing report's lines."""
+    lat = service.ticker.lateness.summary()
+    lines = [
+        "",
+        "REPORT",
+        f"  ticks {service.ticker.ticks} at {service.rate_hz:g} Hz, overruns {service.ticker.overruns}, "
+        f"lateness median {lat['median_us']:.0f} us, p99 {lat['p99_us']:.0f} us, max {lat['max_us']:.0f} us",
+        f"  twists sent {source.sent}, accepted {counters.get('accepted_twist', 0)}, "
+        f"rejected {counters.get('rejected_total', 0)}"
+        + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(service.rejected.items())) + ")"
+           if service.rejected else ""),
+        f"  faults {counters.get('faults', 0)}, limit events {counters.get('limit_events', 0)}",
+    ]
+    if recording is not None and recording.exists():
+        header, rec = read_recording(recording)
+        s = summarize(header, rec)
+
+        def num(v: float | None) -> str:
+            return "n/a" if v is None else f"{v:.4g}"
+
+        lines.append(f"  min manipulability {num(s.get('manipulability_min'))}, min sigma_min "
+                     f"{num(s.get('sigma_min_min'))} m, min scale {num(s.get('scale_min'))}, "
+                     f"max damping {num(s.get('damping_max'))} m")
+        lines.append("  time in health states: " + ", ".join(f"{k} {v:.2f} s"
+                                                        for k, v in s.get("time_in_health_s", {}).items()))
+        lines.append(f"  recording: {recording}  (summary: twistrate record --summary {recording})")
+    if source.error:
+        lines.append(f"  the scripted source failed: {source.error}")
+    return lines
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate demo", description=__doc__.splitlines()[0])
+    parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
+                        help=f"how long the scripted pass runs, s (default {DEFAULT_SECONDS:g}: all of it)")
+    parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
+    parser.add_argument("--record", default=DEFAULT_RECORDING, metavar="PATH",
+                        help=f"recording file (default ./{DEFAULT_RECORDING})")
+    parser.add_argument("--no-record", action="store_true", help="do not record")
+    args = parser.parse_args(argv)
+    print("\n".join(CAUTIONS), flush=True)
+    print(flush=True)
+    if not 0.0 < args.seconds <= 600.0:
+        print(f"twistrate demo: --seconds: got {args.seconds:g}; accepted: 0 < seconds <= 600",
+              file=sys.stderr)
+        return 2
+    try:
+        config = load_config(args.config)
+        if not config.simulation.enabled:
+            print("twistrate demo: the configuration must have [simulation] enabled = true", file=sys.stderr)
+            return 2
+        arm = config.load_arm()
+        recording = None if args.no_record else Path(args.record)
+        recorder = None if recording is None else Recorder(recording, arm, config.tick.rate_hz)
+        service, control, note = start_service(config, recorder)
+    except (TwistrateError, zmq.ZMQError, OSError) as exc:
+        print(f"twistrate demo: {exc}", file=sys.stderr)
+        return 1
+    cfg = service.config
+    print(f"arm {arm.name} ({arm.n} joints), simulated; tick {cfg.tick.rate_hz:g} Hz; control "
+          f"{cfg.endpoints.control} {note}".rstrip(), flush=True)
+    print(f"scripted inspection pass: {', '.join(p.name for p in SCENARIO)}; {args.seconds:g} s", flush=True)
+    endpoints = Endpoints(cfg.endpoints.intake, cfg.endpoints.output, cfg.endpoints.control)
+    source = ScriptedSource(endpoints, args.seconds)
+    display = Display(service, source)
+    source.start()
+    try:
+        deadline = time.monotonic() + args.seconds + 10.0
+        while not source.finished and time.monotonic() < deadline:
+            time.sleep(1.0 / DISPLAY_HZ)
+            display.show()
+        # let the arm come to rest after the source let go, then stop
+        rest_deadline = time.monotonic() + 3.0
+        while time.monotonic() < rest_deadline and (service.qd.any() or service.mode == "running"):
+            time.sleep(0.05)
+        display.show()
+    except KeyboardInterrupt:
+        print("\ninterrupted: stopping", flush=True)
+        source.stop()
+    finally:
+        source.stop()
+        counters = service.counters()
+        service.shutdown("demo over")
+        service.join(10.0)
+        control.stop()
+        service.close()
+    for line in report(service, source, recording, counters):
+        print(line)
+    return 0 if source.error is None else 1
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -34,11 +34,19 @@ re-solved with the remaining joints (exact pseudo-inverse of A W, fresh SVD) and
 scale s in [0, 1] with every bound satisfied is tracked; the loop ends when the unscaled task fits
 (s = 1) or when removing joints drops the rank of A W below that of A, where the best (s, W,
 saturated rates) is restored. The result satisfies A y = s x exactly: the twist is scaled along
-its own direction, never bent. If no s in [0, 1] was feasible (possible only when the previous
-rate cannot be brought to any task-consistent rate within one tick of acceleration, e.g. a stop
-or reversal commanded at speed), the hard bounds win: the joints decelerate together along the
-previous rate as hard as the slowest joint can (q_dot = c q_prev_dot, clipped into the bounds),
-and the reported scale is 0.
+its own direction, never bent.
+
+The greedy loop alone is not always maximal in s (tests/test_limits_lp.py keeps a counterexample
+against a linear program). `saturate(refine=True)` therefore continues from the loop's last basis
+with the optimality test of the scaling LP (shadow prices of the saturated joints) and simplex
+pivots (`_refine`); the scale is then maximal whenever the loop found a feasible scale at all.
+
+If no s in [0, 1] was found feasible (when the previous rate cannot be brought to any
+task-consistent rate within one tick of acceleration, e.g. a stop or reversal commanded at speed;
+the loop can also miss a feasible scale when rest is outside the bounds, which the caller's second
+start from the previous rate covers in practice), the hard bounds win: the joints decelerate
+together along the previous rate as hard as the slowest joint can (q_dot = c q_prev_dot, clipped
+into the bounds), and the reported scale is 0.
 """
 
 from __future__ import annotations

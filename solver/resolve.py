@@ -18,8 +18,13 @@ How damping and saturation combine: damping decides which twist the arm is asked
 singularity, x_d = A y_task (the "damped twist"; x_d = x when no damping acts and A has full row
 rank). Saturation then realises s * x_d with the exact pseudo-inverses of the reduced Jacobians,
 so the reported twist_achieved is s * x_d: the damped twist scaled along its own direction.
-Null-space objectives are secondary: when keeping them would cost task scale (s < 1), the
-saturation is repeated without them and the larger scale wins.
+Null-space objectives are secondary: when keeping them costs task scale (s < 1), the saturation
+is repeated starting from the previous rate instead (least joint acceleration; under acceleration
+bounds the feasible rates lie near it) and the larger scale wins. Each run ends with the
+optimality refinement of `twistrate.solver.limits.saturate`, so the scale is the maximum of the
+scaling LP whenever a feasible scale was found. When none exists (the previous rate cannot reach
+any task-consistent rate within one tick of acceleration), the joints brake along the previous
+rate and scale is 0 (`twistrate.solver.limits.brake_along`).
 
 Non-finite q, qd_prev or twist raises InputError naming the field; finite input always gives
 finite output (exactly singular configurations included). Per-(arm, period) constants derived from

@@ -1,0 +1,490 @@
+"""`twistrate bench`: the project's benchmarks. `bench solver` (here) times one tick of rate resolution;
+`bench service` is dispatched to `twistrate.service.bench_service.run(argv)`.
+
+`twistrate bench solver [--json FILE] [--ticks N] [--rounds R] [--arms NAMES] [--period S]` measures,
+per example arm and in one run, with every solver feature on (singular-value damping, task weighting,
+joint-range, manipulability and posture objectives, hard limits):
+
+* `resolve()` per tick along a smooth moving trajectory on which no limit binds: median and p99 (us);
+* the same ticks through a straightforward numpy loop written here, of the kind teams hand-write (a new
+  4x4 per link from np.array of lists every tick, np.cross columns, explicit np.linalg.pinv and inverse,
+  explicit projector; it has no manipulability gradient and no saturation, so it does less work):
+  `speedup_vs_straightforward` = its median / ours;
+* the same ticks with forward kinematics and the Jacobian from the compiled pinocchio library (when
+  importable, else null) and our rate pipeline after it: `ratio_to_compiled` = our median / that median;
+* a trajectory pushing a joint into its limit: the cost of ticks where the saturation loop runs (median,
+  p99, extra median over the free ticks) and its mean number of passes.
+
+Every variant replays the same recorded (q, qd_prev, twist) states, timed back to back on each state
+and over several rounds, so that load changes on a shared machine hit all variants alike. Timings are
+wall-clock (time.perf_counter_ns) per tick, with the garbage collector left on, on the machine as it is
+(its BLAS settings, e.g. OPENBLAS_CORETYPE, and its load average are reported, never changed).
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import importlib
+import json
+import os
+import platform
+import sys
+import time
+import tomllib
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from twistrate.solver.arm import Arm
+from twistrate.solver.kinematics import Frames
+from twistrate.solver.load import load_arm, read_arm_source
+from twistrate.solver.options import SolverOptions
+from twistrate.solver.resolve import DesiredTwist, resolve_counted, resolve_from_kinematics
+
+#: Module of `twistrate bench service`; it provides run(argv) -> int.
+SERVICE_BENCH_MODULE = "twistrate.service.bench_service"
+#: Example arms benchmarked by default: the 6- and the 7-joint arm.
+DEFAULT_ARMS = ("bench6", "reach7")
+DEFAULT_TICKS = 10_000
+DEFAULT_ROUNDS = 5
+DEFAULT_PERIOD_S = 0.002
+#: Ticks run before timing starts (the trajectory ramps in; caches warm up).
+WARMUP_TICKS = 300
+#: Targets for the 7-joint arm with no limit active (stated by the project).
+TARGETS = {"median_us": 50.0, "p99_us": 150.0, "speedup_vs_straightforward": 4.0, "ratio_to_compiled": 2.0}
+#: Every feature on.
+BENCH_OPTIONS = SolverOptions(
+    damping="singular_value", characteristic_length=0.3, limit_gain=2.0, manipulability_gain=20.0,
+    posture_gain=0.2, enforce_limits=True,
+)
+#: Joint pushed into its limit on the limits-active trajectory, per arm (index, start as a fraction of
+#: the range from the nearer limit); other arms use joint 0.
+PUSHED_JOINT = {"bench6": (1, 0.12), "reach7": (0, 0.05)}
+
+
+@dataclass
+class Track:
+    """Recorded inputs of a trajectory: q (N, n), qd_prev (N, n), twists, plus our per-tick results:
+    ns (N,) wall time, passes (N,) saturation passes, scales (N,), braking (N,) bool: no scale was
+    feasible and the joints braked along the previous rate (scale 0 with the tool still moving)."""
+
+    q: np.ndarray
+    qd_prev: np.ndarray
+    twists: list[DesiredTwist]
+    ns: np.ndarray
+    passes: np.ndarray
+    scales: np.ndarray
+    braking: np.ndarray
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = list(sys.argv[1:] if argv is None else argv)
+    if not args or args[0] in ("-h", "--help", "help"):
+        print("usage: twistrate bench {solver,service} [options]   (twistrate bench solver --help)")
+        return 0
+    which, rest = args[0], args[1:]
+    if which == "solver":
+        return run_solver(rest)
+    if which == "service":
+        try:
+            module = importlib.import_module(SERVICE_BENCH_MODULE)
+        except ModuleNotFoundError as exc:
+            if exc.name != SERVICE_BENCH_MODULE:
+                raise
+            print(f"twistrate bench: {SERVICE_BENCH_MODULE} is not installed", file=sys.stderr)
+            return 2
+        return int(module.run(rest))
+    print(f"twistrate bench: unknown benchmark {which!r}; accepted: solver, service", file=sys.stderr)
+    return 2
+
+
+def run_solver(argv: list[str]) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate bench solver", description=__doc__.split("\n\n")[1])
+    parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
+    parser.add_argument("--ticks", type=int, default=DEFAULT_TICKS, help="timed ticks per variant and "
+                        "trajectory (default %(default)s)")
+    parser.add_argument("--rounds", type=int, default=DEFAULT_ROUNDS,
+                        help="replays of the free trajectory (default %(default)s)")
+    parser.add_argument("--arms", default=",".join(DEFAULT_ARMS),
+                        help="comma-separated arm files or example names (default: %(default)s)")
+    parser.add_argument("--period", type=float, default=DEFAULT_PERIOD_S,
+                        help="tick period, s (default %(default)s)")
+    ns = parser.parse_args(argv)
+    if ns.ticks < 100:
+        parser.error(f"--ticks: got {ns.ticks}; accepted: at least 100")
+    if ns.rounds < 1:
+        parser.error(f"--rounds: got {ns.rounds}; accepted: at least 1")
+    if not (ns.period > 0):
+        parser.error(f"--period: got {ns.period}; accepted: a tick period > 0 s")
+    report: dict[str, Any] = {"machine": _machine(), "period_s": ns.period, "ticks": ns.ticks,
+                              "rounds": ns.rounds,
+                              "options": _options_summary(BENCH_OPTIONS), "targets_7_joint": TARGETS,
+                              "arms": {}}
+    for name in ns.arms.split(","):
+        arm = load_arm(name.strip())
+        figures = bench_arm(arm, name.strip(), ns.ticks, ns.period, ns.rounds)
+        report["arms"][arm.name] = figures
+        _print_arm(arm, figures)
+    if ns.json:
+        with open(ns.json, "w", encoding="utf-8") as fh:
+            json.dump(report, fh, indent=2)
+            fh.write("\n")
+        print(f"wrote {ns.json}")
+    return 0
+
+
+def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5) -> dict[str, Any]:
+    """Every figure of one arm (see the module docstring).
+
+    A free trajectory of ticks // rounds states is recorded first, then replayed `rounds` times with
+    the variants timed back to back on each state (ours, straightforward, compiled), so that changes
+    of machine load during the run hit them alike. Medians and p99 are over all timed ticks; each
+    ratio is the median over rounds of the per-round ratio of medians, and `round_medians_us` shows
+    the spread.
+    """
+    options = BENCH_OPTIONS
+    free = _run_free(arm, options, max(100, ticks // rounds), period)
+    per_round = [_replay(arm, source, free, options, period) for _ in range(rounds)]
+    times = {name: np.concatenate([r[name] for r in per_round]) for name in per_round[0]}
+    medians = {name: [float(np.median(r[name])) / 1e3 for r in per_round] for name in per_round[0]}
+    ours = _summary(times["ours"])
+    figures: dict[str, Any] = {
+        "joints": arm.n,
+        "median_us": ours["median_us"],
+        "p99_us": ours["p99_us"],
+        "mean_us": ours["mean_us"],
+        "round_medians_us": medians["ours"],
+        "free_ticks_with_limit_active": int(np.count_nonzero(free.passes)),
+    }
+    ratio = lambda a, b: float(np.median(np.array(medians[a]) / np.array(medians[b])))  # noqa: E731
+    figures["straightforward_median_us"] = _summary(times["straightforward"])["median_us"]
+    figures["speedup_vs_straightforward"] = ratio("straightforward", "ours")
+    has_compiled = "compiled" in times
+    figures["compiled_median_us"] = _summary(times["compiled"])["median_us"] if has_compiled else None
+    figures["ratio_to_compiled"] = ratio("ours", "compiled") if has_compiled else None
+    figures["limits"] = _limits_figures(arm, options, ticks, period, ours["median_us"])
+    return figures
+
+
+def _replay(
+    arm: Arm, source: str, track: Track, options: SolverOptions, period: float
+) -> dict[str, np.ndarray]:
+    """Per-tick wall times (ns) of each variant over the recorded states, interleaved per state."""
+    plain = _plain_model(arm, source)
+    _check_plain(arm, plain, track.q[0])
+    variants = {
+        "ours": lambda q, qd, tw: resolve_counted(arm, q, qd, tw, period, options),
+        "straightforward": lambda q, qd, tw: _straightforward_tick(plain, q, qd, tw, period, options),
+    }
+    compiled = _compiled_tick(arm, options, period)
+    if compiled is not None:
+        variants["compiled"] = compiled
+    count = len(track.twists)
+    times = {name: np.empty(count, dtype=np.int64) for name in variants}
+    calls = [(times[name], f) for name, f in variants.items()]
+    k = len(calls)
+    orders = [calls[j:] + calls[:j] for j in range(k)]  # rotate who runs first (cache warmth)
+    gc.collect()
+    clock = time.perf_counter_ns
+    for i, tw in enumerate(track.twists):
+        q, qd = track.q[i], track.qd_prev[i]
+        for out, f in orders[i % k]:
+            t0 = clock()
+            f(q, qd, tw)
+            out[i] = clock() - t0
+    return times
+
+
+def _run_free(arm: Arm, options: SolverOptions, ticks: int, period: float) -> Track:
+    """Smooth trajectory from home: twists of a few cm/s and tenths of rad/s, ramped in, so that no
+    bound binds; returns the timed ticks (after WARMUP_TICKS)."""
+    def twist(k: int) -> DesiredTwist:
+        t = k * period
+        ramp = min(1.0, k / WARMUP_TICKS) ** 2
+        lin = 0.04 * ramp * np.array([np.sin(0.9 * t), np.cos(0.7 * t), 0.6 * np.sin(0.5 * t + 1.0)])
+        ang = 0.15 * ramp * np.array([np.sin(0.4 * t), 0.5 * np.cos(0.3 * t), np.sin(0.6 * t + 0.5)])
+        return DesiredTwist(lin, ang)
+    return _record(arm, options, ticks, period, np.array(arm.q_home, dtype=float), twist)
+
+
+def _record(arm: Arm, options: SolverOptions, ticks: int, period: float, q0: np.ndarray, twist_at) -> Track:
+    n = arm.n
+    q = q0.copy()
+    qd = np.zeros(n)
+    total = WARMUP_TICKS + ticks
+    Q, QD = np.empty((ticks, n)), np.empty((ticks, n))
+    twists: list[DesiredTwist] = []
+    ns_ = np.empty(ticks, dtype=np.int64)
+    passes = np.empty(ticks, dtype=np.int64)
+    scales = np.empty(ticks)
+    braking = np.zeros(ticks, dtype=bool)
+    gc.collect()
+    clock = time.perf_counter_ns
+    for k in range(total):
+        tw = twist_at(k)
+        t0 = clock()
+        res, count = resolve_counted(arm, q, qd, tw, period, options)
+        t1 = clock()
+        i = k - WARMUP_TICKS
+        if i >= 0:
+            Q[i], QD[i] = q, qd
+            twists.append(tw)
+            ns_[i], passes[i], scales[i] = t1 - t0, count, res.scale
+            braking[i] = res.scale == 0.0 and float(np.abs(res.twist_achieved).max()) > 1e-9
+        qd = res.qd
+        q = q + qd * period
+    return Track(Q, QD, twists, ns_, passes, scales, braking)
+
+
+def _summary(ns_: np.ndarray) -> dict[str, float]:
+    us = ns_ / 1e3
+    return {"median_us": float(np.median(us)), "p99_us": float(np.percentile(us, 99)),
+            "mean_us": float(np.mean(us))}
+
+
+# ---------------------------------------------------------------- straightforward reference loop
+
+@dataclass(frozen=True)
+class _Plain:
+    """What a hand-written loop keeps: DH rows (a, alpha, d, theta) or origins + axes, mount, tool, limits."""
+
+    dh: list[tuple[float, float, float, float]] | None
+    origins: list[np.ndarray]
+    axes: list[np.ndarray]
+    mount: np.ndarray
+    tool: np.ndarray
+    q_min: np.ndarray
+    q_max: np.ndarray
+    v_max: np.ndarray
+    a_max: np.ndarray
+    home: np.ndarray
+
+
+def _plain_model(arm: Arm, source: str) -> _Plain:
+    """The hand-written loop's description: the TOML's DH table when the arm has one, else origin + axis."""
+    dh = None
+    try:
+        data, _, suffix = read_arm_source(source)
+        spec = tomllib.loads(data.decode()) if suffix == ".toml" else {}
+    except Exception:  # a URDF or an unreadable file: fall back to origin + axis
+        spec = {}
+    if spec.get("dh_convention") == "standard" and all(j.get("kind") == "revolute" for j in spec["joint"]):
+        dh = [(j["dh"]["a_m"], np.radians(j["dh"]["alpha_deg"]), j["dh"]["d_m"],
+               np.radians(j["dh"]["theta_deg"])) for j in spec["joint"]]
+    limited = np.isfinite(arm.q_min) & np.isfinite(arm.q_max)  # a hand-written loop keeps finite numbers
+    return _Plain(
+        dh=dh, origins=[np.array(j.T_prev_joint) for j in arm.joints],
+        axes=[np.array(j.axis) for j in arm.joints], mount=np.array(arm.T_base_root),
+        tool=np.array(arm.T_last_tool), q_min=np.where(limited, arm.q_min, -1e3),
+        q_max=np.where(limited, arm.q_max, 1e3), v_max=np.array(arm.v_max), a_max=np.array(arm.a_max),
+        home=np.array(arm.q_home),
+    )
+
+
+def _straightforward_fk(m: _Plain, q: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray], np.ndarray]:
+    """Joint origins, joint axes (base frame) and tool pose, one np.array 4x4 per link per tick."""
+    T = m.mount
+    origins, axes = [], []
+    if m.dh is not None:  # standard DH: joint i turns about z_{i-1}
+        for i, (a, alpha, d, theta) in enumerate(m.dh):
+            origins.append(T[:3, 3])
+            axes.append(T[:3, 2])
+            ct, st = np.cos(theta + q[i]), np.sin(theta + q[i])
+            ca, sa = np.cos(alpha), np.sin(alpha)
+            A = np.array([[ct, -st * ca, st * sa, a * ct], [st, ct * ca, -ct * sa, a * st],
+                          [0.0, sa, ca, d], [0.0, 0.0, 0.0, 1.0]])
+            T = T @ A
+        # the packaged DH arms put the last DH frame's fixed part and the tool in T_last_tool
+        return origins, axes, T @ _dh_tool_correction(m)
+    for i in range(len(q)):
+        T = T @ m.origins[i]
+        kx, ky, kz = m.axes[i]
+        c, s = np.cos(q[i]), np.sin(q[i])
+        v = 1.0 - c
+        R = np.array([[c + kx * kx * v, kx * ky * v - kz * s, kx * kz * v + ky * s, 0.0],
+                      [ky * kx * v + kz * s, c + ky * ky * v, ky * kz * v - kx * s, 0.0],
+                      [kz * kx * v - ky * s, kz * ky * v + kx * s, c + kz * kz * v, 0.0],
+                      [0.0, 0.0, 0.0, 1.0]])
+        T = T @ R
+        origins.append(T[:3, 3])
+        axes.append(T[:3, :3] @ m.axes[i])
+    return origins, axes, T @ m.tool
+
+
+def _dh_tool_correction(m: _Plain) -> np.ndarray:
+    """Tool transform after the last DH frame: the arm's T_last_tool minus the last DH link's fixed part."""
+    a, alpha, d, theta = m.dh[-1]  # type: ignore[index]
+    ct, st, ca, sa = np.cos(theta), np.sin(theta), np.cos(alpha), np.sin(alpha)
+    last = np.array([[ct, -st * ca, st * sa, a * ct], [st, ct * ca, -ct * sa, a * st],
+                     [0.0, sa, ca, d], [0.0, 0.0, 0.0, 1.0]])
+    return np.linalg.solve(last, m.tool)
+
+
+def _straightforward_tick(m: _Plain, q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist,
+                          period: float, options: SolverOptions) -> np.ndarray:
+    """The hand-written tick: FK, J with np.cross, damped inverse, explicit pinv projector, clipping."""
+    origins, axes, T = _straightforward_fk(m, q)
+    n = len(q)
+    p_e = T[:3, 3]
+    J = np.zeros((6, n))
+    for i in range(n):
+        J[:3, i] = np.cross(axes[i], p_e - origins[i])
+        J[3:, i] = axes[i]
+    L = options.characteristic_length
+    W = np.diag([1.0, 1.0, 1.0, L, L, L])
+    Jw = W @ J
+    x = W @ np.concatenate((tw.linear, tw.angular))
+    s = np.linalg.svd(Jw, compute_uv=False)
+    eps, lmax = options.singular_value_threshold, options.damping_max
+    lam2 = (1.0 - (s[-1] / eps) ** 2) * lmax**2 if s[-1] < eps else 0.0
+    qd = Jw.T @ np.linalg.inv(Jw @ Jw.T + lam2 * np.eye(6)) @ x
+    P = np.eye(n) - np.linalg.pinv(Jw) @ Jw
+    mid = 0.5 * (m.q_min + m.q_max)
+    grad = (-(q - mid) / (n * (m.q_max - m.q_min) ** 2) * options.limit_gain
+            + options.posture_gain * (m.home - q))
+    qd = qd + P @ grad
+    qd = np.clip(qd, -m.v_max, m.v_max)
+    return np.clip(qd, qd_prev - m.a_max * period, qd_prev + m.a_max * period)
+
+
+def _check_plain(arm: Arm, m: _Plain, q: np.ndarray) -> None:
+    """The hand-written FK must agree with ours before its time means anything."""
+    from twistrate.solver.kinematics import forward
+
+    _, _, T = _straightforward_fk(m, q)
+    if np.abs(T - forward(arm, q).T_base_tool).max() > 1e-9:
+        raise RuntimeError(f"straightforward loop disagrees with forward() for {arm.name}")
+
+
+# ---------------------------------------------------------------- compiled kinematics
+
+def _pinocchio_model(arm: Arm):
+    """(pinocchio module, model, data, tool frame id) of `arm`, or None when pinocchio is not importable.
+
+    Joint i is an unaligned revolute/prismatic joint about/along its axis at T_prev_joint (mount folded
+    into the first); the tool is an operational frame at T_last_tool on the last joint.
+    """
+    try:
+        import pinocchio as pin
+    except ImportError:
+        return None
+    model = pin.Model()
+    parent = 0
+    for i, j in enumerate(arm.joints):
+        placement = arm.T_base_root @ j.T_prev_joint if i == 0 else j.T_prev_joint
+        kind = pin.JointModelRevoluteUnaligned if j.kind == "revolute" else pin.JointModelPrismaticUnaligned
+        parent = model.addJoint(parent, kind(np.asarray(j.axis, dtype=float)),
+                                pin.SE3(placement[:3, :3].copy(), placement[:3, 3].copy()), j.name)
+    tool = arm.T_last_tool
+    fid = model.addFrame(pin.Frame("tool", parent, pin.SE3(tool[:3, :3].copy(), tool[:3, 3].copy()),
+                                   pin.FrameType.OP_FRAME))
+    return pin, model, model.createData(), fid
+
+
+def _compiled_tick(arm: Arm, options: SolverOptions, period: float):
+    """The tick on compiled kinematics: pinocchio FK + frame Jacobian (LOCAL_WORLD_ALIGNED: base
+    axes, tool point, rows (v, w), as ours), then our rate pipeline; None without pinocchio."""
+    built = _pinocchio_model(arm)
+    if built is None:
+        return None
+    pin, model, data, fid = built
+    world = pin.LOCAL_WORLD_ALIGNED
+    empty44 = np.empty((0, 4, 4))  # only T_base_tool is read by the rate pipeline
+    oMf = data.oMf
+
+    def tick(q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist):
+        J = pin.computeFrameJacobian(model, data, q, fid, world)
+        frames = Frames(empty44, oMf[fid].homogeneous)
+        return resolve_from_kinematics(arm, q, qd_prev, tw, period, options, frames, J)
+
+    return tick
+
+
+# ---------------------------------------------------------------- limits active
+
+def _limits_figures(arm: Arm, options: SolverOptions, ticks: int, period: float,
+                    free_median_us: float) -> dict[str, Any]:
+    """Push one joint into its nearer limit with the twist that joint alone makes at 0.3 rad/s."""
+    from twistrate.solver.kinematics import forward, geometric_jacobian
+
+    joint, frac = PUSHED_JOINT.get(arm.name, (0, 0.05))
+    q0 = np.array(arm.q_home, dtype=float)
+    lo, hi = arm.q_min[joint], arm.q_max[joint]
+    span = hi - lo if np.isfinite(hi - lo) else 2 * np.pi
+    q0[joint] = (lo if np.isfinite(lo) else -np.pi) + frac * span
+    J = geometric_jacobian(arm, forward(arm, q0))
+    push = DesiredTwist(-0.3 * J[:3, joint], -0.3 * J[3:, joint])
+    track = _record(arm, options, min(ticks, 4000), period, q0, lambda k: push)
+    active = track.passes > 0
+    out: dict[str, Any] = {"pushed_joint": arm.joints[joint].name, "ticks": int(track.passes.size),
+                           "ticks_with_limits_active": int(active.sum()),
+                           "ticks_without_feasible_scale": int(np.count_nonzero(track.braking)),
+                           "mean_scale": float(track.scales.mean())}
+    if active.any():
+        s = _summary(track.ns[active])
+        out.update({"median_us": s["median_us"], "p99_us": s["p99_us"],
+                    "extra_median_us": s["median_us"] - free_median_us,
+                    "mean_passes": float(track.passes[active].mean()),
+                    "max_passes": int(track.passes[active].max())})
+    return out
+
+
+# ---------------------------------------------------------------- report
+
+def _machine() -> dict[str, Any]:
+    return {
+        "python": platform.python_version(), "numpy": np.__version__, "cpu_count": os.cpu_count(),
+        "processor": platform.processor() or platform.machine(),
+        "OPENBLAS_CORETYPE": os.environ.get("OPENBLAS_CORETYPE"),
+        "load_average": list(os.getloadavg()) if hasattr(os, "getloadavg") else None,
+    }
+
+
+def _options_summary(o: SolverOptions) -> dict[str, Any]:
+    return {"damping": o.damping, "damping_max_m": o.damping_max,
+            "characteristic_length_m": o.characteristic_length, "limit_gain": o.limit_gain,
+            "manipulability_gain": o.manipulability_gain, "posture_gain": o.posture_gain,
+            "enforce_limits": o.enforce_limits}
+
+
+def _fmt(v: float | None, unit: str = "") -> str:
+    return "n/a (pinocchio not importable)" if v is None else f"{v:.1f}{unit}"
+
+
+def _print_arm(arm: Arm, f: dict[str, Any]) -> None:
+    print(f"{arm.name} ({arm.n} joints), every feature on, no limit active "
+          f"({f['free_ticks_with_limit_active']} ticks had one):")
+    spread = ", ".join(f"{m:.1f}" for m in f["round_medians_us"])
+    print(f"  resolve per tick      median {f['median_us']:.1f} us   p99 {f['p99_us']:.1f} us   "
+          f"mean {f['mean_us']:.1f} us   (round medians {spread})")
+    print(f"  straightforward loop  median {f['straightforward_median_us']:.1f} us   "
+          f"speedup_vs_straightforward {f['speedup_vs_straightforward']:.2f}x")
+    print(f"  compiled FK + J       median {_fmt(f['compiled_median_us'], ' us')}   "
+          f"ratio_to_compiled {_fmt(f['ratio_to_compiled'], 'x')}")
+    lim = f["limits"]
+    print(f"  pushing {lim['pushed_joint']} into its limit: {lim['ticks_with_limits_active']}/{lim['ticks']} "
+          f"ticks with limits active, {lim['ticks_without_feasible_scale']} without a feasible scale, "
+          f"mean scale {lim['mean_scale']:.2f}")
+    if "median_us" in lim:
+        print(f"    saturation ticks    median {lim['median_us']:.1f} us   p99 {lim['p99_us']:.1f} us   "
+              f"extra median {lim['extra_median_us']:.1f} us   passes mean {lim['mean_passes']:.2f} "
+              f"max {lim['max_passes']}")
+    if arm.n == 7:
+        checks = [("median_us", f["median_us"], "<="), ("p99_us", f["p99_us"], "<="),
+                  ("speedup_vs_straightforward", f["speedup_vs_straightforward"], ">="),
+                  ("ratio_to_compiled", f["ratio_to_compiled"], "<=")]
+        parts = []
+        for key, value, op in checks:
+            if value is None:
+                parts.append(f"{key} n/a")
+                continue
+            ok = value <= TARGETS[key] if op == "<=" else value >= TARGETS[key]
+            parts.append(f"{key} {value:.2f} {op} {TARGETS[key]:g}: {'met' if ok else 'MISSED'}")
+        print("  targets: " + "; ".join(parts))
+    print()
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

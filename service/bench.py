@@ -15,8 +15,8 @@ joint-range, manipulability and posture objectives, hard limits):
 * a trajectory pushing a joint into its limit: the cost of ticks where the saturation loop runs (median,
   p99, extra median over the free ticks) and its mean number of passes.
 
-Every variant replays the same recorded (q, qd_prev, twist) states, timed back to back on each state
-and over several rounds, so that load changes on a shared machine hit all variants alike. Timings are
+Every variant replays the same recorded (q, qd_prev, twist) states in short blocks taken in turn
+(rotating order), so that load changes on a shared machine hit all variants alike. Timings are
 wall-clock (time.perf_counter_ns) per tick, with the garbage collector left on, on the machine as it is
 (its BLAS settings, e.g. OPENBLAS_CORETYPE, and its load average are reported, never changed).
 """
@@ -52,6 +52,9 @@ DEFAULT_ROUNDS = 5
 DEFAULT_PERIOD_S = 0.002
 #: Ticks run before timing starts (the trajectory ramps in; caches warm up).
 WARMUP_TICKS = 300
+#: States per replay block, and untimed calls of a variant at the start of each of its blocks.
+REPLAY_BLOCK = 40
+WARMUP_REPLAY = 3
 #: Targets for the 7-joint arm with no limit active (stated by the project).
 TARGETS = {"median_us": 50.0, "p99_us": 150.0, "speedup_vs_straightforward": 4.0, "ratio_to_compiled": 2.0}
 #: Every feature on.
@@ -101,7 +104,11 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def run_solver(argv: list[str]) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate bench solver", description=__doc__.split("\n\n")[1])
+    parser = argparse.ArgumentParser(
+        prog="twistrate bench solver",
+        description="Time one tick of rate resolution (every feature on) on the example arms, against a "
+                    "straightforward numpy loop and compiled kinematics, free and with limits active.",
+    )
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
     parser.add_argument("--ticks", type=int, default=DEFAULT_TICKS, help="timed ticks per variant and "
                         "trajectory (default %(default)s)")
@@ -138,17 +145,17 @@ def run_solver(argv: list[str]) -> int:
 def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5) -> dict[str, Any]:
     """Every figure of one arm (see the module docstring).
 
-    A free trajectory of ticks // rounds states is recorded first, then replayed `rounds` times with
-    the variants timed back to back on each state (ours, straightforward, compiled), so that changes
-    of machine load during the run hit them alike. Medians and p99 are over all timed ticks; each
-    ratio is the median over rounds of the per-round ratio of medians, and `round_medians_us` shows
-    the spread.
+    A free trajectory of ticks // rounds states is recorded first, then replayed `rounds` times by
+    each variant (ours, straightforward, compiled; interleaved in short blocks, see `_replay`).
+    Medians and p99 are over all timed ticks; each ratio is the median over rounds of the per-round
+    ratio of medians, and `round_medians_us` shows the spread of the machine's speed.
     """
     options = BENCH_OPTIONS
     free = _run_free(arm, options, max(100, ticks // rounds), period)
-    per_round = [_replay(arm, source, free, options, period) for _ in range(rounds)]
-    times = {name: np.concatenate([r[name] for r in per_round]) for name in per_round[0]}
-    medians = {name: [float(np.median(r[name])) / 1e3 for r in per_round] for name in per_round[0]}
+    per_round = [_replay(arm, source, free, options, period, r) for r in range(rounds)]
+    names = list(per_round[0])
+    times = {name: np.concatenate([r[name] for r in per_round]) for name in names}
+    medians = {name: [float(np.median(r[name])) / 1e3 for r in per_round] for name in names}
     ours = _summary(times["ours"])
     figures: dict[str, Any] = {
         "joints": arm.n,
@@ -169,32 +176,42 @@ def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5)
 
 
 def _replay(
-    arm: Arm, source: str, track: Track, options: SolverOptions, period: float
+    arm: Arm, source: str, track: Track, options: SolverOptions, period: float, round_index: int
 ) -> dict[str, np.ndarray]:
-    """Per-tick wall times (ns) of each variant over the recorded states, interleaved per state."""
+    """Per-tick wall times (ns) of each variant over the recorded states.
+
+    The track is cut into blocks of REPLAY_BLOCK states; each variant replays a block in turn (the
+    order rotating from block to block and round to round), its first WARMUP_REPLAY calls untimed.
+    Blocks keep a variant on its own warm caches, while the fine interleaving makes machine-load
+    changes (seconds) hit every variant alike.
+    """
     plain = _plain_model(arm, source)
     _check_plain(arm, plain, track.q[0])
-    variants = {
-        "ours": lambda q, qd, tw: resolve_counted(arm, q, qd, tw, period, options),
-        "straightforward": lambda q, qd, tw: _straightforward_tick(plain, q, qd, tw, period, options),
-    }
+    variants = [
+        ("ours", lambda q, qd, tw: resolve_counted(arm, q, qd, tw, period, options)),
+        ("straightforward", lambda q, qd, tw: _straightforward_tick(plain, q, qd, tw, period, options)),
+    ]
     compiled = _compiled_tick(arm, options, period)
     if compiled is not None:
-        variants["compiled"] = compiled
+        variants.append(("compiled", compiled))
+    k = len(variants)
     count = len(track.twists)
-    times = {name: np.empty(count, dtype=np.int64) for name in variants}
-    calls = [(times[name], f) for name, f in variants.items()]
-    k = len(calls)
-    orders = [calls[j:] + calls[:j] for j in range(k)]  # rotate who runs first (cache warmth)
+    times = {name: [] for name, _ in variants}
     gc.collect()
     clock = time.perf_counter_ns
-    for i, tw in enumerate(track.twists):
-        q, qd = track.q[i], track.qd_prev[i]
-        for out, f in orders[i % k]:
-            t0 = clock()
-            f(q, qd, tw)
-            out[i] = clock() - t0
-    return times
+    for b, start in enumerate(range(0, count, REPLAY_BLOCK)):
+        stop = min(count, start + REPLAY_BLOCK)
+        j = (b + round_index) % k
+        for name, f in variants[j:] + variants[:j]:
+            out = times[name]
+            for i in range(start, min(stop, start + WARMUP_REPLAY)):
+                f(track.q[i], track.qd_prev[i], track.twists[i])
+            for i in range(start, stop):
+                q, qd, tw = track.q[i], track.qd_prev[i], track.twists[i]
+                t0 = clock()
+                f(q, qd, tw)
+                out.append(clock() - t0)
+    return {name: np.array(v, dtype=np.int64) for name, v in times.items()}
 
 
 def _run_free(arm: Arm, options: SolverOptions, ticks: int, period: float) -> Track:

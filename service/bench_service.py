@@ -89,6 +89,14 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / CLK_TCK
 
 
+def load_average() -> float:
+    """The 1-minute load average (Linux /proc/loadavg): context for the figures on a shared machine."""
+    try:
+        return float(Path("/proc/loadavg").read_text().split()[0])
+    except (OSError, ValueError, IndexError):
+        return math.nan
+
+
 def _source(ep: Endpoints, seconds: float) -> int:
     """The twist source process: a slow circle with a gentle turn, SOURCE_HZ twists per second."""
     with Link(ep, client="bench-source", topics=(), timeout_s=2.0) as link:
@@ -150,7 +158,9 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
                     time.sleep(0.05)
                 link.drain()
                 c0 = link.counters()
+                ours = [serve.pid, *(p.pid for p in procs[1:]), os.getpid()]
                 cpu0, wall0 = cpu_seconds(serve.pid), time.monotonic()
+                ours0, load0 = sum(cpu_seconds(pid) for pid in ours), load_average()
                 received: list[int] = []
                 running = 0
                 end = wall0 + seconds
@@ -160,6 +170,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
                         received.append(time.time_ns() - cmd.stamp_ns)
                         running += cmd.mode == "running"
                 cpu1, wall1 = cpu_seconds(serve.pid), time.monotonic()
+                ours1, load1 = sum(cpu_seconds(pid) for pid in ours), load_average()
                 c1 = link.counters()
         finally:
             errors = [_stop(p) for p in reversed(procs)]
@@ -190,6 +201,11 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
         "commands_received": int(lat.size),
         "commands_running": running,
         "cpu_fraction": (cpu1 - cpu0) / (wall1 - wall0),
+        "bench_cpu_fraction": (ours1 - ours0) / (wall1 - wall0),
+        "load_average_before": load0,
+        "load_average_after": load1,
+        "speculation_used_fraction": (c1.get("speculation_used", 0) - c0.get("speculation_used", 0)) / ticks
+        if ticks else math.nan,
         "rejected_total": c1.get("rejected_total", 0),
         "rt_priority": rt_priority,
     }
@@ -232,6 +248,9 @@ def format_result(r: dict[str, Any]) -> str:
         f"{r['commands_running']} running)",
         f"  service CPU       {100 * r['cpu_fraction']:.1f} % of one core"
         f"{_verdict(r['cpu_fraction'], t['cpu_fraction'])}",
+        f"  context           all bench processes {100 * r['bench_cpu_fraction']:.0f} % of one core; load "
+        f"average {r['load_average_before']:.2f} -> {r['load_average_after']:.2f}; solved ahead of the "
+        f"deadline {100 * r['speculation_used_fraction']:.0f} % of ticks",
     ]
     if r.get("process_errors"):
         lines.append(f"  process errors: {r['process_errors']}")

@@ -6,7 +6,8 @@ Policy (documented in docs/operation.md):
   because the previous one ran long.
 * To wake, the thread sleeps until `spin_ns` before the deadline (time.sleep; the kernel wakes it
   tens of microseconds late), then spins on the clock for the rest. Lateness = wake time - deadline,
-  recorded for every tick in a 1 µs histogram.
+  recorded for every tick in a 1 µs histogram. The spin margin adapts to the measured sleep
+  overshoot (SPIN_QUANTILE of the last SPIN_WINDOW, plus a pad), so the busy wait stays short.
 * Overrun: when the tick's work ends after the next deadline has already passed, every grid slot
   that passed without a tick is counted as one overrun, and the schedule re-anchors to the next
   future slot of the same grid (no burst of catch-up ticks). Overruns are reported in status and
@@ -27,6 +28,14 @@ import numpy as np
 #: Default spin margin before each deadline, ns. Measured here: time.sleep overshoots by a median
 #: ~30 µs (1 µs timer slack) to ~90 µs (default 50 µs slack), p99 ~80-160 µs on a loaded machine.
 DEFAULT_SPIN_NS = 150_000
+#: Adaptive spin margin (Ticker(adaptive=True)): every SPIN_WINDOW ticks the margin becomes the
+#: SPIN_QUANTILE of the last SPIN_WINDOW sleep overshoots plus SPIN_PAD_NS, within [SPIN_MIN_NS, SPIN_MAX_NS].
+#: A tight margin saves CPU (the spin is busy waiting); a wake-up later than the margin shows as lateness.
+SPIN_WINDOW = 256
+SPIN_QUANTILE = 99.5
+SPIN_PAD_NS = 20_000
+SPIN_MIN_NS = 40_000
+SPIN_MAX_NS = 400_000
 #: Histogram resolution and range: 1 µs bins up to 50 ms; larger values land in the last bin.
 HIST_BIN_NS = 1_000
 HIST_BINS = 50_000
@@ -94,11 +103,12 @@ class Ticker:
 
     period_ns : tick period T, ns (> 0). spin_ns : spin margin before each deadline, ns (>= 0).
     clock, sleep : injectable for tests (time.monotonic_ns, time.sleep in seconds).
+    adaptive : adapt spin_ns to the measured sleep overshoot (see SPIN_WINDOW).
     """
 
     def __init__(self, period_ns: int, spin_ns: int = DEFAULT_SPIN_NS,
                  clock: Callable[[], int] = time.monotonic_ns,
-                 sleep: Callable[[float], None] = time.sleep) -> None:
+                 sleep: Callable[[float], None] = time.sleep, adaptive: bool = False) -> None:
         if period_ns <= 0:
             raise ValueError(f"period_ns: got {period_ns!r}; accepted: > 0")
         self.period_ns = int(period_ns)
@@ -109,6 +119,9 @@ class Ticker:
         self.ticks = 0
         self.overruns = 0
         self.lateness = LatencyHistogram()
+        self.adaptive = adaptive
+        self._overshoot = np.zeros(SPIN_WINDOW, dtype=np.int64)
+        self._n_over = 0
 
     def start(self, now_ns: int | None = None) -> None:
         """Anchor the grid: the first deadline is one period from now."""
@@ -121,12 +134,12 @@ class Ticker:
             raise ValueError(f"period_ns: got {period_ns!r}; accepted: > 0")
         self.period_ns = int(period_ns)
 
-    def wait(self, prepare: Callable[[], object] | None = None, prepare_ns: int = 0) -> int:
+    def wait(self, prepare: Callable[[int], object] | None = None, prepare_ns: int = 0) -> int:
         """Block until the next deadline; return it (ns). Counts overruns, records lateness.
 
-        prepare : called once, about `prepare_ns` before the deadline (or at once when less time is
-            left), for work that needs no fresh input (draining the intake, kinematics at the newest
-            joint state); then the wait continues to the deadline as usual.
+        prepare : called once with the deadline (ns), about `prepare_ns` before it (or at once when
+            less time is left), for work ahead of the tick (draining the intake, kinematics at the
+            newest joint state); then the wait continues to the deadline as usual.
         """
         clock = self._clock
         period = self.period_ns
@@ -141,17 +154,28 @@ class Ticker:
             early = d - now - prepare_ns
             if early > 0:
                 self._sleep(early / 1e9)
-            prepare()
+            prepare(d)
             now = clock()
         remaining = d - now - self.spin_ns
         if remaining > 0:
             self._sleep(remaining / 1e9)
+            if self.adaptive:
+                self._adapt(clock() - (d - self.spin_ns))
         while clock() < d:
             pass
         self.lateness.add(clock() - d)
         self.deadline = d
         self.ticks += 1
         return d
+
+
+    def _adapt(self, overshoot_ns: int) -> None:
+        k = self._n_over
+        self._overshoot[k % SPIN_WINDOW] = overshoot_ns
+        self._n_over = k + 1
+        if self._n_over % SPIN_WINDOW == 0:
+            q = int(np.percentile(self._overshoot, SPIN_QUANTILE))
+            self.spin_ns = min(SPIN_MAX_NS, max(SPIN_MIN_NS, q + SPIN_PAD_NS))
 
 
 def set_timer_slack(ns: int = 1_000) -> bool:

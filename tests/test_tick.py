@@ -6,7 +6,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from twistrate.service.tick import LatencyHistogram, Ticker, make_realtime
+from twistrate.service.tick import (
+    SPIN_MIN_NS,
+    SPIN_PAD_NS,
+    SPIN_WINDOW,
+    LatencyHistogram,
+    Ticker,
+    make_realtime,
+)
 
 
 class FakeClock:
@@ -58,6 +65,43 @@ def test_overrun_counts_missed_slots_and_reanchors_to_the_next_future_slot():
     clk.t += 100_000
     assert tk.wait() == t0 + 6 * period
     assert tk.overruns == 3
+
+
+def test_prepare_runs_once_ahead_of_the_deadline_then_the_wait_completes():
+    clk = FakeClock(read_cost=100, oversleep=20_000)
+    tk = Ticker(2_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    calls = []
+
+    def prepare(deadline):
+        calls.append((deadline, clk.t))
+        clk.t += 150_000  # the preparation's own work
+
+    d = tk.wait(prepare, prepare_ns=500_000)
+    assert len(calls) == 1 and calls[0][0] == d
+    assert d - 500_000 <= calls[0][1] < d - 300_000  # woke about prepare_ns early (plus the oversleep)
+    assert tk.lateness.max_ns <= 2 * clk.read_cost
+    clk.t = d + 1_900_000  # work left less than prepare_ns: prepare runs at once
+    d2 = tk.wait(prepare, prepare_ns=500_000)
+    assert len(calls) == 2 and calls[1][1] < d2 and d2 == d + 2_000_000
+    assert tk.overruns == 0
+
+
+def test_adaptive_spin_follows_the_sleep_overshoot():
+    clk = FakeClock(read_cost=100, oversleep=30_000)
+    tk = Ticker(1_000_000, spin_ns=300_000, clock=clk, sleep=clk.sleep, adaptive=True)
+    tk.start()
+    for _ in range(SPIN_WINDOW):
+        tk.wait()
+        clk.t += 100_000
+    # overshoot = 30 us oversleep + one clock read; margin = that + pad
+    assert tk.spin_ns == pytest.approx(30_000 + SPIN_PAD_NS, abs=200)
+    clk.oversleep = 1_000
+    for _ in range(SPIN_WINDOW):
+        tk.wait()
+        clk.t += 100_000
+    assert tk.spin_ns == SPIN_MIN_NS
+    assert tk.overruns == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
 
 
 def test_work_ending_exactly_on_deadline_is_an_overrun():

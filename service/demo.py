@@ -146,16 +146,18 @@ class Display:
         self.out = out
         self.tty = bool(getattr(out, "isatty", lambda: False)())
         self._last: tuple[float, int] | None = None
+        self._rate = 0.0
         self._lines = 0
 
     def lines(self) -> list[str]:
         svc = self.service
         now = time.monotonic()
         ticks = svc.ticker.ticks
-        rate = 0.0
-        if self._last is not None and now > self._last[0]:
-            rate = (ticks - self._last[1]) / (now - self._last[0])
-        self._last = (now, ticks)
+        if self._last is None or now - self._last[0] >= 0.1:  # too short a gap keeps the previous figure
+            if self._last is not None:
+                self._rate = (ticks - self._last[1]) / (now - self._last[0])
+            self._last = (now, ticks)
+        rate = self._rate
         names = svc.arm.joint_names
         active = [names[i] for i in np.flatnonzero(svc.limits_active)]
         h = svc.last_health

@@ -22,7 +22,9 @@ import zmq.asyncio
 
 from twistrate.service.config import ServiceConfig, load_config
 from twistrate.service.control import ControlServer
+from twistrate.service.recorder import Recorder
 from twistrate.service.runtime import Service
+from twistrate.solver.arm import Arm
 from twistrate.solver.errors import TwistrateError
 
 log = logging.getLogger("twistrate.service")
@@ -42,14 +44,10 @@ def setup_logging(level: str) -> logging.handlers.QueueListener:
     return listener
 
 
-def make_recorder(config: ServiceConfig, service_arm: object, path: str | None) -> object | None:
-    """A Recorder for `path` (or the configured path), or None."""
+def make_recorder(config: ServiceConfig, arm: Arm, path: str | None) -> Recorder | None:
+    """A Recorder for `path` (or the configured [recorder] path), or None."""
     path = path or config.recorder.path
-    if not path:
-        return None
-    from twistrate.service.recorder import Recorder
-
-    return Recorder(path, service_arm, config.tick.rate_hz)  # type: ignore[arg-type]
+    return Recorder(path, arm, config.tick.rate_hz) if path else None
 
 
 async def run_control(service: Service) -> None:

@@ -610,7 +610,13 @@ class Service:
         sv = res.singular_values
         self.sigma_min = float(sv[-1])
         self.manipulability = float(np.prod(sv))
-        self.health_state = health
+        self._set_health(health)
+
+    def _set_health(self, health: str) -> None:
+        if health != self.health_state:
+            self.emit_event("health", f"{self.health_state} -> {health} (smallest singular value "
+                                      f"{self.sigma_min:.4g} m)")
+            self.health_state = health
 
     # -- output ----------------------------------------------------------------------------------
 
@@ -645,12 +651,14 @@ class Service:
         res = self.last_resolution
         if res is None:
             if self._health_q is not None and np.array_equal(q, self._health_q) and self.last_health:
-                return self.last_health  # at rest: nothing changed
+                # at rest: the measures are unchanged (the thresholds may not be)
+                self._set_health(next_state(self.health_state, self.sigma_min, self.thresholds))
+                return self.last_health
             _, J = self._kinematics(q)
             h = assess(self.arm, q, J, self.options)
             self.sigma_min = h.sigma_min
             self.manipulability = h.manipulability
-            self.health_state = next_state(self.health_state, h.sigma_min, self.thresholds)
+            self._set_health(next_state(self.health_state, h.sigma_min, self.thresholds))
         else:
             h = assess(self.arm, q, res, self.options)
         self._health_q = q

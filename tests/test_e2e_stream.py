@@ -115,3 +115,29 @@ def test_health_and_events_are_published():
         while "enabled" not in names:
             names.append(link.receive_event().event)
         assert link.receive_event().event == "mode"  # disabled -> holding
+
+
+def test_health_state_follows_its_thresholds_with_hysteresis_and_reports_changes():
+    # Thresholds moved above the arm's smallest singular value at rest: the state escalates at once and
+    # comes back one level at a time, each change an event (docs/protocol.md section 10).
+    cfg = make_config()
+    with running_service(cfg) as run:
+        link = run.link(topics=(codec.TOPIC_EVENT, codec.TOPIC_HEALTH))
+        link.claim("test")
+        sigma = float(link.receive_health().singular_values[-1])
+        link.set(approaching_below=min(1.0, 4 * sigma), holding_below=2 * sigma)
+        event = link.receive_event()
+        while event.event != "health":
+            event = link.receive_event()
+        assert event.detail.startswith("normal -> holding")
+        assert link.receive_health().state == "holding"
+        link.set(approaching_below=min(1.0, 4 * sigma), holding_below=0.5 * sigma)
+        event = link.receive_event()
+        while event.event != "health":
+            event = link.receive_event()
+        assert event.detail.startswith("holding -> approaching")
+        link.set(approaching_below=0.5 * sigma, holding_below=0.25 * sigma)
+        event = link.receive_event()
+        while event.event != "health":
+            event = link.receive_event()
+        assert event.detail.startswith("approaching -> normal")

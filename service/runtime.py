@@ -16,9 +16,11 @@ Threads (docs/operation.md, "Threads"):
 from __future__ import annotations
 
 import concurrent.futures
+import contextlib
 import gc
 import logging
 import math
+import os
 import sys
 import threading
 import time
@@ -135,6 +137,13 @@ class Service:
         self._gc_count = 0
         self._own_context = context is None
         self.context = context or zmq.Context()
+        if realtime_priority > 0 and context is None:
+            # The ZeroMQ I/O thread moves every message in and out: with a SCHED_FIFO tick it gets the
+            # same policy (one level below), or it queues behind normal processes for the CPU.
+            # libzmq applies this when it starts the thread, and ignores it when not permitted.
+            with contextlib.suppress(zmq.ZMQError, AttributeError):
+                self.context.set(zmq.THREAD_SCHED_POLICY, os.SCHED_FIFO)
+                self.context.set(zmq.THREAD_PRIORITY, max(1, realtime_priority - 1))
         self._rlog = RateLimitedLog(log, config.logging.max_per_s)
         self._q_lo = np.where(np.isfinite(arm.q_min), arm.q_min - JOINT_RANGE_TOLERANCE, -np.inf)
         self._q_hi = np.where(np.isfinite(arm.q_max), arm.q_max + JOINT_RANGE_TOLERANCE, np.inf)

@@ -1,5 +1,6 @@
 """The Jacobian family derived from the geometric Jacobian: body, spatial, offset point, analytical
-(roll-pitch-yaw), the derivative tensor dJ/dq, J_dot, J_dot q_dot and the manipulability gradient.
+(roll-pitch-yaw), the derivative tensor dJ/dq, J_dot, J_dot q_dot and the manipulability gradient
+(through the tensor, or in O(n) from the chain structure without forming it).
 
 Input everywhere is the geometric Jacobian of `twistrate.solver.kinematics.geometric_jacobian`:
 J : (6, n), base frame, tool point, rows (v, w): linear velocity (m/s) of the tool point, then
@@ -27,6 +28,14 @@ def _cross_blocks() -> np.ndarray:
 
 
 _CROSS_BLOCKS = _cross_blocks()
+_ONES6 = np.ones(6)
+_ONES6.setflags(write=False)
+#: Row r = 6 i + j of the stacked outer products of two (6, n) arrays X, Y (one outer product
+#: X[:, k] Y[:, k]^T per column k, row-major) is X[i] * Y[j]: X.take(_OUTER_I) * Y.take(_OUTER_J).
+_OUTER_I = np.repeat(np.arange(6), 6)
+_OUTER_J = np.tile(np.arange(6), 6)
+_OUTER_I.setflags(write=False)
+_OUTER_J.setflags(write=False)
 
 #: Below this |cos(pitch)| the roll-pitch-yaw rates are undefined (det E = cos(pitch)):
 #: `analytical_jacobian_rpy` raises InputError and `rpy_from_rotation` takes its gimbal-lock branch.
@@ -191,16 +200,19 @@ def manipulability_gradient(
     1985); w = sqrt(det(W J J^T W)) for n >= m, sqrt(det(J^T W^2 J)) for n < m.
 
     J : (m, n) task rows of the geometric Jacobian, base frame, tool point (m = 6: rows (v, w)).
-    dJ : (n, m, n) dJ/dq of exactly these rows; None computes it from J, which then must be the
-        full (6, n) geometric Jacobian.
+    dJ : (n, m, n) dJ/dq of exactly these rows; None: J must be the full (6, n) geometric Jacobian,
+        and the gradient is computed in O(n) from its chain structure without forming dJ/dq
+        (`manipulability_gradient_geometric`; through dJ/dq when the row weights differ within
+        the linear or the angular block).
     row_weights : (m,) task-row weights W (e.g. [1, 1, 1, L, L, L] with a characteristic length
         L in m, so every row is m/s), or None for W = I.
     svd : (U, s, Vt) of W J when the caller already has it: U (m, m) or (m, k), s (k,) descending,
         Vt (n, n) or (k, n), k = min(m, n) (full or thin np.linalg.svd output); None computes it.
     Returns (n,) dw/dq_i, units of w per rad (or per m for a prismatic joint).
 
-    Formula: dw/dq_i = sum_r (prod_{j != r} s_j) u_r^T W (dJ/dq_i) v_r, with ds_r = u_r^T d(WJ) v_r,
-    evaluated as the inner product of dJ/dq_i with dw/dJ = W U diag(c) V^T, c_r = prod_{j != r} s_j.
+    Formula (Park, Chung & Youm 1999; Yoshikawa 1985): dw/dq_i = sum_r (prod_{j != r} s_j)
+    u_r^T W (dJ/dq_i) v_r, with ds_r = u_r^T d(WJ) v_r; with dJ it is evaluated as the inner product
+    of dJ/dq_i with dw/dJ = W U diag(c) V^T, c_r = prod_{j != r} s_j.
     It has no division, so it stays finite at and near singular configurations. At an exact
     singularity (s_k = 0) w is not differentiable; the value is then the slope of w along a
     direction that leaves the singularity (its sign follows the SVD's sign choice for the
@@ -208,13 +220,29 @@ def manipulability_gradient(
     singular values the gradient is 0 (w is of second order there).
     """
     if dJ is None:
-        dJ = jacobian_derivative(J)
+        if row_weights is None or (row_weights[0] == row_weights[1] == row_weights[2]
+                                   and row_weights[3] == row_weights[4] == row_weights[5]):
+            weight = None if row_weights is None else np.repeat(row_weights[:, None], J.shape[1], axis=1)
+            if svd is None:
+                svd = np.linalg.svd(J if weight is None else J * weight, full_matrices=False)
+            return manipulability_gradient_geometric(J, svd, weight)
+        dJ = jacobian_derivative(J)  # weights differ within a row block: the tensor form
     if svd is None:
         JW = J if row_weights is None else J * row_weights[:, None]
         U, s, Vt = np.linalg.svd(JW, full_matrices=False)
     else:
         U, s, Vt = svd
-    # c_r = prod_{j != r} s_j from exclusive prefix and suffix products (no division; k <= 6 floats).
+    k = s.shape[0]
+    Uc = U[:, :k] * _cofactors(s)
+    if row_weights is not None:
+        Uc *= row_weights[:, None]
+    n = J.shape[1]
+    return dJ.reshape(n, -1) @ (Uc @ Vt[:k]).ravel()
+
+
+def _cofactors(s: np.ndarray) -> np.ndarray:
+    """(k,) c_r = prod_{j != r} s_j for singular values s (k,), from exclusive prefix and suffix
+    products (no division, so exact zeros are fine; k <= 6 floats, cheaper in Python than in numpy)."""
     sv = s.tolist()
     k = len(sv)
     c = [1.0] * k
@@ -226,8 +254,77 @@ def manipulability_gradient(
     for r in range(k - 1, -1, -1):
         c[r] *= acc
         acc *= sv[r]
-    Uc = U[:, :k] * c
-    if row_weights is not None:
-        Uc *= row_weights[:, None]
-    n = J.shape[1]
-    return dJ.reshape(n, -1) @ (Uc @ Vt[:k]).ravel()
+    return np.array(c)
+
+
+def manipulability_gradient_geometric(
+    J: np.ndarray,
+    svd: tuple[np.ndarray, np.ndarray, np.ndarray],
+    weight: np.ndarray | None = None,
+) -> np.ndarray:
+    """O(n) gradient dw/dq of the manipulability w = product of the singular values of the weighted
+    Jacobian A = S J D (Yoshikawa 1985; gradient as in Park, Chung & Youm 1999), never forming dJ/dq.
+
+    J : (6, n) geometric Jacobian, base frame, tool point, rows (v, w); revolute and prismatic
+        columns alike (a prismatic column has w = 0).
+    svd : (U, s, Vt) of A: U (6, 6) or (6, k), s (k,) descending, Vt (n, n) or (k, n), k = min(6, n).
+    weight : (6, n) with A = J * weight, weight[r, k] = S_r D_k: S = (alpha, alpha, alpha, beta,
+        beta, beta) task-row weights, one per row block (e.g. (1, 1, 1, L, L, L); alpha, beta >= 0,
+        zero allowed), D > 0 the
+        joint-column weights (e.g. W^-1/2 of weighted least norm). None: A = J. (Different weights
+        within a row block break the first identity below: `manipulability_gradient` then uses the
+        tensor form.)
+    Returns (n,) dw/dq_i, units of w (m^k with S = (1, 1, 1, L, L, L)) per rad (or per m).
+
+    Derivation (independent; checked against the tensor form and finite differences in
+    tests/test_jacobians.py). With dA/dq_i = S (dJ/dq_i) D, dw/dq_i = trace(P dJ/dq_i), where
+    P = D V diag(c) U^T S (n x 6), c_r = prod_{j != r} s_j (w A^+ weighted; no division, so finite
+    at singularities). Column k of dJ/dq_i (`jacobian_derivative`) is (w_i x v_k, w_i x w_k) for
+    k >= i and (w_k x v_i, 0) for k < i. With rows P_k = (a_k, b_k) and the scalar triple product:
+
+        dw/dq_i = w_i . sum_{k >= i} c1_k + v_i . sum_{k < i} c2_k,
+        c1_k = v_k x a_k + w_k x b_k,  c2_k = a_k x w_k,
+
+    a reversed cumulative sum and an exclusive prefix sum of per-column cross products. Two
+    identities turn both into one inclusive prefix sum:
+    * sum_k c1_k = 0: sum_k v_k a_k^T and sum_k w_k b_k^T are the diagonal blocks of
+      J P = J D V diag(c) U^T S; for a row block with weight alpha > 0 its rows of J D V diag(c)
+      are those of A V_k diag(c) / alpha = U_k diag(s c) / alpha = w U_k / alpha (A V_k = U_k
+      diag(s), s_r c_r = w, w the manipulability), so the block is w U_k,block U_k,block^T: symmetric,
+      and its cross-product part vanishes (a block with weight 0 has a = 0 or b = 0 and
+      contributes nothing); hence
+      sum_{k >= i} c1_k = -sum_{k < i} c1_k;
+    * the k = i terms agree: w_i . c1_i = w_i . (v_i x a_i) = v_i . (a_i x w_i) = v_i . c2_i.
+    Hence dw/dq_i = sum_{k <= i} (v_i . c2_k - w_i . c1_k). Prismatic joints need no branch: w = 0
+    removes their terms, and the tensor formula holds for them (see `jacobian_derivative`).
+    """
+    U, s, Vt = svd
+    k = s.shape[0]
+    PT = (U[:, :k] * _cofactors(s)).dot(Vt[:k])  # U diag(c) V^T (6, n), then P^T = S (.) D:
+    if weight is not None:
+        PT *= weight
+    # Y[:, k] = (c2_k, -c1_k): every per-column cross product in one product of a constant with the
+    # column-wise outer products JP[6 r + s, k] = J[r, k] P^T[s, k].
+    JP = J.take(_OUTER_I, axis=0)
+    JP *= PT.take(_OUTER_J, axis=0)
+    Y = _GRADIENT_CROSSES.dot(JP)
+    # Inclusive prefix sums over k <= i, then dw/dq_i = v_i . Y_acc[:3, i] + w_i . Y_acc[3:, i].
+    Y_acc = np.add.accumulate(Y, axis=1)
+    Y_acc *= J
+    return _ONES6.dot(Y_acc)
+
+
+def _gradient_crosses() -> np.ndarray:
+    """(6, 36) K of `manipulability_gradient_geometric`: for column k, with o = outer(J[:, k],
+    P^T[:, k]) (6 x 6, row-major) = outer((v, w), (a, b)), K @ o.ravel() = (a x w, -(v x a + w x b))."""
+    eps = LEVI_CIVITA.reshape(3, 3, 3)  # eps[t, i, j]: (x cross y)_t = eps[t, i, j] x_i y_j
+    K = np.zeros((6, 6, 6))  # K[t, r, s] multiplies J[r, k] P^T[s, k]
+    K[:3, 3:, :3] = eps.transpose(0, 2, 1)  # (a x w)_t = eps[t, i, j] a_i w_j: r = 3 + j, s = i
+    K[3:, :3, :3] = -eps  # -(v x a)_t: r = i, s = j
+    K[3:, 3:, 3:] = -eps  # -(w x b)_t: r = 3 + i, s = 3 + j
+    out = K.reshape(6, 36)
+    out.setflags(write=False)
+    return out
+
+
+_GRADIENT_CROSSES = _gradient_crosses()

@@ -19,6 +19,7 @@ from twistrate.solver.jacobians import (
     jacobian_dot,
     jacobian_dot_qdot,
     manipulability_gradient,
+    manipulability_gradient_geometric,
     offset_point_jacobian,
     offset_point_jacobian_tool,
     rpy_from_rotation,
@@ -26,6 +27,7 @@ from twistrate.solver.jacobians import (
     spatial_jacobian,
 )
 from twistrate.solver.kinematics import forward, geometric_jacobian
+from twistrate.solver.load import load_arm
 
 #: Central-difference step (rad or m) and the agreement expected from it (truncation ~ h^2,
 #: rounding ~ 1e-16 / h); a second difference uses the larger step.
@@ -215,6 +217,116 @@ def test_manipulability_gradient_at_an_exact_singularity() -> None:
     J6 = jac(arm6, q6)
     assert np.linalg.svd(J6, compute_uv=False)[-2] < 1e-12
     np.testing.assert_allclose(manipulability_gradient(J6), 0.0, atol=1e-12)
+
+
+#: Task-row weights, one per row block (common practice: angular rows times a characteristic
+#: length, here 0.3 m), the same with the angular block switched off, and weights that differ within
+#: a block (the public function then takes the tensor form; see its docstring).
+BLOCK_WEIGHTS = np.array([1.0, 1.0, 1.0, 0.3, 0.3, 0.3])
+LINEAR_ONLY = np.array([1.0, 1.0, 1.0, 0.0, 0.0, 0.0])
+ROW_WEIGHTS = np.array([1.0, 0.5, 2.0, 0.3, 0.7, 1.1])
+
+
+def weighted_manipulability(arm, q: np.ndarray, S: np.ndarray, d: np.ndarray) -> float:
+    """Yoshikawa 1985: product of the singular values of S J(q) D, S (6,) and D (n,) diagonals."""
+    return float(np.prod(np.linalg.svd(jac(arm, q) * S[:, None] * d, compute_uv=False)))
+
+
+def gradient_scale(J: np.ndarray, svd, weight: np.ndarray) -> float:
+    """Magnitude of the gradient's terms: max cofactor c_r = prod_{j != r} s_j times |J| |S J D|."""
+    s = svd[1]
+    c = max(float(np.prod(np.delete(s, r))) for r in range(s.size))
+    return c * float(np.abs(J).max() * np.abs(J * weight).max()) + 1e-300
+
+
+def test_geometric_gradient_matches_the_tensor_form_with_joint_weights() -> None:
+    """The O(n) chain form (independent derivation in jacobians.manipulability_gradient_geometric)
+    against the tensor form sum_r c_r u_r^T S (dJ/dq_i) D v_r (Park, Chung & Youm 1999; Yoshikawa
+    1985) with dJ/dq checked above, for A = S J D, full and thin SVD, revolute and prismatic joints."""
+    rng = np.random.default_rng(21)
+    for arm, q, _ in arms_and_configs(48, seed=9):
+        J = jac(arm, q)
+        d = rng.uniform(0.3, 3.0, size=arm.n)
+        dJ = jacobian_derivative(J) * d  # d(S J D)/dq_i = S (dJ/dq_i) D
+        for S in (np.ones(6), BLOCK_WEIGHTS, LINEAR_ONLY):
+            weight = S[:, None] * d
+            for full in (True, False):
+                svd = np.linalg.svd(J * weight, full_matrices=full)
+                ref = manipulability_gradient(J, dJ, S, svd)
+                got = manipulability_gradient_geometric(J, svd, weight)
+                np.testing.assert_allclose(got, ref, rtol=0, atol=1e-13 * gradient_scale(J, svd, weight))
+
+
+def test_geometric_gradient_matches_finite_differences_with_joint_weights() -> None:
+    """dw/dq of w(q) = prod svd(S J(q) D) by central differences (an independent check of the
+    O(n) form), n < 6, n = 6 and n > 6, with prismatic joints mixed in."""
+    rng = np.random.default_rng(22)
+    for arm, q, _ in arms_and_configs(24, seed=10):
+        d = rng.uniform(0.3, 3.0, size=arm.n)
+        J = jac(arm, q)
+        weight = BLOCK_WEIGHTS[:, None] * d
+        g = manipulability_gradient_geometric(J, np.linalg.svd(J * weight), weight)
+        fd = np.array([(weighted_manipulability(arm, q + H * e, BLOCK_WEIGHTS, d)
+                        - weighted_manipulability(arm, q - H * e, BLOCK_WEIGHTS, d)) / (2 * H)
+                       for e in np.eye(arm.n)])
+        np.testing.assert_allclose(g, fd, atol=FD_TOL, rtol=1e-6)
+
+
+def test_gradient_with_weights_differing_within_a_block_matches_finite_differences() -> None:
+    """Row weights that differ inside the linear or angular block (the public function takes the
+    tensor form there): still the finite-difference gradient of prod svd(W J)."""
+    for arm, q, _ in arms_and_configs(16, seed=11):
+        g = manipulability_gradient(jac(arm, q), row_weights=ROW_WEIGHTS)
+        ones = np.ones(arm.n)
+        fd = np.array([(weighted_manipulability(arm, q + H * e, ROW_WEIGHTS, ones)
+                        - weighted_manipulability(arm, q - H * e, ROW_WEIGHTS, ones)) / (2 * H)
+                       for e in np.eye(arm.n)])
+        np.testing.assert_allclose(g, fd, atol=FD_TOL, rtol=1e-6)
+
+
+def test_geometric_gradient_of_the_planar_two_link_arm() -> None:
+    """Full 6-row Jacobian with the angular rows weighted 0: w = l1 l2 |sin q2| (Yoshikawa 1985), so
+    dw/dq = (0, l1 l2 cos q2 sign(sin q2)) near the stretched singularity, and at q2 = 0 exactly
+    the one-sided slope of magnitude l1 l2 (sign from the SVD), finite."""
+    arm, l1, l2 = planar_two_link(), 0.5, 0.3
+    weight = LINEAR_ONLY[:, None] * np.ones(2)
+    for q2 in (0.8, 1e-3, -1e-5, 1e-9, np.pi - 1e-6):
+        J = jac(arm, np.array([0.7, q2]))
+        g = manipulability_gradient_geometric(J, np.linalg.svd(J * weight), weight)
+        np.testing.assert_allclose(g, [0.0, l1 * l2 * np.cos(q2) * np.sign(np.sin(q2))], atol=1e-12)
+    J = jac(arm, np.array([0.4, 0.0]))
+    g = manipulability_gradient_geometric(J, np.linalg.svd(J * weight), weight)
+    np.testing.assert_allclose(np.abs(g), [0.0, l1 * l2], atol=1e-12)
+
+
+def test_geometric_gradient_at_exact_singularities_of_a_six_joint_arm() -> None:
+    """Own branch (jacobians.manipulability_gradient docstring). bench6 with the wrist bend at 0
+    (spherical wrist singularity, common practice): one zero singular value, w = 0 has a kink, and
+    the value is a slope along which w grows both ways, to first order by h |g|^2 (w = |f| for a
+    smooth f there). The spherical-wrist arm stretched and straight up has two zero singular values:
+    w is of second order and the gradient is 0. Joint weights set in both."""
+    d6 = np.array([1.0, 0.5, 2.0, 1.5, 0.8, 1.2])
+    weight = BLOCK_WEIGHTS[:, None] * d6
+    arm = load_arm("bench6")
+    q = np.array(arm.q_home, dtype=float)
+    q[4] = 0.0
+    J = jac(arm, q)
+    svd = np.linalg.svd(J * weight)
+    assert svd[1][-1] < 1e-12 * svd[1][0]
+    g = manipulability_gradient_geometric(J, svd, weight)
+    assert np.all(np.isfinite(g)) and g @ g > 1e-6
+    np.testing.assert_allclose(g, manipulability_gradient(J, jacobian_derivative(J) * d6, BLOCK_WEIGHTS, svd),
+                               atol=1e-13 * gradient_scale(J, svd, weight))
+    h = 1e-7 / np.sqrt(g @ g)
+    for sign in (1.0, -1.0):
+        rise = weighted_manipulability(arm, q + sign * h * g, BLOCK_WEIGHTS, d6) - weighted_manipulability(
+            arm, q, BLOCK_WEIGHTS, d6)
+        np.testing.assert_allclose(rise / h, g @ g, rtol=1e-4)
+    arm6 = dh_arm(SPHERICAL_WRIST_ROWS, "standard", name="wrist6")
+    J6 = jac(arm6, np.array([0.3, np.pi / 2, np.pi / 2, 0.4, 0.7, -0.5]))
+    svd6 = np.linalg.svd(J6 * weight)
+    assert svd6[1][-2] < 1e-12
+    np.testing.assert_allclose(manipulability_gradient_geometric(J6, svd6, weight), 0.0, atol=1e-12)
 
 
 #: Anthropomorphic arm with a spherical wrist (invented lengths, DH standard), as in

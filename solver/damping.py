@@ -87,7 +87,7 @@ def task_rates(
     lam = damping_factor(s, options)
     if rank < s.shape[0]:
         s = s[:rank]
-    coef = x_w @ (U if rank == U.shape[1] else U[:, :rank])
+    coef = x_w.dot(U if rank == U.shape[1] else U[:, :rank])
     if lam > 0.0:
         g = s * s
         g += lam * lam
@@ -95,7 +95,7 @@ def task_rates(
         coef /= g
     else:
         coef /= s
-    return coef @ Vh[:rank], lam
+    return coef.dot(Vh[:rank]), lam
 
 
 def _selective(

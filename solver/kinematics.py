@@ -26,6 +26,12 @@ LEVI_CIVITA = np.array([
     [0, 1, 0, -1, 0, 0, 0, 0, 0],
 ])
 LEVI_CIVITA.setflags(write=False)
+#: Row 3 a + b of the stacked outer products of two (3, n) arrays x, y is x[a] * y[b]:
+#: x.take(_OUTER3_A, axis=0) * y.take(_OUTER3_B, axis=0) (so LEVI_CIVITA @ it is the column-wise x cross y).
+_OUTER3_A = np.repeat(np.arange(3), 3)
+_OUTER3_B = np.tile(np.arange(3), 3)
+_OUTER3_A.setflags(write=False)
+_OUTER3_B.setflags(write=False)
 
 
 @dataclass(frozen=True, eq=False, init=False)
@@ -112,15 +118,19 @@ def geometric_jacobian(arm: Arm, frames: Frames) -> np.ndarray:
     column [z; 0].
     """
     T = frames.T_base_axis
-    n = len(T)
-    z = T[:, :3, 2].T  # (3, n) axes
-    d = (frames.T_base_tool[:3, 3] - T[:, :3, 3]).T  # (3, n) p_e - p_i
-    J = np.empty((6, n))
-    np.matmul(LEVI_CIVITA, (z[:, None, :] * d[None, :, :]).reshape(9, n), out=J[:3])
-    J[3:] = z
+    J = np.empty((6, len(T)))
+    z = J[3:]
+    z[...] = T[:, :3, 2].T  # (3, n) axes
+    d = frames.T_base_tool[:3, 3:] - T[:, :3, 3].T  # (3, n) p_e - p_i
+    # Column-wise cross products z_i x d_i: Levi-Civita times the stacked outer products
+    # outer(z_i, d_i) (row 3 a + b holds z[a] d[b]); .dot is the cheapest numpy product call.
+    zd = z.take(_OUTER3_A, axis=0)
+    zd *= d.take(_OUTER3_B, axis=0)
+    LEVI_CIVITA.dot(zd, out=J[:3])
     if not arm.all_revolute:
+        z_prismatic = z * arm.prismatic_float  # taken before the mask clears z (a view of J[3:])
         J *= arm.jacobian_column_mask
-        J[:3] += z * arm.prismatic_float
+        J[:3] += z_prismatic
     return J
 
 

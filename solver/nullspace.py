@@ -84,9 +84,9 @@ def project(Vh: np.ndarray, rank: int, y: np.ndarray) -> np.ndarray:
     """(I - A+ A) y for A with full SVD right factor Vh (n, n) and numerical rank `rank`; y : (n,)."""
     if Vh.shape[0] - rank == 1:  # one null direction (a 7-joint arm): a dot and a scaling
         v = Vh[rank]
-        return (v @ y) * v
+        return v.dot(y) * v
     Vn = Vh[rank:]
-    return (Vn @ y) @ Vn
+    return Vn.dot(y).dot(Vn)
 
 
 def projector(Vh: np.ndarray, rank: int) -> np.ndarray:

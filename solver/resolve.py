@@ -9,8 +9,8 @@ One call of `resolve` per tick (contract: the data types and the signature are f
    minimising q_dot^T W q_dot is minimising |y|^2 for q_dot = D y);
 4. one full SVD of A (`twistrate.solver.svd`), reused for everything below and returned;
 5. task rates by the damping policy (`twistrate.solver.damping`), null-space objectives through the
-   exact projector (`twistrate.solver.nullspace`, plus the manipulability gradient of
-   `twistrate.solver.jacobians`, evaluated with the same SVD);
+   exact projector (`twistrate.solver.nullspace`, plus the O(n) manipulability gradient of
+   `twistrate.solver.jacobians`, evaluated with the same SVD and the same A);
 6. hard limits (`twistrate.solver.limits`): if the rates break a bound, saturation in the null space
    with task scaling.
 
@@ -43,7 +43,7 @@ import numpy as np
 from twistrate.solver.arm import Arm
 from twistrate.solver.damping import task_rates
 from twistrate.solver.errors import ConfigError, InputError, field_error
-from twistrate.solver.jacobians import jacobian_derivative, manipulability_gradient
+from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
 from twistrate.solver.limits import (
     LIMIT_ACCELERATION,
@@ -161,7 +161,10 @@ class _Plan:
 
     task_scale : (6,) S = (1, 1, 1, L, L, L). col_scale : (n,) D = W^-1/2, or None for W = I.
     weight : (6, n) multiplier with A = J * weight.
-    objective : the affine null-space objectives, or None. manipulability_gain : 1/s.
+    objective : the affine null-space objectives, or None.
+    manipulability_scale : the objective's factor on dw/dq in the weighted coordinates: the gain,
+        times D when joint weights are set (y_0 = D q_dot_0 with q_dot_0 = gain * dw/dq); None
+        when the gain is 0 (the gradient is then skipped).
     bounds : rate-bound constants, or None when limits are not enforced.
     """
 
@@ -171,7 +174,7 @@ class _Plan:
     col_scale: np.ndarray | None
     weight: np.ndarray
     objective: LinearObjective | None
-    manipulability_gain: float
+    manipulability_scale: float | np.ndarray | None
     bounds: BoundPlan | None
 
 
@@ -221,8 +224,9 @@ def _prepare(arm: Arm, options: SolverOptions, period: float) -> _Plan:
     posture = arm.q_home if options.posture is None else _vector("posture", options.posture, n, False)
     objective = linear_objective(arm, options.limit_gain, options.posture_gain, posture, d)
     bounds = plan_bounds(arm, float(period)) if options.enforce_limits else None
-    return _Plan(arm, float(period), task_scale, col_scale, weight, objective,
-                 float(options.manipulability_gain), bounds)
+    gain = float(options.manipulability_gain)
+    manipulability_scale = None if gain == 0.0 else gain if col_scale is None else gain * col_scale
+    return _Plan(arm, float(period), task_scale, col_scale, weight, objective, manipulability_scale, bounds)
 
 
 def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
@@ -328,9 +332,10 @@ def _plan(arm: Arm, options: SolverOptions, period: float) -> _Plan:
 
 
 def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
-    ok = np.isfinite(q)
-    ok2 = np.isfinite(qd_prev)
-    if not (ok[ok.argmin()] and ok2[ok2.argmin()]):  # argmin finds a False, cheaper than .all()
+    # Fast test: nan and inf propagate into the sums of squares. Huge finite values can overflow
+    # them to inf too; only then the exact element test runs (and passes).
+    if not math.isfinite(q.dot(q) + qd_prev.dot(qd_prev)) and not (
+            np.isfinite(q).all() and np.isfinite(qd_prev).all()):
         _raise_non_finite(q, qd_prev, twist)
 
 
@@ -345,8 +350,7 @@ def _rates(
 ) -> tuple[Resolution, int]:
     """Steps 2-6 of the module docstring, from forward kinematics and J at q."""
     x = _twist_base(twist, frames.T_base_tool)
-    ok = np.isfinite(x)
-    if not ok[ok.argmin()]:
+    if not math.isfinite(x.dot(x)) and not np.isfinite(x).all():  # as in _check_states
         _raise_non_finite(q, qd_prev, twist)
 
     A = J * plan.weight
@@ -361,10 +365,14 @@ def _rates(
     # Null-space objectives (weighted coordinates), projected with the exact projector.
     objective = plan.objective
     y0 = None if objective is None else objective.c0 - objective.c1 * q
-    if plan.manipulability_gain != 0.0:
-        g = _manipulability_gradient(J, U, s, Vh, plan)
-        g *= plan.manipulability_gain if plan.col_scale is None else plan.manipulability_gain * plan.col_scale
-        y0 = g if y0 is None else y0 + g
+    if plan.manipulability_scale is not None:
+        # dw/dq of the manipulability of A (Yoshikawa 1985), O(n) from J and the tick's SVD of A.
+        g = manipulability_gradient_geometric(J, (U, s, Vh), plan.weight)
+        g *= plan.manipulability_scale
+        if y0 is None:
+            y0 = g
+        else:
+            y0 += g  # y0 is this tick's own array
     if y0 is not None and rank < n:
         y_null = project(Vh, rank, y0)
         y = y_task + y_null
@@ -391,7 +399,7 @@ def _rates(
     resolution = Resolution(
         qd=qd,
         twist_desired=x,
-        twist_achieved=J @ qd,
+        twist_achieved=J.dot(qd),
         scale=scale,
         damping=lam,
         limits_active=bits,
@@ -472,15 +480,3 @@ def _finite_fallback(plan: _Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[n
     qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
     return qd, 0.0, active_bits(bounds, qd, np.ones(n, dtype=bool))
 
-
-def _manipulability_gradient(
-    J: np.ndarray, U: np.ndarray, s: np.ndarray, Vh: np.ndarray, plan: _Plan
-) -> np.ndarray:
-    """(n,) gradient dw/dq of the manipulability w of the weighted Jacobian A = S J D (Yoshikawa
-    1985), from the tick's SVD of A (`twistrate.solver.jacobians.manipulability_gradient`; with
-    joint weights, dA/dq_i = S (dJ/dq_i) D, so the derivative tensor's columns are scaled by D).
-    Units of w (m^k for k singular values) per rad (or per m)."""
-    if plan.col_scale is None:
-        return manipulability_gradient(J, row_weights=plan.task_scale, svd=(U, s, Vh))
-    dJ = jacobian_derivative(J) * plan.col_scale
-    return manipulability_gradient(J, dJ=dJ, row_weights=plan.task_scale, svd=(U, s, Vh))

@@ -25,6 +25,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 from twistrate.service.codec import DEFAULT_CONTROL, DEFAULT_INTAKE, DEFAULT_OUTPUT, LEASE_MS_MAX
 from twistrate.service.security import check_endpoints, load_allow_list, load_secret_keypair
 from twistrate.service.state import E_BAD_ARGUMENT
+from twistrate.service.tick import DEFAULT_RT_PRIORITY
 from twistrate.solver.errors import ConfigError, ControlError, field_error
 from twistrate.solver.options import DAMPING_POLICIES, HealthThresholds, SolverOptions
 
@@ -42,6 +43,8 @@ REDUCED_SPEED_MAX = 0.25
 DEFAULT_TICK_HZ = 500.0
 TICK_HZ_MIN = 10.0
 TICK_HZ_MAX = 2000.0
+#: Highest SCHED_FIFO priority on Linux (sched(7)).
+RT_PRIORITY_MAX = 99
 
 _STRICT = ConfigDict(strict=True, extra="forbid", frozen=True, allow_inf_nan=False)
 
@@ -76,10 +79,13 @@ class ArmSection(_Section):
 
 
 class TickSection(_Section):
-    """rate_hz : tick rate. health_hz : health publish rate (at most the tick rate)."""
+    """rate_hz : tick rate. health_hz : health publish rate (at most the tick rate).
+    realtime_priority : SCHED_FIFO priority of the tick thread, used when the operating system permits
+    it (else normal scheduling, with one logged notice); 0 disables real-time scheduling."""
 
     rate_hz: Annotated[float, Field(ge=TICK_HZ_MIN, le=TICK_HZ_MAX)] = DEFAULT_TICK_HZ
     health_hz: Annotated[float, Field(gt=0.0, le=TICK_HZ_MAX)] = 50.0
+    realtime_priority: Annotated[int, Field(ge=0, le=RT_PRIORITY_MAX)] = DEFAULT_RT_PRIORITY
 
 
 class EndpointsSection(_Section):

@@ -36,7 +36,17 @@ from twistrate.service import state as st
 from twistrate.service.config import ServiceConfig, Tunables
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.simarm import SimArm
-from twistrate.service.tick import LatencyHistogram, Ticker, make_realtime, set_timer_slack
+from twistrate.service.tick import (
+    LatencyHistogram,
+    Scheduling,
+    Ticker,
+    guard_runaway,
+    is_realtime,
+    make_realtime,
+    probe_realtime,
+    rt_throttling,
+    set_timer_slack,
+)
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import ControlError, InputError, WireError
 from twistrate.solver.health import NORMAL, assess, next_state
@@ -101,14 +111,15 @@ class Service:
 
     config : validated ServiceConfig. arm : the arm (default: config.load_arm()).
     context : ZeroMQ context (default: a new one, terminated by close()).
-    realtime_priority : SCHED_FIFO priority of the tick thread when permitted (0: normal scheduling).
+    realtime_priority : SCHED_FIFO priority of the tick thread when permitted (0: normal scheduling;
+        None: the configured [tick] realtime_priority). Refused: normal scheduling, one logged warning.
     switch_interval_s : sys.setswitchinterval applied at start (None: leave Python's).
     recorder : a Recorder (push() every tick on the tick thread), or None.
     manage_gc : take over garbage collection (see GC_YOUNG_EVERY); restored by close().
     """
 
     def __init__(self, config: ServiceConfig, arm: Arm | None = None, context: zmq.Context | None = None,
-                 realtime_priority: int = 0, switch_interval_s: float | None = SWITCH_INTERVAL_S,
+                 realtime_priority: int | None = None, switch_interval_s: float | None = SWITCH_INTERVAL_S,
                  recorder: Any = None, manage_gc: bool = True) -> None:
         self.config = config
         self.arm = config.load_arm() if arm is None else arm
@@ -129,7 +140,8 @@ class Service:
                                    np.array(posture)) if config.simulation.enabled else None
         self.twist_timeout_ns = int(config.watchdog.twist_timeout_ms * 1e6)
         self.joints_timeout_ns = int(config.watchdog.joints_timeout_ms * 1e6)
-        self.realtime_priority = realtime_priority
+        self.realtime_priority = (config.tick.realtime_priority if realtime_priority is None
+                                  else realtime_priority)
         self.switch_interval_s = switch_interval_s
         self.recorder = recorder
         self.manage_gc = manage_gc
@@ -137,13 +149,6 @@ class Service:
         self._gc_count = 0
         self._own_context = context is None
         self.context = context or zmq.Context()
-        if realtime_priority > 0 and context is None:
-            # The ZeroMQ I/O thread moves every message in and out: with a SCHED_FIFO tick it gets the
-            # same policy (one level below), or it queues behind normal processes for the CPU.
-            # libzmq applies this when it starts the thread, and ignores it when not permitted.
-            with contextlib.suppress(zmq.ZMQError, AttributeError):
-                self.context.set(zmq.THREAD_SCHED_POLICY, os.SCHED_FIFO)
-                self.context.set(zmq.THREAD_PRIORITY, max(1, realtime_priority - 1))
         self._rlog = RateLimitedLog(log, config.logging.max_per_s)
         self._q_lo = np.where(np.isfinite(arm.q_min), arm.q_min - JOINT_RANGE_TOLERANCE, -np.inf)
         self._q_hi = np.where(np.isfinite(arm.q_max), arm.q_max + JOINT_RANGE_TOLERANCE, np.inf)
@@ -197,7 +202,7 @@ class Service:
         self._ready = threading.Event()
         self._done = threading.Event()
         self._start_error: BaseException | None = None
-        self.scheduling = ""
+        self.scheduling = Scheduling(False, 0, self.realtime_priority, "not started")
         self._auth = None
         self._intake: zmq.Socket | None = None
         self._output: zmq.Socket | None = None
@@ -213,6 +218,15 @@ class Service:
         are bound. Raises the bind error (zmq.ZMQError) or ConfigError of the thread."""
         if self.switch_interval_s is not None:
             sys.setswitchinterval(self.switch_interval_s)
+        prio = self.realtime_priority
+        if prio > 0 and self._own_context and probe_realtime(prio).realtime:
+            # The ZeroMQ I/O thread moves every message in and out: with a SCHED_FIFO tick it gets the
+            # same policy (one level below), or it queues behind normal processes for the CPU. libzmq
+            # applies this when it starts the thread (at the first socket) and aborts the process when
+            # the operating system refuses, hence the probe on a throwaway thread first.
+            with contextlib.suppress(zmq.ZMQError, AttributeError):
+                self.context.set(zmq.THREAD_SCHED_POLICY, os.SCHED_FIFO)
+                self.context.set(zmq.THREAD_PRIORITY, max(1, prio - 1))
         if self.manage_gc:
             gc.collect()
             gc.freeze()
@@ -330,14 +344,23 @@ class Service:
             self._ready.set()
             return
         set_timer_slack(1_000)
-        self.scheduling = make_realtime(self.realtime_priority)
+        self.scheduling = sched = make_realtime(self.realtime_priority)
+        if sched.realtime:
+            guard_runaway()
+            if rt_throttling() is False:
+                log.warning("kernel real-time throttling is off (sched_rt_runtime_us = -1): the tick still "
+                            "sleeps every period, but nothing else reserves CPU time for normal processes")
+        elif sched.requested > 0:
+            log.warning("real-time scheduling not available, the tick runs with %s; the timing targets "
+                        "assume SCHED_FIFO (root, CAP_SYS_NICE or `ulimit -r`; docs/operation.md)",
+                        sched.text)
         ticker = self.ticker
         ticker.start()
         self.start_ns = ticker.deadline + self.period_ns
         if self.sim is not None:
             self.q_rx_ns = ticker.deadline
         self._ready.set()
-        log.info("tick %g Hz on %s (%s); intake %s, output %s", self.rate_hz, self.arm.name, self.scheduling,
+        log.info("tick %g Hz on %s (%s); intake %s, output %s", self.rate_hz, self.arm.name, sched.text,
                  self.config.endpoints.intake, self.config.endpoints.output)
         shutdown_deadline = None
         clock = time.monotonic_ns
@@ -778,6 +801,7 @@ class Service:
             "position": [0.0] * self.n if q is None else q.tolist(),
             "twist_age_ms": None if self.twist is None else (now - self.twist_rx_ns) / 1e6,
             "joints_age_ms": None if q is None or self.q_rx_ns == 0 else (now - self.q_rx_ns) / 1e6,
+            "realtime": is_realtime(),  # the tick thread's own policy (status runs on it)
         }
 
     # -- read-only views for other threads ----------------------------------------------------------

@@ -1,6 +1,7 @@
 """`twistrate serve`: run the streaming service for one arm until SIGINT/SIGTERM.
 
-The tick runs on its own thread (service/runtime.py); the control plane runs here, on the main
+The tick runs on its own thread (service/runtime.py), with SCHED_FIFO when the operating system
+permits it ([tick] realtime_priority, or --rt-priority); the control plane runs here, on the main
 thread's uvloop loop, which also receives the signals. On SIGINT/SIGTERM the tick ramps the rates
 to zero within the acceleration limits, publishes a final zero command and stops; then the control
 socket closes and the process exits 0.
@@ -20,7 +21,7 @@ import uvloop
 import zmq
 import zmq.asyncio
 
-from twistrate.service.config import ServiceConfig, load_config
+from twistrate.service.config import RT_PRIORITY_MAX, ServiceConfig, load_config
 from twistrate.service.control import ControlServer
 from twistrate.service.recorder import Recorder
 from twistrate.service.runtime import Service
@@ -71,9 +72,14 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate serve", description=__doc__.splitlines()[0])
     parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
     parser.add_argument("--record", metavar="PATH", help="record every tick to PATH (overrides [recorder])")
-    parser.add_argument("--rt-priority", type=int, default=0, metavar="N",
-                        help="SCHED_FIFO priority 1-99 for the tick thread when permitted (default 0: off)")
+    parser.add_argument("--rt-priority", type=int, default=None, metavar="N",
+                        help="SCHED_FIFO priority 1-99 of the tick thread, used when the operating system "
+                             "permits it; 0: normal scheduling (default: [tick] realtime_priority, 10)")
     args = parser.parse_args(argv)
+    if args.rt_priority is not None and not 0 <= args.rt_priority <= RT_PRIORITY_MAX:
+        print(f"twistrate serve: --rt-priority: got {args.rt_priority}; accepted: 0 (off) to "
+              f"{RT_PRIORITY_MAX}", file=sys.stderr)
+        return 2
     try:
         config = load_config(args.config)
     except TwistrateError as exc:

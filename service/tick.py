@@ -12,16 +12,24 @@ Policy (documented in docs/operation.md):
   that passed without a tick is counted as one overrun, and the schedule re-anchors to the next
   future slot of the same grid (no burst of catch-up ticks). Overruns are reported in status and
   health; nothing is absorbed silently.
-* Optional real-time scheduling: SCHED_FIFO for the tick thread when the process is permitted,
-  and a 1 µs timer slack (prctl) so time.sleep wakes closer to its target.
+* The thread gives the CPU up every period: each wait() sleeps at least MIN_SLEEP_NS, even when
+  the tick is late, so an overrunning tick cannot hold a core (with SCHED_FIFO, nothing of lower
+  priority would run on it otherwise).
+* Real-time scheduling when permitted: SCHED_FIFO for the tick thread (make_realtime; refusal is not
+  an error), a 1 µs timer slack (prctl) so time.sleep wakes closer to its target, and a runaway
+  guard (RLIMIT_RTTIME) that ends the process if a real-time thread ever runs RT_RUNAWAY_LIMIT_US
+  without blocking once (the tick blocks every period, so only a stuck tick reaches it).
 """
 
 from __future__ import annotations
 
 import ctypes
 import os
+import threading
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 
@@ -41,6 +49,22 @@ HIST_BIN_NS = 1_000
 HIST_BINS = 50_000
 #: prctl option number of PR_SET_TIMERSLACK (linux/prctl.h).
 PR_SET_TIMERSLACK = 29
+#: Every Ticker.wait() sleeps at least this long, ns, late or not: a tick whose work overruns still
+#: gives its core up once per period (5 % of a 1 kHz period).
+MIN_SLEEP_NS = 50_000
+#: Default SCHED_FIFO priority of the tick thread ([tick] realtime_priority). Modest: below the
+#: kernel's threaded interrupt handlers (priority 50) and its watchdog threads (99) (common practice:
+#: Linux defaults, `ps -eLo rtprio,comm`), above every normally scheduled process.
+DEFAULT_RT_PRIORITY = 10
+#: Runaway guard, µs: RLIMIT_RTTIME (Linux, setrlimit(2)) is the CPU time a real-time thread may use
+#: without one blocking system call; beyond it the kernel kills the process (soft = hard: SIGKILL).
+#: The tick sleeps every period, so only a tick stuck in one call for a whole second reaches it; the
+#: robot driver's own command watchdog then stops the arm.
+RT_RUNAWAY_LIMIT_US = 1_000_000
+#: Kernel real-time throttling (sched-rt-group): real-time threads get at most sched_rt_runtime_us of
+#: every sched_rt_period_us on each CPU (defaults 950000 of 1000000: 5 % stays for normal threads);
+#: -1 disables it.
+RT_RUNTIME_FILE = Path("/proc/sys/kernel/sched_rt_runtime_us")
 
 
 class LatencyHistogram:
@@ -118,6 +142,8 @@ class Ticker:
         self.deadline = 0
         self.ticks = 0
         self.overruns = 0
+        #: waits that slept MIN_SLEEP_NS past the point where the spin should have started
+        self.forced_sleeps = 0
         self.lateness = LatencyHistogram()
         self.adaptive = adaptive
         self._overshoot = np.zeros(SPIN_WINDOW, dtype=np.int64)
@@ -140,6 +166,9 @@ class Ticker:
         prepare : called once with the deadline (ns), about `prepare_ns` before it (or at once when
             less time is left), for work ahead of the tick (draining the intake, kinematics at the
             newest joint state); then the wait continues to the deadline as usual.
+
+        Every call sleeps at least MIN_SLEEP_NS in all (the prepare sleep counts); when less time is
+        left before the spin margin, it sleeps MIN_SLEEP_NS anyway and wakes late (forced_sleeps).
         """
         clock = self._clock
         period = self.period_ns
@@ -150,17 +179,25 @@ class Ticker:
             missed = (now - d) // period + 1
             self.overruns += missed
             d += missed * period
+        slept = 0
         if prepare is not None:
             early = d - now - prepare_ns
             if early > 0:
                 self._sleep(early / 1e9)
+                slept = early
             prepare(d)
             now = clock()
         remaining = d - now - self.spin_ns
-        if remaining > 0:
+        short = MIN_SLEEP_NS - slept  # still owed this period
+        if remaining > 0 and remaining >= short:
             self._sleep(remaining / 1e9)
             if self.adaptive:
                 self._adapt(clock() - (d - self.spin_ns))
+        elif short > 0:
+            # Late or nearly (the work ran long): sleep anyway, so the thread gives its core up once per
+            # period whatever the work takes. The lateness this costs is recorded like any other.
+            self._sleep(short / 1e9)
+            self.forced_sleeps += 1
         while clock() < d:
             pass
         self.lateness.add(clock() - d)
@@ -187,19 +224,76 @@ def set_timer_slack(ns: int = 1_000) -> bool:
         return False
 
 
-def make_realtime(priority: int) -> str:
-    """Try SCHED_FIFO at `priority` (1..99) for the calling thread; return what happened, for logs.
+@dataclass(frozen=True)
+class Scheduling:
+    """How a thread is scheduled. realtime : SCHED_FIFO applied; priority : its priority (0 when
+    not real-time); requested : the priority asked for (0: none); text : one line for logs."""
 
-    priority <= 0 leaves the normal scheduler. Refusal (no permission, no support) is not an error.
+    realtime: bool
+    priority: int
+    requested: int
+    text: str
+
+
+def make_realtime(priority: int) -> Scheduling:
+    """Try SCHED_FIFO at `priority` (1..99, clamped to the platform's maximum) for the calling thread.
+
+    priority <= 0 leaves the normal scheduler. Refusal (EPERM without root, CAP_SYS_NICE or an
+    RLIMIT_RTPRIO allowance; no support) is not an error: the result says what happened. The policy
+    carries SCHED_RESET_ON_FORK, so a process started from this thread is scheduled normally.
     """
     if priority <= 0:
-        return "normal scheduling (real-time not requested)"
+        return Scheduling(False, 0, 0, "normal scheduling (real-time not requested)")
     if not hasattr(os, "sched_setscheduler"):
-        return "normal scheduling (no SCHED_FIFO on this platform)"
+        return Scheduling(False, 0, priority, "normal scheduling (no SCHED_FIFO on this platform)")
     try:
         top = os.sched_get_priority_max(os.SCHED_FIFO)
         prio = max(1, min(int(priority), top))
-        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
-    except (OSError, PermissionError) as exc:
-        return f"normal scheduling (SCHED_FIFO refused: {exc.strerror or exc})"
-    return f"SCHED_FIFO priority {prio}"
+        os.sched_setscheduler(0, os.SCHED_FIFO | getattr(os, "SCHED_RESET_ON_FORK", 0), os.sched_param(prio))
+    except OSError as exc:
+        why = exc.strerror or str(exc)
+        return Scheduling(False, 0, priority, f"normal scheduling (SCHED_FIFO refused: {why})")
+    return Scheduling(True, prio, priority, f"SCHED_FIFO priority {prio}")
+
+
+def probe_realtime(priority: int) -> Scheduling:
+    """make_realtime(priority) on a short-lived thread: whether this process may use SCHED_FIFO,
+    without changing the caller's scheduling."""
+    out: list[Scheduling] = []
+    probe = threading.Thread(target=lambda: out.append(make_realtime(priority)), name="twistrate-rt-probe")
+    probe.start()
+    probe.join()
+    return out[0]
+
+
+def is_realtime() -> bool:
+    """True when the calling thread runs under SCHED_FIFO or SCHED_RR."""
+    try:
+        policy = os.sched_getscheduler(0) & ~getattr(os, "SCHED_RESET_ON_FORK", 0)
+    except (OSError, AttributeError):
+        return False
+    return policy in (getattr(os, "SCHED_FIFO", -1), getattr(os, "SCHED_RR", -1))
+
+
+def guard_runaway(limit_us: int = RT_RUNAWAY_LIMIT_US) -> bool:
+    """Bound RLIMIT_RTTIME to limit_us (soft = hard; a lower limit already in force is kept); True when
+    a limit is in force afterwards. Process-wide (inherited by child processes), it concerns only
+    real-time threads, and is left in place."""
+    try:
+        import resource
+
+        soft, hard = resource.getrlimit(resource.RLIMIT_RTTIME)
+        limit = limit_us if hard == resource.RLIM_INFINITY else min(limit_us, hard)
+        if soft == resource.RLIM_INFINITY or soft > limit:
+            resource.setrlimit(resource.RLIMIT_RTTIME, (limit, limit))
+        return True
+    except (ImportError, AttributeError, OSError, ValueError):
+        return False
+
+
+def rt_throttling() -> bool | None:
+    """Whether the kernel's real-time throttling is on (RT_RUNTIME_FILE not -1); None when unknown."""
+    try:
+        return int(RT_RUNTIME_FILE.read_text().split()[0]) >= 0
+    except (OSError, ValueError, IndexError):
+        return None

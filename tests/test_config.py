@@ -85,6 +85,15 @@ def test_tick_rates_accepted(tmp_path, rate):
     assert math.isclose(config.tick_period_s, 1.0 / rate)
 
 
+def test_realtime_priority_defaults_to_a_modest_fifo_level_and_zero_disables(tmp_path):
+    # sched(7): SCHED_FIFO priorities run 1 (low) to 99 (high); the kernel's threaded interrupt handlers
+    # default to 50 (common practice), so a modest default stays below them
+    default = _load(tmp_path, "").tick.realtime_priority
+    assert 1 <= default < 50
+    assert _load(tmp_path, "[tick]\nrealtime_priority = 0\n").tick.realtime_priority == 0
+    assert _load(tmp_path, "[tick]\nrealtime_priority = 99\n").tick.realtime_priority == 99
+
+
 def test_degrees_where_the_key_says_so(tmp_path):
     config = _load(tmp_path, "[speed]\nangular_max_deg_s = 90\n"
                              "[solver]\nposture_deg = [0, 30, 0, -90, 0, 60, 0]\n"
@@ -127,6 +136,9 @@ def test_unknown_key_names_the_key_and_the_known_ones(tmp_path):
     ("[sockets]\nsend_hwm = 1.5\n", "sockets.send_hwm", "1.5", "integer"),
     ("[simulation]\nlag_s = -0.1\n", "simulation.lag_s", "-0.1", ">= 0"),
     ("[speed]\nangular_max = 30\n", "speed.angular_max", "30", "<= 20"),
+    ("[tick]\nrealtime_priority = 100\n", "tick.realtime_priority", "100", "<= 99"),
+    ("[tick]\nrealtime_priority = -1\n", "tick.realtime_priority", "-1", ">= 0"),
+    ("[tick]\nrealtime_priority = 10.0\n", "tick.realtime_priority", "10.0", "integer"),
 ])
 def test_bad_value_names_key_value_and_accepted(tmp_path, text, key, value, accepted):
     message = _error(tmp_path, text)

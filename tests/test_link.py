@@ -72,7 +72,7 @@ class Peer:
             return {"mode": "disabled", "health": "normal", "tick": 1, "tick_hz": 500.0, "arm": "reach7",
                     "n": N, "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                     "reduced_speed": False, "position": [0.0] * N, "twist_age_ms": None,
-                    "joints_age_ms": None}
+                    "joints_age_ms": None, "realtime": False}
         return {}
 
     def _answer(self, frames: list[bytes]) -> None:

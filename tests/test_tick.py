@@ -1,18 +1,29 @@
-"""Tick timing logic with a simulated clock: absolute deadlines, overrun counting and re-anchoring,
-lateness histogram percentiles (against numpy.percentile as the reference)."""
+"""Tick timing logic with a simulated clock: absolute deadlines, overrun counting and re-anchoring, a
+sleep in every period, lateness histogram percentiles (against numpy.percentile as the reference);
+real-time scheduling, its fallback and the runaway guard."""
 
 from __future__ import annotations
+
+import errno
+import os
+import signal
+import subprocess
+import sys
 
 import numpy as np
 import pytest
 
 from twistrate.service.tick import (
+    DEFAULT_RT_PRIORITY,
+    MIN_SLEEP_NS,
     SPIN_MIN_NS,
     SPIN_PAD_NS,
     SPIN_WINDOW,
     LatencyHistogram,
     Ticker,
+    is_realtime,
     make_realtime,
+    probe_realtime,
 )
 
 
@@ -139,8 +150,114 @@ def test_histogram_overflow_reports_the_max():
     assert h.percentile_us(99.0) == 0.0 and h.count == 0
 
 
+def test_every_wait_sleeps_even_when_the_work_overruns():
+    # A runaway tick (work longer than the period) must still give the CPU up once per period: with
+    # SCHED_FIFO nothing of lower priority runs on its core otherwise (sched(7), common practice).
+    clk = FakeClock(read_cost=100, oversleep=10_000)
+    period = 1_000_000
+    tk = Ticker(period, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    d = tk.wait()
+    for _ in range(20):
+        # the work overran and ended just before a grid slot: no time left to sleep before that deadline
+        clk.t = d + 2 * period - 30_000
+        before = len(clk.sleeps)
+        d = tk.wait(lambda d: None, prepare_ns=450_000)
+        assert sum(clk.sleeps[before:]) >= MIN_SLEEP_NS / 1e9 - 1e-12
+    assert tk.overruns == 20 and tk.forced_sleeps == 20
+
+
+def test_a_tick_that_leaves_no_time_sleeps_and_is_recorded_late():
+    clk = FakeClock(read_cost=100, oversleep=10_000)
+    period = 1_000_000
+    tk = Ticker(period, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    d = tk.wait()
+    clk.t = d + period - 60_000  # the work ended 60 us before the next deadline: inside the spin margin
+    d2 = tk.wait()
+    assert d2 == d + period and tk.overruns == 0 and tk.forced_sleeps == 1
+    assert clk.sleeps[-1] == pytest.approx(MIN_SLEEP_NS / 1e9)
+    assert tk.lateness.max_ns >= MIN_SLEEP_NS + clk.oversleep - 60_000  # the cost is visible as lateness
+
+
+def test_a_long_preparation_after_a_full_sleep_needs_no_second_sleep():
+    clk = FakeClock(read_cost=100, oversleep=10_000)
+    period = 2_000_000
+    tk = Ticker(period, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+
+    def prepare(deadline):
+        clk.t = deadline + 5_000  # the preparation itself ran past the deadline
+
+    d = tk.wait(prepare, prepare_ns=700_000)
+    assert len(clk.sleeps) == 1 and clk.sleeps[0] * 1e9 >= MIN_SLEEP_NS  # the period's sleep happened
+    assert tk.forced_sleeps == 0 and tk.lateness.max_ns >= 5_000 and d == tk.deadline
+
+
+def test_on_time_ticks_do_not_force_a_sleep():
+    clk = FakeClock(read_cost=100, oversleep=10_000)
+    tk = Ticker(2_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    for _ in range(20):
+        tk.wait(lambda d: None, prepare_ns=700_000)
+        clk.t += 500_000
+    assert tk.forced_sleeps == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
+
+
 def test_realtime_not_requested_is_a_no_op():
-    assert "not requested" in make_realtime(0)
+    sched = make_realtime(0)
+    assert not sched.realtime and sched.requested == 0 and "not requested" in sched.text
+
+
+def test_realtime_refused_falls_back_to_normal_scheduling(monkeypatch):
+    def refuse(*args):
+        raise PermissionError(errno.EPERM, "Operation not permitted")
+
+    monkeypatch.setattr(os, "sched_setscheduler", refuse)
+    sched = make_realtime(10)
+    assert (sched.realtime, sched.priority, sched.requested) == (False, 0, 10)
+    assert "refused" in sched.text and "not permitted" in sched.text
+
+
+def test_probe_leaves_the_callers_scheduling_alone():
+    before = os.sched_getscheduler(0), os.sched_getparam(0).sched_priority
+    probe = probe_realtime(DEFAULT_RT_PRIORITY)
+    assert (os.sched_getscheduler(0), os.sched_getparam(0).sched_priority) == before
+    assert not is_realtime()
+    if probe.realtime:
+        assert probe.priority == DEFAULT_RT_PRIORITY
+
+
+_RUNAWAY = """
+import sys, time
+from twistrate.service.tick import guard_runaway, is_realtime, make_realtime
+assert make_realtime(5).realtime and is_realtime()
+assert guard_runaway(200_000)  # 0.2 s of real-time CPU without blocking
+print("guarded", flush=True)
+if sys.argv[1] == "sleeps":  # the tick's pattern: busy, then a sleep, every period; 0.6 s of CPU in all
+    for _ in range(1200):
+        end = time.monotonic() + 0.0005
+        while time.monotonic() < end:
+            pass
+        time.sleep(0.00005)
+    print("survived", flush=True)
+else:  # stuck: never blocks
+    while True:
+        pass
+"""
+
+
+@pytest.mark.timeout(60)
+@pytest.mark.skipif(not probe_realtime(1).realtime, reason="this process may not use SCHED_FIFO")
+def test_runaway_guard_ends_a_real_time_thread_that_never_blocks():
+    # setrlimit(2), RLIMIT_RTTIME: a real-time task that uses the limit's CPU time without a blocking
+    # system call gets SIGKILL at the hard limit; sleeping resets the count.
+    stuck = subprocess.run([sys.executable, "-c", _RUNAWAY, "stuck"], capture_output=True, text=True,
+                           timeout=30)
+    assert stuck.stdout.split() == ["guarded"] and stuck.returncode == -signal.SIGKILL
+    sleeps = subprocess.run([sys.executable, "-c", _RUNAWAY, "sleeps"], capture_output=True, text=True,
+                            timeout=30)
+    assert sleeps.stdout.split() == ["guarded", "survived"] and sleeps.returncode == 0, sleeps.stderr
 
 
 def test_bad_period_rejected():

@@ -188,7 +188,16 @@ class Service:
             "speculation_used": 0, "gc_collections": 0,
         }
         self.ticker = Ticker(self.period_ns, adaptive=True)
+        #: twist arrival at the service to the publish of the first command answering it, an upper bound:
+        #: from the last intake poll that found the queue empty before the twist was taken (see _drain)
         self.arrival_to_publish = LatencyHistogram()
+        #: the twist's send stamp (the sender's wall clock) to that publish (wall clock): end to end,
+        #: with the transport and the sender's own scheduling
+        self.send_to_publish = LatencyHistogram()
+        #: monotonic ns of the last intake poll that found no message waiting
+        self._intake_empty_ns = 0
+        #: the same as it stood before the newest accepted twist was taken: that twist arrived after it
+        self._twist_since_ns = 0
         self.tick_work = LatencyHistogram()
         self.solve_time = LatencyHistogram()
         self.deadline_to_publish = LatencyHistogram()
@@ -336,6 +345,7 @@ class Service:
     # ============================================================================================
 
     def _run(self) -> None:
+        self._intake_empty_ns = time.monotonic_ns()  # nothing can arrive before the bind
         try:
             self._open_sockets()
         except BaseException as exc:  # reported to start()
@@ -536,10 +546,19 @@ class Service:
         self._rlog.warning(reason, now, f"intake refused ({reason}): {text}")
 
     def _drain(self, now: int) -> None:
+        """Take up to MAX_DRAIN_PER_TICK waiting intake messages (now : monotonic ns, the receive time
+        the watchdogs use). Arrival bound: a message taken here was not waiting at the last poll that
+        found the queue empty (`_intake_empty_ns`, a clock reading taken just before that poll), so it
+        arrived after that instant; the service cannot see when ZeroMQ queued it."""
         sock = self._intake
         n = self.n
-        for _ in range(MAX_DRAIN_PER_TICK):
+        since = self._intake_empty_ns
+        polled = now
+        for i in range(MAX_DRAIN_PER_TICK):
+            if i:
+                polled = time.monotonic_ns()
             if not sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+                self._intake_empty_ns = polled
                 return
             frames = sock.recv_multipart()
             try:
@@ -557,6 +576,7 @@ class Service:
                 self.counts["accepted_twist"] += 1
                 self.twist = msg
                 self.twist_rx_ns = now
+                self._twist_since_ns = since
                 self._twist_unanswered = True
             else:
                 if self.sim is not None:
@@ -667,13 +687,14 @@ class Service:
 
     def _send_command(self, data: bytes, qd: np.ndarray, answers: int) -> None:
         self._output.send_multipart((codec.TOPIC_COMMAND, data))
-        published = time.time_ns()
-        self.deadline_to_publish.add(time.monotonic_ns() - self._deadline)
+        published = time.monotonic_ns()
+        self.deadline_to_publish.add(published - self._deadline)
         self._out_seq["command"] += 1
         self.counts["commands"] += 1
         if answers >= 0 and self._twist_unanswered:
             self._twist_unanswered = False
-            self.arrival_to_publish.add(published - self.twist.stamp_ns)
+            self.arrival_to_publish.add(published - self._twist_since_ns)
+            self.send_to_publish.add(time.time_ns() - self.twist.stamp_ns)
         if self.state.mode == st.SHUTDOWN and not qd.any():
             self.final_command_sent = True
 
@@ -828,7 +849,8 @@ class Service:
             out[f"rejected_{reason}"] = count
         out["rejected_total"] = sum(self.rejected.values())
         hists = (("lateness", self.ticker.lateness), ("arrival_to_publish", self.arrival_to_publish),
-                 ("tick_work", self.tick_work), ("solve", self.solve_time),
+                 ("send_to_publish", self.send_to_publish), ("tick_work", self.tick_work),
+                 ("solve", self.solve_time),
                  ("deadline_to_publish", self.deadline_to_publish))
         for name, hist in hists:
             s = hist.summary()

@@ -107,10 +107,20 @@ MAX_JOINT_VELOCITY = 100.0
 MAX_JOINTS = 32
 #: largest health measure (manipulability, singular values, damping), SI
 MAX_MEASURE = 1e9
-#: |each component| of the weakest-direction unit vector (1 plus rounding)
+#: |each component| of the weakest direction's linear part, m/s per unit weighted twist (a component
+#: of a unit vector: 1 plus rounding)
 MAX_DIRECTION = 1.0 + 1e-9
-#: joint-limit margin bound (rad or m); nil on the wire for a joint without position limits
-MAX_MARGIN = 2.0 * MAX_JOINT_POSITION
+#: smallest characteristic length L a service may be configured with, m ([solver]
+#: characteristic_length); it bounds the weakest direction's angular part below
+MIN_CHARACTERISTIC_LENGTH_M = 1e-3
+#: |each component| of the weakest direction's angular part, rad/s per unit weighted twist: a component
+#: of the unit weighted vector divided by L, so at most 1 / MIN_CHARACTERISTIC_LENGTH_M (plus rounding)
+MAX_WEAKEST_ANGULAR = MAX_DIRECTION / MIN_CHARACTERISTIC_LENGTH_M
+#: joint-limit margin as a fraction of the joint's range (twistrate.solver.health.limit_margins):
+#: min(q - q_min, q_max - q) / (q_max - q_min) is at most 1/2 (mid-range; plus rounding) and negative
+#: beyond a limit; the lower bound only refuses absurd values. nil on the wire for an unlimited joint.
+MAX_MARGIN_FRACTION = 0.5 + 1e-9
+MIN_MARGIN_FRACTION = -1e6
 #: lease durations a client may ask for, ms
 LEASE_MS_MIN = 1
 LEASE_MS_MAX = 600_000
@@ -199,11 +209,15 @@ class HealthMessage(NamedTuple):
         translational rows, rotational rows) of the task-weighted Jacobian.
     singular_values : (k,) k = min(6, n), descending, m (task-weighted).
     inverse_condition : smallest / largest singular value, in [0, 1].
-    weakest_linear, weakest_angular : (3,) the two halves of the unit left singular vector of the
-        smallest singular value, base frame (angular half in task-weighted units).
+    weakest_linear : (3,) m/s and weakest_angular : (3,) rad/s: the weakest task direction, base frame,
+        as twistrate.solver.health gives it: the left singular vector u (6,) of the smallest singular
+        value of the task-weighted Jacobian, as a twist (linear = u[:3], angular = u[3:] / L, L the
+        characteristic length), so |linear|^2 + L^2 |angular|^2 = 1; sign: the largest-magnitude
+        component of u is positive.
     damping : lambda applied, m. scale : task scaling in [0, 1].
-    limit_margin : (n,) distance to the nearer position limit, rad or m (negative: beyond it;
-        +inf for a joint without position limits, nil on the wire).
+    limit_margin : (n,) margin of each joint to its nearer position limit as a fraction of its range,
+        min(q - q_min, q_max - q) / (q_max - q_min): 0.5 mid-range, 0 on a limit, negative beyond it;
+        +inf for a joint without position limits (nil on the wire).
     rejected : {reason: count} of refused intake messages since start.
     overruns : ticks that missed their deadline since start.
     """
@@ -629,7 +643,8 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
     m["singular_values"] = sv
     m["inverse_condition"] = _enc_num(inverse_condition, "health.inverse_condition", 0.0, 1.0)
     m["weakest"] = {"linear": _finite_list(weakest_linear, "health.weakest.linear", 3, MAX_DIRECTION),
-                    "angular": _finite_list(weakest_angular, "health.weakest.angular", 3, MAX_DIRECTION)}
+                    "angular": _finite_list(weakest_angular, "health.weakest.angular", 3,
+                                            MAX_WEAKEST_ANGULAR)}
     m["damping"] = _enc_num(damping, "health.damping", 0.0, MAX_MEASURE)
     m["scale"] = _enc_num(scale, "health.scale", 0.0, 1.0)
     margins = np.asarray(limit_margin, dtype=float).reshape(-1)
@@ -639,11 +654,12 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
     for x in margins.tolist():
         if x == math.inf:
             wire_margins.append(None)
-        elif -MAX_MARGIN <= x <= MAX_MARGIN:
+        elif MIN_MARGIN_FRACTION <= x <= MAX_MARGIN_FRACTION:
             wire_margins.append(x)
         else:
             raise _bad_input("health.limit_margin", margins.tolist(),
-                             f"finite numbers within +-{MAX_MARGIN:g}, or +inf for an unlimited joint")
+                             f"fractions of the joint range in [{MIN_MARGIN_FRACTION:g}, 0.5], or +inf for "
+                             "an unlimited joint")
     m["limit_margin"] = wire_margins
     m["state"] = _enc_str(state, "health.state", MAX_NAME_CHARS, HEALTH_STATES)
     m["mode"] = _enc_str(mode, "health.mode", MAX_NAME_CHARS, MODES)
@@ -681,7 +697,7 @@ def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
     inv = _num(m["inverse_condition"], "health.inverse_condition", 0.0, 1.0)
     weak = _submap(m["weakest"], "health.weakest", _WEAKEST_KEYS)
     wl = _vec(weak["linear"], "health.weakest.linear", 3, MAX_DIRECTION)
-    wa = _vec(weak["angular"], "health.weakest.angular", 3, MAX_DIRECTION)
+    wa = _vec(weak["angular"], "health.weakest.angular", 3, MAX_WEAKEST_ANGULAR)
     damping = _num(m["damping"], "health.damping", 0.0, MAX_MEASURE)
     scale = _num(m["scale"], "health.scale", 0.0, 1.0)
     raw_margin = m["limit_margin"]
@@ -693,7 +709,7 @@ def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
         raise _fail("bad_length", "health.limit_margin", f"{len(raw_margin)} entries",
                     f"1 to {MAX_JOINTS} entries")
     margin = np.array([math.inf if x is None else
-                       _num(x, f"health.limit_margin[{i}]", -MAX_MARGIN, MAX_MARGIN)
+                       _num(x, f"health.limit_margin[{i}]", MIN_MARGIN_FRACTION, MAX_MARGIN_FRACTION)
                        for i, x in enumerate(raw_margin)], dtype=float)
     state = _str(m["state"], "health.state", MAX_NAME_CHARS, HEALTH_STATES)
     mode = _str(m["mode"], "health.mode", MAX_NAME_CHARS, MODES)

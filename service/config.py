@@ -22,7 +22,13 @@ from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from twistrate.service.codec import DEFAULT_CONTROL, DEFAULT_INTAKE, DEFAULT_OUTPUT, LEASE_MS_MAX
+from twistrate.service.codec import (
+    DEFAULT_CONTROL,
+    DEFAULT_INTAKE,
+    DEFAULT_OUTPUT,
+    LEASE_MS_MAX,
+    MIN_CHARACTERISTIC_LENGTH_M,
+)
 from twistrate.service.security import check_endpoints, load_allow_list, load_secret_keypair
 from twistrate.service.state import E_BAD_ARGUMENT
 from twistrate.service.tick import DEFAULT_RT_PRIORITY
@@ -58,7 +64,9 @@ Hysteresis = Annotated[float, Field(ge=0.0, le=1.0)]
 LinearMax = Annotated[float, Field(gt=0.0, le=10.0)]
 AngularMax = Annotated[float, Field(gt=0.0, le=20.0)]
 ReducedMax = Annotated[float, Field(gt=0.0, le=REDUCED_SPEED_MAX)]
-Length = Annotated[float, Field(gt=0.0, le=5.0)]
+#: characteristic length, m: at least the protocol's MIN_CHARACTERISTIC_LENGTH_M (1 mm), which bounds the
+#: angular part of the weakest direction on the wire (docs/protocol.md 7.4)
+Length = Annotated[float, Field(ge=MIN_CHARACTERISTIC_LENGTH_M, le=5.0)]
 
 
 class _Section(BaseModel):

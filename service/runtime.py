@@ -715,18 +715,16 @@ class Service:
         else:
             h = assess(self.arm, q, res, self.options)
         self._health_q = q
-        arm = self.arm
         return {
             "manipulability": h.manipulability,
             "manipulability_linear": h.manipulability_translational,
             "manipulability_angular": h.manipulability_rotational,
             "singular_values": h.singular_values,
             "inverse_condition": h.inverse_condition,
-            # the wire carries the unit direction in weighted units (docs/protocol.md 7.4)
+            # exactly as twistrate.solver.health gives them (docs/protocol.md 7.4)
             "weakest_linear": h.weakest_linear,
-            "weakest_angular": h.weakest_angular * self.options.characteristic_length,
-            # the wire carries distances, rad or m (solver.health reports fractions of the range)
-            "limit_margin": np.minimum(q - arm.q_min, arm.q_max - q),
+            "weakest_angular": h.weakest_angular,
+            "limit_margin": h.limit_margin,
         }
 
     def _publish_health(self, wall: int, q: np.ndarray) -> None:

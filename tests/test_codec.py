@@ -54,9 +54,10 @@ def _reason(fn, *args) -> tuple[str, str]:
 def _health_kwargs(n=N, **over):
     kw = dict(seq=4, stamp_ns=123, tick=99, manipulability=0.012, manipulability_linear=0.3,
               manipulability_angular=0.2, singular_values=np.array([0.9, 0.7, 0.5, 0.3, 0.2, 0.05]),
-              inverse_condition=0.05 / 0.9, weakest_linear=np.array([0.6, 0.0, 0.8]),
-              weakest_angular=np.zeros(3), damping=0.01, scale=0.75,
-              limit_margin=np.array([0.5, np.inf, -0.01] + [1.0] * (n - 3)), state="approaching",
+              inverse_condition=0.05 / 0.9, weakest_linear=np.array([0.6, 0.0, 0.0]),
+              # a unit weighted twist with L = 0.3 m: 0.6^2 + (0.3 * 0.8 / 0.3)^2 = 1 (section 7.4)
+              weakest_angular=np.array([0.0, 0.0, 0.8 / 0.3]), damping=0.01, scale=0.75,
+              limit_margin=np.array([0.5, np.inf, -0.01] + [0.25] * (n - 3)), state="approaching",
               mode="running", rejected={"bad_type": 3, "not_leased": 1}, overruns=2)
     kw.update(over)
     return kw
@@ -390,8 +391,40 @@ def test_encode_twist_refuses_what_decode_would(kwargs, field):
 def test_encode_health_sends_unlimited_margin_as_nil_but_refuses_nan():
     with pytest.raises(InputError, match="limit_margin"):
         codec.encode_health(**_health_kwargs(limit_margin=np.array([math.nan] * N)))
+    with pytest.raises(InputError, match="limit_margin"):
+        codec.encode_health(**_health_kwargs(limit_margin=np.array([-np.inf] * N)))
     with pytest.raises(InputError, match="singular_values"):
         codec.encode_health(**_health_kwargs(singular_values=np.array([0.5, -0.1])))
+
+
+def test_health_margin_is_a_fraction_of_the_range_at_most_one_half():
+    # min(q - q_min, q_max - q) / (q_max - q_min) <= 1/2 for any q (the nearer limit is at most half the
+    # range away; twistrate.solver.health.limit_margins): more is refused on both sides of the wire
+    for margin in (0.5, 0.5 + 1e-12, 0.0, -3.0):
+        msg = codec.decode_health(codec.encode_health(**_health_kwargs(limit_margin=np.full(N, margin))), N)
+        assert msg.limit_margin[0] == margin
+    with pytest.raises(InputError, match="limit_margin"):
+        codec.encode_health(**_health_kwargs(limit_margin=np.full(N, 0.6)))
+    m = msgpack.unpackb(codec.encode_health(**_health_kwargs()))
+    m["limit_margin"] = [0.6] + [0.1] * (N - 1)
+    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
+    m["limit_margin"] = [-2e6] + [0.1] * (N - 1)
+    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
+
+
+def test_health_weakest_angular_part_is_bounded_by_the_shortest_characteristic_length():
+    # angular = u[3:] / L with |u| = 1 and L >= MIN_CHARACTERISTIC_LENGTH_M: each component <= 1 / L_min
+    top = 1.0 / codec.MIN_CHARACTERISTIC_LENGTH_M
+    data = codec.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, top, 0.0])))
+    msg = codec.decode_health(data)
+    assert msg.weakest_angular[1] == top
+    with pytest.raises(InputError, match=re.escape("health.weakest.angular")):
+        codec.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, 1.01 * top, 0.0])))
+    with pytest.raises(InputError, match=re.escape("health.weakest.linear")):
+        codec.encode_health(**_health_kwargs(weakest_linear=np.array([0.0, 1.01, 0.0])))
+    m = msgpack.unpackb(codec.encode_health(**_health_kwargs()))
+    m["weakest"]["angular"] = [1.01 * top, 0.0, 0.0]
+    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
 
 
 # ---------------------------------------------------------------------------------------------------

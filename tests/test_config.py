@@ -139,6 +139,7 @@ def test_unknown_key_names_the_key_and_the_known_ones(tmp_path):
     ("[tick]\nrealtime_priority = 100\n", "tick.realtime_priority", "100", "<= 99"),
     ("[tick]\nrealtime_priority = -1\n", "tick.realtime_priority", "-1", ">= 0"),
     ("[tick]\nrealtime_priority = 10.0\n", "tick.realtime_priority", "10.0", "integer"),
+    ("[solver]\ncharacteristic_length = 0.0005\n", "solver.characteristic_length", "0.0005", ">= 0.001"),
 ])
 def test_bad_value_names_key_value_and_accepted(tmp_path, text, key, value, accepted):
     message = _error(tmp_path, text)

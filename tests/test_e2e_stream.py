@@ -3,14 +3,18 @@ enable/disable; run-time parameter changes; health and events on the output."""
 
 from __future__ import annotations
 
+import contextlib
 import itertools
+import time
 
 import numpy as np
 import pytest
-from service_harness import collect_commands, make_config, running_service, stream_until
+from service_harness import LOOP_LIMIT_S, collect_commands, make_config, running_service, stream_until
 
 from twistrate.service import codec
 from twistrate.solver.errors import ControlError
+from twistrate.solver.health import assess
+from twistrate.solver.kinematics import forward, geometric_jacobian
 from twistrate.solver.resolve import DesiredTwist, resolve
 
 pytestmark = pytest.mark.timeout(90)
@@ -109,12 +113,65 @@ def test_health_and_events_are_published():
         assert health.mode == "disabled"
         assert health.singular_values.shape == (6,)
         assert 0.0 < health.inverse_condition <= 1.0
-        assert health.limit_margin.shape == (7,) and np.all(health.limit_margin > 0)
+        margin = health.limit_margin
+        assert margin.shape == (7,) and np.all((margin > 0) & (margin <= 0.5))
         link.enable()
         names = []
         while "enabled" not in names:
             names.append(link.receive_event().event)
         assert link.receive_event().event == "mode"  # disabled -> holding
+
+
+def _health_with_q(link, period, count, running):
+    """count (health message, q) pairs, q the joint state of the health message's tick, rebuilt from that
+    tick's command: target - rate T (docs/protocol.md 7.3). running: only ticks in mode running."""
+    commands, healths, pairs = {}, [], []
+    end = time.monotonic() + LOOP_LIMIT_S
+    while len(pairs) < count:
+        assert time.monotonic() < end, f"only {len(pairs)} health messages matched a command"
+        if running:
+            link.send_twist(V, W)
+        with contextlib.suppress(TimeoutError):
+            msg = link.receive(timeout_s=0.01)
+            if isinstance(msg, codec.CommandMessage):
+                commands[msg.tick] = msg
+            elif not running or msg.mode == "running":
+                healths.append(msg)
+        for h in [h for h in healths if h.tick in commands]:
+            healths.remove(h)
+            c = commands[h.tick]
+            pairs.append((h, c.target - c.rate * period))
+    return pairs
+
+
+def test_health_margins_and_weakest_direction_are_what_solver_health_gives():
+    # The health message carries twistrate.solver.health's limit margins (fractions of each joint's range)
+    # and weakest direction (m/s and rad/s parts, same normalisation) unchanged (docs/protocol.md 7.4),
+    # at rest (measures from the Jacobian) and running (from the tick's resolution).
+    cfg = make_config(simulation={"lag_s": 0.0})
+    with running_service(cfg) as run:
+        link = run.link(topics=(codec.TOPIC_COMMAND, codec.TOPIC_HEALTH))
+        arm = run.service.arm
+        options = cfg.solver_options(arm)
+        period = 1.0 / cfg.tick.rate_hz
+        L = options.characteristic_length
+        link.claim("test")
+        at_rest = _health_with_q(link, period, 2, running=False)
+        link.enable()
+        moving = _health_with_q(link, period, 4, running=True)
+        assert len({h.tick for h, _ in moving}) == 4
+        for h, q in at_rest + moving:
+            ref = assess(arm, q, geometric_jacobian(arm, forward(arm, q)), options)
+            np.testing.assert_allclose(h.limit_margin, ref.limit_margin, rtol=0, atol=1e-9)
+            np.testing.assert_allclose(h.weakest_linear, ref.weakest_linear, rtol=0, atol=1e-9)
+            np.testing.assert_allclose(h.weakest_angular, ref.weakest_angular, rtol=0, atol=1e-9)
+            np.testing.assert_allclose(h.singular_values, ref.singular_values, rtol=1e-9, atol=1e-12)
+            # the documented normalisation: a unit weighted twist, |v|^2 + L^2 |w|^2 = 1
+            assert np.sum(h.weakest_linear**2) + L**2 * np.sum(h.weakest_angular**2) == pytest.approx(1.0)
+            # and the documented margin definition, per joint (fraction of the range to the nearer limit)
+            frac = np.minimum(q - arm.q_min, arm.q_max - q) / (arm.q_max - arm.q_min)
+            np.testing.assert_allclose(h.limit_margin, frac, rtol=0, atol=1e-9)
+            assert np.all(h.limit_margin <= 0.5)
 
 
 def test_health_state_follows_its_thresholds_with_hysteresis_and_reports_changes():

@@ -49,6 +49,19 @@ class LinkTimeoutError(TwistrateError, TimeoutError):
     """No reply (or no message) within the timeout."""
 
 
+def plain(value: Any) -> Any:
+    """`value` with numpy scalars made Python ones (np.float64 -> float, np.int64 -> int, np.bool_ -> bool,
+    np.str_ -> str), inside maps, lists and tuples too; anything else unchanged. The codec accepts only
+    Python types (a numpy float is not a msgpack float to it); callers of the link need not care."""
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, Mapping):
+        return {plain(k): plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [plain(v) for v in value]
+    return value
+
+
 @dataclass(frozen=True)
 class Endpoints:
     """Where the service listens (it binds; the link connects)."""
@@ -169,9 +182,10 @@ class Link:
 
     def request(self, op: str, timeout_s: float | None = None, **args: Any) -> dict[str, Any]:
         """Send one control request and return its result map. Raises ControlError(code, message)
-        when refused, LinkTimeoutError when no reply arrives in time, WireError on a malformed reply."""
+        when refused, LinkTimeoutError when no reply arrives in time, WireError on a malformed reply.
+        Argument values may be numpy scalars (see `plain`)."""
         seq = self._seq[codec.KIND_REQUEST] = self._seq[codec.KIND_REQUEST] + 1
-        data = codec.encode_request(seq=seq, op=op, **args)
+        data = codec.encode_request(seq=seq, op=op, **{k: plain(v) for k, v in args.items()})
         self._control.send_multipart([b"", data])
         reply = self._await_reply(seq, op, self.timeout_s if timeout_s is None else timeout_s)
         if not reply.ok:

@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 import zmq
 
-from twistrate.clients.link import CurveKeys, Endpoints, Link, LinkTimeoutError
+from twistrate.clients.link import CurveKeys, Endpoints, Link, LinkTimeoutError, plain
 from twistrate.service import codec, security
-from twistrate.solver.errors import ControlError, WireError
+from twistrate.solver.errors import ControlError, InputError, WireError
 
 N = 7
 
@@ -168,6 +168,20 @@ def test_queries_and_set(link, peer):
     assert link.set({"damping_max": 0.05}, reduced_speed=True) == {"damping_max": 0.05, "reduced_speed": True}
     assert peer.requests[-1].args == {"lease": "feedc0de",
                                       "params": {"damping_max": 0.05, "reduced_speed": True}}
+
+
+def test_numpy_scalars_are_sent_as_plain_msgpack_numbers(link, peer):
+    # a value computed with numpy (np.float64, np.int64, np.bool_) is what a caller naturally has; the
+    # wire carries msgpack float64 / int / bool (docs/protocol.md section 3) and the codec stays strict
+    with pytest.raises(InputError):
+        codec.encode_request(seq=1, op="set", lease="t", params={"damping_max": np.float64(0.05)})
+    link.claim(lease_ms=np.int64(1500))
+    assert peer.requests[-1].args == {"client": "test", "lease_ms": 1500}
+    got = link.set(damping_max=np.float64(0.03), reduced_speed=np.bool_(True), damping=np.str_("constant"))
+    assert got == {"damping_max": 0.03, "reduced_speed": True, "damping": "constant"}
+    params = peer.requests[-1].args["params"]
+    assert [type(params[k]) for k in ("damping_max", "reduced_speed", "damping")] == [float, bool, str]
+    assert plain({"a": [np.float32(0.5), (np.int8(3),)]}) == {"a": [0.5, [3]]}
 
 
 def test_refusals_raise_control_error_with_the_code(link, peer):

@@ -4,11 +4,16 @@ Per tick rate, in one run: `twistrate serve` (driver mode), `twistrate sim` (the
 external driver) and a twist source each run as their own process; this process is the watching
 client. It reports
 
+* whether the service's tick ran with real-time scheduling (status op): the service runs with its
+  default, SCHED_FIFO when the operating system permits it (--rt-priority overrides);
 * tick lateness (wake time - deadline: median, p99, max) and overruns, measured by the service itself
   (counters op) over the whole run;
-* twist arrival to command publish (p99), measured by the service: from the twist's send stamp to the
-  publish of the first command answering it (same host, same wall clock, so it includes the loopback
-  transport: an upper bound of arrival to publish);
+* twist arrival to command publish (median, p99, max), measured by the service on its own monotonic
+  clock: from the last intake poll that found no message waiting before the twist was taken (the twist
+  was not there then, so it arrived later) to the publish of the first command answering it. An upper
+  bound of the true figure: the service cannot see when ZeroMQ queued the message;
+* twist send to command publish (median, p99): from the twist's send stamp (the source's wall clock) to
+  that publish; end to end, with the loopback transport and the source process's own scheduling;
 * tick to command received by a client (median, p99): this process's receive time minus the command's
   stamp (the service's wall clock at the tick's wake-up);
 * the service process's CPU share over the measured window (/proc/PID/stat utime + stime, as a
@@ -134,14 +139,15 @@ def _stop(proc: subprocess.Popen, timeout_s: float = 10.0) -> str:
     return err or ""
 
 
-def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str, Any]:
-    """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures."""
+def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -> dict[str, Any]:
+    """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures.
+    rt_priority : the service's --rt-priority (None: its configured default)."""
     text, ep = _config_text(rate_hz)
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(text)
         serve_args = ["twistrate.service.cli", "serve", "--config", str(path)]
-        if rt_priority:
+        if rt_priority is not None:
             serve_args += ["--rt-priority", str(rt_priority)]
         serve = _spawn(serve_args)
         procs = [serve]
@@ -150,6 +156,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
             with Link(ep, client="bench-watch", topics=(b"command",), timeout_s=5.0) as link:
                 link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
                 link.arm()
+                realtime = bool(link.status()["realtime"])
                 procs.append(_spawn(["twistrate.service.bench_service", "--source", ep.intake, ep.output,
                                      ep.control, str(WARMUP_S + seconds + 1.0)]))
                 end_warmup = time.monotonic() + WARMUP_S
@@ -196,6 +203,9 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
         "solve_p99_us": c1.get("solve_p99_ns", 0) / 1000.0,
         "arrival_to_publish_median_us": c1["arrival_to_publish_median_ns"] / 1000.0,
         "arrival_to_publish_p99_us": c1["arrival_to_publish_p99_ns"] / 1000.0,
+        "arrival_to_publish_max_us": c1["arrival_to_publish_max_ns"] / 1000.0,
+        "send_to_publish_median_us": c1["send_to_publish_median_ns"] / 1000.0,
+        "send_to_publish_p99_us": c1["send_to_publish_p99_ns"] / 1000.0,
         "tick_to_client_median_us": float(np.median(lat)) if lat.size else math.nan,
         "tick_to_client_p99_us": float(np.percentile(lat, 99)) if lat.size else math.nan,
         "commands_received": int(lat.size),
@@ -208,6 +218,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int = 0) -> dict[str
         if ticks else math.nan,
         "rejected_total": c1.get("rejected_total", 0),
         "rt_priority": rt_priority,
+        "realtime": realtime,
     }
     result["targets"] = {
         "lateness_p99_us": TARGET_LATENESS_P99_US.get(rate_hz),
@@ -229,9 +240,13 @@ def _verdict(value: float, target: float | None) -> str:
 
 def format_result(r: dict[str, Any]) -> str:
     t = r["targets"]
+    sched = "real-time (SCHED_FIFO)" if r["realtime"] else "normal: real-time scheduling was NOT active"
+    if r["rt_priority"] is not None:
+        sched += f" (--rt-priority {r['rt_priority']})"
     lines = [
         f"service at {r['rate_hz']:g} Hz ({r['seconds']:g} s measured, {r['ticks']} ticks; arm reach7, "
-        f"driver and twist source in their own processes{'; SCHED_FIFO' if r['rt_priority'] else ''})",
+        f"driver and twist source in their own processes)",
+        f"  scheduling        {sched}",
         f"  tick lateness     median {r['lateness_median_us']:7.1f} us  p99 {r['lateness_p99_us']:7.1f} us  "
         f"max {r['lateness_max_us']:8.1f} us{_verdict(r['lateness_p99_us'], t['lateness_p99_us'])}",
         f"  overruns          {r['overruns']} of {r['ticks']} ticks ({100 * r['overrun_fraction']:.3f} %)"
@@ -240,9 +255,12 @@ def format_result(r: dict[str, Any]) -> str:
         f"(resolve median {r['solve_median_us']:.1f}, p99 {r['solve_p99_us']:.1f} us)",
         f"  deadline -> publish median {r['deadline_to_publish_median_us']:7.1f} us  p99 "
         f"{r['deadline_to_publish_p99_us']:7.1f} us",
-        f"  twist -> publish  median {r['arrival_to_publish_median_us']:7.1f} us  p99 "
-        f"{r['arrival_to_publish_p99_us']:7.1f} us"
+        f"  arrival -> publish median {r['arrival_to_publish_median_us']:7.1f} us  p99 "
+        f"{r['arrival_to_publish_p99_us']:7.1f} us  max {r['arrival_to_publish_max_us']:8.1f} us "
+        f"(upper bound, service clock)"
         f"{_verdict(r['arrival_to_publish_p99_us'], t['arrival_to_publish_p99_us'])}",
+        f"  send -> publish   median {r['send_to_publish_median_us']:7.1f} us  p99 "
+        f"{r['send_to_publish_p99_us']:7.1f} us (end to end: sender's stamp, with transport)",
         f"  tick -> client    median {r['tick_to_client_median_us']:7.1f} us  p99 "
         f"{r['tick_to_client_p99_us']:7.1f} us ({r['commands_received']} commands, "
         f"{r['commands_running']} running)",
@@ -264,8 +282,9 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="measured time per rate, s")
     parser.add_argument("--rates", default=",".join(f"{r:g}" for r in DEFAULT_RATES),
                         help="tick rates to run, Hz, comma-separated (default 500,1000)")
-    parser.add_argument("--rt-priority", type=int, default=0, metavar="N",
-                        help="run the service's tick thread with SCHED_FIFO priority N when permitted")
+    parser.add_argument("--rt-priority", type=int, default=None, metavar="N",
+                        help="pass --rt-priority N to the service (default: the service's own default, "
+                             "SCHED_FIFO when permitted; 0: normal scheduling)")
     parser.add_argument("--source", nargs=4, metavar=("INTAKE", "OUTPUT", "CONTROL", "SECONDS"),
                         help=argparse.SUPPRESS)
     args = parser.parse_args(argv)

@@ -26,6 +26,7 @@ import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.service.bench_service import TARGET_ARRIVAL_EXTRA_US
 from twistrate.service.config import ServiceConfig, config_from_dict, load_config
 from twistrate.service.control import ControlThread
 from twistrate.service.recorder import Recorder, read_recording, summarize
@@ -161,19 +162,16 @@ class Display:
         names = svc.arm.joint_names
         active = [names[i] for i in np.flatnonzero(svc.limits_active)]
         h = svc.last_health
-        margin = h.get("limit_margin")
+        margin = h.get("limit_margin")  # fractions of each joint's range (inf: unlimited)
         near = ""
-        if margin is not None and len(margin):
+        if margin is not None and len(margin) and np.isfinite(margin).any():
             i = int(np.argmin(margin))
-            if svc.arm.revolute[i]:
-                away = f"{math.degrees(float(margin[i])):.1f} deg"
-            else:
-                away = f"{margin[i]:.3f} m"
-            near = f"; nearest limit {names[i]} {away} away"
+            near = f"; nearest limit: {names[i]} at {100 * float(margin[i]):.1f} % of its range"
         manip = svc.manipulability
+        sched = "real-time" if svc.scheduling.realtime else "normal"
         return [
             f"t {svc.tick * svc.period_s:6.2f} s  phase: {self.source.phase}",
-            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g})  mode {svc.mode:<9} "
+            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g}, {sched} scheduling)  mode {svc.mode:<9} "
             f"health {svc.health_state:<11} overruns {svc.ticker.overruns}",
             f"  manipulability {manip:9.3e}  sigma_min {svc.sigma_min:6.4f} m  scale {svc.scale:4.2f}"
             f"  speed cap {svc.cap:4.2f}  damping {svc.damping:6.4f} m",
@@ -235,11 +233,18 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
            counters: dict[str, int]) -> list[str]:
     """The closing report's lines."""
     lat = service.ticker.lateness.summary()
+    arrival = service.arrival_to_publish.summary()
+    sched = service.scheduling
     lines = [
         "",
         "REPORT",
+        f"  scheduling: {'real-time, ' if sched.realtime else ''}{sched.text}",
         f"  ticks {service.ticker.ticks} at {service.rate_hz:g} Hz, overruns {service.ticker.overruns}, "
         f"lateness median {lat['median_us']:.0f} us, p99 {lat['p99_us']:.0f} us, max {lat['max_us']:.0f} us",
+        f"  twist arrival -> command publish (upper bound, service clock): median "
+        f"{arrival['median_us']:.0f} us, p99 {arrival['p99_us']:.0f} us, max {arrival['max_us']:.0f} us over "
+        f"{arrival['count']} twists (target p99 <= one period + {TARGET_ARRIVAL_EXTRA_US:g} us = "
+        f"{1e6 / service.rate_hz + TARGET_ARRIVAL_EXTRA_US:.0f} us)",
         f"  twists sent {source.sent}, accepted {counters.get('accepted_twist', 0)}, "
         f"rejected {counters.get('rejected_total', 0)}"
         + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(service.rejected.items())) + ")"

@@ -1,5 +1,6 @@
 """Seeded random serial arms for tests (2 to 9 joints, DH standard / DH modified / origin+axis, revolute and
-prismatic mixed, random mount and tool), and the equivalent pinocchio model for cross-checks.
+prismatic mixed, random mount and tool), and the equivalent pinocchio model for cross-checks
+(`pinocchio_model`, from twistrate.service.reference_models, shared with `twistrate bench solver`).
 
 Import from any test file: `from arm_factory import random_arm, pinocchio_model, ...` (pytest puts the
 tests folder on sys.path). Every generator takes a numpy Generator so results are reproducible.
@@ -12,6 +13,7 @@ from typing import Literal
 
 import numpy as np
 
+from twistrate.service.reference_models import pinocchio_model  # noqa: F401 (re-exported for the tests)
 from twistrate.solver.arm import PRISMATIC, REVOLUTE, Arm, Joint
 from twistrate.solver.dh import DHRow, dh_chain
 
@@ -101,27 +103,3 @@ def dh_arm(
 def random_q(rng: np.random.Generator, arm: Arm) -> np.ndarray:
     """(n,) configuration uniform within the arm's position limits."""
     return rng.uniform(arm.q_min, arm.q_max)
-
-
-def pinocchio_model(arm: Arm):
-    """(model, tool_frame_id): the pinocchio Model of `arm` (Carpentier et al. 2019, 'The Pinocchio C++
-    library'), built independently of our kernels from the arm's public description: joint i is a
-    JointModelRevoluteUnaligned / JointModelPrismaticUnaligned about/along `joints[i].axis`, placed at
-    `joints[i].T_prev_joint` in its parent joint (the mount folded into the first), and the tool is an
-    operational frame at `T_last_tool` on the last joint. Joint i of the arm is pinocchio joint i + 1."""
-    import pinocchio as pin
-
-    model = pin.Model()
-    parent = 0
-    for i, j in enumerate(arm.joints):
-        placement = (arm.T_base_root @ j.T_prev_joint) if i == 0 else j.T_prev_joint
-        axis = np.asarray(j.axis, dtype=float)
-        kind = pin.JointModelRevoluteUnaligned if j.kind == REVOLUTE else pin.JointModelPrismaticUnaligned
-        parent = model.addJoint(parent, kind(axis), _se3(pin, placement), j.name)
-    frame = pin.Frame("tool", parent, _se3(pin, arm.T_last_tool), pin.FrameType.OP_FRAME)
-    return model, model.addFrame(frame)
-
-
-def _se3(pin, T: np.ndarray):
-    """pinocchio SE3 of a (4, 4) transform."""
-    return pin.SE3(np.array(T[:3, :3]), np.array(T[:3, 3]))

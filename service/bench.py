@@ -13,12 +13,20 @@ joint-range, manipulability and posture objectives, hard limits):
 * the same ticks with forward kinematics and the Jacobian from the compiled pinocchio library (when
   importable, else null) and our rate pipeline after it: `ratio_to_compiled` = our median / that median;
 * a trajectory pushing a joint into its limit: the cost of ticks where the saturation loop runs (median,
-  p99, extra median over the free ticks) and its mean number of passes.
+  p99, and the extra median over free ticks timed alongside them) and its mean number of passes.
 
-Every variant replays the same recorded (q, qd_prev, twist) states in short blocks taken in turn
-(rotating order), so that load changes on a shared machine hit all variants alike. Timings are
-wall-clock (time.perf_counter_ns) per tick, with the garbage collector left on, on the machine as it is
-(its BLAS settings, e.g. OPENBLAS_CORETYPE, and its load average are reported, never changed).
+How the figures are kept honest:
+* every trajectory is recorded first (states, twists, previous rates); the timed loops only replay it,
+  so generating twists or integrating the motion never falls inside a timed region;
+* each variant replays the same states in short blocks taken in turn (rotating order), so that load
+  changes on a shared machine hit all variants alike; the first calls of each block are untimed;
+* a tick is wall-clock time (time.perf_counter_ns) around one call; the same loop around a call that
+  does nothing gives `timer_floor_us`, the part of every figure that is the loop's own;
+* the garbage collector stays on (the service runs with it), but the benchmark's own long-lived objects
+  (recorded trajectories, timing lists) are frozen out of its scans (gc.freeze), so they do not make
+  collections slower than in the service;
+* the machine is measured as it is: its BLAS settings (e.g. OPENBLAS_CORETYPE) are reported, never
+  changed, and the load average (os.getloadavg) at the start and the end is printed and written.
 """
 
 from __future__ import annotations
@@ -32,11 +40,13 @@ import platform
 import sys
 import time
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from twistrate.service.reference_models import pinocchio_model
 from twistrate.solver.arm import Arm
 from twistrate.solver.kinematics import Frames
 from twistrate.solver.load import load_arm, read_arm_source
@@ -50,11 +60,15 @@ DEFAULT_ARMS = ("bench6", "reach7")
 DEFAULT_TICKS = 10_000
 DEFAULT_ROUNDS = 5
 DEFAULT_PERIOD_S = 0.002
+#: Fewest timed ticks accepted by --ticks (figures from fewer are noise; use them for smoke tests only).
+MIN_TICKS = 100
 #: Ticks run before timing starts (the trajectory ramps in; caches warm up).
 WARMUP_TICKS = 300
 #: States per replay block, and untimed calls of a variant at the start of each of its blocks.
 REPLAY_BLOCK = 40
 WARMUP_REPLAY = 3
+#: Most states of the limits-active trajectory.
+LIMITS_TICKS = 4000
 #: Targets for the 7-joint arm with no limit active (stated by the project).
 TARGETS = {"median_us": 50.0, "p99_us": 150.0, "speedup_vs_straightforward": 4.0, "ratio_to_compiled": 2.0}
 #: Every feature on.
@@ -66,20 +80,28 @@ BENCH_OPTIONS = SolverOptions(
 #: the range from the nearer limit); other arms use joint 0.
 PUSHED_JOINT = {"bench6": (1, 0.12), "reach7": (0, 0.05)}
 
+#: A variant of the tick under test: called with (q, qd_prev, twist) of one recorded state.
+Tick = Callable[[np.ndarray, np.ndarray, DesiredTwist], object]
+
 
 @dataclass
 class Track:
-    """Recorded inputs of a trajectory: q (N, n), qd_prev (N, n), twists, plus our per-tick results:
-    ns (N,) wall time, passes (N,) saturation passes, scales (N,), braking (N,) bool: no scale was
+    """Recorded inputs of a trajectory: q (N, n), qd_prev (N, n), twists, plus our per-tick results of
+    the recording run: passes (N,) saturation passes, scales (N,), braking (N,) bool: no scale was
     feasible and the joints braked along the previous rate (scale 0 with the tool still moving)."""
 
     q: np.ndarray
     qd_prev: np.ndarray
     twists: list[DesiredTwist]
-    ns: np.ndarray
     passes: np.ndarray
     scales: np.ndarray
     braking: np.ndarray
+
+
+#: (name, tick, recorded states it replays).
+Variant = tuple[str, Tick, Track]
+#: Per timed tick: (index of the replayed state (N,), wall time in ns (N,)).
+Timings = tuple[np.ndarray, np.ndarray]
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -111,7 +133,7 @@ def run_solver(argv: list[str]) -> int:
     )
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
     parser.add_argument("--ticks", type=int, default=DEFAULT_TICKS, help="timed ticks per variant and "
-                        "trajectory (default %(default)s)")
+                        f"trajectory (default %(default)s; at least {MIN_TICKS}, for smoke tests only)")
     parser.add_argument("--rounds", type=int, default=DEFAULT_ROUNDS,
                         help="replays of the free trajectory (default %(default)s)")
     parser.add_argument("--arms", default=",".join(DEFAULT_ARMS),
@@ -119,8 +141,8 @@ def run_solver(argv: list[str]) -> int:
     parser.add_argument("--period", type=float, default=DEFAULT_PERIOD_S,
                         help="tick period, s (default %(default)s)")
     ns = parser.parse_args(argv)
-    if ns.ticks < 100:
-        parser.error(f"--ticks: got {ns.ticks}; accepted: at least 100")
+    if ns.ticks < MIN_TICKS:
+        parser.error(f"--ticks: got {ns.ticks}; accepted: at least {MIN_TICKS}")
     if ns.rounds < 1:
         parser.error(f"--rounds: got {ns.rounds}; accepted: at least 1")
     if not (ns.period > 0):
@@ -129,11 +151,14 @@ def run_solver(argv: list[str]) -> int:
                               "rounds": ns.rounds,
                               "options": _options_summary(BENCH_OPTIONS), "targets_7_joint": TARGETS,
                               "arms": {}}
+    print(f"load average at start: {_fmt_load(report['machine']['load_average'])}\n")
     for name in ns.arms.split(","):
         arm = load_arm(name.strip())
         figures = bench_arm(arm, name.strip(), ns.ticks, ns.period, ns.rounds)
         report["arms"][arm.name] = figures
         _print_arm(arm, figures)
+    report["load_average_end"] = _load_average()
+    print(f"load average at end: {_fmt_load(report['load_average_end'])}")
     if ns.json:
         with open(ns.json, "w", encoding="utf-8") as fh:
             json.dump(report, fh, indent=2)
@@ -146,24 +171,50 @@ def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5)
     """Every figure of one arm (see the module docstring).
 
     A free trajectory of ticks // rounds states is recorded first, then replayed `rounds` times by
-    each variant (ours, straightforward, compiled; interleaved in short blocks, see `_replay`).
-    Medians and p99 are over all timed ticks; each ratio is the median over rounds of the per-round
-    ratio of medians, and `round_medians_us` shows the spread of the machine's speed.
+    each variant (ours, straightforward, compiled, and the empty call; interleaved in short blocks, see
+    `_interleave`). Medians and p99 are over all timed ticks; each ratio is the median over rounds of
+    the per-round ratio of medians, and `round_medians_us` shows the spread of the machine's speed.
     """
     options = BENCH_OPTIONS
-    free = _run_free(arm, options, max(100, ticks // rounds), period)
-    per_round = [_replay(arm, source, free, options, period, r) for r in range(rounds)]
-    names = list(per_round[0])
-    times = {name: np.concatenate([r[name] for r in per_round]) for name in names}
-    medians = {name: [float(np.median(r[name])) / 1e3 for r in per_round] for name in names}
-    ours = _summary(times["ours"])
+    free = _run_free(arm, options, max(MIN_TICKS, ticks // rounds), period)
+    limits = _run_limits(arm, options, min(ticks, LIMITS_TICKS), period)
+    plain = _plain_model(arm, source)
+    _check_plain(arm, plain, free.q[0])
+
+    def ours(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
+        return resolve_counted(arm, q, qd, tw, period, options)
+
+    def straightforward(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
+        return _straightforward_tick(plain, q, qd, tw, period, options)
+
+    def floor(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
+        return None
+
+    variants: list[Variant] = [("ours", ours, free), ("straightforward", straightforward, free)]
+    compiled = _compiled_tick(arm, options, period)
+    if compiled is not None:
+        variants.append(("compiled", compiled, free))
+    variants.append(("floor", floor, free))
+
+    gc.collect()
+    gc.freeze()  # the tracks and everything built so far: out of the collector's scans (module docstring)
+    try:
+        per_round = [_interleave(variants, r) for r in range(rounds)]
+        limit_times = _interleave([("free", ours, free), ("limits", ours, limits)], 0)
+    finally:
+        gc.unfreeze()
+    names = [name for name, _, _ in variants]
+    times = {name: np.concatenate([r[name][1] for r in per_round]) for name in names}
+    medians = {name: [float(np.median(r[name][1])) / 1e3 for r in per_round] for name in names}
+    ours_summary = _summary(times["ours"])
     figures: dict[str, Any] = {
         "joints": arm.n,
-        "median_us": ours["median_us"],
-        "p99_us": ours["p99_us"],
-        "mean_us": ours["mean_us"],
+        "median_us": ours_summary["median_us"],
+        "p99_us": ours_summary["p99_us"],
+        "mean_us": ours_summary["mean_us"],
         "round_medians_us": medians["ours"],
         "free_ticks_with_limit_active": int(np.count_nonzero(free.passes)),
+        "timer_floor_us": _summary(times["floor"])["median_us"],
     }
     ratio = lambda a, b: float(np.median(np.array(medians[a]) / np.array(medians[b])))  # noqa: E731
     figures["straightforward_median_us"] = _summary(times["straightforward"])["median_us"]
@@ -171,52 +222,48 @@ def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5)
     has_compiled = "compiled" in times
     figures["compiled_median_us"] = _summary(times["compiled"])["median_us"] if has_compiled else None
     figures["ratio_to_compiled"] = ratio("ours", "compiled") if has_compiled else None
-    figures["limits"] = _limits_figures(arm, options, ticks, period, ours["median_us"])
+    figures["limits"] = _limits_figures(arm, limits, limit_times)
     return figures
 
 
-def _replay(
-    arm: Arm, source: str, track: Track, options: SolverOptions, period: float, round_index: int
-) -> dict[str, np.ndarray]:
-    """Per-tick wall times (ns) of each variant over the recorded states.
+def _interleave(variants: list[Variant], round_index: int) -> dict[str, Timings]:
+    """Per-tick wall times of each variant over its recorded states: {name: (state index (N,), ns (N,))}.
 
-    The track is cut into blocks of REPLAY_BLOCK states; each variant replays a block in turn (the
-    order rotating from block to block and round to round), its first WARMUP_REPLAY calls untimed.
-    Blocks keep a variant on its own warm caches, while the fine interleaving makes machine-load
-    changes (seconds) hit every variant alike.
+    Each track is cut into blocks of REPLAY_BLOCK states; block b of every variant is replayed in turn
+    (the order rotating from block to block and round to round; a shorter track starts over), its first
+    WARMUP_REPLAY calls untimed. Blocks keep a variant on its own warm caches, while the fine
+    interleaving makes machine-load changes (seconds) hit every variant alike. Only the call sits
+    between the two clock readings; the states are fetched before.
     """
-    plain = _plain_model(arm, source)
-    _check_plain(arm, plain, track.q[0])
-    variants = [
-        ("ours", lambda q, qd, tw: resolve_counted(arm, q, qd, tw, period, options)),
-        ("straightforward", lambda q, qd, tw: _straightforward_tick(plain, q, qd, tw, period, options)),
-    ]
-    compiled = _compiled_tick(arm, options, period)
-    if compiled is not None:
-        variants.append(("compiled", compiled))
     k = len(variants)
-    count = len(track.twists)
-    times = {name: [] for name, _ in variants}
-    gc.collect()
+    blocks = max(-(-len(track.twists) // REPLAY_BLOCK) for _, _, track in variants)
+    index: dict[str, list[int]] = {name: [] for name, _, _ in variants}
+    times: dict[str, list[int]] = {name: [] for name, _, _ in variants}
     clock = time.perf_counter_ns
-    for b, start in enumerate(range(0, count, REPLAY_BLOCK)):
-        stop = min(count, start + REPLAY_BLOCK)
+    for b in range(blocks):
         j = (b + round_index) % k
-        for name, f in variants[j:] + variants[:j]:
-            out = times[name]
+        for name, f, track in variants[j:] + variants[:j]:
+            count = len(track.twists)
+            start = (b % -(-count // REPLAY_BLOCK)) * REPLAY_BLOCK
+            stop = min(count, start + REPLAY_BLOCK)
+            Q, QD, TW = track.q, track.qd_prev, track.twists
             for i in range(start, min(stop, start + WARMUP_REPLAY)):
-                f(track.q[i], track.qd_prev[i], track.twists[i])
+                f(Q[i], QD[i], TW[i])
+            out, at = times[name], index[name]
             for i in range(start, stop):
-                q, qd, tw = track.q[i], track.qd_prev[i], track.twists[i]
+                q, qd, tw = Q[i], QD[i], TW[i]
                 t0 = clock()
                 f(q, qd, tw)
-                out.append(clock() - t0)
-    return {name: np.array(v, dtype=np.int64) for name, v in times.items()}
+                t1 = clock()
+                out.append(t1 - t0)
+                at.append(i)
+    return {name: (np.array(index[name], dtype=np.int64), np.array(times[name], dtype=np.int64))
+            for name in times}
 
 
 def _run_free(arm: Arm, options: SolverOptions, ticks: int, period: float) -> Track:
     """Smooth trajectory from home: twists of a few cm/s and tenths of rad/s, ramped in, so that no
-    bound binds; returns the timed ticks (after WARMUP_TICKS)."""
+    bound binds; returns the ticks after WARMUP_TICKS."""
     def twist(k: int) -> DesiredTwist:
         t = k * period
         ramp = min(1.0, k / WARMUP_TICKS) ** 2
@@ -226,33 +273,29 @@ def _run_free(arm: Arm, options: SolverOptions, ticks: int, period: float) -> Tr
     return _record(arm, options, ticks, period, np.array(arm.q_home, dtype=float), twist)
 
 
-def _record(arm: Arm, options: SolverOptions, ticks: int, period: float, q0: np.ndarray, twist_at) -> Track:
+def _record(arm: Arm, options: SolverOptions, ticks: int, period: float, q0: np.ndarray,
+            twist_at: Callable[[int], DesiredTwist]) -> Track:
+    """Run the closed loop (q += qd T) for WARMUP_TICKS + ticks ticks and record the last `ticks` states."""
     n = arm.n
     q = q0.copy()
     qd = np.zeros(n)
-    total = WARMUP_TICKS + ticks
     Q, QD = np.empty((ticks, n)), np.empty((ticks, n))
     twists: list[DesiredTwist] = []
-    ns_ = np.empty(ticks, dtype=np.int64)
     passes = np.empty(ticks, dtype=np.int64)
     scales = np.empty(ticks)
     braking = np.zeros(ticks, dtype=bool)
-    gc.collect()
-    clock = time.perf_counter_ns
-    for k in range(total):
+    for k in range(WARMUP_TICKS + ticks):
         tw = twist_at(k)
-        t0 = clock()
         res, count = resolve_counted(arm, q, qd, tw, period, options)
-        t1 = clock()
         i = k - WARMUP_TICKS
         if i >= 0:
             Q[i], QD[i] = q, qd
             twists.append(tw)
-            ns_[i], passes[i], scales[i] = t1 - t0, count, res.scale
+            passes[i], scales[i] = count, res.scale
             braking[i] = res.scale == 0.0 and float(np.abs(res.twist_achieved).max()) > 1e-9
         qd = res.qd
         q = q + qd * period
-    return Track(Q, QD, twists, ns_, passes, scales, braking)
+    return Track(Q, QD, twists, passes, scales, braking)
 
 
 def _summary(ns_: np.ndarray) -> dict[str, float]:
@@ -377,42 +420,22 @@ def _check_plain(arm: Arm, m: _Plain, q: np.ndarray) -> None:
 
 # ---------------------------------------------------------------- compiled kinematics
 
-def _pinocchio_model(arm: Arm):
-    """(pinocchio module, model, data, tool frame id) of `arm`, or None when pinocchio is not importable.
-
-    Joint i is an unaligned revolute/prismatic joint about/along its axis at T_prev_joint (mount folded
-    into the first); the tool is an operational frame at T_last_tool on the last joint.
-    """
+def _compiled_tick(arm: Arm, options: SolverOptions, period: float) -> Tick | None:
+    """The tick on compiled kinematics: pinocchio FK + frame Jacobian (LOCAL_WORLD_ALIGNED: base
+    axes, tool point, rows (v, w), as ours), then our rate pipeline; None without pinocchio."""
     try:
+        model, fid = pinocchio_model(arm)
         import pinocchio as pin
     except ImportError:
         return None
-    model = pin.Model()
-    parent = 0
-    for i, j in enumerate(arm.joints):
-        placement = arm.T_base_root @ j.T_prev_joint if i == 0 else j.T_prev_joint
-        kind = pin.JointModelRevoluteUnaligned if j.kind == "revolute" else pin.JointModelPrismaticUnaligned
-        parent = model.addJoint(parent, kind(np.asarray(j.axis, dtype=float)),
-                                pin.SE3(placement[:3, :3].copy(), placement[:3, 3].copy()), j.name)
-    tool = arm.T_last_tool
-    fid = model.addFrame(pin.Frame("tool", parent, pin.SE3(tool[:3, :3].copy(), tool[:3, 3].copy()),
-                                   pin.FrameType.OP_FRAME))
-    return pin, model, model.createData(), fid
-
-
-def _compiled_tick(arm: Arm, options: SolverOptions, period: float):
-    """The tick on compiled kinematics: pinocchio FK + frame Jacobian (LOCAL_WORLD_ALIGNED: base
-    axes, tool point, rows (v, w), as ours), then our rate pipeline; None without pinocchio."""
-    built = _pinocchio_model(arm)
-    if built is None:
-        return None
-    pin, model, data, fid = built
+    data = model.createData()
     world = pin.LOCAL_WORLD_ALIGNED
     empty44 = np.empty((0, 4, 4))  # only T_base_tool is read by the rate pipeline
     oMf = data.oMf
+    jacobian = pin.computeFrameJacobian
 
-    def tick(q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist):
-        J = pin.computeFrameJacobian(model, data, q, fid, world)
+    def tick(q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist) -> object:
+        J = jacobian(model, data, q, fid, world)  # also updates oMf (forward kinematics)
         frames = Frames(empty44, oMf[fid].homogeneous)
         return resolve_from_kinematics(arm, q, qd_prev, tw, period, options, frames, J)
 
@@ -421,8 +444,7 @@ def _compiled_tick(arm: Arm, options: SolverOptions, period: float):
 
 # ---------------------------------------------------------------- limits active
 
-def _limits_figures(arm: Arm, options: SolverOptions, ticks: int, period: float,
-                    free_median_us: float) -> dict[str, Any]:
+def _run_limits(arm: Arm, options: SolverOptions, ticks: int, period: float) -> Track:
     """Push one joint into its nearer limit with the twist that joint alone makes at 0.3 rad/s."""
     from twistrate.solver.kinematics import forward, geometric_jacobian
 
@@ -433,16 +455,25 @@ def _limits_figures(arm: Arm, options: SolverOptions, ticks: int, period: float,
     q0[joint] = (lo if np.isfinite(lo) else -np.pi) + frac * span
     J = geometric_jacobian(arm, forward(arm, q0))
     push = DesiredTwist(-0.3 * J[:3, joint], -0.3 * J[3:, joint])
-    track = _record(arm, options, min(ticks, 4000), period, q0, lambda k: push)
+    return _record(arm, options, ticks, period, q0, lambda k: push)
+
+
+def _limits_figures(arm: Arm, track: Track, times: dict[str, Timings]) -> dict[str, Any]:
+    """Figures of the limits-active trajectory from its replay interleaved with the free one (`times`:
+    `_interleave` output with variants "free" and "limits")."""
+    joint, _ = PUSHED_JOINT.get(arm.name, (0, 0.05))
     active = track.passes > 0
     out: dict[str, Any] = {"pushed_joint": arm.joints[joint].name, "ticks": int(track.passes.size),
                            "ticks_with_limits_active": int(active.sum()),
                            "ticks_without_feasible_scale": int(np.count_nonzero(track.braking)),
                            "mean_scale": float(track.scales.mean())}
-    if active.any():
-        s = _summary(track.ns[active])
-        out.update({"median_us": s["median_us"], "p99_us": s["p99_us"],
-                    "extra_median_us": s["median_us"] - free_median_us,
+    at, ns_ = times["limits"]
+    timed_active = active[at]
+    if timed_active.any():
+        s = _summary(ns_[timed_active])
+        free_median = _summary(times["free"][1])["median_us"]
+        out.update({"median_us": s["median_us"], "p99_us": s["p99_us"], "free_median_us": free_median,
+                    "extra_median_us": s["median_us"] - free_median,
                     "mean_passes": float(track.passes[active].mean()),
                     "max_passes": int(track.passes[active].max())})
     return out
@@ -450,12 +481,21 @@ def _limits_figures(arm: Arm, options: SolverOptions, ticks: int, period: float,
 
 # ---------------------------------------------------------------- report
 
+def _load_average() -> list[float] | None:
+    """1, 5 and 15 minute load averages (runnable processes), or None where the OS has none."""
+    return list(os.getloadavg()) if hasattr(os, "getloadavg") else None
+
+
+def _fmt_load(load: list[float] | None) -> str:
+    return "n/a" if load is None else " ".join(f"{v:.2f}" for v in load) + " (1, 5, 15 min)"
+
+
 def _machine() -> dict[str, Any]:
     return {
         "python": platform.python_version(), "numpy": np.__version__, "cpu_count": os.cpu_count(),
         "processor": platform.processor() or platform.machine(),
         "OPENBLAS_CORETYPE": os.environ.get("OPENBLAS_CORETYPE"),
-        "load_average": list(os.getloadavg()) if hasattr(os, "getloadavg") else None,
+        "load_average": _load_average(),
     }
 
 
@@ -475,7 +515,7 @@ def _print_arm(arm: Arm, f: dict[str, Any]) -> None:
           f"({f['free_ticks_with_limit_active']} ticks had one):")
     spread = ", ".join(f"{m:.1f}" for m in f["round_medians_us"])
     print(f"  resolve per tick      median {f['median_us']:.1f} us   p99 {f['p99_us']:.1f} us   "
-          f"mean {f['mean_us']:.1f} us   (round medians {spread})")
+          f"mean {f['mean_us']:.1f} us   (round medians {spread}; timer floor {f['timer_floor_us']:.2f} us)")
     print(f"  straightforward loop  median {f['straightforward_median_us']:.1f} us   "
           f"speedup_vs_straightforward {f['speedup_vs_straightforward']:.2f}x")
     print(f"  compiled FK + J       median {_fmt(f['compiled_median_us'], ' us')}   "
@@ -486,7 +526,8 @@ def _print_arm(arm: Arm, f: dict[str, Any]) -> None:
           f"mean scale {lim['mean_scale']:.2f}")
     if "median_us" in lim:
         print(f"    saturation ticks    median {lim['median_us']:.1f} us   p99 {lim['p99_us']:.1f} us   "
-              f"extra median {lim['extra_median_us']:.1f} us   passes mean {lim['mean_passes']:.2f} "
+              f"extra median {lim['extra_median_us']:.1f} us (free ticks alongside: median "
+              f"{lim['free_median_us']:.1f} us)   passes mean {lim['mean_passes']:.2f} "
               f"max {lim['max_passes']}")
     if arm.n == 7:
         checks = [("median_us", f["median_us"], "<="), ("p99_us", f["p99_us"], "<="),

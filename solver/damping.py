@@ -80,8 +80,27 @@ def task_rates(
     Directions at or below the rank tolerance get gain 0 under every policy, so the result is
     finite for any finite input, including exactly singular A.
     """
+    coef, lam = task_coefficients(U, s, Vh, rank, x_w, A, options)
+    return coef.dot(Vh[:rank]), lam
+
+
+def task_coefficients(
+    U: np.ndarray,
+    s: np.ndarray,
+    Vh: np.ndarray,
+    rank: int,
+    x_w: np.ndarray,
+    A: np.ndarray,
+    options: SolverOptions,
+) -> tuple[np.ndarray, float]:
+    """`task_rates` in the right singular basis: (coef (rank,), damping (m)) with
+    y_task = coef @ Vh[:rank], i.e. coef_i = g_i u_i^T x_w (module docstring); same arguments.
+
+    The per-tick caller assembles the whole rate from these and the null-space part in one product
+    with Vh (`twistrate.solver.resolve`).
+    """
     if rank == 0:
-        return np.zeros(Vh.shape[0]), 0.0
+        return np.zeros(0), 0.0
     if options.damping == "selective":
         return _selective(U, s, Vh, rank, x_w, A, options.selective_step_max)
     lam = damping_factor(s, options)
@@ -95,14 +114,15 @@ def task_rates(
         coef /= g
     else:
         coef /= s
-    return coef.dot(Vh[:rank]), lam
+    return coef, lam
 
 
 def _selective(
     U: np.ndarray, s: np.ndarray, Vh: np.ndarray, rank: int, x_w: np.ndarray, A: np.ndarray,
     gamma_max: float,
 ) -> tuple[np.ndarray, float]:
-    """Selectively damped task rates (Buss & Kim 2005), see the module docstring."""
+    """Selectively damped task rates (Buss & Kim 2005), see the module docstring, as (coefficients
+    (rank,) in the basis Vh[:rank], equivalent damping)."""
     Ur = U[:, :rank]
     Vr = Vh[:rank]
     sr = s[:rank]
@@ -116,14 +136,15 @@ def _selective(
     phi = alpha / sr  # contribution_i = phi_i * v_i
     peak = np.abs(phi) * absV.max(axis=1)  # max-abs of contribution_i
     c = np.minimum(1.0, gamma / np.maximum(peak, np.finfo(float).tiny))
-    y = (phi * c) @ Vr
+    coef = phi * c
+    y = coef @ Vr
     total = float(np.abs(y).max()) if y.size else 0.0
     if total > gamma_max:
         factor = gamma_max / total
-        y *= factor
+        coef *= factor
         c = c * factor
     worst = float(c.min())
     if worst >= 1.0:
-        return y, 0.0
+        return coef, 0.0
     i = int(c.argmin())
-    return y, float(sr[i]) * math.sqrt(1.0 / max(worst, _ATTENUATION_FLOOR) - 1.0)
+    return coef, float(sr[i]) * math.sqrt(1.0 / max(worst, _ATTENUATION_FLOOR) - 1.0)

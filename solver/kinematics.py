@@ -2,12 +2,13 @@
 
 Kernels trust their input (finite q of the right length); validation happens at the edges.
 
-How the pass stays cheap (a dozen numpy calls, each on a whole stack): the chain runs in *axis
-frames* (each joint frame turned about its origin so +z is the joint axis; see `Arm`), with the tool
-as one more element. All local transforms come from one batched matmul of their coefficient rows
-[sin q, cos q, q, 1] with a precomputed basis; a Hillis-Steele prefix scan (ceil(log2(n + 1))
-batched matmuls) turns them into every prefix product. Base-frame axes and origins are then
-columns of the result, and the tool pose its last element.
+How the pass stays cheap: the chain runs in *axis frames* (each joint frame turned about its origin
+so +z is the joint axis; see `Arm`), with the tool as one more element. All local transforms come
+from one batched matmul of their coefficient rows [sin q, cos q, q, 1] with a precomputed basis;
+their prefix products follow by n 4x4 products written in place (ndarray.dot with out=, about
+0.5 us each: measured cheaper than a log-depth prefix scan of batched matmuls, whose per-call
+overhead dominates for arms of up to ten joints). Base-frame axes and origins are then columns of
+the result, and the tool pose its last element.
 """
 
 from __future__ import annotations
@@ -91,13 +92,14 @@ def forward(arm: Arm, q: np.ndarray) -> Frames:
     if not arm.all_revolute:
         c[:-1, 0, 2] = q
     m = len(c)
-    P = (c @ arm.chain_basis).reshape(m, 4, 4)  # local transforms A_e
-    # Prefix scan: after the step with stride d, P[e] is the product of the (up to) 2d elements
-    # ending at e, so finally P[e] = A_0 ... A_e.
-    d = 1
-    while d < m:
-        P[d:] = P[:-d] @ P[d:]
-        d *= 2
+    local = (c @ arm.chain_basis).reshape(m, 4, 4)  # local transforms A_e
+    P = np.empty((m, 4, 4))  # prefix products P[e] = A_0 ... A_e
+    prev = P[0]
+    prev[...] = local[0]
+    for e in range(1, m):
+        cur = P[e]
+        prev.dot(local[e], out=cur)
+        prev = cur
     return Frames(P[:-1], P[-1], arm.T_axis_joint)
 
 

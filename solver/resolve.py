@@ -41,7 +41,7 @@ from typing import Literal
 import numpy as np
 
 from twistrate.solver.arm import Arm
-from twistrate.solver.damping import task_rates
+from twistrate.solver.damping import task_coefficients
 from twistrate.solver.errors import ConfigError, InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
@@ -356,29 +356,24 @@ def _rates(
     A = J * plan.weight
     U, s, Vh = svd_full(A)
     n = q.shape[0]
-    tol = RANK_RTOL * s[0]
+    tol = RANK_RTOL * s.item(0)
     if tol < RANK_ATOL:
         tol = RANK_ATOL
     rank = numerical_rank(s, tol)
-    y_task, lam = task_rates(U, s, Vh, rank, x * plan.task_scale, A, options)
+    # Task rates y_task = coef @ Vh[:rank] (weighted coordinates), kept in the singular basis.
+    coef, lam = task_coefficients(U, s, Vh, rank, x * plan.task_scale, A, options)
 
-    # Null-space objectives (weighted coordinates), projected with the exact projector.
-    objective = plan.objective
-    y0 = None if objective is None else objective.c0 - objective.c1 * q
-    if plan.manipulability_scale is not None:
-        # dw/dq of the manipulability of A (Yoshikawa 1985), O(n) from J and the tick's SVD of A.
-        g = manipulability_gradient_geometric(J, (U, s, Vh), plan.weight)
-        g *= plan.manipulability_scale
-        if y0 is None:
-            y0 = g
-        else:
-            y0 += g  # y0 is this tick's own array
-    if y0 is not None and rank < n:
-        y_null = project(Vh, rank, y0)
-        y = y_task + y_null
+    # Null-space objectives, projected with the exact projector: they only act where A has a null
+    # space (rank < n); otherwise the slow path evaluates them on demand (`_enforce`).
+    y0 = _objective_rates(plan, q, J, U, s, Vh) if rank < n else None
+    if y0 is not None:
+        # y = y_task + (I - A+ A) y0 in one product: with z = Vh y0, (I - A+ A) y0 = Vh[rank:]^T z[rank:],
+        # so y = Vh^T z after z[:rank] is replaced by the task coefficients.
+        z = Vh.dot(y0)
+        z[:rank] = coef
+        y = z.dot(Vh)
     else:
-        y_null = None
-        y = y_task
+        y = coef.dot(Vh[:rank])
     col_scale = plan.col_scale
     qd = y if col_scale is None else y * col_scale
 
@@ -389,7 +384,7 @@ def _rates(
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
-            qd, scale, bits, iterations = _enforce(A, U, Vh, y_task, y_null, y0, rank, tol, plan, q, qd_prev)
+            qd, scale, bits, iterations = _enforce(A, J, U, s, Vh, coef, y0, rank, tol, plan, q, qd_prev)
         else:
             bits = np.zeros(n, dtype=np.uint8)
         ok = np.isfinite(qd)
@@ -411,12 +406,30 @@ def _rates(
     return resolution, iterations
 
 
+def _objective_rates(
+    plan: _Plan, q: np.ndarray, J: np.ndarray, U: np.ndarray, s: np.ndarray, Vh: np.ndarray
+) -> np.ndarray | None:
+    """(n,) rates y_0 of the null-space objectives in the weighted coordinates (before projection), or
+    None when every objective gain is 0: the affine joint-range and posture terms plus the gradient of
+    the manipulability of A (Yoshikawa 1985), O(n) from J and the tick's SVD (U, s, Vh) of A."""
+    objective = plan.objective
+    y0 = None if objective is None else objective.c0 - objective.c1 * q
+    if plan.manipulability_scale is not None:
+        g = manipulability_gradient_geometric(J, (U, s, Vh), plan.weight)
+        g *= plan.manipulability_scale
+        if y0 is None:
+            return g
+        y0 += g  # y0 is this tick's own array
+    return y0
+
+
 def _enforce(
     A: np.ndarray,
+    J: np.ndarray,
     U: np.ndarray,
+    s: np.ndarray,
     Vh: np.ndarray,
-    y_task: np.ndarray,
-    y_null: np.ndarray | None,
+    coef: np.ndarray,
     y0: np.ndarray | None,
     rank: int,
     tol: float,
@@ -426,8 +439,9 @@ def _enforce(
 ) -> tuple[np.ndarray, float, np.ndarray, int]:
     """Slow path: saturation in the null space with task scaling. Returns (qd, scale, bits, passes).
 
-    A : (6, n) weighted Jacobian, U : (6, 6) and Vh : (n, n) its singular vectors, rank its
-    numerical rank.
+    A : (6, n) weighted Jacobian, J : (6, n) the geometric Jacobian, (U (6, 6), s, Vh (n, n)) the SVD
+    of A, rank its numerical rank; coef : (rank,) task rates in the basis Vh[:rank]; y0 : the
+    objective rates when the fast path computed them (rank < n), else None (evaluated here).
     When rank < 6 the task equations are restricted to the range of A (U_r^T A y = s U_r^T x_d;
     the other rows are zero to the rank tolerance for every y), so the saturation works with a
     full-row-rank matrix and its optimality refinement applies.
@@ -435,6 +449,10 @@ def _enforce(
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
     n = q.shape[0]
+    y_task = coef.dot(Vh[:rank])
+    if y0 is None:
+        y0 = _objective_rates(plan, q, J, U, s, Vh)
+    y_null = project(Vh, rank, y0) if y0 is not None and rank < n else None
     lo_y, hi_y = (bounds.lo, bounds.hi) if d is None else (bounds.lo / d, bounds.hi / d)
     b0 = np.zeros(n) if y_null is None else y_null
     iterations = 0

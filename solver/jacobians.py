@@ -10,6 +10,8 @@ Pure numpy; kernels trust their input (shapes and finiteness are checked at the 
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from twistrate.solver.errors import InputError, field_error
@@ -28,6 +30,10 @@ def _cross_blocks() -> np.ndarray:
 
 
 _CROSS_BLOCKS = _cross_blocks()
+#: Smallest product of the singular values for which the manipulability gradient's cofactors
+#: prod_{j != r} s_j are formed by division (the smallest normal double): below it the product
+#: has lost precision to underflow, or is 0, and the cofactors are multiplied out instead.
+COFACTOR_DIVISION_MIN = 2.2250738585072014e-308
 _ONES6 = np.ones(6)
 _ONES6.setflags(write=False)
 #: Row r = 6 i + j of the stacked outer products of two (6, n) arrays X, Y (one outer product
@@ -241,9 +247,17 @@ def manipulability_gradient(
 
 
 def _cofactors(s: np.ndarray) -> np.ndarray:
-    """(k,) c_r = prod_{j != r} s_j for singular values s (k,), from exclusive prefix and suffix
-    products (no division, so exact zeros are fine; k <= 6 floats, cheaper in Python than in numpy)."""
+    """(k,) c_r = prod_{j != r} s_j for singular values s (k,) >= 0.
+
+    While w = prod s is a finite normal float (>= COFACTOR_DIVISION_MIN) every s_r > 0 and
+    c_r = w / s_r is exact to a few roundings. Otherwise (an exactly or nearly singular matrix, whose
+    w underflows or is 0; or an overflowing w) from exclusive prefix and suffix products, with no
+    division (k <= 6 floats: cheaper in Python than in numpy).
+    """
     sv = s.tolist()
+    w = math.prod(sv)
+    if COFACTOR_DIVISION_MIN <= w < math.inf:
+        return w / s
     k = len(sv)
     c = [1.0] * k
     acc = 1.0
@@ -300,9 +314,9 @@ def manipulability_gradient_geometric(
     """
     U, s, Vt = svd
     k = s.shape[0]
-    PT = (U[:, :k] * _cofactors(s)).dot(Vt[:k])  # U diag(c) V^T (6, n), then P^T = S (.) D:
+    PT = ((U if U.shape[1] == k else U[:, :k]) * _cofactors(s)).dot(Vt[:k])  # U diag(c) V^T (6, n);
     if weight is not None:
-        PT *= weight
+        PT *= weight  # P^T = S U diag(c) V^T D
     # Y[:, k] = (c2_k, -c1_k): every per-column cross product in one product of a constant with the
     # column-wise outer products JP[6 r + s, k] = J[r, k] P^T[s, k].
     JP = J.take(_OUTER_I, axis=0)

@@ -144,10 +144,17 @@ class Resolution:
         U: np.ndarray,
     ) -> None:
         # Frozen: fill __dict__ directly, once per tick (cheaper than ten object.__setattr__ calls).
-        self.__dict__.update(
-            qd=qd, twist_desired=twist_desired, twist_achieved=twist_achieved, scale=scale, damping=damping,
-            limits_active=limits_active, frames=frames, J=J, singular_values=singular_values, U=U,
-        )
+        fields = self.__dict__
+        fields["qd"] = qd
+        fields["twist_desired"] = twist_desired
+        fields["twist_achieved"] = twist_achieved
+        fields["scale"] = scale
+        fields["damping"] = damping
+        fields["limits_active"] = limits_active
+        fields["frames"] = frames
+        fields["J"] = J
+        fields["singular_values"] = singular_values
+        fields["U"] = U
 
 
 
@@ -391,19 +398,10 @@ def _rates(
         if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
             qd, scale, bits = _finite_fallback(plan, q, qd_prev)
     k = s.shape[0]
-    resolution = Resolution(
-        qd=qd,
-        twist_desired=x,
-        twist_achieved=J.dot(qd),
-        scale=scale,
-        damping=lam,
-        limits_active=bits,
-        frames=frames,
-        J=J,
-        singular_values=s,
-        U=U if k == U.shape[1] else U[:, :k],
-    )
-    return resolution, iterations
+    # Positional, in field order (qd, twist_desired, twist_achieved, scale, damping, limits_active,
+    # frames, J, singular_values, U): keyword passing costs about 0.5 us per tick.
+    U_k = U if k == U.shape[1] else U[:, :k]
+    return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k), iterations
 
 
 def _objective_rates(

@@ -239,6 +239,26 @@ def gradient_scale(J: np.ndarray, svd, weight: np.ndarray) -> float:
     return c * float(np.abs(J).max() * np.abs(J * weight).max()) + 1e-300
 
 
+@pytest.mark.parametrize("s", [
+    [2.0, 1.5, 0.7, 0.3, 0.1, 0.05],  # w normal: the division branch
+    [1e-100, 1e-100, 1e-100, 1e-100, 2.0, 1.0],  # w underflows to 0 while the cofactors are normal
+    [3.0, 2.0, 1.0, 0.5, 1e-200, 1e-200],  # w underflows, two tiny values
+    [3.0, 2.0, 0.0],  # exactly singular: one zero
+    [3.0, 0.0, 0.0],  # two zeros: every cofactor 0
+    [1e200, 1e200, 1e-10],  # w overflows
+])
+def test_cofactors_of_the_singular_values_in_both_branches(s: list[float]) -> None:
+    """c_r = prod_{j != r} s_j (the factor of ds_r in dw, Park, Chung & Youm 1999), against the
+    explicit product; each branch of jacobians._cofactors (division while w is a finite normal
+    float, multiplied out otherwise) included."""
+    from twistrate.solver.jacobians import _cofactors
+
+    sv = np.array(s)
+    with np.errstate(over="ignore"):  # the last case's cofactor 1e400 is inf either way
+        expected = [float(np.prod(np.delete(sv, r))) for r in range(sv.size)]
+        np.testing.assert_allclose(_cofactors(sv), expected, rtol=1e-14, atol=0.0)
+
+
 def test_geometric_gradient_matches_the_tensor_form_with_joint_weights() -> None:
     """The O(n) chain form (independent derivation in jacobians.manipulability_gradient_geometric)
     against the tensor form sum_r c_r u_r^T S (dJ/dq_i) D v_r (Park, Chung & Youm 1999; Yoshikawa

@@ -9,8 +9,10 @@ One call of `resolve` per tick (contract: the data types and the signature are f
    minimising q_dot^T W q_dot is minimising |y|^2 for q_dot = D y);
 4. one full SVD of A (`twistrate.solver.svd`), reused for everything below and returned;
 5. task rates by the damping policy (`twistrate.solver.damping`), null-space objectives through the
-   exact projector (`twistrate.solver.nullspace`, plus the O(n) manipulability gradient of
-   `twistrate.solver.jacobians`, evaluated with the same SVD and the same A);
+   exact projector I - A+ A = Vh[r:]^T Vh[r:] (`twistrate.solver.nullspace`, plus the O(n)
+   manipulability gradient of `twistrate.solver.jacobians`, evaluated with the same SVD), both
+   assembled in one product with Vh; the objectives are evaluated only when A has a null space
+   (rank r < n) or the limits need them;
 6. hard limits (`twistrate.solver.limits`): if the rates break a bound, saturation in the null space
    with task scaling.
 

@@ -4,8 +4,16 @@ limits, and their enforcement by saturation in the null space with task scaling.
 Rate bounds for one tick of period T (joint i; A acceleration, V velocity limit; q_prev_dot the
 rate commanded last tick). With d = q - q_min the distance to the lower limit:
 
-    Qmin = max( -min(V, max(0, sqrt(2 A d) - A T / 2)),  q_prev_dot - A T )
-    Qmax = min(  min(V, max(0, sqrt(2 A d') - A T / 2)),  q_prev_dot + A T ),   d' = q_max - q
+    Qmin = max( -min(V, max(0, sqrt(2 B d) - B T / 2)),  q_prev_dot - A T )
+    Qmax = min(  min(V, max(0, sqrt(2 B d') - B T / 2)),  q_prev_dot + A T ),   d' = q_max - q
+
+with B = BRAKING_SHARE * A the deceleration the position bound plans with. Planning the stop with
+half the joint's acceleration leaves the other joints headroom: when a joint brakes toward its
+limit the task scale must shrink with it, and every joint carrying the task must slow down in
+proportion within its own acceleration limit. Measured: pushing reach7's shoulder into its limit
+had ticks with no feasible scale with B = A and none with B = A / 2 (tests/test_resolve.py);
+pushing reach7's base yaw (`twistrate bench solver`) went from 36 % to 24-32 % of ticks. Everything
+below holds for any B <= A; the derivation is written with A for the braking deceleration.
 
 The braking term is the discrete-time form of -sqrt(2 A d) (Flacco, De Luca & Khatib 2015, IEEE
 T-RO 31(3), give the continuous one, from memory). Derivation: moving toward the limit at speed x
@@ -76,6 +84,8 @@ _SHADOW_RTOL = 1e-9
 #: The refinement stops after this many passes per joint (Bland's rule terminates much earlier).
 _REFINE_MAX_PASSES = 4
 
+#: Share of the acceleration limit the position bound plans its braking with (module docstring).
+BRAKING_SHARE = 0.5
 LIMIT_POSITION = 1
 LIMIT_VELOCITY = 2
 LIMIT_ACCELERATION = 4
@@ -140,13 +150,14 @@ def plan_bounds(arm: Arm, period: float) -> BoundPlan:
     """Constants of the per-tick rate bounds of `arm` at tick period `period` (s, > 0)."""
     n = arm.n
     A2 = np.concatenate((arm.a_max, arm.a_max))
+    B2 = BRAKING_SHARE * A2  # deceleration the position bound plans with (module docstring)
     V2 = np.concatenate((arm.v_max, arm.v_max))
     G = np.concatenate((-np.eye(n), np.eye(n)))
-    e0 = 2.0 * A2 * np.concatenate((-arm.q_min, arm.q_max))
-    half_AT = 0.5 * A2 * period
+    e0 = 2.0 * B2 * np.concatenate((-arm.q_min, arm.q_max))
+    half_AT = 0.5 * B2 * period
     e_hi = (V2 + half_AT) ** 2
     check = np.zeros((6 * n, 3 * n + 1))
-    check[: 2 * n, :n] = -2.0 * A2[:, None] * G
+    check[: 2 * n, :n] = -2.0 * B2[:, None] * G
     check[: 2 * n, -1] = np.minimum(e0, _BIG)  # unlimited joints: a finite stand-in above e_hi
     check[2 * n: 4 * n, n: 2 * n] = G
     check[2 * n: 4 * n, -1] = half_AT
@@ -154,7 +165,7 @@ def plan_bounds(arm: Arm, period: float) -> BoundPlan:
     check[4 * n:, 2 * n: 3 * n] = G
     check[4 * n:, -1] = A2 * period
     return BoundPlan(
-        period=float(period), G=G, e0=e0, G2A=2.0 * A2[:, None] * G, e_lo=half_AT * half_AT, e_hi=e_hi,
+        period=float(period), G=G, e0=e0, G2A=2.0 * B2[:, None] * G, e_lo=half_AT * half_AT, e_hi=e_hi,
         half_AT=half_AT, AT=A2 * period, AT_n=arm.a_max * period, check=check,
     )
 

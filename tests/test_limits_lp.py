@@ -165,21 +165,24 @@ def test_resolve_scale_is_maximal_on_random_arms(n: int) -> None:
 
 
 def test_infeasible_ticks_along_a_trajectory_are_infeasible_for_the_lp() -> None:
-    # reach7's shoulder pushed into its limit (as in tests/test_resolve.py): on every tick where
-    # resolve reports no feasible scale (scale 0 with the tool still moving), the LP is infeasible
-    # too, so the previous-rate start leaves no feasible scale undiscovered along this trajectory.
+    # reach7's shoulder driven at speed, then the twist reversed (as in tests/test_resolve.py): on
+    # every tick where resolve reports no feasible scale (scale 0 with the tool still moving), the LP
+    # is infeasible too, so the previous-rate start leaves no feasible scale undiscovered along this
+    # trajectory; on every scaled tick the scale is the LP's maximum.
     arm = load_arm("reach7")
     plan = plan_bounds(arm, T)
     options = SolverOptions(damping="none", limit_gain=0.0)
     L = options.characteristic_length
     W = np.array([1, 1, 1, L, L, L])
     q = np.array(arm.q_home, dtype=float)
-    q[1] = np.radians(-100.0)
+    q[1] = np.radians(-60.0)
     qd = np.zeros(arm.n)
     J0 = geometric_jacobian(arm, forward(arm, q))
     tw = DesiredTwist(-0.3 * J0[:3, 1], -0.3 * J0[3:, 1])
     infeasible = 0
-    for _ in range(800):
+    for k in range(400):
+        if k == 200:
+            tw = DesiredTwist(-tw.linear, -tw.angular)
         r = resolve(arm, q, qd, tw, T, options)
         if r.scale == 0.0 and np.linalg.norm(r.twist_achieved) > 1e-9:
             infeasible += 1

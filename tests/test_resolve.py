@@ -216,10 +216,12 @@ def test_returned_arrays_do_not_alias_across_ticks(rng: np.random.Generator) -> 
     assert r1.limits_active.dtype == np.uint8 and r1.limits_active.shape == (arm.n,)
 
 
-def _push(arm: Arm, joint: int, start: float, speed: float, ticks: int) -> tuple[list[float], int, int]:
+def _push(arm: Arm, joint: int, start: float, speed: float, ticks: int,
+          reverse_at: int | None = None) -> tuple[list[float], int, int]:
     """Drive `joint` from `start` (rad) toward its nearer limit with the twist that joint alone would
-    make at `speed` rad/s, constant in the base frame; integrate q += q_dot T. Checks every bound
-    every tick and returns (scales, bits seen, ticks where no scale was feasible)."""
+    make at `speed` rad/s, constant in the base frame (reversed from tick `reverse_at` on, if given);
+    integrate q += q_dot T. Checks every bound every tick and returns (scales, bits seen, ticks where
+    no scale was feasible)."""
     plan = plan_bounds(arm, T)
     options = SolverOptions(damping="none", limit_gain=0.0)
     q = np.array(arm.q_home, dtype=float)
@@ -229,7 +231,9 @@ def _push(arm: Arm, joint: int, start: float, speed: float, ticks: int) -> tuple
     toward = -1.0 if start - arm.q_min[joint] < arm.q_max[joint] - start else 1.0
     tw = DesiredTwist(toward * speed * J[:3, joint], toward * speed * J[3:, joint])
     scales, bits_seen, infeasible = [], 0, 0
-    for _ in range(ticks):
+    for k in range(ticks):
+        if k == reverse_at:
+            tw = DesiredTwist(-tw.linear, -tw.angular)
         b = rate_bounds(plan, q, qd)
         r = resolve(arm, q, qd, tw, T, options)
         assert np.all(r.qd >= b.lo - 1e-12) and np.all(r.qd <= b.hi + 1e-12)
@@ -260,13 +264,23 @@ def test_limits_hold_and_the_twist_is_only_scaled_while_pushing_into_a_joint_lim
 
 
 def test_limits_hold_when_the_scaled_twist_becomes_infeasible() -> None:
-    # reach7's shoulder pushed into its -115 deg limit: the base-frame twist soon needs joint rates
-    # that change faster than the acceleration limits allow, and on some ticks no scale in [0, 1] is
-    # feasible (the scaling LP itself is infeasible there, see tests/test_limits_lp.py). The hard
-    # bounds still hold every tick.
+    # reach7's shoulder driven at speed, then the twist reversed: no joint rate within one tick of
+    # acceleration makes any scaled copy of the reversed twist (s > 0) or holds the tool (s = 0),
+    # so on some ticks no scale in [0, 1] is feasible (the scaling LP itself is infeasible there,
+    # see tests/test_limits_lp.py). The hard bounds still hold every tick.
+    arm = load_arm("reach7")
+    scales, _, infeasible = _push(arm, 1, np.radians(-60.0), 0.3, 400, reverse_at=200)
+    assert infeasible > 0 and len(scales) > 0
+
+
+def test_braking_share_keeps_the_push_into_a_limit_feasible() -> None:
+    # reach7's shoulder pushed into its -115 deg limit: the position bound plans its braking with
+    # BRAKING_SHARE of the acceleration limit, which leaves the other joints the headroom to follow
+    # the shrinking scale, so every tick has a feasible scale (recursive feasibility of braking
+    # bounds: Flacco, De Luca & Khatib 2015, IEEE T-RO 31(3), from memory).
     arm = load_arm("reach7")
     scales, _, infeasible = _push(arm, 1, np.radians(-100.0), 0.3, 800)
-    assert infeasible > 0 and len(scales) > 0
+    assert infeasible == 0 and min(scales) < 1.0
 
 
 def test_damping_and_saturation_scale_the_damped_twist(rng: np.random.Generator) -> None:

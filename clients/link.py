@@ -16,7 +16,7 @@ Link per thread.
 from __future__ import annotations
 
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -282,6 +282,28 @@ class Link:
                                   point=point)
         self._intake.send_multipart([codec.TOPIC_TWIST, data])
         return seq
+
+    def stream_twists(self, twist_at: Callable[[float], tuple[Sequence[float], Sequence[float]] | None],
+                      rate_hz: float, seconds: float,
+                      wait: Callable[[float], object] = time.sleep) -> int:
+        """Send twist_at(t) = (linear m/s, angular rad/s), base frame, at `rate_hz` on absolute
+        deadlines for `seconds` (t in s since the start), until twist_at returns None. `wait(dt)`
+        sleeps dt s and may return True to stop early (e.g. threading.Event.wait). Returns the number
+        of twists sent. Claim and enable first; disable and release after."""
+        t0 = time.monotonic()
+        period = 1.0 / rate_hz
+        next_send = t0
+        sent = 0
+        while (t := time.monotonic() - t0) < seconds:
+            twist = twist_at(t)
+            if twist is None:
+                break
+            self.send_twist(*twist)
+            sent += 1
+            next_send += period
+            if wait(max(0.0, next_send - time.monotonic())):
+                break
+        return sent
 
     def send_joints(self, position: Sequence[float] | np.ndarray,
                     velocity: Sequence[float] | np.ndarray | None = None) -> int:

@@ -108,15 +108,13 @@ def _source(ep: Endpoints, seconds: float) -> int:
         link.wait_ready(timeout_s=10.0)
         link.claim(lease_ms=2000)
         link.enable()
-        t0 = time.monotonic()
-        period = 1.0 / SOURCE_HZ
-        next_send = t0
-        while (t := time.monotonic() - t0) < seconds:
-            w = 2.0 * math.pi * 0.25
-            link.send_twist((0.04 * math.cos(w * t), 0.04 * math.sin(w * t), 0.01 * math.sin(2 * w * t)),
-                            (0.0, 0.0, 0.1 * math.sin(w * t)))
-            next_send += period
-            time.sleep(max(0.0, next_send - time.monotonic()))
+        w = 2.0 * math.pi * 0.25
+
+        def circle(t: float) -> tuple[tuple[float, ...], tuple[float, ...]]:
+            return ((0.04 * math.cos(w * t), 0.04 * math.sin(w * t), 0.01 * math.sin(2 * w * t)),
+                    (0.0, 0.0, 0.1 * math.sin(w * t)))
+
+        link.stream_twists(circle, SOURCE_HZ, seconds)
         with contextlib.suppress(Exception):
             link.disable()
             link.release()

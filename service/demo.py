@@ -117,18 +117,14 @@ class ScriptedSource:
                 link.wait_ready(timeout_s=5.0)
                 link.claim(lease_ms=1000)
                 link.enable()
-                t0 = time.monotonic()
-                period = 1.0 / SOURCE_HZ
-                next_send = t0
-                while not self._stop.is_set():
-                    t = time.monotonic() - t0
-                    if t >= self.seconds:
-                        break
+                def twist_at(t: float) -> tuple[np.ndarray, np.ndarray] | None:
+                    if self._stop.is_set():
+                        return None
                     self.phase, linear, angular = scripted_twist(t)
-                    link.send_twist(linear, angular)
                     self.sent += 1
-                    next_send += period
-                    self._stop.wait(max(0.0, next_send - time.monotonic()))
+                    return linear, angular
+
+                link.stream_twists(twist_at, SOURCE_HZ, self.seconds, wait=self._stop.wait)
                 self.phase = "stopping"
                 link.disable()
                 link.release()

@@ -219,6 +219,24 @@ def test_twists_and_joints_are_documented_messages(link, peer):
     np.testing.assert_array_equal(joints.position, np.linspace(-1, 1, N))
 
 
+def test_stream_twists_paces_and_stops(link, peer):
+    link.claim()
+    seen: list[float] = []
+
+    def twist_at(t: float):
+        if len(seen) == 5:
+            return None  # the source says stop
+        seen.append(t)
+        return [0.01 * len(seen), 0.0, 0.0], [0.0, 0.0, 0.0]
+
+    sent = link.stream_twists(twist_at, rate_hz=100.0, seconds=5.0)
+    assert sent == 5
+    _wait_for(lambda: len(peer.received) == 5)
+    assert [m.twist.linear[0] for m in peer.received] == pytest.approx([0.01, 0.02, 0.03, 0.04, 0.05])
+    # Paced on absolute deadlines: the fifth twist is due 4 periods after the first, never earlier.
+    assert seen[-1] - seen[0] >= 4 * 0.01 - 1e-3
+
+
 def test_send_twist_renews_the_lease_when_a_third_has_passed(link, peer):
     link.claim(lease_ms=60)
     link.send_twist([0, 0, 0], [0, 0, 0])

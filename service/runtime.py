@@ -41,9 +41,11 @@ from twistrate.service.tick import (
     Scheduling,
     Ticker,
     guard_runaway,
+    hold_cpu_wake_latency,
     is_realtime,
     make_realtime,
     probe_realtime,
+    release_cpu_wake_latency,
     rt_throttling,
     set_timer_slack,
 )
@@ -212,6 +214,8 @@ class Service:
         self._done = threading.Event()
         self._start_error: BaseException | None = None
         self.scheduling = Scheduling(False, 0, self.realtime_priority, "not started")
+        #: the CPU wake-up latency request held while the tick runs real-time (tick.hold_cpu_wake_latency)
+        self._cpu_latency_fd: int | None = None
         self._auth = None
         self._intake: zmq.Socket | None = None
         self._output: zmq.Socket | None = None
@@ -357,6 +361,7 @@ class Service:
         self.scheduling = sched = make_realtime(self.realtime_priority)
         if sched.realtime:
             guard_runaway()
+            self._cpu_latency_fd = hold_cpu_wake_latency()
             if rt_throttling() is False:
                 log.warning("kernel real-time throttling is off (sched_rt_runtime_us = -1): the tick still "
                             "sleeps every period, but nothing else reserves CPU time for normal processes")
@@ -370,7 +375,8 @@ class Service:
         if self.sim is not None:
             self.q_rx_ns = ticker.deadline
         self._ready.set()
-        log.info("tick %g Hz on %s (%s); intake %s, output %s", self.rate_hz, self.arm.name, sched.text,
+        log.info("tick %g Hz on %s (%s%s); intake %s, output %s", self.rate_hz, self.arm.name, sched.text,
+                 "; idle CPUs poll" if self._cpu_latency_fd is not None else "",
                  self.config.endpoints.intake, self.config.endpoints.output)
         shutdown_deadline = None
         clock = time.monotonic_ns
@@ -391,6 +397,8 @@ class Service:
             self._finish()
 
     def _finish(self) -> None:
+        release_cpu_wake_latency(self._cpu_latency_fd)
+        self._cpu_latency_fd = None
         self._close_sockets()
         while self._pending:
             _, fut = self._pending.popleft()

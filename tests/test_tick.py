@@ -1,19 +1,22 @@
 """Tick timing logic with a simulated clock: absolute deadlines, overrun counting and re-anchoring, a
 sleep in every period, lateness histogram percentiles (against numpy.percentile as the reference);
-real-time scheduling, its fallback and the runaway guard."""
+real-time scheduling, its fallback, the runaway guard and the CPU wake-up latency request."""
 
 from __future__ import annotations
 
 import errno
 import os
 import signal
+import struct
 import subprocess
 import sys
 
 import numpy as np
 import pytest
 
+from twistrate.service import tick
 from twistrate.service.tick import (
+    CPU_LATENCY_FILE,
     DEFAULT_RT_PRIORITY,
     MIN_SLEEP_NS,
     SPIN_MIN_NS,
@@ -21,9 +24,11 @@ from twistrate.service.tick import (
     SPIN_WINDOW,
     LatencyHistogram,
     Ticker,
+    hold_cpu_wake_latency,
     is_realtime,
     make_realtime,
     probe_realtime,
+    release_cpu_wake_latency,
 )
 
 
@@ -263,3 +268,28 @@ def test_runaway_guard_ends_a_real_time_thread_that_never_blocks():
 def test_bad_period_rejected():
     with pytest.raises(ValueError, match="period_ns"):
         Ticker(0)
+
+
+def _cpu_latency_now_us() -> int:
+    # Linux PM QoS (Documentation/power/pm_qos_interface.rst): reading the file gives the aggregated
+    # request in force, a 32-bit value in µs.
+    with open(CPU_LATENCY_FILE, "rb") as f:
+        return struct.unpack("=i", f.read(4))[0]
+
+
+@pytest.mark.skipif(not os.access(CPU_LATENCY_FILE, os.W_OK), reason="no writable PM QoS CPU latency file")
+def test_cpu_wake_latency_request_is_in_force_while_held_and_ends_on_release():
+    before = _cpu_latency_now_us()
+    fd = hold_cpu_wake_latency(0)
+    assert fd is not None
+    try:
+        assert _cpu_latency_now_us() == 0  # the smallest request wins
+    finally:
+        release_cpu_wake_latency(fd)
+    assert _cpu_latency_now_us() == before
+
+
+def test_cpu_wake_latency_request_refused_is_none(monkeypatch, tmp_path):
+    monkeypatch.setattr(tick, "CPU_LATENCY_FILE", tmp_path / "absent" / "cpu_dma_latency")
+    assert hold_cpu_wake_latency(0) is None
+    release_cpu_wake_latency(None)  # nothing to release: no error

@@ -17,7 +17,10 @@ client. It reports
 * tick to command received by a client (median, p99): this process's receive time minus the command's
   stamp (the service's wall clock at the tick's wake-up);
 * the service process's CPU share over the measured window (/proc/PID/stat utime + stime, as a
-  fraction of one core).
+  fraction of one core);
+* context: the CPU of all benchmark processes, the load average, and the CPU wake-up latency request in
+  force on the machine during the window (the service holds 0 µs when it runs real-time; see
+  docs/operation.md).
 
 Targets (this 2-core machine): lateness p99 <= 100 us at 500 Hz and <= 150 us at 1 kHz; overruns
 < 0.1 % of ticks; CPU < 35 % of one core at 500 Hz; arrival to publish p99 <= one period + 300 us.
@@ -42,6 +45,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.service.tick import cpu_wake_latency_in_force_us
 
 DEFAULT_RATES = (500.0, 1000.0)
 DEFAULT_SECONDS = 10.0
@@ -54,6 +58,9 @@ TARGET_OVERRUN_FRACTION = 0.001
 TARGET_CPU_FRACTION_500 = 0.35
 #: Allowance of arrival to publish on top of one period, us.
 TARGET_ARRIVAL_EXTRA_US = 300.0
+#: What the kernel reports as the CPU wake-up latency when nobody requests one, us (Linux PM QoS,
+#: PM_QOS_CPU_LATENCY_DEFAULT_VALUE: 2000 s).
+NO_WAKE_LATENCY_REQUEST_US = 2_000_000_000
 CLK_TCK = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
 
 
@@ -166,6 +173,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
                 ours = [serve.pid, *(p.pid for p in procs[1:]), os.getpid()]
                 cpu0, wall0 = cpu_seconds(serve.pid), time.monotonic()
                 ours0, load0 = sum(cpu_seconds(pid) for pid in ours), load_average()
+                wake_latency = cpu_wake_latency_in_force_us()
                 received: list[int] = []
                 running = 0
                 end = wall0 + seconds
@@ -217,6 +225,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
         "rejected_total": c1.get("rejected_total", 0),
         "rt_priority": rt_priority,
         "realtime": realtime,
+        "cpu_wake_latency_us": wake_latency,
     }
     result["targets"] = {
         "lateness_p99_us": TARGET_LATENESS_P99_US.get(rate_hz),
@@ -268,6 +277,10 @@ def format_result(r: dict[str, Any]) -> str:
         f"average {r['load_average_before']:.2f} -> {r['load_average_after']:.2f}; solved ahead of the "
         f"deadline {100 * r['speculation_used_fraction']:.0f} % of ticks",
     ]
+    wake = r.get("cpu_wake_latency_us")
+    lines[-1] += ("; CPU wake-up latency request: unknown" if wake is None else
+                  "; CPU wake-up latency request: none" if wake >= NO_WAKE_LATENCY_REQUEST_US else
+                  f"; CPU wake-up latency request: {wake} us")
     if r.get("process_errors"):
         lines.append(f"  process errors: {r['process_errors']}")
     return "\n".join(lines)

@@ -321,6 +321,18 @@ def hold_cpu_wake_latency(latency_us: int = CPU_WAKE_LATENCY_US) -> int | None:
     return fd
 
 
+def cpu_wake_latency_in_force_us() -> int | None:
+    """The CPU wake-up latency request in force on this machine, µs (the smallest of all held; the
+    kernel reports 2_000_000_000 when none is held), or None when it cannot be read (root only by
+    default)."""
+    try:
+        with open(CPU_LATENCY_FILE, "rb") as f:
+            raw = f.read(4)
+    except OSError:
+        return None
+    return struct.unpack("=i", raw)[0] if len(raw) == 4 else None
+
+
 def release_cpu_wake_latency(fd: int | None) -> None:
     """End a request made by hold_cpu_wake_latency (None: nothing to do)."""
     if fd is not None:

@@ -7,7 +7,6 @@ from __future__ import annotations
 import errno
 import os
 import signal
-import struct
 import subprocess
 import sys
 
@@ -24,6 +23,7 @@ from twistrate.service.tick import (
     SPIN_WINDOW,
     LatencyHistogram,
     Ticker,
+    cpu_wake_latency_in_force_us,
     hold_cpu_wake_latency,
     is_realtime,
     make_realtime,
@@ -270,26 +270,23 @@ def test_bad_period_rejected():
         Ticker(0)
 
 
-def _cpu_latency_now_us() -> int:
-    # Linux PM QoS (Documentation/power/pm_qos_interface.rst): reading the file gives the aggregated
-    # request in force, a 32-bit value in µs.
-    with open(CPU_LATENCY_FILE, "rb") as f:
-        return struct.unpack("=i", f.read(4))[0]
-
-
 @pytest.mark.skipif(not os.access(CPU_LATENCY_FILE, os.W_OK), reason="no writable PM QoS CPU latency file")
 def test_cpu_wake_latency_request_is_in_force_while_held_and_ends_on_release():
-    before = _cpu_latency_now_us()
+    # Linux PM QoS (Documentation/power/pm_qos_interface.rst): reading the file gives the aggregated
+    # request in force, a 32-bit value in µs; the smallest request held wins.
+    before = cpu_wake_latency_in_force_us()
+    assert before is not None and before >= 0
     fd = hold_cpu_wake_latency(0)
     assert fd is not None
     try:
-        assert _cpu_latency_now_us() == 0  # the smallest request wins
+        assert cpu_wake_latency_in_force_us() == 0  # the smallest request wins
     finally:
         release_cpu_wake_latency(fd)
-    assert _cpu_latency_now_us() == before
+    assert cpu_wake_latency_in_force_us() == before
 
 
 def test_cpu_wake_latency_request_refused_is_none(monkeypatch, tmp_path):
     monkeypatch.setattr(tick, "CPU_LATENCY_FILE", tmp_path / "absent" / "cpu_dma_latency")
     assert hold_cpu_wake_latency(0) is None
+    assert cpu_wake_latency_in_force_us() is None
     release_cpu_wake_latency(None)  # nothing to release: no error

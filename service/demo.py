@@ -71,9 +71,9 @@ SCENARIO: tuple[Phase, ...] = (
     Phase("sweep along its curve", 7.0, _sweep),
     Phase("reach to the far edge", 1.5, lambda t: ((0.12, 0.0, 0.0), (0.0, 0.0, 0.0))),
     Phase("tilt to look along it", 4.0, lambda t: ((0.0, 0.0, 0.0), (0.0, -0.3, 0.0))),
-    Phase("roll the camera", 3.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.8))),
+    Phase("roll the camera", 4.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.8))),
     Phase("back off", 3.5, lambda t: ((-0.05, 0.0, 0.05), (0.0, 0.35, -0.8))),
-    Phase("hold still", 1.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.0))),
+    Phase("hold still", 0.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.0))),
 )
 
 

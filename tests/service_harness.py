@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import socket
+import subprocess
 import threading
 import time
 from collections.abc import Iterator
@@ -175,3 +176,11 @@ def wait_for(predicate: Any, limit_s: float = LOOP_LIMIT_S, poll_s: float = 0.01
             return
         time.sleep(poll_s)
     raise AssertionError(f"condition not met within {limit_s} s")
+
+
+def reap(*procs: subprocess.Popen) -> None:
+    """Test teardown: kill and collect any of `procs` still running (never leaves a stray service)."""
+    for proc in procs:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()

@@ -12,7 +12,7 @@ import threading
 
 import numpy as np
 import pytest
-from service_harness import collect_commands, config_dict, endpoints_of, running_service, stream_until
+from service_harness import collect_commands, config_dict, endpoints_of, reap, running_service, stream_until
 
 from twistrate.clients.link import Link
 from twistrate.service.config import load_config
@@ -67,9 +67,7 @@ def test_serve_sigterm_ramps_down_and_publishes_a_final_zero_command(tmp_path):
                     cs.append(link.receive_command(timeout_s=1.0))
         _, err = proc.communicate(timeout=20)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.communicate()
+        reap(proc)
     assert proc.returncode == 0, err
     final = cs[-1]
     assert final.mode == "shutdown" and not final.rate.any()
@@ -105,10 +103,7 @@ def test_sim_process_drives_a_service_in_driver_mode(tmp_path):
         serve.send_signal(signal.SIGTERM)
         serve.communicate(timeout=20)
     finally:
-        for p in (sim, serve):
-            if p.poll() is None:
-                p.kill()
-                p.communicate()
+        reap(sim, serve)
     assert sim.returncode == 0 and serve.returncode == 0
 
 

@@ -20,7 +20,7 @@ import tempfile
 from pathlib import Path
 
 import pytest
-from service_harness import config_dict, endpoints_of, make_config, running_service, stream_until
+from service_harness import config_dict, endpoints_of, make_config, reap, running_service, stream_until
 
 from twistrate.clients.link import Link
 from twistrate.service import serve
@@ -112,8 +112,6 @@ def test_unprivileged_serve_runs_with_normal_scheduling_and_one_notice():
             proc.send_signal(signal.SIGTERM)
             _, err = proc.communicate(timeout=20)
         finally:
-            if proc.poll() is None:
-                proc.kill()
-                proc.communicate()
+            reap(proc)
     assert proc.returncode == 0, err
     assert err.count(NOTICE) == 1 and "not permitted" in err

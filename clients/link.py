@@ -1,7 +1,7 @@
 """A small blocking client of a twistrate service over the documented wire protocol (docs/protocol.md).
 
 Used by tests, the benchmark, the demo's scripted twist source and other clients. It speaks only
-the protocol: messages are built and checked by `twistrate.service.codec`, the protocol's reference
+the protocol: messages are built and checked by `twistrate.service.wire`, the protocol's reference
 implementation. Every receive has a timeout; nothing here waits forever. Not thread-safe: use one
 Link per thread.
 
@@ -25,8 +25,8 @@ import numpy as np
 import zmq
 import zmq.auth
 
-from twistrate.service import codec
-from twistrate.service.codec import (
+from twistrate.service import wire
+from twistrate.service.wire import (
     CommandMessage,
     EventMessage,
     HealthMessage,
@@ -66,9 +66,9 @@ def plain(value: Any) -> Any:
 class Endpoints:
     """Where the service listens (it binds; the link connects)."""
 
-    intake: str = codec.DEFAULT_INTAKE
-    output: str = codec.DEFAULT_OUTPUT
-    control: str = codec.DEFAULT_CONTROL
+    intake: str = wire.DEFAULT_INTAKE
+    output: str = wire.DEFAULT_OUTPUT
+    control: str = wire.DEFAULT_CONTROL
 
 
 @dataclass(frozen=True)
@@ -106,7 +106,7 @@ class Link:
 
     def __init__(self, endpoints: Endpoints | None = None, curve: CurveKeys | None = None, *,
                  timeout_s: float = DEFAULT_TIMEOUT_S, client: str = "link",
-                 topics: Sequence[bytes] = codec.OUTPUT_TOPICS, auto_renew: bool = True,
+                 topics: Sequence[bytes] = wire.OUTPUT_TOPICS, auto_renew: bool = True,
                  n: int | None = None, context: zmq.Context | None = None) -> None:
         self.endpoints = endpoints or Endpoints()
         self.timeout_s = float(timeout_s)
@@ -116,7 +116,7 @@ class Link:
         self.lease: str | None = None
         self.lease_ms: int | None = None
         self._renewed_at = 0.0
-        self._seq = {codec.KIND_TWIST: 0, codec.KIND_JOINTS: 0, codec.KIND_REQUEST: 0}
+        self._seq = {wire.KIND_TWIST: 0, wire.KIND_JOINTS: 0, wire.KIND_REQUEST: 0}
         self._own_context = context is None
         self._ctx = context or zmq.Context()
         self._control = self._socket(zmq.DEALER, curve)
@@ -161,7 +161,7 @@ class Link:
         self.close()
 
     def wait_ready(self, timeout_s: float | None = None,
-                   topics: Sequence[bytes] = (codec.TOPIC_TWIST,)) -> None:
+                   topics: Sequence[bytes] = (wire.TOPIC_TWIST,)) -> None:
         """Block until the service's intake has subscribed to `topics` (so sent messages are not
         dropped by the publish/subscribe start-up), or raise LinkTimeoutError."""
         timeout = self.timeout_s if timeout_s is None else timeout_s
@@ -184,8 +184,8 @@ class Link:
         """Send one control request and return its result map. Raises ControlError(code, message)
         when refused, LinkTimeoutError when no reply arrives in time, WireError on a malformed reply.
         Argument values may be numpy scalars (see `plain`)."""
-        seq = self._seq[codec.KIND_REQUEST] = self._seq[codec.KIND_REQUEST] + 1
-        data = codec.encode_request(seq=seq, op=op, **{k: plain(v) for k, v in args.items()})
+        seq = self._seq[wire.KIND_REQUEST] = self._seq[wire.KIND_REQUEST] + 1
+        data = wire.encode_request(seq=seq, op=op, **{k: plain(v) for k, v in args.items()})
         self._control.send_multipart([b"", data])
         reply = self._await_reply(seq, op, self.timeout_s if timeout_s is None else timeout_s)
         if not reply.ok:
@@ -201,7 +201,7 @@ class Link:
             frames = self._control.recv_multipart()
             if len(frames) != 2 or frames[0] != b"":
                 raise WireError("bad_frames", f"reply frames: got {len(frames)}; accepted: [b'', map]")
-            reply = codec.decode_reply(frames[1])
+            reply = wire.decode_reply(frames[1])
             if reply.seq == seq:
                 return reply
             # a late reply to an earlier request that timed out: drop it and keep waiting
@@ -277,10 +277,10 @@ class Link:
         `frame`. Returns its seq. Raises InputError for values the protocol refuses."""
         if self.auto_renew:
             self.renew_if_due()
-        seq = self._seq[codec.KIND_TWIST] = self._seq[codec.KIND_TWIST] + 1
-        data = codec.encode_twist(seq=seq, lease=self._token(), linear=linear, angular=angular, frame=frame,
+        seq = self._seq[wire.KIND_TWIST] = self._seq[wire.KIND_TWIST] + 1
+        data = wire.encode_twist(seq=seq, lease=self._token(), linear=linear, angular=angular, frame=frame,
                                   point=point)
-        self._intake.send_multipart([codec.TOPIC_TWIST, data])
+        self._intake.send_multipart([wire.TOPIC_TWIST, data])
         return seq
 
     def stream_twists(self, twist_at: Callable[[float], tuple[Sequence[float], Sequence[float]] | None],
@@ -308,9 +308,9 @@ class Link:
     def send_joints(self, position: Sequence[float] | np.ndarray,
                     velocity: Sequence[float] | np.ndarray | None = None) -> int:
         """Send measured joint state (a driver's job): position (n,) rad or m, velocity (n,) or None."""
-        seq = self._seq[codec.KIND_JOINTS] = self._seq[codec.KIND_JOINTS] + 1
-        data = codec.encode_joints(seq=seq, position=position, velocity=velocity)
-        self._intake.send_multipart([codec.TOPIC_JOINTS, data])
+        seq = self._seq[wire.KIND_JOINTS] = self._seq[wire.KIND_JOINTS] + 1
+        data = wire.encode_joints(seq=seq, position=position, velocity=velocity)
+        self._intake.send_multipart([wire.TOPIC_JOINTS, data])
         return seq
 
     # -- stream in -----------------------------------------------------------------------------------
@@ -321,7 +321,7 @@ class Link:
         timeout = self.timeout_s if timeout_s is None else timeout_s
         if not self._output.poll(max(0, int(timeout * 1000)), zmq.POLLIN):
             raise LinkTimeoutError(f"no message from {self.endpoints.output} within {timeout:g} s")
-        return codec.decode_output(self._output.recv_multipart(), self.n)
+        return wire.decode_output(self._output.recv_multipart(), self.n)
 
     def _receive_kind(self, cls: type, timeout_s: float | None) -> Any:
         timeout = self.timeout_s if timeout_s is None else timeout_s

@@ -22,18 +22,19 @@ from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from twistrate.service.codec import (
+from twistrate.service.security import check_endpoints, load_allow_list, load_secret_keypair
+from twistrate.service.state import E_BAD_ARGUMENT
+from twistrate.service.tick import DEFAULT_RT_PRIORITY
+from twistrate.service.wire import (
+    DAMPING_POLICIES,
     DEFAULT_CONTROL,
     DEFAULT_INTAKE,
     DEFAULT_OUTPUT,
     LEASE_MS_MAX,
     MIN_CHARACTERISTIC_LENGTH_M,
 )
-from twistrate.service.security import check_endpoints, load_allow_list, load_secret_keypair
-from twistrate.service.state import E_BAD_ARGUMENT
-from twistrate.service.tick import DEFAULT_RT_PRIORITY
 from twistrate.solver.errors import ConfigError, ControlError, field_error
-from twistrate.solver.options import DAMPING_POLICIES, HealthThresholds, SolverOptions
+from twistrate.solver.options import HealthThresholds, SolverOptions
 
 if TYPE_CHECKING:
     from twistrate.solver.arm import Arm
@@ -55,7 +56,7 @@ RT_PRIORITY_MAX = 99
 _STRICT = ConfigDict(strict=True, extra="forbid", frozen=True, allow_inf_nan=False)
 
 # --- bounded value types, shared by the config sections and the tunables ---------------------------
-Damping = Literal["none", "constant", "manipulability", "singular_value", "selective"]
+Damping = Literal[DAMPING_POLICIES]  # the protocol's list (wire.constants); the solver's copy is tested equal
 DampingMax = Annotated[float, Field(ge=0.0, le=1.0)]
 Threshold = Annotated[float, Field(gt=0.0, le=1.0)]
 StepMax = Annotated[float, Field(gt=0.0, le=10.0)]

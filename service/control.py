@@ -1,6 +1,6 @@
 """The control plane: a ROUTER socket on an asyncio (uvloop) loop answering lease, enable and query requests.
 
-Requests are decoded and checked here (twistrate.service.codec); anything that reads or changes tick
+Requests are decoded and checked here (twistrate.service.wire); anything that reads or changes tick
 state is handed to the tick thread with `Service.submit` and awaited, so the loop never blocks the
 tick and the tick never waits for the loop. `arm` and `counters` are answered here from read-only
 data; `set` is validated here (pydantic, off the tick thread) and installed at a tick boundary.
@@ -19,7 +19,7 @@ import uvloop
 import zmq
 import zmq.asyncio
 
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.service.config import apply_set
 from twistrate.service.runtime import Service
 from twistrate.solver.errors import ControlError, InputError, WireError
@@ -88,27 +88,27 @@ class ControlServer:
         """The encoded reply to one request body."""
         self.requests += 1
         try:
-            req = codec.decode_request(body)
+            req = wire.decode_request(body)
         except WireError as exc:
-            seq, op = codec.peek_request(body)
-            self._count(codec.error_code(exc))
-            return codec.encode_reply(seq=seq, op=op, error=(codec.error_code(exc), str(exc)))
+            seq, op = wire.peek_request(body)
+            self._count(wire.error_code(exc))
+            return wire.encode_reply(seq=seq, op=op, error=(wire.error_code(exc), str(exc)))
         try:
             result = await self._dispatch(req)
-            return codec.encode_reply(seq=req.seq, op=req.op, result=result)
+            return wire.encode_reply(seq=req.seq, op=req.op, result=result)
         except ControlError as exc:
             self._count(exc.code)
-            code = exc.code if exc.code in codec.ERROR_CODES else "internal"
-            return codec.encode_reply(seq=req.seq, op=req.op, error=(code, str(exc)))
+            code = exc.code if exc.code in wire.ERROR_CODES else "internal"
+            return wire.encode_reply(seq=req.seq, op=req.op, error=(code, str(exc)))
         except (InputError, TimeoutError) as exc:  # a result we cannot encode, or no tick answer
             self._count("internal")
             log.error("control %s failed: %s", req.op, exc)
-            return codec.encode_reply(seq=req.seq, op=req.op, error=("internal", f"{req.op}: {exc}"))
+            return wire.encode_reply(seq=req.seq, op=req.op, error=("internal", f"{req.op}: {exc}"))
 
     def _count(self, code: str) -> None:
         self.refused[code] = self.refused.get(code, 0) + 1
 
-    async def _dispatch(self, req: codec.RequestMessage) -> dict[str, Any]:
+    async def _dispatch(self, req: wire.RequestMessage) -> dict[str, Any]:
         op, args, service = req.op, req.args, self.service
         if op == "arm":
             return self._arm

@@ -24,7 +24,7 @@ import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.service.config import load_config
 from twistrate.service.recorder import Recorder, format_summary, plot_svg, read_recording, summarize
 from twistrate.solver.errors import TwistrateError
@@ -46,7 +46,7 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
     end = None if seconds is None else time.monotonic() + seconds
     try:
         with Link(Endpoints(ep.intake, ep.output, ep.control), client="recorder",
-                  topics=(codec.TOPIC_COMMAND, codec.TOPIC_HEALTH), n=arm.n) as link:
+                  topics=(wire.TOPIC_COMMAND, wire.TOPIC_HEALTH), n=arm.n) as link:
             while not stop[0] and (end is None or time.monotonic() < end):
                 try:
                     msg = link.receive(timeout_s=0.2)
@@ -54,12 +54,12 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
                     continue
                 except TwistrateError:  # a malformed message: skip it
                     continue
-                if type(msg) is codec.HealthMessage:
+                if type(msg) is wire.HealthMessage:
                     damping = msg.damping
                     sigma_min = float(msg.singular_values[-1])
                     manip = msg.manipulability
                     continue
-                if type(msg) is not codec.CommandMessage:
+                if type(msg) is not wire.CommandMessage:
                     continue
                 q = msg.target - msg.rate * period
                 recorder.push(msg.stamp_ns, msg.stamp_ns, msg.tick, msg.mode, msg.health, no_limits, q,

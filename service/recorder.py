@@ -41,8 +41,8 @@ from typing import Any
 
 import numpy as np
 
-from twistrate.service.codec import HEALTH_STATES
 from twistrate.service.state import MODES
+from twistrate.service.wire import HEALTH_STATES
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import InputError, field_error
 

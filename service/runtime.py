@@ -31,8 +31,8 @@ from typing import Any
 import numpy as np
 import zmq
 
-from twistrate.service import codec
 from twistrate.service import state as st
+from twistrate.service import wire
 from twistrate.service.config import ServiceConfig, Tunables
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.simarm import SimArm
@@ -159,7 +159,7 @@ class Service:
         self.q: np.ndarray | None = None if self.sim is None else self.sim.q
         self.q_rx_ns = 0
         self.qd = np.zeros(self.n)
-        self.twist: codec.TwistMessage | None = None
+        self.twist: wire.TwistMessage | None = None
         self.twist_rx_ns = 0
         self._twist_unanswered = False
         self.tick = 0
@@ -327,7 +327,7 @@ class Service:
         try:
             self.configure_socket(intake)
             self.configure_socket(output)
-            for topic in codec.INTAKE_TOPICS:
+            for topic in wire.INTAKE_TOPICS:
                 intake.setsockopt(zmq.SUBSCRIBE, topic)
             intake.bind(ep.intake)
             output.bind(ep.output)
@@ -570,14 +570,14 @@ class Service:
                 return
             frames = sock.recv_multipart()
             try:
-                msg = codec.decode_intake(frames, n)
+                msg = wire.decode_intake(frames, n)
             except WireError as exc:
                 self._reject(exc.reason, now, str(exc))
-                if frames[0] == codec.TOPIC_JOINTS and self.sim is None and \
+                if frames[0] == wire.TOPIC_JOINTS and self.sim is None and \
                         exc.reason in ("non_finite", "too_large"):
                     self._fault(f"joint state refused: {exc}")
                 continue
-            if type(msg) is codec.TwistMessage:
+            if type(msg) is wire.TwistMessage:
                 if not self.state.holds(msg.lease, now):
                     self._reject("not_leased", now, f"twist seq {msg.seq} without the current lease")
                     continue
@@ -597,9 +597,9 @@ class Service:
     # -- solve -----------------------------------------------------------------------------------
 
     def _compute(self, q: np.ndarray, qd_prev: np.ndarray,
-                 msg: codec.TwistMessage) -> tuple[Resolution, float]:
+                 msg: wire.TwistMessage) -> tuple[Resolution, float]:
         """(resolution, speed-cap factor) for a twist at q: the speed caps, then the solver. May raise."""
-        tw = msg.twist
+        tw = DesiredTwist(msg.linear, msg.angular, msg.frame, msg.point)
         t = self.tunables
         cap = speed_cap_factor(tw.linear, tw.angular, tw.point, t.tool_linear_max, t.angular_max)
         if cap < 1.0:
@@ -628,7 +628,7 @@ class Service:
                 return
             health = next_state(self.health_state, float(res.singular_values[-1]), self.thresholds)
             wall = time.time_ns() + (deadline - time.monotonic_ns())  # the wall clock at the deadline
-            data = codec.encode_command(seq=self._out_seq["command"], stamp_ns=wall, tick=self.tick, rate=qd,
+            data = wire.encode_command(seq=self._out_seq["command"], stamp_ns=wall, tick=self.tick, rate=qd,
                                         target=q + qd * self.period_s, answers=msg.seq,
                                         scale=min(1.0, max(0.0, float(res.scale))), mode=st.RUNNING,
                                         health=health)
@@ -637,7 +637,7 @@ class Service:
         self._spec = ((q, qd_prev, msg, self.options, self.tunables, self.tick), res, cap, health, data)
 
     def _solve(self, q: np.ndarray, qd_prev: np.ndarray,
-               msg: codec.TwistMessage) -> tuple[Resolution, float, str, bytes | None] | None:
+               msg: wire.TwistMessage) -> tuple[Resolution, float, str, bytes | None] | None:
         """(resolution, speed-cap factor, health state, pre-encoded command or None) for the newest
         twist, or None after a fault (solver error, non-finite rates)."""
         spec, self._spec = self._spec, None
@@ -684,7 +684,7 @@ class Service:
                         health: str) -> bytes | None:
         """This tick's command, or None (and a fault) when it cannot be encoded (non-finite, too large)."""
         try:
-            return codec.encode_command(seq=self._out_seq["command"], stamp_ns=wall, tick=self.tick, rate=qd,
+            return wire.encode_command(seq=self._out_seq["command"], stamp_ns=wall, tick=self.tick, rate=qd,
                                         target=q + qd * self.period_s, answers=answers,
                                         scale=min(1.0, max(0.0, self.scale)) if answers >= 0 else 1.0,
                                         mode=self.mode, health=health)
@@ -694,7 +694,7 @@ class Service:
             return None
 
     def _send_command(self, data: bytes, qd: np.ndarray, answers: int) -> None:
-        self._output.send_multipart((codec.TOPIC_COMMAND, data))
+        self._output.send_multipart((wire.TOPIC_COMMAND, data))
         published = time.monotonic_ns()
         self.deadline_to_publish.add(published - self._deadline)
         self._out_seq["command"] += 1
@@ -739,7 +739,7 @@ class Service:
         try:
             h = self.measure_health(q)
             self.last_health = h
-            data = codec.encode_health(seq=self._out_seq["health"], stamp_ns=wall, tick=self.tick,
+            data = wire.encode_health(seq=self._out_seq["health"], stamp_ns=wall, tick=self.tick,
                                        damping=self.damping, scale=min(1.0, max(0.0, self.scale)),
                                        state=self.health_state, mode=self.mode, rejected=self.rejected,
                                        overruns=self.ticker.overruns, **h)
@@ -747,7 +747,7 @@ class Service:
             self.counts["publish_failed"] += 1
             self._rlog.warning("health", time.monotonic_ns(), f"health not published: {exc}")
             return
-        self._output.send_multipart((codec.TOPIC_HEALTH, data))
+        self._output.send_multipart((wire.TOPIC_HEALTH, data))
         self._out_seq["health"] += 1
         self.counts["health_messages"] += 1
 
@@ -759,9 +759,9 @@ class Service:
         events = self.state.events
         for name, detail in events:
             seq = self._out_seq["event"]
-            data = codec.encode_event(seq=seq, tick=self.tick, event=name, detail=detail, mode=self.mode,
+            data = wire.encode_event(seq=seq, tick=self.tick, event=name, detail=detail, mode=self.mode,
                                       stamp_ns=wall)
-            self._output.send_multipart((codec.TOPIC_EVENT, data))
+            self._output.send_multipart((wire.TOPIC_EVENT, data))
             self._out_seq["event"] = seq + 1
             self.counts["events"] += 1
             log.info("event %s: %s (mode %s)", name, detail, self.mode)

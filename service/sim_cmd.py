@@ -17,7 +17,7 @@ import time
 import numpy as np
 import zmq
 
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.service.config import ServiceConfig, load_config
 from twistrate.service.motion import ramp_to_rest
 from twistrate.service.simarm import SimArm
@@ -49,7 +49,7 @@ class SimDriver:
             sock.setsockopt(zmq.MAXMSGSIZE, sk.max_message_bytes)
             sock.setsockopt(zmq.RCVHWM, sk.receive_hwm)
             sock.setsockopt(zmq.SNDHWM, sk.send_hwm)
-        self.commands.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_COMMAND)
+        self.commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
         self.commands.connect(ep.output)
         self.joints.connect(ep.intake)
         self.seq = 0
@@ -84,11 +84,11 @@ class SimDriver:
                 while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
                     frames = sock.recv_multipart()
                     try:
-                        msg = codec.decode_output(frames, n)
+                        msg = wire.decode_output(frames, n)
                     except WireError:
                         self.refused += 1
                         continue
-                    if type(msg) is codec.CommandMessage:
+                    if type(msg) is wire.CommandMessage:
                         rate = msg.rate
                         got = True
                         self.received += 1
@@ -100,8 +100,8 @@ class SimDriver:
             elif now - last_cmd > COMMAND_TIMEOUT_S * 1e9:  # the drive's own watchdog
                 rate = ramp_to_rest(self.sim.qd, self.arm.a_max, idle_ms * 1e-3)
             self.sim.command(rate)
-            data = codec.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
-            self.joints.send_multipart((codec.TOPIC_JOINTS, data))
+            data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
+            self.joints.send_multipart((wire.TOPIC_JOINTS, data))
             self.seq += 1
 
     def stop(self, *_: object) -> None:

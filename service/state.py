@@ -28,22 +28,24 @@ from __future__ import annotations
 import secrets
 from dataclasses import dataclass
 
+from twistrate.service.wire.constants import (
+    E_BAD_ARGUMENT,
+    E_FAULT,
+    E_LEASE_HELD,
+    E_NO_LEASE,
+    E_SHUTDOWN,
+    MODES,
+)
+from twistrate.service.wire.constants import MODE_DISABLED as DISABLED
+from twistrate.service.wire.constants import MODE_FAULT as FAULT
+from twistrate.service.wire.constants import MODE_HOLDING as HOLDING
+from twistrate.service.wire.constants import MODE_RUNNING as RUNNING
+from twistrate.service.wire.constants import MODE_SHUTDOWN as SHUTDOWN
+from twistrate.service.wire.constants import MODE_STOPPING as STOPPING
 from twistrate.solver.errors import ControlError
 
-DISABLED = "disabled"
-RUNNING = "running"
-STOPPING = "stopping"
-HOLDING = "holding"
-FAULT = "fault"
-SHUTDOWN = "shutdown"
-MODES: tuple[str, ...] = (DISABLED, RUNNING, STOPPING, HOLDING, FAULT, SHUTDOWN)
-
-#: Control error codes (ControlError.code), stable strings documented in docs/operation.md.
-E_NO_LEASE = "no_lease"
-E_LEASE_HELD = "lease_held"
-E_FAULT = "fault"
-E_SHUTDOWN = "shutting_down"
-E_BAD_ARGUMENT = "bad_argument"
+__all__ = ["DISABLED", "E_BAD_ARGUMENT", "E_FAULT", "E_LEASE_HELD", "E_NO_LEASE", "E_SHUTDOWN", "FAULT",
+           "HOLDING", "MODES", "RUNNING", "SHUTDOWN", "STOPPING", "Lease", "ServiceState"]
 
 #: Bytes of randomness in a lease token (hex-encoded, so twice as many characters).
 TOKEN_BYTES = 8

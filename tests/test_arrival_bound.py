@@ -14,7 +14,7 @@ import numpy as np
 import zmq
 from service_harness import make_config
 
-from twistrate.service import codec, runtime
+from twistrate.service import runtime, wire
 from twistrate.service.runtime import MAX_DRAIN_PER_TICK, Service
 
 
@@ -66,7 +66,7 @@ def test_arrival_to_publish_is_an_upper_bound_of_the_true_latency(monkeypatch):
             for t in sorted(times.astype(np.int64)):
                 seq += 1
                 arrival[seq] = int(t)
-                intake.queue.append((int(t), [codec.TOPIC_TWIST, codec.encode_twist(
+                intake.queue.append((int(t), [wire.TOPIC_TWIST, wire.encode_twist(
                     seq=seq, lease=token, linear=[0.01, 0, 0], angular=[0, 0, 0])]))
         recorded: list[tuple[int, int, int]] = []  # (twist seq, bound, true latency)
         def record(ns: int) -> None:

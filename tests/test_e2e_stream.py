@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from service_harness import LOOP_LIMIT_S, collect_commands, make_config, running_service, stream_until
 
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.solver.errors import ControlError
 from twistrate.solver.health import assess
 from twistrate.solver.kinematics import forward, geometric_jacobian
@@ -105,7 +105,7 @@ def test_run_time_parameters_apply_and_are_all_or_nothing():
 def test_health_and_events_are_published():
     cfg = make_config()
     with running_service(cfg) as run:
-        link = run.link(topics=codec.OUTPUT_TOPICS)
+        link = run.link(topics=wire.OUTPUT_TOPICS)
         link.claim("test")
         event = link.receive_event()
         assert event.event == "lease_claimed" and event.mode == "disabled" and "test" in event.detail
@@ -133,7 +133,7 @@ def _health_with_q(link, period, count, running):
             link.send_twist(V, W)
         with contextlib.suppress(TimeoutError):
             msg = link.receive(timeout_s=0.01)
-            if isinstance(msg, codec.CommandMessage):
+            if isinstance(msg, wire.CommandMessage):
                 commands[msg.tick] = msg
             elif not running or msg.mode == "running":
                 healths.append(msg)
@@ -150,7 +150,7 @@ def test_health_margins_and_weakest_direction_are_what_solver_health_gives():
     # at rest (measures from the Jacobian) and running (from the tick's resolution).
     cfg = make_config(simulation={"lag_s": 0.0})
     with running_service(cfg) as run:
-        link = run.link(topics=(codec.TOPIC_COMMAND, codec.TOPIC_HEALTH))
+        link = run.link(topics=(wire.TOPIC_COMMAND, wire.TOPIC_HEALTH))
         arm = run.service.arm
         options = cfg.solver_options(arm)
         period = 1.0 / cfg.tick.rate_hz
@@ -179,7 +179,7 @@ def test_health_state_follows_its_thresholds_with_hysteresis_and_reports_changes
     # comes back one level at a time, each change an event (docs/protocol.md section 10).
     cfg = make_config()
     with running_service(cfg) as run:
-        link = run.link(topics=(codec.TOPIC_EVENT, codec.TOPIC_HEALTH))
+        link = run.link(topics=(wire.TOPIC_EVENT, wire.TOPIC_HEALTH))
         link.claim("test")
         sigma = float(link.receive_health().singular_values[-1])
         link.set(approaching_below=min(1.0, 4 * sigma), holding_below=2 * sigma)

@@ -16,7 +16,7 @@ import pytest
 import zmq
 
 from twistrate.clients.link import CurveKeys, Endpoints, Link, LinkTimeoutError, plain
-from twistrate.service import codec, security
+from twistrate.service import security, wire
 from twistrate.solver.errors import ControlError, InputError, WireError
 
 N = 7
@@ -35,12 +35,12 @@ class Peer:
             sock.setsockopt(zmq.LINGER, 0)
             if curve:
                 security.apply_curve_server(sock, *curve[0])
-        self.intake.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_TWIST)
-        self.intake.setsockopt(zmq.SUBSCRIBE, codec.TOPIC_JOINTS)
+        self.intake.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_TWIST)
+        self.intake.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_JOINTS)
         ports = [s.bind_to_random_port("tcp://127.0.0.1") for s in (self.intake, self.output, self.control)]
         self.endpoints = Endpoints(*(f"tcp://127.0.0.1:{p}" for p in ports))
-        self.requests: list[codec.RequestMessage] = []
-        self.received: list[codec.TwistMessage | codec.JointsMessage] = []
+        self.requests: list[wire.RequestMessage] = []
+        self.received: list[wire.TwistMessage | wire.JointsMessage] = []
         self.hold_first: set[str] = set()   # ops whose first request is answered only with the next one
         self.refuse: dict[str, tuple[str, str]] = {}
         self._held: list[list[bytes]] = []
@@ -48,7 +48,7 @@ class Peer:
         self._thread = threading.Thread(target=self._loop, daemon=True)
         self._thread.start()
 
-    def _result(self, req: codec.RequestMessage) -> dict:
+    def _result(self, req: wire.RequestMessage) -> dict:
         op = req.op
         if op == "claim":
             return {"lease": "feedc0de", "lease_ms": req.args.get("lease_ms", 1000),
@@ -78,10 +78,10 @@ class Peer:
     def _answer(self, frames: list[bytes]) -> None:
         envelope, data = frames[:-1], frames[-1]
         try:
-            req = codec.decode_request(data)
+            req = wire.decode_request(data)
         except WireError as exc:
-            seq, op = codec.peek_request(data)
-            reply = codec.encode_reply(seq=seq, op=op, error=(codec.error_code(exc), str(exc)))
+            seq, op = wire.peek_request(data)
+            reply = wire.encode_reply(seq=seq, op=op, error=(wire.error_code(exc), str(exc)))
         else:
             self.requests.append(req)
             if req.op in self.hold_first:
@@ -89,12 +89,12 @@ class Peer:
                 self._held.append(frames)
                 return
             if req.op in self.refuse:
-                reply = codec.encode_reply(seq=req.seq, op=req.op, error=self.refuse[req.op])
+                reply = wire.encode_reply(seq=req.seq, op=req.op, error=self.refuse[req.op])
             else:
-                reply = codec.encode_reply(seq=req.seq, op=req.op, result=self._result(req))
+                reply = wire.encode_reply(seq=req.seq, op=req.op, result=self._result(req))
         for held in self._held:  # the late reply goes out first, ahead of this one
-            late = codec.decode_request(held[-1])
-            self.control.send_multipart([*held[:-1], codec.encode_reply(seq=late.seq, op=late.op,
+            late = wire.decode_request(held[-1])
+            self.control.send_multipart([*held[:-1], wire.encode_reply(seq=late.seq, op=late.op,
                                                                           result=self._result(late))])
         self._held.clear()
         self.control.send_multipart([*envelope, reply])
@@ -108,7 +108,7 @@ class Peer:
                 if sock is self.control:
                     self._answer(self.control.recv_multipart())
                 else:
-                    self.received.append(codec.decode_intake(self.intake.recv_multipart(), N))
+                    self.received.append(wire.decode_intake(self.intake.recv_multipart(), N))
 
     def publish(self, topic: bytes, data: bytes) -> None:  # called from the test thread only
         self.output.send_multipart([topic, data])
@@ -174,7 +174,7 @@ def test_numpy_scalars_are_sent_as_plain_msgpack_numbers(link, peer):
     # a value computed with numpy (np.float64, np.int64, np.bool_) is what a caller naturally has; the
     # wire carries msgpack float64 / int / bool (docs/protocol.md section 3) and the codec stays strict
     with pytest.raises(InputError):
-        codec.encode_request(seq=1, op="set", lease="t", params={"damping_max": np.float64(0.05)})
+        wire.encode_request(seq=1, op="set", lease="t", params={"damping_max": np.float64(0.05)})
     link.claim(lease_ms=np.int64(1500))
     assert peer.requests[-1].args == {"client": "test", "lease_ms": 1500}
     got = link.set(damping_max=np.float64(0.03), reduced_speed=np.bool_(True), damping=np.str_("constant"))
@@ -213,9 +213,9 @@ def test_twists_and_joints_are_documented_messages(link, peer):
     t1, t2, joints = peer.received
     assert (s1, s2) == (1, 2) and (t1.seq, t2.seq) == (1, 2)
     assert t1.lease == t2.lease == "feedc0de"
-    np.testing.assert_array_equal(t1.twist.linear, [0.01, 0.0, 0.0])
-    assert t2.twist.frame == "tool"
-    np.testing.assert_array_equal(t2.twist.point, [0.0, 0.0, 0.1])
+    np.testing.assert_array_equal(t1.linear, [0.01, 0.0, 0.0])
+    assert t2.frame == "tool"
+    np.testing.assert_array_equal(t2.point, [0.0, 0.0, 0.1])
     np.testing.assert_array_equal(joints.position, np.linspace(-1, 1, N))
 
 
@@ -232,7 +232,7 @@ def test_stream_twists_paces_and_stops(link, peer):
     sent = link.stream_twists(twist_at, rate_hz=100.0, seconds=5.0)
     assert sent == 5
     _wait_for(lambda: len(peer.received) == 5)
-    assert [m.twist.linear[0] for m in peer.received] == pytest.approx([0.01, 0.02, 0.03, 0.04, 0.05])
+    assert [m.linear[0] for m in peer.received] == pytest.approx([0.01, 0.02, 0.03, 0.04, 0.05])
     # Paced on absolute deadlines: the fifth twist is due 4 periods after the first, never earlier.
     assert seen[-1] - seen[0] >= 4 * 0.01 - 1e-3
 
@@ -253,16 +253,16 @@ def test_send_twist_without_lease_is_refused_locally(link, peer):
 
 def test_receive_decodes_and_filters_by_kind(peer):
     with Link(peer.endpoints, timeout_s=0.5, n=N) as lk:
-        cmd = codec.encode_command(seq=1, stamp_ns=1, tick=1, rate=np.full(N, 0.1), target=np.zeros(N),
+        cmd = wire.encode_command(seq=1, stamp_ns=1, tick=1, rate=np.full(N, 0.1), target=np.zeros(N),
                                    answers=4, scale=1.0, mode="running", health="normal")
-        ev = codec.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
+        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
 
         def publish_until_received():
             # PUB/SUB start-up: keep publishing until the subscription has reached the peer
             deadline = time.monotonic() + 2.0
             while time.monotonic() < deadline:
-                peer.publish(codec.TOPIC_EVENT, ev)
-                peer.publish(codec.TOPIC_COMMAND, cmd)
+                peer.publish(wire.TOPIC_EVENT, ev)
+                peer.publish(wire.TOPIC_COMMAND, cmd)
                 try:
                     return lk.receive_command(timeout_s=0.02)
                 except LinkTimeoutError:
@@ -272,13 +272,13 @@ def test_receive_decodes_and_filters_by_kind(peer):
         got = publish_until_received()
         assert got.answers == 4 and got.rate[0] == 0.1
         lk.drain()
-        peer.publish(codec.TOPIC_EVENT, ev)
+        peer.publish(wire.TOPIC_EVENT, ev)
         assert lk.receive_event(timeout_s=0.5).event == "running"
         t0 = time.monotonic()
         with pytest.raises(LinkTimeoutError):
             lk.receive_health(timeout_s=0.1)
         assert time.monotonic() - t0 < 0.5
-        peer.publish(codec.TOPIC_COMMAND, b"\xc1")
+        peer.publish(wire.TOPIC_COMMAND, b"\xc1")
         with pytest.raises(WireError) as info:
             lk.receive(timeout_s=0.5)
         assert info.value.reason == "not_msgpack"
@@ -286,12 +286,12 @@ def test_receive_decodes_and_filters_by_kind(peer):
 
 def test_receive_kind_gives_up_although_other_kinds_keep_coming(peer):
     with Link(peer.endpoints, timeout_s=0.5, n=N) as lk:
-        ev = codec.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
+        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
         stop = threading.Event()
 
         def flood():
             while not stop.is_set():
-                peer.publish(codec.TOPIC_EVENT, ev)
+                peer.publish(wire.TOPIC_EVENT, ev)
                 time.sleep(0.001)
 
         # the flood publishes from a helper thread; the peer's PUB is used by no other thread meanwhile

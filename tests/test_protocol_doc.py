@@ -12,7 +12,7 @@ from pathlib import Path
 import msgpack
 import numpy as np
 
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.service.config import load_config
 from twistrate.solver.health import assess
 from twistrate.solver.kinematics import forward, geometric_jacobian
@@ -76,7 +76,7 @@ def _doc_health_example() -> dict:
 
 def test_documented_health_example_is_what_solver_health_gives_at_that_posture():
     doc = _doc_health_example()
-    msg = codec.decode_health(msgpack.packb(doc), 7)  # a valid health message
+    msg = wire.decode_health(msgpack.packb(doc), 7)  # a valid health message
     config = load_config()  # the packaged demo configuration: reach7, L = 0.3 m
     arm = config.load_arm()
     options = config.solver_options(arm)

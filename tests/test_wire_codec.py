@@ -18,7 +18,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from twistrate.service import codec
+from twistrate.service import wire
 from twistrate.solver.errors import InputError, WireError
 
 FUZZ = settings(max_examples=150, deadline=None, derandomize=True,
@@ -68,27 +68,27 @@ def _health_kwargs(n=N, **over):
 # ---------------------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("frame", codec.TWIST_FRAMES)
+@pytest.mark.parametrize("frame", wire.TWIST_FRAMES)
 @pytest.mark.parametrize("point", [None, [0.0, -0.05, 0.12]])
 def test_twist_round_trip(frame, point):
     linear, angular = RNG.uniform(-1, 1, 3), RNG.uniform(-2, 2, 3)
-    data = codec.encode_twist(seq=17, lease="ab12", linear=linear, angular=angular, frame=frame, point=point,
+    data = wire.encode_twist(seq=17, lease="ab12", linear=linear, angular=angular, frame=frame, point=point,
                               stamp_ns=1_700_000_000_123_456_789)
-    msg = codec.decode_twist(data)
+    msg = wire.decode_twist(data)
     assert (msg.seq, msg.stamp_ns, msg.lease) == (17, 1_700_000_000_123_456_789, "ab12")
-    assert msg.twist.frame == frame
-    np.testing.assert_array_equal(msg.twist.linear, linear)  # float64 on the wire: exact
-    np.testing.assert_array_equal(msg.twist.angular, angular)
-    np.testing.assert_array_equal(msg.twist.point, np.zeros(3) if point is None else point)
+    assert msg.frame == frame
+    np.testing.assert_array_equal(msg.linear, linear)  # float64 on the wire: exact
+    np.testing.assert_array_equal(msg.angular, angular)
+    np.testing.assert_array_equal(msg.point, np.zeros(3) if point is None else point)
     assert ("point" in msgpack.unpackb(data)) == (point is not None)
 
 
 @pytest.mark.parametrize("with_velocity", [False, True])
-@pytest.mark.parametrize("n", [1, 6, 7, codec.MAX_JOINTS])
+@pytest.mark.parametrize("n", [1, 6, 7, wire.MAX_JOINTS])
 def test_joints_round_trip(n, with_velocity):
     q = RNG.uniform(-3, 3, n)
     qd = RNG.uniform(-1, 1, n) if with_velocity else None
-    msg = codec.decode_joints(codec.encode_joints(seq=3, position=q, velocity=qd, stamp_ns=9), n)
+    msg = wire.decode_joints(wire.encode_joints(seq=3, position=q, velocity=qd, stamp_ns=9), n)
     assert (msg.seq, msg.stamp_ns) == (3, 9)
     np.testing.assert_array_equal(msg.position, q)
     if with_velocity:
@@ -97,14 +97,14 @@ def test_joints_round_trip(n, with_velocity):
         assert msg.velocity is None
 
 
-@pytest.mark.parametrize("mode", codec.MODES)
-@pytest.mark.parametrize("health", codec.HEALTH_STATES)
+@pytest.mark.parametrize("mode", wire.MODES)
+@pytest.mark.parametrize("health", wire.HEALTH_STATES)
 def test_command_round_trip(mode, health):
     rate, target = RNG.uniform(-2, 2, N), RNG.uniform(-3, 3, N)
-    data = codec.encode_command(seq=8, stamp_ns=77, tick=8, rate=rate, target=target, answers=-1, scale=0.5,
+    data = wire.encode_command(seq=8, stamp_ns=77, tick=8, rate=rate, target=target, answers=-1, scale=0.5,
                                 mode=mode, health=health)
     for n in (N, None):
-        msg = codec.decode_command(data, n)
+        msg = wire.decode_command(data, n)
         assert (msg.seq, msg.stamp_ns, msg.tick, msg.answers, msg.scale, msg.mode, msg.health) == \
             (8, 77, 8, -1, 0.5, mode, health)
         np.testing.assert_array_equal(msg.rate, rate)
@@ -113,9 +113,9 @@ def test_command_round_trip(mode, health):
 
 def test_health_round_trip_with_unlimited_joint():
     kw = _health_kwargs()
-    data = codec.encode_health(**kw)
+    data = wire.encode_health(**kw)
     assert msgpack.unpackb(data)["limit_margin"][1] is None  # +inf travels as nil (section 7.4)
-    msg = codec.decode_health(data, N)
+    msg = wire.decode_health(data, N)
     for key, value in kw.items():
         got = getattr(msg, key)
         if isinstance(value, np.ndarray):
@@ -125,12 +125,12 @@ def test_health_round_trip_with_unlimited_joint():
 
 
 def test_event_round_trip_and_detail_truncation():
-    msg = codec.decode_event(codec.encode_event(seq=2, tick=40, event="stale_input", detail="twist old",
+    msg = wire.decode_event(wire.encode_event(seq=2, tick=40, event="stale_input", detail="twist old",
                                                 mode="stopping", stamp_ns=1))
-    assert msg == codec.EventMessage(2, 1, 40, "stale_input", "twist old", "stopping")
-    data = codec.encode_event(seq=0, tick=0, event="fault", detail="é" * 5000, mode="fault")
-    long = codec.decode_event(data)
-    assert long.detail == "é" * codec.MAX_TEXT_CHARS
+    assert msg == wire.EventMessage(2, 1, 40, "stale_input", "twist old", "stopping")
+    data = wire.encode_event(seq=0, tick=0, event="fault", detail="é" * 5000, mode="fault")
+    long = wire.decode_event(data)
+    assert long.detail == "é" * wire.MAX_TEXT_CHARS
 
 
 REQUEST_EXAMPLES = {
@@ -166,57 +166,57 @@ RESULT_EXAMPLES = {
 
 
 def test_every_op_has_examples():
-    assert set(REQUEST_EXAMPLES) == set(codec.OPS) == set(RESULT_EXAMPLES) == set(codec.REPLY_RESULTS)
+    assert set(REQUEST_EXAMPLES) == set(wire.OPS) == set(RESULT_EXAMPLES) == set(wire.REPLY_RESULTS)
 
 
-@pytest.mark.parametrize("op", codec.OPS)
+@pytest.mark.parametrize("op", wire.OPS)
 def test_request_round_trip(op):
-    msg = codec.decode_request(codec.encode_request(seq=5, op=op, stamp_ns=3, **REQUEST_EXAMPLES[op]))
-    assert msg == codec.RequestMessage(5, 3, op, REQUEST_EXAMPLES[op])
+    msg = wire.decode_request(wire.encode_request(seq=5, op=op, stamp_ns=3, **REQUEST_EXAMPLES[op]))
+    assert msg == wire.RequestMessage(5, 3, op, REQUEST_EXAMPLES[op])
 
 
 def test_claim_without_lease_ms():
-    assert codec.decode_request(codec.encode_request(seq=0, op="claim", client="c")).args == {"client": "c"}
+    assert wire.decode_request(wire.encode_request(seq=0, op="claim", client="c")).args == {"client": "c"}
 
 
-@pytest.mark.parametrize("op", codec.OPS)
+@pytest.mark.parametrize("op", wire.OPS)
 def test_reply_round_trip(op):
-    msg = codec.decode_reply(codec.encode_reply(seq=5, op=op, result=RESULT_EXAMPLES[op], stamp_ns=4))
-    assert msg == codec.ReplyMessage(5, 4, op, True, RESULT_EXAMPLES[op], None, None)
+    msg = wire.decode_reply(wire.encode_reply(seq=5, op=op, result=RESULT_EXAMPLES[op], stamp_ns=4))
+    assert msg == wire.ReplyMessage(5, 4, op, True, RESULT_EXAMPLES[op], None, None)
 
 
-@pytest.mark.parametrize("code", codec.ERROR_CODES)
+@pytest.mark.parametrize("code", wire.ERROR_CODES)
 def test_error_reply_round_trip(code):
-    msg = codec.decode_reply(codec.encode_reply(seq=-1, op="", error=(code, "why"), stamp_ns=4))
-    assert msg == codec.ReplyMessage(-1, 4, "", False, {}, code, "why")
+    msg = wire.decode_reply(wire.encode_reply(seq=-1, op="", error=(code, "why"), stamp_ns=4))
+    assert msg == wire.ReplyMessage(-1, 4, "", False, {}, code, "why")
 
 
 def test_reply_result_keys_are_the_documented_ones():
     with pytest.raises(InputError, match=r"reply\(enable\)\.result"):
-        codec.encode_reply(seq=1, op="enable", result={"mode": "running", "extra": 1})
+        wire.encode_reply(seq=1, op="enable", result={"mode": "running", "extra": 1})
     with pytest.raises(InputError, match="finite"):
-        codec.encode_reply(seq=1, op="status", result={**RESULT_EXAMPLES["status"], "twist_age_ms": math.inf})
+        wire.encode_reply(seq=1, op="status", result={**RESULT_EXAMPLES["status"], "twist_age_ms": math.inf})
     bad = {"proto": 1, "kind": "reply", "seq": 1, "stamp_ns": 1, "op": "enable", "ok": True, "result": {}}
-    assert _reason(codec.decode_reply, _pack(bad))[0] == "missing_field"
+    assert _reason(wire.decode_reply, _pack(bad))[0] == "missing_field"
 
 
 @pytest.mark.parametrize("frames,n,cls", [
-    ([b"twist", codec.encode_twist(seq=0, lease="t", linear=[0, 0, 0], angular=[0, 0, 0])], N,
-     codec.TwistMessage),
-    ([b"joints", codec.encode_joints(seq=0, position=[0.0] * N)], N, codec.JointsMessage),
+    ([b"twist", wire.encode_twist(seq=0, lease="t", linear=[0, 0, 0], angular=[0, 0, 0])], N,
+     wire.TwistMessage),
+    ([b"joints", wire.encode_joints(seq=0, position=[0.0] * N)], N, wire.JointsMessage),
 ])
 def test_decode_intake_dispatches_by_topic(frames, n, cls):
-    assert isinstance(codec.decode_intake(frames, n), cls)
+    assert isinstance(wire.decode_intake(frames, n), cls)
 
 
 def test_decode_output_dispatches_by_topic():
-    cmd = codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=np.zeros(N), target=np.zeros(N), answers=-1,
+    cmd = wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=np.zeros(N), target=np.zeros(N), answers=-1,
                                scale=1.0, mode="disabled", health="normal")
-    assert isinstance(codec.decode_output([b"command", cmd]), codec.CommandMessage)
-    assert isinstance(codec.decode_output([b"health", codec.encode_health(**_health_kwargs())], N),
-                      codec.HealthMessage)
-    ev = codec.encode_event(seq=0, tick=0, event="running", detail="", mode="running")
-    assert isinstance(codec.decode_output([b"event", ev]), codec.EventMessage)
+    assert isinstance(wire.decode_output([b"command", cmd]), wire.CommandMessage)
+    assert isinstance(wire.decode_output([b"health", wire.encode_health(**_health_kwargs())], N),
+                      wire.HealthMessage)
+    ev = wire.encode_event(seq=0, tick=0, event="running", detail="", mode="running")
+    assert isinstance(wire.decode_output([b"event", ev]), wire.EventMessage)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -269,21 +269,21 @@ BAD_TWISTS = [
 
 @pytest.mark.parametrize("what,data,reason,field", BAD_TWISTS, ids=[b[0] for b in BAD_TWISTS])
 def test_bad_twist_is_refused_with_reason_and_field(what, data, reason, field):
-    got, message = _reason(codec.decode_twist, data)
+    got, message = _reason(wire.decode_twist, data)
     assert got == reason, message
-    assert got in codec.REASONS
+    assert got in wire.REASONS
     assert message.startswith(field + ":") or message.startswith(field + " "), message
     assert "accepted:" in message
 
 
 def test_oversize_is_checked_before_unpacking():
     # 600 bytes of a valid msgpack str: a cap check after unpacking would see a str and say bad_type
-    assert _reason(codec.decode_twist, _pack("x" * 600))[0] == "oversize"
+    assert _reason(wire.decode_twist, _pack("x" * 600))[0] == "oversize"
 
 
 def test_a_map_key_that_is_not_a_string_is_refused():
-    assert _reason(codec.decode_twist, _pack({**_twist_map(), 1: 2}))[0] == "bad_type"
-    assert _reason(codec.decode_twist, _pack({**_twist_map(), b"": 2}))[0] == "extra_field"
+    assert _reason(wire.decode_twist, _pack({**_twist_map(), 1: 2}))[0] == "bad_type"
+    assert _reason(wire.decode_twist, _pack({**_twist_map(), b"": 2}))[0] == "extra_field"
 
 
 @pytest.mark.parametrize("data,reason,field", [
@@ -298,18 +298,18 @@ def test_a_map_key_that_is_not_a_string_is_refused():
     (_pack(_twist_map()), "kind_mismatch", "joints.kind"),
 ])
 def test_bad_joints_are_refused(data, reason, field):
-    got, message = _reason(codec.decode_joints, data, N)
+    got, message = _reason(wire.decode_joints, data, N)
     assert (got, message.split(":")[0]) == (reason, field), message
 
 
 def test_decode_intake_refuses_bad_framing():
-    twist = codec.encode_twist(seq=0, lease="t", linear=[0, 0, 0], angular=[0, 0, 0])
-    assert _reason(codec.decode_intake, [twist], N)[0] == "bad_frames"
-    assert _reason(codec.decode_intake, [b"twist", twist, b""], N)[0] == "bad_frames"
+    twist = wire.encode_twist(seq=0, lease="t", linear=[0, 0, 0], angular=[0, 0, 0])
+    assert _reason(wire.decode_intake, [twist], N)[0] == "bad_frames"
+    assert _reason(wire.decode_intake, [b"twist", twist, b""], N)[0] == "bad_frames"
     # prefix subscriptions let b"twistX" through: it must be refused, not decoded as a twist
-    assert _reason(codec.decode_intake, [b"twistX", twist], N)[0] == "unknown_kind"
-    assert _reason(codec.decode_intake, [b"joints", twist], N)[0] == "kind_mismatch"
-    assert _reason(codec.decode_intake, [b"command", twist], N)[0] == "unknown_kind"
+    assert _reason(wire.decode_intake, [b"twistX", twist], N)[0] == "unknown_kind"
+    assert _reason(wire.decode_intake, [b"joints", twist], N)[0] == "kind_mismatch"
+    assert _reason(wire.decode_intake, [b"command", twist], N)[0] == "unknown_kind"
 
 
 @pytest.mark.parametrize("m,reason,field", [
@@ -329,17 +329,17 @@ def test_decode_intake_refuses_bad_framing():
 ])
 def test_bad_requests_are_refused(m, reason, field):
     data = _pack({"proto": 1, "kind": "request", "seq": 1, "stamp_ns": 1, **m})
-    got, message = _reason(codec.decode_request, data)
+    got, message = _reason(wire.decode_request, data)
     assert (got, message.split(":")[0]) == (reason, field), message
     expected_code = "unknown_op" if reason == "unknown_op" else "bad_request"
-    assert codec.error_code(WireError(got, message)) == expected_code
+    assert wire.error_code(WireError(got, message)) == expected_code
 
 
 def test_peek_request_for_error_replies():
-    assert codec.peek_request(_pack({"seq": 4, "op": "enable", "x": 1})) == (4, "enable")
-    assert codec.peek_request(_pack({"seq": 4, "op": "fly"})) == (4, "")
-    assert codec.peek_request(b"\xc1") == (-1, "")
-    assert codec.peek_request(_pack({"seq": -3, "op": None})) == (-1, "")
+    assert wire.peek_request(_pack({"seq": 4, "op": "enable", "x": 1})) == (4, "enable")
+    assert wire.peek_request(_pack({"seq": 4, "op": "fly"})) == (4, "")
+    assert wire.peek_request(b"\xc1") == (-1, "")
+    assert wire.peek_request(_pack({"seq": -3, "op": None})) == (-1, "")
 
 
 @pytest.mark.parametrize("bad", [math.nan, math.inf, -math.inf])
@@ -347,29 +347,29 @@ def test_encode_command_never_emits_a_non_finite_number(bad):
     rate, target = np.zeros(N), np.zeros(N)
     rate[3] = bad
     with pytest.raises(InputError, match=r"command\.rate"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=rate, target=target, answers=-1, scale=1.0,
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=rate, target=target, answers=-1, scale=1.0,
                              mode="running", health="normal")
     with pytest.raises(InputError, match=r"command\.target"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=rate, answers=-1, scale=1.0,
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=rate, answers=-1, scale=1.0,
                              mode="running", health="normal")
     with pytest.raises(InputError, match=r"command\.scale"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=target, answers=-1, scale=bad,
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=target, answers=-1, scale=bad,
                              mode="running", health="normal")
 
 
 def test_encode_command_refuses_unknown_mode_and_wrong_lengths():
     z = np.zeros(N)
     with pytest.raises(InputError, match=r"command\.mode"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0, mode="idle",
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0, mode="idle",
                              health="normal")
     with pytest.raises(InputError, match=r"command\.health"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0,
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0,
                              mode="running", health="fine")
     with pytest.raises(InputError, match=r"command\.target"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=np.zeros(N + 1), answers=-1,
+        wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=np.zeros(N + 1), answers=-1,
                              scale=1.0, mode="running", health="normal")
     with pytest.raises(InputError, match="command"):
-        codec.encode_command(seq=0, stamp_ns=0, tick=np.float64(1.5), rate=z, target=z, answers=-1, scale=1.0,
+        wire.encode_command(seq=0, stamp_ns=0, tick=np.float64(1.5), rate=z, target=z, answers=-1, scale=1.0,
                              mode="running", health="normal")
 
 
@@ -385,54 +385,54 @@ def test_encode_command_refuses_unknown_mode_and_wrong_lengths():
 def test_encode_twist_refuses_what_decode_would(kwargs, field):
     args = {"seq": 1, "lease": "t", "linear": [0, 0, 0], "angular": [0, 0, 0], **kwargs}
     with pytest.raises(InputError, match=re.escape(field)):
-        codec.encode_twist(**args)
+        wire.encode_twist(**args)
 
 
 def test_encode_health_sends_unlimited_margin_as_nil_but_refuses_nan():
     with pytest.raises(InputError, match="limit_margin"):
-        codec.encode_health(**_health_kwargs(limit_margin=np.array([math.nan] * N)))
+        wire.encode_health(**_health_kwargs(limit_margin=np.array([math.nan] * N)))
     with pytest.raises(InputError, match="limit_margin"):
-        codec.encode_health(**_health_kwargs(limit_margin=np.array([-np.inf] * N)))
+        wire.encode_health(**_health_kwargs(limit_margin=np.array([-np.inf] * N)))
     with pytest.raises(InputError, match="singular_values"):
-        codec.encode_health(**_health_kwargs(singular_values=np.array([0.5, -0.1])))
+        wire.encode_health(**_health_kwargs(singular_values=np.array([0.5, -0.1])))
 
 
 def test_health_margin_is_a_fraction_of_the_range_at_most_one_half():
     # min(q - q_min, q_max - q) / (q_max - q_min) <= 1/2 for any q (the nearer limit is at most half the
     # range away; twistrate.solver.health.limit_margins): more is refused on both sides of the wire
     for margin in (0.5, 0.5 + 1e-12, 0.0, -3.0):
-        msg = codec.decode_health(codec.encode_health(**_health_kwargs(limit_margin=np.full(N, margin))), N)
+        msg = wire.decode_health(wire.encode_health(**_health_kwargs(limit_margin=np.full(N, margin))), N)
         assert msg.limit_margin[0] == margin
     with pytest.raises(InputError, match="limit_margin"):
-        codec.encode_health(**_health_kwargs(limit_margin=np.full(N, 0.6)))
-    m = msgpack.unpackb(codec.encode_health(**_health_kwargs()))
+        wire.encode_health(**_health_kwargs(limit_margin=np.full(N, 0.6)))
+    m = msgpack.unpackb(wire.encode_health(**_health_kwargs()))
     m["limit_margin"] = [0.6] + [0.1] * (N - 1)
-    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
+    assert _reason(wire.decode_health, _pack(m), N)[0] == "too_large"
     m["limit_margin"] = [-2e6] + [0.1] * (N - 1)
-    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
+    assert _reason(wire.decode_health, _pack(m), N)[0] == "too_large"
 
 
 def test_health_weakest_angular_part_is_bounded_by_the_shortest_characteristic_length():
     # angular = u[3:] / L with |u| = 1 and L >= MIN_CHARACTERISTIC_LENGTH_M: each component <= 1 / L_min
-    top = 1.0 / codec.MIN_CHARACTERISTIC_LENGTH_M
-    data = codec.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, top, 0.0])))
-    msg = codec.decode_health(data)
+    top = 1.0 / wire.MIN_CHARACTERISTIC_LENGTH_M
+    data = wire.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, top, 0.0])))
+    msg = wire.decode_health(data)
     assert msg.weakest_angular[1] == top
     with pytest.raises(InputError, match=re.escape("health.weakest.angular")):
-        codec.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, 1.01 * top, 0.0])))
+        wire.encode_health(**_health_kwargs(weakest_angular=np.array([0.0, 1.01 * top, 0.0])))
     with pytest.raises(InputError, match=re.escape("health.weakest.linear")):
-        codec.encode_health(**_health_kwargs(weakest_linear=np.array([0.0, 1.01, 0.0])))
-    m = msgpack.unpackb(codec.encode_health(**_health_kwargs()))
+        wire.encode_health(**_health_kwargs(weakest_linear=np.array([0.0, 1.01, 0.0])))
+    m = msgpack.unpackb(wire.encode_health(**_health_kwargs()))
     m["weakest"]["angular"] = [1.01 * top, 0.0, 0.0]
-    assert _reason(codec.decode_health, _pack(m), N)[0] == "too_large"
+    assert _reason(wire.decode_health, _pack(m), N)[0] == "too_large"
 
 
 # ---------------------------------------------------------------------------------------------------
 # fuzz: decoders raise nothing but WireError
 # ---------------------------------------------------------------------------------------------------
 
-DECODERS = [codec.decode_twist, lambda b: codec.decode_joints(b, N), codec.decode_command,
-            codec.decode_health, codec.decode_event, codec.decode_request, codec.decode_reply]
+DECODERS = [wire.decode_twist, lambda b: wire.decode_joints(b, N), wire.decode_command,
+            wire.decode_health, wire.decode_event, wire.decode_request, wire.decode_reply]
 
 
 def _only_wire_errors(data: bytes) -> None:
@@ -440,7 +440,7 @@ def _only_wire_errors(data: bytes) -> None:
         try:
             decode(data)
         except WireError as exc:
-            assert exc.reason in codec.REASONS
+            assert exc.reason in wire.REASONS
 
 
 @FUZZ
@@ -475,15 +475,15 @@ def test_fuzz_one_field_replaced(kind, key, value):
        st.lists(st.floats(allow_nan=True, allow_infinity=True), min_size=3, max_size=3))
 def test_fuzz_twist_numbers_accepted_iff_finite_and_bounded(linear, angular):
     data = msgpack.packb(_twist_map(linear=linear, angular=angular))
-    ok = all(math.isfinite(x) and abs(x) <= codec.MAX_LINEAR_MPS for x in linear) and \
-        all(math.isfinite(x) and abs(x) <= codec.MAX_ANGULAR_RADPS for x in angular)
+    ok = all(math.isfinite(x) and abs(x) <= wire.MAX_LINEAR_MPS for x in linear) and \
+        all(math.isfinite(x) and abs(x) <= wire.MAX_ANGULAR_RADPS for x in angular)
     try:
-        msg = codec.decode_twist(data)
+        msg = wire.decode_twist(data)
     except WireError as exc:
         assert not ok and exc.reason in ("non_finite", "too_large")
     else:
         assert ok
-        np.testing.assert_array_equal(msg.twist.linear, linear)
+        np.testing.assert_array_equal(msg.linear, linear)
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -501,14 +501,14 @@ def _doc_example_bytes() -> bytes:
 def test_documented_example_decodes_to_the_documented_twist():
     data = _doc_example_bytes()
     assert len(data) == 181
-    msg = codec.decode_twist(data)
-    assert (msg.seq, msg.stamp_ns, msg.lease, msg.twist.frame) == (3, 1_700_000_000_000_000_000,
+    msg = wire.decode_twist(data)
+    assert (msg.seq, msg.stamp_ns, msg.lease, msg.frame) == (3, 1_700_000_000_000_000_000,
                                                                    "ab12cd34ef56ab78", "tool")
-    np.testing.assert_array_equal(msg.twist.linear, [0.1, 0.0, 0.2])
-    np.testing.assert_array_equal(msg.twist.angular, [0.0, 0.0, 0.5])
-    np.testing.assert_array_equal(msg.twist.point, [0.0, 0.0, 0.1])
+    np.testing.assert_array_equal(msg.linear, [0.1, 0.0, 0.2])
+    np.testing.assert_array_equal(msg.angular, [0.0, 0.0, 0.5])
+    np.testing.assert_array_equal(msg.point, [0.0, 0.0, 0.1])
     # and our encoder produces exactly these bytes (same field order)
-    assert codec.encode_twist(seq=3, lease="ab12cd34ef56ab78", linear=[0.1, 0, 0.2], angular=[0, 0, 0.5],
+    assert wire.encode_twist(seq=3, lease="ab12cd34ef56ab78", linear=[0.1, 0, 0.2], angular=[0, 0, 0.5],
                               frame="tool", point=[0, 0, 0.1], stamp_ns=1_700_000_000_000_000_000) == data
 
 
@@ -525,13 +525,13 @@ def test_documented_example_bytes_follow_the_msgpack_spec():
 
 def test_documented_reasons_and_codes_match_the_code():
     text = DOC.read_text()
-    for reason in codec.REASONS:
+    for reason in wire.REASONS:
         assert f"| `{reason}`" in text, reason
-    for code in codec.ERROR_CODES:
+    for code in wire.ERROR_CODES:
         assert f"| `{code}`" in text, code
-    for mode in codec.MODES:
+    for mode in wire.MODES:
         assert f"| `{mode}`" in text, mode
-    for op in codec.OPS:
+    for op in wire.OPS:
         assert f"| `{op}`" in text, op
 
 
@@ -539,10 +539,10 @@ def test_sketch_style_plain_maps_decode():
     """A client built from docs/protocol.md section 15 (plain msgpack dicts, ints where floats go)."""
     twist = {"proto": 1, "kind": "twist", "seq": 1, "stamp_ns": 1, "linear": [0.02, 0, 0],
              "angular": [0, 0, 0], "frame": "base", "lease": "abc"}
-    assert codec.decode_twist(msgpack.packb(twist)).twist.linear[0] == 0.02
+    assert wire.decode_twist(msgpack.packb(twist)).linear[0] == 0.02
     req = {"proto": 1, "kind": "request", "seq": 2, "stamp_ns": 1, "op": "claim", "client": "sketch",
            "lease_ms": 2000}
-    assert codec.decode_request(msgpack.packb(req)).args == {"client": "sketch", "lease_ms": 2000}
+    assert wire.decode_request(msgpack.packb(req)).args == {"client": "sketch", "lease_ms": 2000}
     # float32 from another language's encoder is still a number
     f32 = msgpack.packb({**twist, "linear": [0.5, 0, 0]}, use_single_float=True)
-    assert codec.decode_twist(f32).twist.linear[0] == 0.5
+    assert wire.decode_twist(f32).linear[0] == 0.5

@@ -1,0 +1,131 @@
+"""The decoded wire messages of protocol version 1: immutable named tuples, cheap to build on the hot path.
+
+Field names and units follow docs/protocol.md section 7 (stream messages) and 8 (control).
+"""
+
+from __future__ import annotations
+
+from typing import Any, NamedTuple
+
+import numpy as np
+
+
+class TwistMessage(NamedTuple):
+    """A decoded twist: the desired velocity of a reference point on the tool.
+
+    linear : (3,) m/s, velocity of the reference point; angular : (3,) rad/s; both in `frame`
+    ("base" or "tool"). point : (3,) m, offset of the reference point from the tool origin, in
+    `frame` (zeros when the message has none: the tool origin). lease : the sender's lease token.
+    """
+
+    seq: int
+    stamp_ns: int
+    lease: str
+    linear: np.ndarray
+    angular: np.ndarray
+    frame: str
+    point: np.ndarray
+
+
+class JointsMessage(NamedTuple):
+    """A decoded joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None."""
+
+    seq: int
+    stamp_ns: int
+    position: np.ndarray
+    velocity: np.ndarray | None
+
+
+class CommandMessage(NamedTuple):
+    """A decoded command (one per tick).
+
+    rate : (n,) commanded joint rates, rad/s or m/s, joint order.
+    target : (n,) q + rate * T, the position the joint should reach at the next tick, rad or m.
+    answers : seq of the twist this command answers, -1 when none (at rest, stale or not leased).
+    scale : task scaling in [0, 1] applied by the hard limits.
+    """
+
+    seq: int
+    stamp_ns: int
+    tick: int
+    rate: np.ndarray
+    target: np.ndarray
+    answers: int
+    scale: float
+    mode: str
+    health: str
+
+
+class HealthMessage(NamedTuple):
+    """A decoded health report.
+
+    manipulability, manipulability_linear, manipulability_angular : Yoshikawa measures (whole,
+        translational rows, rotational rows) of the task-weighted Jacobian.
+    singular_values : (k,) k = min(6, n), descending, m (task-weighted).
+    inverse_condition : smallest / largest singular value, in [0, 1].
+    weakest_linear : (3,) m/s and weakest_angular : (3,) rad/s: the weakest task direction, base frame,
+        as twistrate.solver.health gives it: the left singular vector u (6,) of the smallest singular
+        value of the task-weighted Jacobian, as a twist (linear = u[:3], angular = u[3:] / L, L the
+        characteristic length), so |linear|^2 + L^2 |angular|^2 = 1; sign: the largest-magnitude
+        component of u is positive.
+    damping : lambda applied, m. scale : task scaling in [0, 1].
+    limit_margin : (n,) margin of each joint to its nearer position limit as a fraction of its range,
+        min(q - q_min, q_max - q) / (q_max - q_min): 0.5 mid-range, 0 on a limit, negative beyond it;
+        +inf for a joint without position limits (nil on the wire).
+    rejected : {reason: count} of refused intake messages since start.
+    overruns : ticks that missed their deadline since start.
+    """
+
+    seq: int
+    stamp_ns: int
+    tick: int
+    manipulability: float
+    manipulability_linear: float
+    manipulability_angular: float
+    singular_values: np.ndarray
+    inverse_condition: float
+    weakest_linear: np.ndarray
+    weakest_angular: np.ndarray
+    damping: float
+    scale: float
+    limit_margin: np.ndarray
+    state: str
+    mode: str
+    rejected: dict[str, int]
+    overruns: int
+
+
+class EventMessage(NamedTuple):
+    """A decoded event: a state change or fault. event : name; detail : human-readable text."""
+
+    seq: int
+    stamp_ns: int
+    tick: int
+    event: str
+    detail: str
+    mode: str
+
+
+class RequestMessage(NamedTuple):
+    """A decoded control request. args : the op's own fields (see REQUEST_ARGS)."""
+
+    seq: int
+    stamp_ns: int
+    op: str
+    args: dict[str, Any]
+
+
+class ReplyMessage(NamedTuple):
+    """A decoded control reply. result : the op's result map when ok; error_code/message when not."""
+
+    seq: int
+    stamp_ns: int
+    op: str
+    ok: bool
+    result: dict[str, Any]
+    error_code: str | None
+    error_message: str | None
+
+
+OutputMessage = CommandMessage | HealthMessage | EventMessage
+IntakeMessage = TwistMessage | JointsMessage

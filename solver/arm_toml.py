@@ -131,12 +131,11 @@ def xyz_rpy_transform(xyz: np.ndarray | list[float], rpy: np.ndarray | list[floa
     return T
 
 
-def parse_arm_toml(text: str | bytes, source: str = "<arm toml>") -> Arm:
-    """Parse and validate a TOML arm description; `source` (a file name) prefixes every error.
+def parse_arm_spec(text: str | bytes, source: str = "<arm toml>") -> ArmSpec:
+    """Parse and validate a TOML arm description into its spec (units as written, DH rows kept).
 
-    Raises ModelError for a TOML syntax error, a wrong or unknown key, a bad value or an arm the
-    model rejects; the message names the joint (index and name), the key, the value and what is
-    accepted.
+    Raises ModelError for a TOML syntax error, a wrong or unknown key or a bad value; the message
+    names the joint (index and name), the key, the value and what is accepted.
     """
     if isinstance(text, bytes):
         try:
@@ -148,10 +147,20 @@ def parse_arm_toml(text: str | bytes, source: str = "<arm toml>") -> Arm:
     except tomllib.TOMLDecodeError as exc:
         raise ModelError(f"{source}: TOML syntax error: {exc}") from None
     try:
-        spec = ArmSpec.model_validate(data)
+        return ArmSpec.model_validate(data)
     except ValidationError as exc:
         lines = [_describe(err, data) for err in exc.errors()]
         raise ModelError(f"{source}: " + "\n  ".join(lines)) from None
+
+
+def parse_arm_toml(text: str | bytes, source: str = "<arm toml>") -> Arm:
+    """Parse and validate a TOML arm description; `source` (a file name) prefixes every error.
+
+    Raises ModelError for a TOML syntax error, a wrong or unknown key, a bad value or an arm the
+    model rejects; the message names the joint (index and name), the key, the value and what is
+    accepted.
+    """
+    spec = parse_arm_spec(text, source)
     try:
         return arm_from_spec(spec)
     except ModelError as exc:

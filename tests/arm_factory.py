@@ -1,6 +1,6 @@
 """Seeded random serial arms for tests (2 to 9 joints, DH standard / DH modified / origin+axis, revolute and
 prismatic mixed, random mount and tool), and the equivalent pinocchio model for cross-checks
-(`pinocchio_model`, from twistrate.service.reference_models, shared with `twistrate bench solver`).
+(`pinocchio_model`, from twistrate.service.bench.compiled, shared with `twistrate bench solver`).
 
 Import from any test file: `from arm_factory import random_arm, pinocchio_model, ...` (pytest puts the
 tests folder on sys.path). Every generator takes a numpy Generator so results are reproducible.
@@ -13,7 +13,7 @@ from typing import Literal
 
 import numpy as np
 
-from twistrate.service.reference_models import pinocchio_model  # noqa: F401 (re-exported for the tests)
+from twistrate.service.bench.compiled import pinocchio_model  # noqa: F401 (re-exported for the tests)
 from twistrate.solver.arm import PRISMATIC, REVOLUTE, Arm, Joint
 from twistrate.solver.dh import DHRow, dh_chain
 

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from twistrate.service import arm_cmd
+from twistrate.service.commands import arm as arm_cmd
 from twistrate.solver.kinematics import tool_pose
 from twistrate.solver.load import load_arm
 

@@ -19,14 +19,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from twistrate.service.bench import (
-    BENCH_OPTIONS,
-    DEFAULT_ARMS,
-    _plain_model,
-    _run_free,
-    _straightforward_tick,
-    main,
-)
+from twistrate.service.bench.cli import main
+from twistrate.service.bench.solver import BENCH_OPTIONS, DEFAULT_ARMS, _run_free
+from twistrate.service.bench.straightforward import plain_model as _plain_model
+from twistrate.service.bench.straightforward import straightforward_tick as _straightforward_tick
 from twistrate.solver.load import load_arm
 from twistrate.solver.options import SolverOptions
 from twistrate.solver.resolve import DesiredTwist, resolve

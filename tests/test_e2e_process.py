@@ -15,9 +15,9 @@ import pytest
 from service_harness import collect_commands, config_dict, endpoints_of, reap, running_service, stream_until
 
 from twistrate.clients.link import Link
+from twistrate.service.commands.demo import CAUTIONS
+from twistrate.service.commands.record import record_stream
 from twistrate.service.config import load_config
-from twistrate.service.demo import CAUTIONS
-from twistrate.service.record_cmd import record_stream
 from twistrate.service.recorder import Recorder, read_recording
 from twistrate.solver.load import load_arm
 
@@ -42,8 +42,8 @@ def _write_config(tmp_path, **sections) -> str:
 
 
 def _twistrate(*args: str, **kw) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "twistrate.service.cli", *args], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, **kw)
+    return subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", *args],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
 
 
 def test_serve_sigterm_ramps_down_and_publishes_a_final_zero_command(tmp_path):

@@ -23,7 +23,7 @@ import pytest
 from service_harness import config_dict, endpoints_of, make_config, reap, running_service, stream_until
 
 from twistrate.clients.link import Link
-from twistrate.service import serve
+from twistrate.service.commands import serve
 from twistrate.service.config import load_config
 from twistrate.service.tick import probe_realtime
 
@@ -79,7 +79,7 @@ def _unprivileged_can_run_the_package() -> bool:
     """Root with setpriv, and uid 65534 can read this checkout and its interpreter."""
     if os.geteuid() != 0 or shutil.which("setpriv") is None:
         return False
-    probe = subprocess.run([*UNPRIVILEGED, sys.executable, "-c", "import twistrate.service.serve"],
+    probe = subprocess.run([*UNPRIVILEGED, sys.executable, "-c", "import twistrate.service.commands.serve"],
                            capture_output=True, cwd="/", timeout=60)
     return probe.returncode == 0
 
@@ -98,7 +98,7 @@ def test_unprivileged_serve_runs_with_normal_scheduling_and_one_notice():
                                    for section, values in doc.items()]) + "\n")
         path.chmod(0o644)
         cfg = load_config(path)
-        command = [*UNPRIVILEGED, sys.executable, "-m", "twistrate.service.cli", "serve",
+        command = [*UNPRIVILEGED, sys.executable, "-m", "twistrate.service.commands.cli", "serve",
                    "--config", str(path)]
         proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=tmp)
         try:

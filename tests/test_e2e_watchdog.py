@@ -26,7 +26,7 @@ from service_harness import (
     wait_for,
 )
 
-from twistrate.service.sim_cmd import SimDriver
+from twistrate.service.sim_driver import SimDriver
 from twistrate.solver.errors import ControlError
 
 pytestmark = pytest.mark.timeout(90)

@@ -17,7 +17,8 @@ import zmq
 import zmq.auth
 from zmq.utils import z85
 
-from twistrate.service import keys_cmd, security
+from twistrate.service import security
+from twistrate.service.commands import keys as keys_cmd
 from twistrate.solver.errors import ConfigError
 
 LOOPBACK = ["tcp://127.0.0.1:47310", "tcp://127.8.9.10:5", "tcp://[::1]:47311", "tcp://localhost:1",

@@ -1,5 +1,4 @@
-"""`twistrate bench`: the project's benchmarks. `bench solver` (here) times one tick of rate resolution;
-`bench service` is dispatched to `twistrate.service.bench_service.run(argv)`.
+"""`twistrate bench solver`: the per-tick cost of rate resolution.
 
 `twistrate bench solver [--json FILE] [--ticks N] [--rounds R] [--arms NAMES] [--period S]` measures,
 per example arm and in one run, with every solver feature on (singular-value damping, task weighting,
@@ -33,28 +32,25 @@ from __future__ import annotations
 
 import argparse
 import gc
-import importlib
 import json
 import os
 import platform
 import sys
 import time
-import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from twistrate.service.reference_models import pinocchio_model
+from twistrate.service.bench.compiled import pinocchio_model
+from twistrate.service.bench.straightforward import check_plain, plain_model, straightforward_tick
 from twistrate.solver.arm import Arm
 from twistrate.solver.kinematics import Frames
-from twistrate.solver.load import load_arm, read_arm_source
+from twistrate.solver.load import load_arm
 from twistrate.solver.options import SolverOptions
 from twistrate.solver.resolve import DesiredTwist, resolve_counted, resolve_from_kinematics
 
-#: Module of `twistrate bench service`; it provides run(argv) -> int.
-SERVICE_BENCH_MODULE = "twistrate.service.bench_service"
 #: Example arms benchmarked by default: the 6- and the 7-joint arm.
 DEFAULT_ARMS = ("bench6", "reach7")
 DEFAULT_TICKS = 10_000
@@ -104,28 +100,7 @@ Variant = tuple[str, Tick, Track]
 Timings = tuple[np.ndarray, np.ndarray]
 
 
-def main(argv: list[str] | None = None) -> int:
-    args = list(sys.argv[1:] if argv is None else argv)
-    if not args or args[0] in ("-h", "--help", "help"):
-        print("usage: twistrate bench {solver,service} [options]   (twistrate bench solver --help)")
-        return 0
-    which, rest = args[0], args[1:]
-    if which == "solver":
-        return run_solver(rest)
-    if which == "service":
-        try:
-            module = importlib.import_module(SERVICE_BENCH_MODULE)
-        except ModuleNotFoundError as exc:
-            if exc.name != SERVICE_BENCH_MODULE:
-                raise
-            print(f"twistrate bench: {SERVICE_BENCH_MODULE} is not installed", file=sys.stderr)
-            return 2
-        return int(module.run(rest))
-    print(f"twistrate bench: unknown benchmark {which!r}; accepted: solver, service", file=sys.stderr)
-    return 2
-
-
-def run_solver(argv: list[str]) -> int:
+def run(argv: list[str]) -> int:
     parser = argparse.ArgumentParser(
         prog="twistrate bench solver",
         description="Time one tick of rate resolution (every feature on) on the example arms, against a "
@@ -178,14 +153,14 @@ def bench_arm(arm: Arm, source: str, ticks: int, period: float, rounds: int = 5)
     options = BENCH_OPTIONS
     free = _run_free(arm, options, max(MIN_TICKS, ticks // rounds), period)
     limits = _run_limits(arm, options, min(ticks, LIMITS_TICKS), period)
-    plain = _plain_model(arm, source)
-    _check_plain(arm, plain, free.q[0])
+    plain = plain_model(arm, source)
+    check_plain(arm, plain, free.q[0])
 
     def ours(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
         return resolve_counted(arm, q, qd, tw, period, options)
 
     def straightforward(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
-        return _straightforward_tick(plain, q, qd, tw, period, options)
+        return straightforward_tick(plain, q, qd, tw, period, options)
 
     def floor(q: np.ndarray, qd: np.ndarray, tw: DesiredTwist) -> object:
         return None
@@ -302,120 +277,6 @@ def _summary(ns_: np.ndarray) -> dict[str, float]:
     us = ns_ / 1e3
     return {"median_us": float(np.median(us)), "p99_us": float(np.percentile(us, 99)),
             "mean_us": float(np.mean(us))}
-
-
-# ---------------------------------------------------------------- straightforward reference loop
-
-@dataclass(frozen=True)
-class _Plain:
-    """What a hand-written loop keeps: DH rows (a, alpha, d, theta) or origins + axes, mount, tool, limits."""
-
-    dh: list[tuple[float, float, float, float]] | None
-    origins: list[np.ndarray]
-    axes: list[np.ndarray]
-    mount: np.ndarray
-    tool: np.ndarray
-    q_min: np.ndarray
-    q_max: np.ndarray
-    v_max: np.ndarray
-    a_max: np.ndarray
-    home: np.ndarray
-
-
-def _plain_model(arm: Arm, source: str) -> _Plain:
-    """The hand-written loop's description: the TOML's DH table when the arm has one, else origin + axis."""
-    dh = None
-    try:
-        data, _, suffix = read_arm_source(source)
-        spec = tomllib.loads(data.decode()) if suffix == ".toml" else {}
-    except Exception:  # a URDF or an unreadable file: fall back to origin + axis
-        spec = {}
-    if spec.get("dh_convention") == "standard" and all(j.get("kind") == "revolute" for j in spec["joint"]):
-        dh = [(j["dh"]["a_m"], np.radians(j["dh"]["alpha_deg"]), j["dh"]["d_m"],
-               np.radians(j["dh"]["theta_deg"])) for j in spec["joint"]]
-    limited = np.isfinite(arm.q_min) & np.isfinite(arm.q_max)  # a hand-written loop keeps finite numbers
-    return _Plain(
-        dh=dh, origins=[np.array(j.T_prev_joint) for j in arm.joints],
-        axes=[np.array(j.axis) for j in arm.joints], mount=np.array(arm.T_base_root),
-        tool=np.array(arm.T_last_tool), q_min=np.where(limited, arm.q_min, -1e3),
-        q_max=np.where(limited, arm.q_max, 1e3), v_max=np.array(arm.v_max), a_max=np.array(arm.a_max),
-        home=np.array(arm.q_home),
-    )
-
-
-def _straightforward_fk(m: _Plain, q: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray], np.ndarray]:
-    """Joint origins, joint axes (base frame) and tool pose, one np.array 4x4 per link per tick."""
-    T = m.mount
-    origins, axes = [], []
-    if m.dh is not None:  # standard DH: joint i turns about z_{i-1}
-        for i, (a, alpha, d, theta) in enumerate(m.dh):
-            origins.append(T[:3, 3])
-            axes.append(T[:3, 2])
-            ct, st = np.cos(theta + q[i]), np.sin(theta + q[i])
-            ca, sa = np.cos(alpha), np.sin(alpha)
-            A = np.array([[ct, -st * ca, st * sa, a * ct], [st, ct * ca, -ct * sa, a * st],
-                          [0.0, sa, ca, d], [0.0, 0.0, 0.0, 1.0]])
-            T = T @ A
-        # the packaged DH arms put the last DH frame's fixed part and the tool in T_last_tool
-        return origins, axes, T @ _dh_tool_correction(m)
-    for i in range(len(q)):
-        T = T @ m.origins[i]
-        kx, ky, kz = m.axes[i]
-        c, s = np.cos(q[i]), np.sin(q[i])
-        v = 1.0 - c
-        R = np.array([[c + kx * kx * v, kx * ky * v - kz * s, kx * kz * v + ky * s, 0.0],
-                      [ky * kx * v + kz * s, c + ky * ky * v, ky * kz * v - kx * s, 0.0],
-                      [kz * kx * v - ky * s, kz * ky * v + kx * s, c + kz * kz * v, 0.0],
-                      [0.0, 0.0, 0.0, 1.0]])
-        T = T @ R
-        origins.append(T[:3, 3])
-        axes.append(T[:3, :3] @ m.axes[i])
-    return origins, axes, T @ m.tool
-
-
-def _dh_tool_correction(m: _Plain) -> np.ndarray:
-    """Tool transform after the last DH frame: the arm's T_last_tool minus the last DH link's fixed part."""
-    a, alpha, d, theta = m.dh[-1]  # type: ignore[index]
-    ct, st, ca, sa = np.cos(theta), np.sin(theta), np.cos(alpha), np.sin(alpha)
-    last = np.array([[ct, -st * ca, st * sa, a * ct], [st, ct * ca, -ct * sa, a * st],
-                     [0.0, sa, ca, d], [0.0, 0.0, 0.0, 1.0]])
-    return np.linalg.solve(last, m.tool)
-
-
-def _straightforward_tick(m: _Plain, q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist,
-                          period: float, options: SolverOptions) -> np.ndarray:
-    """The hand-written tick: FK, J with np.cross, damped inverse, explicit pinv projector, clipping."""
-    origins, axes, T = _straightforward_fk(m, q)
-    n = len(q)
-    p_e = T[:3, 3]
-    J = np.zeros((6, n))
-    for i in range(n):
-        J[:3, i] = np.cross(axes[i], p_e - origins[i])
-        J[3:, i] = axes[i]
-    L = options.characteristic_length
-    W = np.diag([1.0, 1.0, 1.0, L, L, L])
-    Jw = W @ J
-    x = W @ np.concatenate((tw.linear, tw.angular))
-    s = np.linalg.svd(Jw, compute_uv=False)
-    eps, lmax = options.singular_value_threshold, options.damping_max
-    lam2 = (1.0 - (s[-1] / eps) ** 2) * lmax**2 if s[-1] < eps else 0.0
-    qd = Jw.T @ np.linalg.inv(Jw @ Jw.T + lam2 * np.eye(6)) @ x
-    P = np.eye(n) - np.linalg.pinv(Jw) @ Jw
-    mid = 0.5 * (m.q_min + m.q_max)
-    grad = (-(q - mid) / (n * (m.q_max - m.q_min) ** 2) * options.limit_gain
-            + options.posture_gain * (m.home - q))
-    qd = qd + P @ grad
-    qd = np.clip(qd, -m.v_max, m.v_max)
-    return np.clip(qd, qd_prev - m.a_max * period, qd_prev + m.a_max * period)
-
-
-def _check_plain(arm: Arm, m: _Plain, q: np.ndarray) -> None:
-    """The hand-written FK must agree with ours before its time means anything."""
-    from twistrate.solver.kinematics import forward
-
-    _, _, T = _straightforward_fk(m, q)
-    if np.abs(T - forward(arm, q).T_base_tool).max() > 1e-9:
-        raise RuntimeError(f"straightforward loop disagrees with forward() for {arm.name}")
 
 
 # ---------------------------------------------------------------- compiled kinematics
@@ -545,4 +406,4 @@ def _print_arm(arm: Arm, f: dict[str, Any]) -> None:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    raise SystemExit(run(sys.argv[1:]))

@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.clients.link import Endpoints, Link
-from twistrate.service.tick import cpu_wake_latency_in_force_us
+from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US, cpu_wake_latency_in_force_us
 
 DEFAULT_RATES = (500.0, 1000.0)
 DEFAULT_SECONDS = 10.0
@@ -56,8 +56,6 @@ SOURCE_HZ = 200.0
 TARGET_LATENESS_P99_US = {500.0: 100.0, 1000.0: 150.0}
 TARGET_OVERRUN_FRACTION = 0.001
 TARGET_CPU_FRACTION_500 = 0.35
-#: Allowance of arrival to publish on top of one period, us.
-TARGET_ARRIVAL_EXTRA_US = 300.0
 #: What the kernel reports as the CPU wake-up latency when nobody requests one, us (Linux PM QoS,
 #: PM_QOS_CPU_LATENCY_DEFAULT_VALUE: 2000 s).
 NO_WAKE_LATENCY_REQUEST_US = 2_000_000_000
@@ -151,18 +149,18 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(text)
-        serve_args = ["twistrate.service.cli", "serve", "--config", str(path)]
+        serve_args = ["twistrate.service.commands.cli", "serve", "--config", str(path)]
         if rt_priority is not None:
             serve_args += ["--rt-priority", str(rt_priority)]
         serve = _spawn(serve_args)
         procs = [serve]
         try:
-            procs.append(_spawn(["twistrate.service.cli", "sim", "--config", str(path)]))
+            procs.append(_spawn(["twistrate.service.commands.cli", "sim", "--config", str(path)]))
             with Link(ep, client="bench-watch", topics=(b"command",), timeout_s=5.0) as link:
                 link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
                 link.arm()
                 realtime = bool(link.status()["realtime"])
-                procs.append(_spawn(["twistrate.service.bench_service", "--source", ep.intake, ep.output,
+                procs.append(_spawn(["twistrate.service.bench.service", "--source", ep.intake, ep.output,
                                      ep.control, str(WARMUP_S + seconds + 1.0)]))
                 end_warmup = time.monotonic() + WARMUP_S
                 while time.monotonic() < end_warmup:
@@ -231,7 +229,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
         "lateness_p99_us": TARGET_LATENESS_P99_US.get(rate_hz),
         "overrun_fraction": TARGET_OVERRUN_FRACTION,
         "cpu_fraction": TARGET_CPU_FRACTION_500 if rate_hz == 500.0 else None,
-        "arrival_to_publish_p99_us": period_us + TARGET_ARRIVAL_EXTRA_US,
+        "arrival_to_publish_p99_us": period_us + ARRIVAL_TARGET_EXTRA_US,
     }
     bad = [e.strip().splitlines()[-1] for e in errors if "Traceback" in e]
     if bad:

@@ -26,11 +26,11 @@ import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
-from twistrate.service.bench_service import TARGET_ARRIVAL_EXTRA_US
 from twistrate.service.config import ServiceConfig, config_from_dict, load_config
 from twistrate.service.control import ControlThread
 from twistrate.service.recorder import Recorder, read_recording, summarize
 from twistrate.service.runtime import Service
+from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US
 from twistrate.solver.errors import TwistrateError
 
 CAUTIONS = (
@@ -239,8 +239,8 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
         f"lateness median {lat['median_us']:.0f} us, p99 {lat['p99_us']:.0f} us, max {lat['max_us']:.0f} us",
         f"  twist arrival -> command publish (upper bound, service clock): median "
         f"{arrival['median_us']:.0f} us, p99 {arrival['p99_us']:.0f} us, max {arrival['max_us']:.0f} us over "
-        f"{arrival['count']} twists (target p99 <= one period + {TARGET_ARRIVAL_EXTRA_US:g} us = "
-        f"{1e6 / service.rate_hz + TARGET_ARRIVAL_EXTRA_US:.0f} us)",
+        f"{arrival['count']} twists (target p99 <= one period + {ARRIVAL_TARGET_EXTRA_US:g} us = "
+        f"{1e6 / service.rate_hz + ARRIVAL_TARGET_EXTRA_US:.0f} us)",
         f"  twists sent {source.sent}, accepted {counters.get('accepted_twist', 0)}, "
         f"rejected {counters.get('rejected_total', 0)}"
         + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(service.rejected.items())) + ")"

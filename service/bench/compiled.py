@@ -1,5 +1,6 @@
-"""An arm as a model of the compiled kinematics library pinocchio (the benchmark's compiled variant and
-the tests' reference oracle); pinocchio is imported only when a model is built."""
+"""An arm as a model of the compiled kinematics library pinocchio: the reference of `bench solver` and the
+tests' oracle. pinocchio is a test-only dependency (the `test` extra), imported only when a model is built;
+without it, pinocchio_model raises ImportError with the command that installs it."""
 
 from __future__ import annotations
 
@@ -19,7 +20,11 @@ def pinocchio_model(arm: Arm) -> tuple[Any, int]:
 
     Raises ImportError when pinocchio is not importable (a test-only dependency).
     """
-    import pinocchio as pin
+    try:
+        import pinocchio as pin
+    except ImportError as exc:
+        raise ImportError(f"the compiled kinematics reference needs pinocchio ({exc}); install the test "
+                          "extra: .venv/bin/pip install -e '.[test]'") from None
 
     model = pin.Model()
     parent = 0

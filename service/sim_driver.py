@@ -1,4 +1,4 @@
-"""`twistrate sim`: the simulated arm as its own process, playing a robot driver over the wire protocol.
+"""The simulated arm as a driver process (`twistrate sim`): plays a robot driver over the wire protocol.
 
 It connects to a running service like a real driver would: subscribes to `command` on the output,
 applies the newest command's rates to the simulated arm (service/simarm.py, the config's lag and the
@@ -9,20 +9,17 @@ has arrived for COMMAND_TIMEOUT_S. The service must run with `[simulation] enabl
 
 from __future__ import annotations
 
-import argparse
-import signal
-import sys
 import time
 
 import numpy as np
 import zmq
 
 from twistrate.service import wire
-from twistrate.service.config import ServiceConfig, load_config
+from twistrate.service.config import ServiceConfig
 from twistrate.service.motion import ramp_to_rest
 from twistrate.service.simarm import SimArm
 from twistrate.service.tick import set_timer_slack
-from twistrate.solver.errors import TwistrateError, WireError
+from twistrate.solver.errors import WireError
 
 #: No command for this long and the simulated drive ramps to rest on its own, s.
 COMMAND_TIMEOUT_S = 0.1
@@ -106,32 +103,3 @@ class SimDriver:
 
     def stop(self, *_: object) -> None:
         self.stopped = True
-
-
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate sim", description=__doc__.splitlines()[0])
-    parser.add_argument("--config", help="the service's TOML file (endpoints, arm, simulation settings)")
-    parser.add_argument("--rate", type=float, help="joint-state publish rate, Hz (default: the tick rate)")
-    parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")
-    args = parser.parse_args(argv)
-    try:
-        config = load_config(args.config)
-        driver = SimDriver(config, rate_hz=args.rate)
-    except TwistrateError as exc:
-        print(f"twistrate sim: {exc}", file=sys.stderr)
-        return 2
-    signal.signal(signal.SIGINT, driver.stop)
-    signal.signal(signal.SIGTERM, driver.stop)
-    print(f"twistrate sim: {driver.arm.name} ({driver.arm.n} joints) at {driver.rate_hz:g} Hz; commands from "
-          f"{config.endpoints.output}, joint state to {config.endpoints.intake}", file=sys.stderr, flush=True)
-    try:
-        driver.run(args.seconds)
-    finally:
-        driver.close()
-    print(f"twistrate sim: stopped after {driver.seq} joint states, {driver.received} commands",
-          file=sys.stderr)
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

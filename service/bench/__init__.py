@@ -1,0 +1,1 @@
+"""The project's benchmarks (`twistrate bench NAME`); imported by nothing else."""

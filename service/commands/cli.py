@@ -1,0 +1,47 @@
+"""The `twistrate` console script: parses the subcommand and hands off to its module's main()."""
+
+from __future__ import annotations
+
+import importlib
+import sys
+
+#: Package of the subcommand modules; each has main(argv) -> int.
+PACKAGE = "twistrate.service.commands"
+#: subcommand -> (module, one-line help); a module name without a dot is one of PACKAGE.
+COMMANDS: dict[str, tuple[str, str]] = {
+    "arm": ("arm", "load an arm file and report kinematics and health"),
+    "serve": ("serve", "run the streaming service for one arm"),
+    "sim": ("sim", "run the built-in simulated arm as a driver process"),
+    "demo": ("demo", "service + simulated arm + scripted twist source, no hardware"),
+    "record": ("record", "record a running service, or summarise a recording"),
+    "keys": ("keys", "make CURVE key pairs for non-loopback endpoints"),
+    "bench": ("twistrate.service.bench.cli", "benchmarks: `bench solver`, `bench service`"),
+}
+
+
+def module_of(command: str) -> str:
+    """The full module name of a subcommand."""
+    module = COMMANDS[command][0]
+    return module if "." in module else f"{PACKAGE}.{module}"
+
+
+def usage() -> str:
+    lines = ["usage: twistrate COMMAND [options]   (twistrate COMMAND --help for each)", ""]
+    lines += [f"  {name:<8} {text}" for name, (_, text) in COMMANDS.items()]
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = sys.argv[1:] if argv is None else list(argv)
+    if not args or args[0] in ("-h", "--help", "help"):
+        print(usage())
+        return 0
+    name, rest = args[0], args[1:]
+    if name not in COMMANDS:
+        print(f"twistrate: unknown command {name!r}; accepted: {', '.join(COMMANDS)}", file=sys.stderr)
+        return 2
+    return int(importlib.import_module(module_of(name)).main(rest))
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

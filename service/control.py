@@ -20,8 +20,9 @@ import zmq
 import zmq.asyncio
 
 from twistrate.service import wire
-from twistrate.service.config import apply_set
+from twistrate.service.operations import apply_tunables, carry_out
 from twistrate.service.runtime import Service
+from twistrate.service.tunables import apply_set
 from twistrate.solver.errors import ControlError, InputError, WireError
 
 log = logging.getLogger("twistrate.service.control")
@@ -49,7 +50,7 @@ class ControlServer:
         try:
             self.service.configure_socket(sock)
             sock.setsockopt(zmq.ROUTER_MANDATORY, 0)
-            sock.bind(self.service.config.endpoints.control)
+            self.service.bind(sock, "control")
         except BaseException:
             sock.close(0)
             raise
@@ -118,11 +119,12 @@ class ControlServer:
             for code, count in list(self.refused.items()):
                 counters[f"control_refused_{code}"] = count
             return {"counters": counters}
+        pipeline = service.pipeline
         if op == "set":
-            tunables = apply_set(service.tunables, args["params"])  # validation here, off the tick
+            tunables = apply_set(pipeline.tunables, args["params"])  # validation here, off the tick
             token = args["lease"]
-            return await self._on_tick(lambda now: service.apply_tunables(token, tunables, now))
-        return await self._on_tick(lambda now: service.control(op, args, now))
+            return await self._on_tick(lambda now: apply_tunables(pipeline, token, tunables, now))
+        return await self._on_tick(lambda now: carry_out(pipeline, op, args, now))
 
     async def _on_tick(self, fn: Any) -> dict[str, Any]:
         fut = self.service.submit(fn)

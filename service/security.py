@@ -37,8 +37,8 @@ TRANSPORTS: tuple[str, ...] = ("tcp", "ipc", "inproc")
 def parse_endpoint(endpoint: str, field_name: str = "endpoint") -> tuple[str, str]:
     """Split a ZeroMQ endpoint into (transport, host or path). Raises ConfigError naming `field_name`.
 
-    Accepted: tcp://HOST:PORT (HOST an IPv4 address, [IPv6], a host name or *; PORT 1-65535),
-    ipc://PATH, inproc://NAME.
+    Accepted: tcp://HOST:PORT (HOST an IPv4 address, [IPv6], a host name or *; PORT 1-65535, or * for a
+    free port the operating system picks when the service binds), ipc://PATH, inproc://NAME.
     """
     accepted = "tcp://HOST:PORT, ipc://PATH or inproc://NAME"
     if not isinstance(endpoint, str) or "://" not in endpoint:
@@ -49,8 +49,8 @@ def parse_endpoint(endpoint: str, field_name: str = "endpoint") -> tuple[str, st
     if transport != "tcp":
         return transport, rest
     host, sep, port = rest.rpartition(":")
-    if not sep or not host or not port.isdigit() or not 1 <= int(port) <= 65535:
-        raise field_error(ConfigError, field_name, endpoint, "tcp://HOST:PORT with PORT 1-65535")
+    if not sep or not host or not (port == "*" or (port.isdigit() and 1 <= int(port) <= 65535)):
+        raise field_error(ConfigError, field_name, endpoint, "tcp://HOST:PORT with PORT 1-65535 or *")
     if ";" in host:  # "source;destination" form of connect: the destination decides
         host = host.rsplit(";", 1)[1]
     if host.startswith("[") and host.endswith("]"):

@@ -26,10 +26,12 @@ COMMAND_TIMEOUT_S = 0.1
 
 
 class SimDriver:
-    """A simulated arm behind the protocol: commands in, joint state out, at `rate_hz`."""
+    """A simulated arm behind the protocol: commands in, joint state out, at `rate_hz`.
+
+    endpoints : {intake, output, control} of the service (default: the config's endpoints)."""
 
     def __init__(self, config: ServiceConfig, context: zmq.Context | None = None,
-                 rate_hz: float | None = None) -> None:
+                 rate_hz: float | None = None, endpoints: dict[str, str] | None = None) -> None:
         self.config = config
         self.arm = config.load_arm()
         posture = config.initial_posture(self.arm)
@@ -38,7 +40,10 @@ class SimDriver:
         self.rate_hz = float(rate_hz or config.tick.rate_hz)
         self._own = context is None
         self.ctx = context or zmq.Context()
-        ep, sk = config.endpoints, config.sockets
+        sk = config.sockets
+        #: where the service listens: `endpoints` (from its endpoints file) or the configured ones
+        self.endpoints = dict(endpoints or config.endpoints.model_dump())
+        ep = self.endpoints
         self.commands = self.ctx.socket(zmq.SUB)
         self.joints = self.ctx.socket(zmq.PUB)
         for sock in (self.commands, self.joints):
@@ -47,8 +52,8 @@ class SimDriver:
             sock.setsockopt(zmq.RCVHWM, sk.receive_hwm)
             sock.setsockopt(zmq.SNDHWM, sk.send_hwm)
         self.commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
-        self.commands.connect(ep.output)
-        self.joints.connect(ep.intake)
+        self.commands.connect(ep["output"])
+        self.joints.connect(ep["intake"])
         self.seq = 0
         self.received = 0
         self.refused = 0

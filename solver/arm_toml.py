@@ -23,6 +23,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from twistrate.solver.arm import AXIS_NORM_TOLERANCE, PRISMATIC, REVOLUTE, Arm, Joint, check_transform
 from twistrate.solver.dh import DHRow, dh_chain
 from twistrate.solver.errors import ModelError, field_error
+from twistrate.solver.validation import describe
 
 #: The only version of the TOML arm format this parser reads.
 FORMAT_VERSION = 1
@@ -94,11 +95,6 @@ class ArmSpec(_Table):
     joint: Annotated[list[JointSpec], Field(min_length=1)]
 
 
-# Which model sits at a location in the file (for "unknown key" messages listing the known ones).
-_TABLE_AT: dict[tuple[str, ...], type[BaseModel]] = {
-    (): ArmSpec, ("mount",): FrameSpec, ("tool",): FrameSpec,
-    ("joint",): JointSpec, ("joint", "dh"): DHSpec, ("joint", "frame"): FrameSpec,
-}
 
 # Per quantity and joint kind, the key variants accepted and their factor to SI.
 _UNITS: dict[str, dict[str, dict[str, float]]] = {
@@ -330,57 +326,27 @@ def _frame(where: str, f: FrameSpec) -> np.ndarray:
     return T
 
 
+#: This format's own wording where the shared translator's would say less.
 _ACCEPTED_BY_TYPE = {
-    "float_type": "a number",
     "finite_number": "a finite number (an unlimited revolute joint says unlimited = true)",
-    "string_type": "a string in quotes",
-    "bool_type": "true or false",
-    "list_type": "a list [..]",
-    "model_type": "a table",
-    "dict_type": "a table",
-    "missing": "a value (this key is required)",
 }
+
+
+def _accepted_at(loc: tuple[Any, ...], kind: str) -> str | None:
+    if loc == ("joint",) and kind in ("missing", "too_short"):
+        return "at least one [[joint]] table"
+    return None
 
 
 def _describe(err: Any, data: dict) -> str:
     """One pydantic error as 'location: got value; accepted: ...' with joints named by index and name."""
-    loc = tuple(err["loc"])
-    parts: list[str] = []
-    for k, item in enumerate(loc):
-        if isinstance(item, int) and loc[:k] == ("joint",):
-            joints = data.get("joint")
-            entry = joints[item] if isinstance(joints, list) and item < len(joints) else None
-            parts[-1] = _where(item, entry.get("name") if isinstance(entry, dict) else None)
-        elif isinstance(item, int):
-            parts[-1] += f"[{item}]"
-        else:
-            parts.append(str(item))
-    field = ".".join(parts) or "(file)"
-    keys = [item for item in loc if isinstance(item, str)]
-    etype = err["type"]
-    value = err.get("input")
-    if etype == "extra_forbidden":
-        model = _TABLE_AT.get(tuple(keys[:-1]))
-        known = ", ".join(model.model_fields) if model is not None else "see docs/arm-format.md"
-        return str(field_error(ModelError, field, value, f"a known key ({known})"))
-    if etype == "missing":
-        accepted = "at least one [[joint]] table" if keys == ["joint"] else "a value (this key is required)"
-        return str(_missing(field, accepted))
-    if etype in ("too_short", "too_long"):
-        if keys == ["joint"]:
-            accepted = "at least one [[joint]] table"
-        else:
-            accepted = f"a list of exactly {_LENGTHS.get(keys[-1], '?')} items"
-        return str(field_error(ModelError, field, value, accepted))
-    if etype == "greater_than":
-        return str(field_error(ModelError, field, value, f"a number > {err.get('ctx', {}).get('gt')}"))
-    if etype == "literal_error":
-        return str(field_error(ModelError, field, value, f"one of {err.get('ctx', {}).get('expected')}"))
-    if etype == "string_too_short":
-        return str(field_error(ModelError, field, value, "a non-empty string"))
-    return str(field_error(ModelError, field, value, _ACCEPTED_BY_TYPE.get(etype, err["msg"])))
 
+    def joint_label(before: tuple[Any, ...], index: int) -> str | None:
+        if before != ("joint",):
+            return None
+        joints = data.get("joint")
+        entry = joints[index] if isinstance(joints, list) and index < len(joints) else None
+        return _where(index, entry.get("name") if isinstance(entry, dict) else None)
 
-#: Fixed list lengths by key, for "too short / too long" messages.
-_LENGTHS = {"xyz_m": 3, "rpy_deg": 3, "rpy_rad": 3, "axis": 3, "rotation_rows": 3,
-            "range_deg": 2, "range_rad": 2, "range_m": 2}
+    return describe(err, ArmSpec, item_label=joint_label, accepted_by_type=_ACCEPTED_BY_TYPE,
+                    accepted_at=_accepted_at, whole="(file)")

@@ -10,12 +10,13 @@ integrates commands "with realistic limits"; a joint must never pass one).
 from __future__ import annotations
 
 import contextlib
-import socket
 import subprocess
+import sys
 import threading
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -25,30 +26,22 @@ from twistrate.service.config import ServiceConfig, config_from_dict
 from twistrate.service.control import ControlThread
 from twistrate.service.runtime import Service
 from twistrate.service.simarm import SimArm
+from twistrate.service.wire.discovery import read_endpoints
 
 #: Every end-to-end loop is bounded by this many seconds.
 LOOP_LIMIT_S = 10.0
 
 
-def free_ports(k: int) -> list[int]:
-    """k distinct free TCP ports on 127.0.0.1 (bound, then released for the service to bind)."""
-    socks, ports = [], []
-    for _ in range(k):
-        s = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-        s.bind(("127.0.0.1", 0))
-        socks.append(s)
-        ports.append(s.getsockname()[1])
-    for s in socks:
-        s.close()
-    return ports
+#: Loopback with a port the operating system picks at bind time (no race for a "free" port).
+ANY_PORT = "tcp://127.0.0.1:*"
+#: How long a test waits for a started `twistrate serve` to write its endpoints file, s.
+SERVE_START_S = 20.0
 
 
 def config_dict(**sections: dict[str, Any]) -> dict[str, Any]:
-    """A config document on fresh random loopback ports; `sections` override/extend sections."""
-    p = free_ports(3)
+    """A config document on loopback ports picked at bind time; `sections` override/extend sections."""
     doc: dict[str, Any] = {
-        "endpoints": {"intake": f"tcp://127.0.0.1:{p[0]}", "output": f"tcp://127.0.0.1:{p[1]}",
-                      "control": f"tcp://127.0.0.1:{p[2]}"},
+        "endpoints": {"intake": ANY_PORT, "output": ANY_PORT, "control": ANY_PORT},
         "logging": {"level": "warning"},
     }
     for name, values in sections.items():
@@ -60,9 +53,34 @@ def make_config(base_dir: str = ".", **sections: dict[str, Any]) -> ServiceConfi
     return config_from_dict(config_dict(**sections), base_dir)
 
 
-def endpoints_of(config: ServiceConfig) -> Endpoints:
-    ep = config.endpoints
-    return Endpoints(ep.intake, ep.output, ep.control)
+def endpoints_of(service: Service) -> Endpoints:
+    """Where a started service (and its control plane) is bound."""
+    ep = service.endpoints
+    return Endpoints(ep["intake"], ep["output"], ep["control"])
+
+
+def twistrate(*args: str, **kw: Any) -> subprocess.Popen:
+    """`twistrate ARGS` in a subprocess with text pipes."""
+    kw.setdefault("stdout", subprocess.PIPE)
+    kw.setdefault("stderr", subprocess.PIPE)
+    return subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", *args], text=True, **kw)
+
+
+def serve_process(config_path: str | Path, endpoints_file: str | Path, *extra: str,
+                  prefix: tuple[str, ...] = (), **kw: Any) -> tuple[subprocess.Popen, Endpoints]:
+    """Start `twistrate serve --config PATH --endpoints-file FILE` (after `prefix`, e.g. a user switch) and
+    return it with the endpoints it bound, read from the file it writes."""
+    command = [*prefix, sys.executable, "-m", "twistrate.service.commands.cli", "serve", "--config",
+               str(config_path), "--endpoints-file", str(endpoints_file), *extra]
+    kw.setdefault("stdout", subprocess.PIPE)
+    kw.setdefault("stderr", subprocess.PIPE)
+    proc = subprocess.Popen(command, text=True, **kw)
+    try:
+        ep = read_endpoints(endpoints_file, SERVE_START_S)
+    except BaseException:
+        reap(proc)
+        raise
+    return proc, Endpoints(ep["intake"], ep["output"], ep["control"])
 
 
 @dataclass
@@ -116,7 +134,8 @@ class Running:
 def running_service(config: ServiceConfig, **service_kw: Any) -> Iterator[Running]:
     """Start a service and its control plane; on exit stop both and assert the simulated arm's limits."""
     service = Service(config, **service_kw)
-    watch = LimitWatch(service.sim) if service.sim is not None else None
+    sim = service.pipeline.sim
+    watch = LimitWatch(sim) if sim is not None else None
     service.start()
     control = ControlThread(service)
     try:
@@ -124,7 +143,7 @@ def running_service(config: ServiceConfig, **service_kw: Any) -> Iterator[Runnin
     except BaseException:
         service.close()
         raise
-    run = Running(service, control, config, endpoints_of(config), watch)
+    run = Running(service, control, config, endpoints_of(service), watch)
     try:
         yield run
     finally:

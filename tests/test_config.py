@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from twistrate.service import config as cfg
+from twistrate.service import tunables as tun
 from twistrate.service.security import write_keypair
 from twistrate.service.state import E_BAD_ARGUMENT
 from twistrate.solver.errors import ConfigError, ControlError
@@ -75,7 +76,7 @@ def test_reduced_speed_default_is_the_iso_10218_1_limit(tmp_path):
 def test_reduced_speed_mode_caps_the_tool_speed(tmp_path):
     t = _load(tmp_path, "[speed]\nlinear_max = 1.0\nreduced_speed = true\n").tunables()
     assert t.tool_linear_max == 0.25
-    assert cfg.apply_set(t, {"reduced_speed": False}).tool_linear_max == 1.0
+    assert tun.apply_set(t, {"reduced_speed": False}).tool_linear_max == 1.0
 
 
 @pytest.mark.parametrize("rate", [500, 1000, 250.0])
@@ -223,7 +224,7 @@ def test_malformed_endpoint(tmp_path):
 
 def test_set_changes_only_what_is_named(tmp_path):
     before = cfg.load_config().tunables()
-    after = cfg.apply_set(before, {"damping_max": 0.08, "reduced_speed": True, "damping": "constant"})
+    after = tun.apply_set(before, {"damping_max": 0.08, "reduced_speed": True, "damping": "constant"})
     assert (after.damping_max, after.reduced_speed, after.damping) == (0.08, True, "constant")
     assert after.model_dump(exclude={"damping_max", "reduced_speed", "damping"}) == \
         before.model_dump(exclude={"damping_max", "reduced_speed", "damping"})
@@ -246,7 +247,7 @@ def test_set_changes_only_what_is_named(tmp_path):
 def test_set_refusals_name_parameter_value_and_range(params, name, accepted):
     before = cfg.load_config().tunables()
     with pytest.raises(ControlError) as info:
-        cfg.apply_set(before, params)
+        tun.apply_set(before, params)
     assert info.value.code == E_BAD_ARGUMENT
     message = str(info.value)
     assert f"params.{name}: got {params[name]!r}" in message and accepted in message, message
@@ -255,17 +256,17 @@ def test_set_refusals_name_parameter_value_and_range(params, name, accepted):
 def test_set_is_all_or_nothing_and_checks_cross_constraints():
     before = cfg.load_config().tunables()
     with pytest.raises(ControlError, match="holding_below"):
-        cfg.apply_set(before, {"holding_below": 0.1})
+        tun.apply_set(before, {"holding_below": 0.1})
     with pytest.raises(ControlError, match="linear_max"):
-        cfg.apply_set(before, {"damping_max": 0.02, "linear_max": 100.0})
+        tun.apply_set(before, {"damping_max": 0.02, "linear_max": 100.0})
     assert before.damping_max == 0.04  # unchanged (immutable; nothing applied)
     with pytest.raises(ControlError):
-        cfg.apply_set(before, {})
+        tun.apply_set(before, {})
 
 
 def test_tunable_ranges_are_documented():
     doc = (Path(__file__).resolve().parents[1] / "docs" / "protocol.md").read_text()
-    ranges = cfg.tunable_ranges()
-    assert set(ranges) == set(cfg.Tunables.model_fields)
+    ranges = tun.tunable_ranges()
+    assert set(ranges) == set(tun.Tunables.model_fields)
     for name in ranges:
         assert f"| `{name}` |" in doc, name

@@ -120,5 +120,5 @@ def test_curve_service_refuses_an_unknown_client_key(tmp_path):
                 link.receive_command(timeout_s=0.5)
             with pytest.raises(TimeoutError):
                 link.wait_ready(timeout_s=0.5)
-        assert run.service.counts["accepted_twist"] > 0
+        assert run.service.counters()["accepted_twist"] > 0
         del client_pub

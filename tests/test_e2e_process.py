@@ -7,12 +7,19 @@ import itertools
 import math
 import signal
 import subprocess
-import sys
 import threading
 
 import numpy as np
 import pytest
-from service_harness import collect_commands, config_dict, endpoints_of, reap, running_service, stream_until
+from service_harness import (
+    collect_commands,
+    config_dict,
+    reap,
+    running_service,
+    serve_process,
+    stream_until,
+    twistrate,
+)
 
 from twistrate.clients.link import Link
 from twistrate.service.commands.demo import CAUTIONS
@@ -42,16 +49,15 @@ def _write_config(tmp_path, **sections) -> str:
 
 
 def _twistrate(*args: str, **kw) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", *args],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
+    return twistrate(*args, **kw)
 
 
 def test_serve_sigterm_ramps_down_and_publishes_a_final_zero_command(tmp_path):
     path = _write_config(tmp_path, logging={"level": "info"})
     cfg = load_config(path)
-    proc = _twistrate("serve", "--config", path)
+    proc, endpoints = serve_process(path, tmp_path / "endpoints.json")
     try:
-        with Link(endpoints_of(cfg), timeout_s=2.0) as link:
+        with Link(endpoints, timeout_s=2.0) as link:
             link.wait_ready(timeout_s=20.0)
             link.arm()
             link.claim("test")
@@ -84,11 +90,10 @@ def test_serve_sigterm_ramps_down_and_publishes_a_final_zero_command(tmp_path):
 
 def test_sim_process_drives_a_service_in_driver_mode(tmp_path):
     path = _write_config(tmp_path, simulation={"enabled": False})
-    cfg = load_config(path)
-    serve = _twistrate("serve", "--config", path)
-    sim = _twistrate("sim", "--config", path)
+    serve, endpoints = serve_process(path, tmp_path / "endpoints.json")
+    sim = _twistrate("sim", "--config", path, "--endpoints-file", str(tmp_path / "endpoints.json"))
     try:
-        with Link(endpoints_of(cfg), timeout_s=2.0) as link:
+        with Link(endpoints, timeout_s=2.0) as link:
             link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
             link.arm()
             link.claim("test")
@@ -143,7 +148,8 @@ def test_record_from_the_wire_agrees_with_the_services_own_recording(tmp_path):
     arm = load_arm("reach7")
     with running_service(cfg, recorder=Recorder(own, arm, cfg.tick.rate_hz)) as run:
         stop = [False]
-        thread = threading.Thread(target=record_stream, args=(path, str(wire), 30.0, stop), daemon=True)
+        thread = threading.Thread(target=record_stream, daemon=True,
+                                  args=(path, str(wire), 30.0, stop, run.service.endpoints))
         thread.start()
         link = run.link()
         link.claim("test")

@@ -20,11 +20,10 @@ import tempfile
 from pathlib import Path
 
 import pytest
-from service_harness import config_dict, endpoints_of, make_config, reap, running_service, stream_until
+from service_harness import config_dict, make_config, reap, running_service, serve_process, stream_until
 
 from twistrate.clients.link import Link
 from twistrate.service.commands import serve
-from twistrate.service.config import load_config
 from twistrate.service.tick import probe_realtime
 
 pytestmark = pytest.mark.timeout(90)
@@ -97,12 +96,12 @@ def test_unprivileged_serve_runs_with_normal_scheduling_and_one_notice():
         path.write_text("\n".join([f"[{section}]\n" + "\n".join(f'{k} = "{v}"' for k, v in values.items())
                                    for section, values in doc.items()]) + "\n")
         path.chmod(0o644)
-        cfg = load_config(path)
-        command = [*UNPRIVILEGED, sys.executable, "-m", "twistrate.service.commands.cli", "serve",
-                   "--config", str(path)]
-        proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=tmp)
+        out = Path(tmp) / "out"  # the unprivileged service writes its endpoints file here
+        out.mkdir()
+        out.chmod(0o777)
+        proc, endpoints = serve_process(path, out / "endpoints.json", prefix=tuple(UNPRIVILEGED), cwd=tmp)
         try:
-            with Link(endpoints_of(cfg), timeout_s=2.0) as link:
+            with Link(endpoints, timeout_s=2.0) as link:
                 link.wait_ready(timeout_s=20.0)
                 link.arm()
                 assert link.status()["realtime"] is False

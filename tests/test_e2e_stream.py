@@ -35,7 +35,7 @@ def test_commands_match_the_solver_at_the_same_q():
 
         commands = stream_until(link, V, W, enough)
         svc = run.service
-        arm, options, period = svc.arm, svc.options, svc.period_s
+        arm, options, period = svc.arm, svc.pipeline.options, svc.period_s
         twist = DesiredTwist(np.array(V), np.array(W))
         checked = 0
         for prev, cur in itertools.pairwise(commands):
@@ -79,14 +79,15 @@ def test_run_time_parameters_apply_and_are_all_or_nothing():
         assert params["linear_max"] == 0.05
         cs = stream_until(link, fast, [0, 0, 0], lambda cs: sum(c.answers >= 0 for c in cs) > 50)
         # the speed cap scales the desired twist: the service's own record of it
-        assert run.service.cap == pytest.approx(0.05 / 0.4)
-        res = run.service.last_resolution
-        assert res is not None
-        assert np.linalg.norm(res.twist_desired[:3]) == pytest.approx(0.05, rel=1e-9)
+        assert run.service.snapshot.cap == pytest.approx(0.05 / 0.4)
+        desired = run.service.snapshot.twist_desired
+        assert desired is not None
+        assert np.linalg.norm(desired[:3]) == pytest.approx(0.05, rel=1e-9)
         # reduced-speed mode caps the tool point at reduced_linear_max (ISO 10218-1:2011, 5.6: 250 mm/s)
         link.set(linear_max=1.0, reduced_speed=True)
-        stream_until(link, fast, [0, 0, 0], lambda cs: run.service.cap < 0.7)
-        assert run.service.cap == pytest.approx(0.25 / 0.4)
+        # wait until the service reports the new cap (0.125 before; the snapshot comes at the health rate)
+        stream_until(link, fast, [0, 0, 0], lambda cs: run.service.snapshot.cap > 0.2)
+        assert run.service.snapshot.cap == pytest.approx(0.25 / 0.4)
         assert link.status()["reduced_speed"] is True
         # a refused parameter changes nothing
         before = link.set(hysteresis=0.2)

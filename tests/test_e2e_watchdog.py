@@ -19,7 +19,6 @@ import pytest
 from service_harness import (
     LimitWatch,
     collect_commands,
-    endpoints_of,
     make_config,
     running_service,
     stream_until,
@@ -128,7 +127,7 @@ def _driver_config():
 def test_driver_mode_follows_twists_and_stops_when_joint_state_goes_stale():
     cfg = _driver_config()
     with running_service(cfg) as run:
-        driver = SimDriver(cfg)
+        driver = SimDriver(cfg, endpoints=run.service.endpoints)
         watch = LimitWatch(driver.sim)
         thread = threading.Thread(target=driver.run, daemon=True)
         thread.start()
@@ -137,7 +136,7 @@ def test_driver_mode_follows_twists_and_stops_when_joint_state_goes_stale():
             link.claim("test")
             link.enable()
             cs = stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 50)
-            assert run.service.counts["accepted_joints"] > 0
+            assert run.service.counters()["accepted_joints"] > 0
             # the driver's joint state is what the service used: target - rate T = measured q
             assert np.all(np.isfinite(cs[-1].target))
         finally:
@@ -176,7 +175,7 @@ def test_out_of_range_joint_state_faults_until_cleared():
             time.sleep(0.005)
         assert link.clear_fault() == "disabled"
         assert link.enable() in ("holding", "stopping")
-        assert run.service.counts["faults"] == 1
+        assert run.service.counters()["faults"] == 1
 
 
 def test_non_finite_joint_state_is_counted_and_faults():
@@ -191,7 +190,7 @@ def test_non_finite_joint_state_is_counted_and_faults():
         ctx = zmq.Context.instance()
         pub = ctx.socket(zmq.PUB)
         pub.setsockopt(zmq.LINGER, 0)
-        pub.connect(endpoints_of(cfg).intake)
+        pub.connect(run.endpoints.intake)
         time.sleep(0.2)
         bad = {"proto": 1, "kind": "joints", "seq": 1, "stamp_ns": time.time_ns(),
                "position": [float("nan")] + [0.0] * 6}

@@ -9,7 +9,7 @@ import re
 import typing
 from pathlib import Path
 
-from twistrate.service import config as service_config
+from twistrate.service import config_sections as service_config
 from twistrate.service import state as service_state
 from twistrate.service import wire
 from twistrate.solver import arm as solver_arm

@@ -5,7 +5,8 @@
 * clients import only the wire package, the exception module and other clients;
 * the service core (everything in service/ but commands/ and bench/) imports solver and service, never
   clients, commands or benchmarks;
-* nothing outside commands/ and bench/ imports them.
+* nothing outside commands/ and bench/ imports them;
+and the runtime's Service keeps a small state (at most MAX_SERVICE_ATTRIBUTES set in __init__).
 """
 
 from __future__ import annotations
@@ -15,6 +16,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 ERRORS = "twistrate.solver.errors"
+#: Attributes Service.__init__ may set: threads, sockets and life cycle only; tick state is the pipeline's.
+MAX_SERVICE_ATTRIBUTES = 25
 
 
 def _module_name(path: Path) -> str:
@@ -97,3 +100,13 @@ def test_the_import_scan_sees_imports():
 
 def test_every_import_respects_the_layers():
     assert _violations(_rule) == []
+
+
+def test_service_init_sets_few_attributes():
+    tree = ast.parse((ROOT / "service" / "runtime.py").read_text())
+    cls = next(n for n in tree.body if isinstance(n, ast.ClassDef) and n.name == "Service")
+    init = next(n for n in cls.body if isinstance(n, ast.FunctionDef) and n.name == "__init__")
+    names = {t.attr for node in ast.walk(init) if isinstance(node, (ast.Assign, ast.AnnAssign))
+             for t in (node.targets if isinstance(node, ast.Assign) else [node.target])
+             if isinstance(t, ast.Attribute) and isinstance(t.value, ast.Name) and t.value.id == "self"}
+    assert 10 <= len(names) <= MAX_SERVICE_ATTRIBUTES, sorted(names)

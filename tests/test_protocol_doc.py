@@ -28,7 +28,7 @@ def _emitted_event_names() -> set[str]:
     state.events.append((name, detail)), ServiceState._set_mode(mode, name, detail) and
     Service.emit_event(name, detail). A non-literal name outside the pass-through functions fails."""
     names: set[str] = set()
-    for path in sorted((ROOT / "service").glob("*.py")):
+    for path in sorted((ROOT / "service").rglob("*.py")):
         tree = ast.parse(path.read_text(), str(path))
         for fn in ast.walk(tree):
             if not isinstance(fn, (ast.FunctionDef, ast.AsyncFunctionDef)):

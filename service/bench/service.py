@@ -34,7 +34,6 @@ import json
 import math
 import os
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -46,6 +45,7 @@ import numpy as np
 
 from twistrate.clients.link import Endpoints, Link
 from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US, cpu_wake_latency_in_force_us
+from twistrate.service.wire.discovery import read_endpoints
 
 DEFAULT_RATES = (500.0, 1000.0)
 DEFAULT_SECONDS = 10.0
@@ -62,35 +62,23 @@ NO_WAKE_LATENCY_REQUEST_US = 2_000_000_000
 CLK_TCK = os.sysconf("SC_CLK_TCK") if hasattr(os, "sysconf") else 100
 
 
-def _free_ports(k: int) -> list[int]:
-    socks = [socket.socket() for _ in range(k)]
-    for s in socks:
-        s.bind(("127.0.0.1", 0))
-    ports = [s.getsockname()[1] for s in socks]
-    for s in socks:
-        s.close()
-    return ports
-
-
-def _config_text(rate_hz: float) -> tuple[str, Endpoints]:
-    p = _free_ports(3)
-    ep = Endpoints(f"tcp://127.0.0.1:{p[0]}", f"tcp://127.0.0.1:{p[1]}", f"tcp://127.0.0.1:{p[2]}")
-    text = f"""[arm]
+#: How long the benchmark waits for the service to bind and write its endpoints file, s.
+SERVE_START_S = 20.0
+CONFIG_TEXT = """[arm]
 file = "reach7"
 [tick]
 rate_hz = {rate_hz}
 health_hz = 50
 [endpoints]
-intake = "{ep.intake}"
-output = "{ep.output}"
-control = "{ep.control}"
+intake = "tcp://127.0.0.1:*"
+output = "tcp://127.0.0.1:*"
+control = "tcp://127.0.0.1:*"
 [simulation]
 enabled = false
 lag_s = 0.02
 [logging]
 level = "warning"
 """
-    return text, ep
 
 
 def cpu_seconds(pid: int) -> float:
@@ -145,17 +133,20 @@ def _stop(proc: subprocess.Popen, timeout_s: float = 10.0) -> str:
 def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -> dict[str, Any]:
     """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures.
     rt_priority : the service's --rt-priority (None: its configured default)."""
-    text, ep = _config_text(rate_hz)
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
-        path.write_text(text)
-        serve_args = ["twistrate.service.commands.cli", "serve", "--config", str(path)]
+        path.write_text(CONFIG_TEXT.format(rate_hz=rate_hz))
+        ep_file = str(Path(tmp) / "endpoints.json")
+        serve_args = ["twistrate.service.commands.cli", "serve", "--config", str(path), "--endpoints-file",
+                      ep_file]
         if rt_priority is not None:
             serve_args += ["--rt-priority", str(rt_priority)]
         serve = _spawn(serve_args)
         procs = [serve]
         try:
-            procs.append(_spawn(["twistrate.service.commands.cli", "sim", "--config", str(path)]))
+            ep = Endpoints(**read_endpoints(ep_file, SERVE_START_S))
+            procs.append(_spawn(["twistrate.service.commands.cli", "sim", "--config", str(path),
+                                 "--endpoints-file", ep_file]))
             with Link(ep, client="bench-watch", topics=(b"command",), timeout_s=5.0) as link:
                 link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
                 link.arm()

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import argparse
 import math
-import socket
 import sys
 import threading
 import time
@@ -148,29 +147,29 @@ class Display:
 
     def lines(self) -> list[str]:
         svc = self.service
+        snap = svc.snapshot  # the last tick's state, published by the tick thread
+        ticker = svc.ticker
         now = time.monotonic()
-        ticks = svc.ticker.ticks
+        ticks = ticker.ticks
         if self._last is None or now - self._last[0] >= 0.1:  # too short a gap keeps the previous figure
             if self._last is not None:
                 self._rate = (ticks - self._last[1]) / (now - self._last[0])
             self._last = (now, ticks)
         rate = self._rate
         names = svc.arm.joint_names
-        active = [names[i] for i in np.flatnonzero(svc.limits_active)]
-        h = svc.last_health
-        margin = h.get("limit_margin")  # fractions of each joint's range (inf: unlimited)
+        active = [names[i] for i in np.flatnonzero(snap.limits_active)]
+        margin = snap.limit_margin  # fractions of each joint's range (inf: unlimited)
         near = ""
         if margin is not None and len(margin) and np.isfinite(margin).any():
             i = int(np.argmin(margin))
             near = f"; nearest limit: {names[i]} at {100 * float(margin[i]):.1f} % of its range"
-        manip = svc.manipulability
         sched = "real-time" if svc.scheduling.realtime else "normal"
         return [
-            f"t {svc.tick * svc.period_s:6.2f} s  phase: {self.source.phase}",
-            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g}, {sched} scheduling)  mode {svc.mode:<9} "
-            f"health {svc.health_state:<11} overruns {svc.ticker.overruns}",
-            f"  manipulability {manip:9.3e}  sigma_min {svc.sigma_min:6.4f} m  scale {svc.scale:4.2f}"
-            f"  speed cap {svc.cap:4.2f}  damping {svc.damping:6.4f} m",
+            f"t {snap.t_s:6.2f} s  phase: {self.source.phase}",
+            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g}, {sched} scheduling)  mode {snap.mode:<9} "
+            f"health {snap.health_state:<11} overruns {ticker.overruns}",
+            f"  manipulability {snap.manipulability:9.3e}  sigma_min {snap.sigma_min:6.4f} m  scale "
+            f"{snap.scale:4.2f}  speed cap {snap.cap:4.2f}  damping {snap.damping:6.4f} m",
             f"  limits in play: {', '.join(active) if active else 'none'}{near}",
         ]
 
@@ -186,18 +185,8 @@ class Display:
         self.out.flush()
 
 
-def _free_endpoints() -> dict[str, str]:
-    ports = []
-    socks = []
-    for _ in range(3):
-        s = socket.socket()
-        s.bind(("127.0.0.1", 0))
-        socks.append(s)
-        ports.append(s.getsockname()[1])
-    for s in socks:
-        s.close()
-    names = ("intake", "output", "control")
-    return {name: f"tcp://127.0.0.1:{p}" for name, p in zip(names, ports, strict=True)}
+#: Endpoints the demo falls back to when the configured ports are taken: loopback, ports picked at bind.
+ANY_LOOPBACK_PORTS = {name: "tcp://127.0.0.1:*" for name in ("intake", "output", "control")}
 
 
 def _with_endpoints(config: ServiceConfig, endpoints: dict[str, str]) -> ServiceConfig:
@@ -220,8 +209,8 @@ def start_service(config: ServiceConfig, recorder: Recorder | None) -> tuple[Ser
             service.close()
             if attempt or exc.errno != zmq.EADDRINUSE:
                 raise
-            config = _with_endpoints(config, _free_endpoints())
-            note = f"(configured ports busy: using {config.endpoints.control} and neighbours)"
+            config = _with_endpoints(config, ANY_LOOPBACK_PORTS)
+            note = "(configured ports busy: using free ones)"
     raise AssertionError("unreachable")
 
 
@@ -229,7 +218,9 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
            counters: dict[str, int]) -> list[str]:
     """The closing report's lines."""
     lat = service.ticker.lateness.summary()
-    arrival = service.arrival_to_publish.summary()
+    arrival = service.pipeline.telemetry.hist["arrival_to_publish"].summary()
+    rejected = {k[len("rejected_"):]: v for k, v in counters.items()
+                if k.startswith("rejected_") and k != "rejected_total"}
     sched = service.scheduling
     lines = [
         "",
@@ -243,8 +234,7 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
         f"{1e6 / service.rate_hz + ARRIVAL_TARGET_EXTRA_US:.0f} us)",
         f"  twists sent {source.sent}, accepted {counters.get('accepted_twist', 0)}, "
         f"rejected {counters.get('rejected_total', 0)}"
-        + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(service.rejected.items())) + ")"
-           if service.rejected else ""),
+        + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items())) + ")" if rejected else ""),
         f"  faults {counters.get('faults', 0)}, limit events {counters.get('limit_events', 0)}",
     ]
     if recording is not None and recording.exists():
@@ -293,10 +283,11 @@ def main(argv: list[str] | None = None) -> int:
         print(f"twistrate demo: {exc}", file=sys.stderr)
         return 1
     cfg = service.config
+    ep = service.endpoints
     print(f"arm {arm.name} ({arm.n} joints), simulated; tick {cfg.tick.rate_hz:g} Hz; control "
-          f"{cfg.endpoints.control} {note}".rstrip(), flush=True)
+          f"{ep['control']} {note}".rstrip(), flush=True)
     print(f"scripted inspection pass: {', '.join(p.name for p in SCENARIO)}; {args.seconds:g} s", flush=True)
-    endpoints = Endpoints(cfg.endpoints.intake, cfg.endpoints.output, cfg.endpoints.control)
+    endpoints = Endpoints(ep["intake"], ep["output"], ep["control"])
     source = ScriptedSource(endpoints, args.seconds)
     display = Display(service, source)
     source.start()
@@ -307,7 +298,8 @@ def main(argv: list[str] | None = None) -> int:
             display.show()
         # let the arm come to rest after the source let go, then stop
         rest_deadline = time.monotonic() + 3.0
-        while time.monotonic() < rest_deadline and (service.qd.any() or service.mode == "running"):
+        while time.monotonic() < rest_deadline and (service.snapshot.qd.any()
+                                                    or service.snapshot.mode == "running"):
             time.sleep(0.05)
         display.show()
     except KeyboardInterrupt:

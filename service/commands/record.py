@@ -27,17 +27,20 @@ from twistrate.clients.link import Endpoints, Link
 from twistrate.service import wire
 from twistrate.service.config import load_config
 from twistrate.service.recorder import Recorder, format_summary, plot_svg, read_recording, summarize
+from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import TwistrateError
 
 #: Fields a recording made from the output stream cannot fill.
 WIRE_UNAVAILABLE = ("twist_desired", "twist_achieved", "cap", "limits")
 
 
-def record_stream(config_path: str | None, out: str, seconds: float | None, stop: list[bool]) -> int:
-    """Subscribe to a running service's output and record every command; returns the rows written."""
+def record_stream(config_path: str | None, out: str, seconds: float | None, stop: list[bool],
+                  endpoints: dict[str, str] | None = None) -> int:
+    """Subscribe to a running service's output and record every command; returns the rows written.
+    endpoints : where the service listens (default: the config's endpoints)."""
     config = load_config(config_path)
     arm = config.load_arm()
-    ep = config.endpoints
+    ep = endpoints or config.endpoints.model_dump()
     period = 1.0 / config.tick.rate_hz
     recorder = Recorder(out, arm, config.tick.rate_hz, source="output", unavailable=WIRE_UNAVAILABLE)
     damping = sigma_min = manip = math.nan
@@ -45,7 +48,7 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
     no_limits = np.zeros(arm.n, dtype=np.uint8)
     end = None if seconds is None else time.monotonic() + seconds
     try:
-        with Link(Endpoints(ep.intake, ep.output, ep.control), client="recorder",
+        with Link(Endpoints(ep["intake"], ep["output"], ep["control"]), client="recorder",
                   topics=(wire.TOPIC_COMMAND, wire.TOPIC_HEALTH), n=arm.n) as link:
             while not stop[0] and (end is None or time.monotonic() < end):
                 try:
@@ -74,6 +77,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--config", help="the service's TOML file (endpoints and arm)")
     parser.add_argument("--out", metavar="PATH", help="record to this file")
     parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")
+    parser.add_argument("--endpoints-file", metavar="FILE",
+                        help="connect to the endpoints `twistrate serve --endpoints-file FILE` wrote")
     parser.add_argument("--summary", metavar="PATH", help="summarise this recording")
     parser.add_argument("--svg", metavar="OUT", help="with --summary: also plot it to this SVG file")
     parser.add_argument("--json", action="store_true", help="with --summary: print the summary as JSON")
@@ -101,7 +106,8 @@ def main(argv: list[str] | None = None) -> int:
     signal.signal(signal.SIGINT, on_signal)
     signal.signal(signal.SIGTERM, on_signal)
     try:
-        rows = record_stream(args.config, args.out, args.seconds, stop)
+        endpoints = read_endpoints(args.endpoints_file) if args.endpoints_file else None
+        rows = record_stream(args.config, args.out, args.seconds, stop, endpoints)
     except (TwistrateError, zmq.ZMQError, OSError) as exc:
         print(f"twistrate record: {exc}", file=sys.stderr)
         return 1

@@ -25,6 +25,7 @@ from twistrate.service.config import RT_PRIORITY_MAX, ServiceConfig, load_config
 from twistrate.service.control import ControlServer
 from twistrate.service.recorder import Recorder
 from twistrate.service.runtime import Service
+from twistrate.service.wire.discovery import write_endpoints
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import TwistrateError
 
@@ -51,7 +52,7 @@ def make_recorder(config: ServiceConfig, arm: Arm, path: str | None) -> Recorder
     return Recorder(path, arm, config.tick.rate_hz) if path else None
 
 
-async def run_control(service: Service) -> None:
+async def run_control(service: Service, endpoints_file: str | None = None) -> None:
     """Serve control requests until the tick thread has stopped; signals ask it to stop."""
     loop = asyncio.get_running_loop()
     stop = asyncio.Event()
@@ -61,7 +62,10 @@ async def run_control(service: Service) -> None:
     server = ControlServer(service)
     ctx = zmq.asyncio.Context.shadow(service.context)
     server.open(ctx)
-    log.info("control on %s", service.config.endpoints.control)
+    log.info("control on %s", service.endpoints["control"])
+    if endpoints_file:
+        write_endpoints(endpoints_file, service.endpoints)
+        log.info("endpoints written to %s", endpoints_file)
     try:
         await server.serve(stop)
     finally:
@@ -72,6 +76,9 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate serve", description=__doc__.splitlines()[0])
     parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
     parser.add_argument("--record", metavar="PATH", help="record every tick to PATH (overrides [recorder])")
+    parser.add_argument("--endpoints-file", metavar="FILE",
+                        help="once bound, write the endpoints (JSON) to FILE for drivers and clients; with a "
+                             "configured port * it names the port the operating system picked")
     parser.add_argument("--rt-priority", type=int, default=None, metavar="N",
                         help="SCHED_FIFO priority 1-99 of the tick thread, used when the operating system "
                              "permits it; 0: normal scheduling (default: [tick] realtime_priority, 10)")
@@ -102,7 +109,7 @@ def _serve(config: ServiceConfig, args: argparse.Namespace) -> int:
         log.error("cannot start: %s", exc)
         return 1
     try:
-        uvloop.run(run_control(service))
+        uvloop.run(run_control(service, args.endpoints_file))
     except (zmq.ZMQError, OSError) as exc:
         log.error("control plane failed: %s", exc)
         service.shutdown("control plane failed")

@@ -9,7 +9,11 @@ import sys
 
 from twistrate.service.config import load_config
 from twistrate.service.sim_driver import SimDriver
+from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import TwistrateError
+
+#: How long `--endpoints-file` waits for the service to write the file, s.
+ENDPOINTS_WAIT_S = 20.0
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -17,17 +21,22 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--config", help="the service's TOML file (endpoints, arm, simulation settings)")
     parser.add_argument("--rate", type=float, help="joint-state publish rate, Hz (default: the tick rate)")
     parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")
+    parser.add_argument("--endpoints-file", metavar="FILE",
+                        help="connect to the endpoints `twistrate serve --endpoints-file FILE` wrote (waits "
+                             f"up to {ENDPOINTS_WAIT_S:g} s for it) instead of the configured ones")
     args = parser.parse_args(argv)
     try:
         config = load_config(args.config)
-        driver = SimDriver(config, rate_hz=args.rate)
+        endpoints = read_endpoints(args.endpoints_file, ENDPOINTS_WAIT_S) if args.endpoints_file else None
+        driver = SimDriver(config, rate_hz=args.rate, endpoints=endpoints)
     except TwistrateError as exc:
         print(f"twistrate sim: {exc}", file=sys.stderr)
         return 2
     signal.signal(signal.SIGINT, driver.stop)
     signal.signal(signal.SIGTERM, driver.stop)
     print(f"twistrate sim: {driver.arm.name} ({driver.arm.n} joints) at {driver.rate_hz:g} Hz; commands from "
-          f"{config.endpoints.output}, joint state to {config.endpoints.intake}", file=sys.stderr, flush=True)
+          f"{driver.endpoints['output']}, joint state to {driver.endpoints['intake']}", file=sys.stderr,
+          flush=True)
     try:
         driver.run(args.seconds)
     finally:

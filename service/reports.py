@@ -1,0 +1,93 @@
+"""The pipeline's reports: the health message at its rate (measures of twistrate.solver.health) and the
+events of the tick, encoded and handed to the pipeline's publish function."""
+
+from __future__ import annotations
+
+import logging
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from twistrate.service import wire
+from twistrate.solver.errors import InputError
+from twistrate.solver.health import STATES, assess, next_state
+
+if TYPE_CHECKING:
+    from twistrate.service.pipeline import Pipeline
+
+log = logging.getLogger("twistrate.service")
+
+
+class HealthReporter:
+    """Health and events of one pipeline (tick thread only)."""
+
+    #: the health state a service starts in
+    initial_state = STATES[0]
+
+    def __init__(self, pipeline: Pipeline) -> None:
+        self.p = pipeline
+        #: the last health measures published (encode_health's keyword arguments)
+        self.last: dict[str, Any] = {}
+        self._q: np.ndarray | None = None
+
+    def measure(self, q: np.ndarray) -> dict[str, Any]:
+        """Health measures at q as encode_health's keyword arguments: from this tick's resolution when
+        running, else from the Jacobian at q (which then also drives the health state)."""
+        p = self.p
+        res = p.last_resolution
+        if res is None:
+            if self._q is not None and np.array_equal(q, self._q) and self.last:
+                # at rest: the measures are unchanged (the thresholds may not be)
+                p.set_health(next_state(p.health_state, p.sigma_min, p.thresholds))
+                return self.last
+            _, J = p.kinematics(q)
+            h = assess(p.arm, q, J, p.options)
+            p.sigma_min = h.sigma_min
+            p.manipulability = h.manipulability
+            p.set_health(next_state(p.health_state, h.sigma_min, p.thresholds))
+        else:
+            h = assess(p.arm, q, res, p.options)
+        self._q = q
+        return {
+            "manipulability": h.manipulability,
+            "manipulability_linear": h.manipulability_translational,
+            "manipulability_angular": h.manipulability_rotational,
+            "singular_values": h.singular_values,
+            "inverse_condition": h.inverse_condition,
+            # exactly as twistrate.solver.health gives them (docs/protocol.md 7.4)
+            "weakest_linear": h.weakest_linear,
+            "weakest_angular": h.weakest_angular,
+            "limit_margin": h.limit_margin,
+        }
+
+    def publish_health(self, wall: int, q: np.ndarray) -> None:
+        p = self.p
+        tel = p.telemetry
+        try:
+            h = self.measure(q)
+            self.last = h
+            data = wire.encode_health(seq=tel.out_seq["health"], stamp_ns=wall, tick=p.tick,
+                                      damping=p.damping, scale=min(1.0, max(0.0, p.scale)),
+                                      state=p.health_state, mode=p.mode, rejected=tel.rejected,
+                                      overruns=tel.ticker.overruns, **h)
+        except (InputError, np.linalg.LinAlgError, ValueError) as exc:
+            tel.counts["publish_failed"] += 1
+            p.rlog.warning("health", p.clock(), f"health not published: {exc}")
+            return
+        p.publish(wire.TOPIC_HEALTH, data)
+        tel.out_seq["health"] += 1
+        tel.counts["health_messages"] += 1
+
+    def publish_events(self, wall: int) -> None:
+        p = self.p
+        tel = p.telemetry
+        events = p.state.events
+        for name, detail in events:
+            seq = tel.out_seq["event"]
+            data = wire.encode_event(seq=seq, tick=p.tick, event=name, detail=detail, mode=p.mode,
+                                     stamp_ns=wall)
+            p.publish(wire.TOPIC_EVENT, data)
+            tel.out_seq["event"] = seq + 1
+            tel.counts["events"] += 1
+            log.info("event %s: %s (mode %s)", name, detail, p.mode)
+        events.clear()

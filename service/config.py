@@ -101,7 +101,7 @@ class ServiceConfig(_Section):
 
     def health_thresholds(self) -> HealthThresholds:
         h = self.health
-        return HealthThresholds(h.approaching_below, h.holding_below, h.hysteresis)
+        return HealthThresholds(h.narrow_below_m, h.pinched_below_m, h.release_margin)
 
     def load_arm(self) -> Arm:
         """Load the configured arm (path already resolved against the config file). Raises ConfigError."""

@@ -60,7 +60,7 @@ DampingMax = Annotated[float, Field(ge=0.0, le=1.0)]
 Threshold = Annotated[float, Field(gt=0.0, le=1.0)]
 StepMax = Annotated[float, Field(gt=0.0, le=10.0)]
 Gain = Annotated[float, Field(ge=0.0, le=100.0)]
-Hysteresis = Annotated[float, Field(ge=0.0, le=1.0)]
+Margin = Annotated[float, Field(ge=0.0, le=1.0)]
 LinearMax = Annotated[float, Field(gt=0.0, le=10.0)]
 AngularMax = Annotated[float, Field(gt=0.0, le=20.0)]
 ReducedMax = Annotated[float, Field(gt=0.0, le=REDUCED_SPEED_MAX)]
@@ -159,17 +159,17 @@ class SolverSection(_Section):
 
 def check_thresholds_ordered(values: Any) -> None:
     """The inner health threshold lies below the outer one (a config section or the tunables)."""
-    if values.holding_below >= values.approaching_below:
-        raise ValueError(f"holding_below ({values.holding_below}) must be below approaching_below "
-                         f"({values.approaching_below})")
+    if values.pinched_below_m >= values.narrow_below_m:
+        raise ValueError(f"pinched_below_m ({values.pinched_below_m}) must be below narrow_below_m "
+                         f"({values.narrow_below_m})")
 
 
 class HealthSection(_Section):
     """Health state thresholds on the smallest task-weighted singular value, m (HealthThresholds)."""
 
-    approaching_below: Annotated[Threshold, TUNABLE] = 0.06
-    holding_below: Annotated[Threshold, TUNABLE] = 0.015
-    hysteresis: Annotated[Hysteresis, TUNABLE] = 0.2
+    narrow_below_m: Annotated[Threshold, TUNABLE] = 0.06
+    pinched_below_m: Annotated[Threshold, TUNABLE] = 0.015
+    release_margin: Annotated[Margin, TUNABLE] = 0.2
 
     @model_validator(mode="after")
     def _ordered(self) -> HealthSection:

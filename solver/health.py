@@ -19,10 +19,11 @@ Measures (Yoshikawa 1985, IJRR 4(2), "Manipulability of robotic mechanisms"; Sal
   unlimited joints report +inf.
 
 State machine (driven per tick by the smallest task-weighted singular value s_min, thresholds in
-`twistrate.solver.options.HealthThresholds`): NORMAL -> APPROACHING below `approaching_below`,
--> HOLDING below `holding_below`; escalation is immediate (to whatever level the entry thresholds
-give). De-escalation goes one level per update, and only once s_min exceeds that level's entry
-threshold times (1 + hysteresis), so a value hovering at a threshold does not chatter.
+`twistrate.solver.options.HealthThresholds`): CLEAR -> NARROW below `narrow_below` (the weakest
+direction of motion narrowing), -> PINCHED below `pinched_below` (nearly shut); escalation is
+immediate (to whatever level the entry thresholds give). The states only report: the arm keeps
+moving, damped. De-escalation goes one level per update, and only once s_min exceeds that level's entry
+threshold times (1 + release_margin), so a value hovering at a threshold does not chatter.
 """
 
 from __future__ import annotations
@@ -36,12 +37,12 @@ from twistrate.solver.options import HealthThresholds, SolverOptions
 from twistrate.solver.resolve import Resolution
 from twistrate.solver.svd import svd_full
 
-NORMAL = "normal"
-APPROACHING = "approaching"
-HOLDING = "holding"
+CLEAR = "clear"
+NARROW = "narrow"
+PINCHED = "pinched"
 #: States in order of severity.
-STATES: tuple[str, ...] = (NORMAL, APPROACHING, HOLDING)
-_LEVEL = {NORMAL: 0, APPROACHING: 1, HOLDING: 2}
+STATES: tuple[str, ...] = (CLEAR, NARROW, PINCHED)
+_LEVEL = {CLEAR: 0, NARROW: 1, PINCHED: 2}
 
 
 @dataclass(frozen=True)
@@ -55,7 +56,7 @@ class Health:
     weakest_linear : (3,) m/s and weakest_angular : (3,) rad/s per unit weighted twist, base frame.
     damping : lambda applied, m, or None. scale : task scale applied, or None.
     limit_margin : (n,) fraction of each joint's range to its nearer limit; +inf when unlimited.
-    state : NORMAL, APPROACHING or HOLDING.
+    state : CLEAR, NARROW or PINCHED.
     """
 
     manipulability: float
@@ -109,18 +110,18 @@ def next_state(previous: str | None, sigma_min: float, thresholds: HealthThresho
 
     previous : the state before (None: no history, the entry thresholds alone decide).
     """
-    if sigma_min < thresholds.holding_below:
-        entry = HOLDING
-    elif sigma_min < thresholds.approaching_below:
-        entry = APPROACHING
+    if sigma_min < thresholds.pinched_below:
+        entry = PINCHED
+    elif sigma_min < thresholds.narrow_below:
+        entry = NARROW
     else:
-        entry = NORMAL
+        entry = CLEAR
     if previous is None or _LEVEL[entry] >= _LEVEL[previous]:
         return entry
-    exit_factor = 1.0 + thresholds.hysteresis
-    if previous == HOLDING:
-        return APPROACHING if sigma_min > thresholds.holding_below * exit_factor else HOLDING
-    return NORMAL if sigma_min > thresholds.approaching_below * exit_factor else APPROACHING
+    exit_factor = 1.0 + thresholds.release_margin
+    if previous == PINCHED:
+        return NARROW if sigma_min > thresholds.pinched_below * exit_factor else PINCHED
+    return CLEAR if sigma_min > thresholds.narrow_below * exit_factor else NARROW
 
 
 def assess(
@@ -138,7 +139,7 @@ def assess(
         base frame, tool point, rows (v, w) (then damping and scale are None).
     options : the solver options (characteristic length and joint weights); defaults when None.
         Pass the same options the Resolution was made with.
-    previous : previous health state for the hysteresis, or None.
+    previous : previous health state (for the release margin), or None.
     """
     options = SolverOptions() if options is None else options
     thresholds = HealthThresholds() if thresholds is None else thresholds

@@ -62,11 +62,11 @@ class SolverOptions:
 class HealthThresholds:
     """Thresholds of the health state machine, on the smallest task-weighted singular value (m).
 
-    The state goes normal -> approaching below `approaching_below`, approaching -> holding below
-    `holding_below`; it returns one level only once the value exceeds the entry threshold times
-    (1 + hysteresis).
+    The state goes clear -> narrow below `narrow_below`, narrow -> pinched below `pinched_below`
+    (m: the weakest direction of motion narrowing, then pinched nearly shut); it returns one level
+    only once the value exceeds that level's entry threshold times (1 + release_margin).
     """
 
-    approaching_below: float = 0.06
-    holding_below: float = 0.015
-    hysteresis: float = 0.2
+    narrow_below: float = 0.06
+    pinched_below: float = 0.015
+    release_margin: float = 0.2

@@ -183,7 +183,7 @@ def test_health_measures_follow_yoshikawa(capsys, argv):
     u = np.concatenate([weakest["linear"], L * np.array(weakest["angular"])])
     assert np.linalg.norm(u) == pytest.approx(1.0, rel=1e-12)
     assert np.linalg.norm(A.T @ u) == pytest.approx(s[-1], rel=1e-8, abs=1e-12)
-    assert rep["state"] == "normal"
+    assert rep["state"] == "clear"
 
 
 def test_planar3_manipulability_matches_closed_form(capsys):
@@ -198,23 +198,23 @@ def test_planar3_manipulability_matches_closed_form(capsys):
         assert rep["manipulability"]["linear"] == pytest.approx(0.0, abs=1e-12)
 
 
-def test_singular_configuration_is_holding(capsys):
+def test_singular_configuration_is_pinched(capsys):
     # bench6 with the wrist straight (wrist_bend = 0): joints 4 and 6 are collinear, a wrist
     # singularity (common practice for spherical wrists): the smallest singular value vanishes.
     rep = report(capsys, "bench6", "--at", "0,-10,-20,0,0,0", "--deg")
     assert rep["singular_values"][-1] < 1e-12
-    assert rep["state"] == "holding"
+    assert rep["state"] == "pinched"
     assert rep["manipulability"]["whole"] < 1e-12
     # Bending the wrist away from it: the state follows the documented entry thresholds on s_min.
     seen = set()
     for bend in (0.5, 1, 2, 4, 8, 16, 32):
         rep = report(capsys, "bench6", "--at", f"0,-10,-20,0,{bend},0", "--deg")
         s_min, th = rep["singular_values"][-1], rep["state_thresholds"]
-        expected = ("holding" if s_min < th["holding_below"] else
-                    "approaching" if s_min < th["approaching_below"] else "normal")
+        expected = ("pinched" if s_min < th["pinched_below_m"] else
+                    "narrow" if s_min < th["narrow_below_m"] else "clear")
         assert rep["state"] == expected
         seen.add(expected)
-    assert seen == {"holding", "approaching", "normal"}
+    assert seen == {"pinched", "narrow", "clear"}
 
 
 def test_limit_margins(capsys):

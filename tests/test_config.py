@@ -151,7 +151,7 @@ def test_bad_value_names_key_value_and_accepted(tmp_path, text, key, value, acce
 
 @pytest.mark.parametrize("text,words", [
     ("[tick]\nrate_hz = 100\nhealth_hz = 200\n", ["tick.health_hz", "tick.rate_hz"]),
-    ("[health]\napproaching_below = 0.01\nholding_below = 0.02\n", ["holding_below", "approaching_below"]),
+    ("[health]\nnarrow_below_m = 0.01\npinched_below_m = 0.02\n", ["pinched_below_m", "narrow_below_m"]),
     ("[lease]\ndefault_ms = 10\nmin_ms = 50\n", ["min_ms", "default_ms"]),
     ("[watchdog]\ntwist_timeout_ms = 1\n", ["watchdog.twist_timeout_ms", "two tick periods"]),
     ("[speed]\nangular_max = 1\nangular_max_deg_s = 60\n", ["angular_max", "not both"]),
@@ -255,8 +255,8 @@ def test_set_refusals_name_parameter_value_and_range(params, name, accepted):
 
 def test_set_is_all_or_nothing_and_checks_cross_constraints():
     before = cfg.load_config().tunables()
-    with pytest.raises(ControlError, match="holding_below"):
-        tun.apply_set(before, {"holding_below": 0.1})
+    with pytest.raises(ControlError, match="pinched_below_m"):
+        tun.apply_set(before, {"pinched_below_m": 0.1})
     with pytest.raises(ControlError, match="linear_max"):
         tun.apply_set(before, {"damping_max": 0.02, "linear_max": 100.0})
     assert before.damping_max == 0.04  # unchanged (immutable; nothing applied)

@@ -90,14 +90,14 @@ def test_run_time_parameters_apply_and_are_all_or_nothing():
         assert run.service.snapshot.cap == pytest.approx(0.25 / 0.4)
         assert link.status()["reduced_speed"] is True
         # a refused parameter changes nothing
-        before = link.set(hysteresis=0.2)
+        before = link.set(release_margin=0.2)
         with pytest.raises(ControlError) as err:
             link.set(damping_max=0.01, linear_max=99.0)
         assert err.value.code == "bad_argument" and "linear_max" in str(err.value)
         with pytest.raises(ControlError) as err:
             link.set(no_such_parameter=1.0)
         assert err.value.code == "bad_argument"
-        assert link.set(hysteresis=0.2) == before
+        assert link.set(release_margin=0.2) == before
         counters = link.counters()
         assert counters["control_refused_bad_argument"] == 2
         del cs
@@ -175,7 +175,7 @@ def test_health_margins_and_weakest_direction_are_what_solver_health_gives():
             assert np.all(h.limit_margin <= 0.5)
 
 
-def test_health_state_follows_its_thresholds_with_hysteresis_and_reports_changes():
+def test_health_state_follows_its_thresholds_with_its_release_margin_and_reports_changes():
     # Thresholds moved above the arm's smallest singular value at rest: the state escalates at once and
     # comes back one level at a time, each change an event (docs/protocol.md section 10).
     cfg = make_config()
@@ -183,19 +183,19 @@ def test_health_state_follows_its_thresholds_with_hysteresis_and_reports_changes
         link = run.link(topics=(wire.TOPIC_EVENT, wire.TOPIC_HEALTH))
         link.claim("test")
         sigma = float(link.receive_health().singular_values[-1])
-        link.set(approaching_below=min(1.0, 4 * sigma), holding_below=2 * sigma)
+        link.set(narrow_below_m=min(1.0, 4 * sigma), pinched_below_m=2 * sigma)
         event = link.receive_event()
         while event.event != "health":
             event = link.receive_event()
-        assert event.detail.startswith("normal -> holding")
-        assert link.receive_health().state == "holding"
-        link.set(approaching_below=min(1.0, 4 * sigma), holding_below=0.5 * sigma)
+        assert event.detail.startswith("clear -> pinched")
+        assert link.receive_health().state == "pinched"
+        link.set(narrow_below_m=min(1.0, 4 * sigma), pinched_below_m=0.5 * sigma)
         event = link.receive_event()
         while event.event != "health":
             event = link.receive_event()
-        assert event.detail.startswith("holding -> approaching")
-        link.set(approaching_below=0.5 * sigma, holding_below=0.25 * sigma)
+        assert event.detail.startswith("pinched -> narrow")
+        link.set(narrow_below_m=0.5 * sigma, pinched_below_m=0.25 * sigma)
         event = link.receive_event()
         while event.event != "health":
             event = link.receive_event()
-        assert event.detail.startswith("approaching -> normal")
+        assert event.detail.startswith("narrow -> clear")

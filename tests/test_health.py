@@ -8,9 +8,9 @@ from arm_factory import dh_arm, random_arm, random_q
 
 from twistrate.solver.dh import DHRow
 from twistrate.solver.health import (
-    APPROACHING,
-    HOLDING,
-    NORMAL,
+    CLEAR,
+    NARROW,
+    PINCHED,
     assess,
     limit_margins,
     manipulability,
@@ -22,7 +22,7 @@ from twistrate.solver.load import load_arm
 from twistrate.solver.options import HealthThresholds, SolverOptions
 from twistrate.solver.resolve import DesiredTwist, resolve
 
-TH = HealthThresholds(approaching_below=0.06, holding_below=0.015, hysteresis=0.2)
+TH = HealthThresholds(narrow_below=0.06, pinched_below=0.015, release_margin=0.2)
 
 
 def test_manipulability_of_known_matrices(rng: np.random.Generator) -> None:
@@ -95,11 +95,11 @@ def test_margins_as_fraction_of_the_range() -> None:
     [
         # straight down and back up, one level per update, with hysteresis on the way back
         ([0.1, 0.05, 0.01, 0.016, 0.0181, 0.05, 0.0719, 0.0721],
-         [NORMAL, APPROACHING, HOLDING, HOLDING, APPROACHING, APPROACHING, APPROACHING, NORMAL]),
+         [CLEAR, NARROW, PINCHED, PINCHED, NARROW, NARROW, NARROW, CLEAR]),
         # a sudden drop escalates immediately; a sudden rise recovers one level at a time
-        ([0.2, 0.005, 0.5, 0.5, 0.5], [NORMAL, HOLDING, APPROACHING, NORMAL, NORMAL]),
+        ([0.2, 0.005, 0.5, 0.5, 0.5], [CLEAR, PINCHED, NARROW, CLEAR, CLEAR]),
         # hovering at a threshold does not chatter
-        ([0.061, 0.059, 0.061, 0.059, 0.061], [NORMAL, APPROACHING, APPROACHING, APPROACHING, APPROACHING]),
+        ([0.061, 0.059, 0.061, 0.059, 0.061], [CLEAR, NARROW, NARROW, NARROW, NARROW]),
     ],
 )
 def test_state_machine_hysteresis(sequence: list[float], expected: list[str]) -> None:
@@ -136,7 +136,7 @@ def test_health_at_an_exact_singularity_holds() -> None:
     q = np.array(arm.q_home, dtype=float)
     q[4] = 0.0  # spherical wrist singularity (common practice)
     J = geometric_jacobian(arm, forward(arm, q))
-    h = assess(arm, q, J, previous=NORMAL, thresholds=TH)
-    assert h.sigma_min < 1e-12 and h.inverse_condition < 1e-10 and h.state == HOLDING
+    h = assess(arm, q, J, previous=CLEAR, thresholds=TH)
+    assert h.sigma_min < 1e-12 and h.inverse_condition < 1e-10 and h.state == PINCHED
     assert h.manipulability < 1e-12
     assert np.all(np.isfinite(h.weakest_linear)) and np.all(np.isfinite(h.weakest_angular))

@@ -69,7 +69,7 @@ class Peer:
         if op == "set":
             return {"params": dict(req.args["params"])}
         if op == "status":
-            return {"mode": "disabled", "health": "normal", "tick": 1, "tick_hz": 500.0, "arm": "reach7",
+            return {"mode": "disabled", "health": "clear", "tick": 1, "tick_hz": 500.0, "arm": "reach7",
                     "n": N, "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                     "reduced_speed": False, "position": [0.0] * N, "twist_age_ms": None,
                     "joints_age_ms": None, "realtime": False}
@@ -254,7 +254,7 @@ def test_send_twist_without_lease_is_refused_locally(link, peer):
 def test_receive_decodes_and_filters_by_kind(peer):
     with Link(peer.endpoints, timeout_s=0.5, n=N) as lk:
         cmd = wire.encode_command(seq=1, stamp_ns=1, tick=1, rate=np.full(N, 0.1), target=np.zeros(N),
-                                   answers=4, scale=1.0, mode="running", health="normal")
+                                   answers=4, scale=1.0, mode="running", health="clear")
         ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
 
         def publish_until_received():

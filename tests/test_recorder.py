@@ -22,7 +22,7 @@ def arm():
     return load_arm("reach7")
 
 
-def _push(rec, k, arm, mode="running", health="normal", t_ns=None):
+def _push(rec, k, arm, mode="running", health="clear", t_ns=None):
     q = arm.q_home + 0.001 * k
     qd = np.full(arm.n, 0.01 * k)
     tw = np.arange(6, dtype=float) * k
@@ -90,13 +90,13 @@ def test_summary_figures(tmp_path, arm):
     rec = R.Recorder(path, arm, 500.0)
     for k in range(100):
         mode = "running" if k < 60 else "holding"
-        _push(rec, k, arm, mode=mode, health="normal" if k < 90 else "approaching")
+        _push(rec, k, arm, mode=mode, health="clear" if k < 90 else "narrow")
     rec.close()
     s = R.summarize(*R.read_recording(path))
     assert s["records"] == 100 and s["ticks"] == 100 and s["missing_ticks"] == 0
     assert s["duration_s"] == pytest.approx(0.2)
     assert s["time_in_mode_s"] == pytest.approx({"running": 0.12, "holding": 0.08})
-    assert s["time_in_health_s"] == pytest.approx({"normal": 0.18, "approaching": 0.02})
+    assert s["time_in_health_s"] == pytest.approx({"clear": 0.18, "narrow": 0.02})
     assert s["scale_min"] == pytest.approx(0.5) and s["scale_max"] == pytest.approx(0.599, abs=1e-6)
     assert s["limit_events"] == 10
     np.testing.assert_allclose(s["q_min"], arm.q_home)

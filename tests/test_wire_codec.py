@@ -57,7 +57,7 @@ def _health_kwargs(n=N, **over):
               inverse_condition=0.05 / 0.9, weakest_linear=np.array([0.6, 0.0, 0.0]),
               # a unit weighted twist with L = 0.3 m: 0.6^2 + (0.3 * 0.8 / 0.3)^2 = 1 (section 7.4)
               weakest_angular=np.array([0.0, 0.0, 0.8 / 0.3]), damping=0.01, scale=0.75,
-              limit_margin=np.array([0.5, np.inf, -0.01] + [0.25] * (n - 3)), state="approaching",
+              limit_margin=np.array([0.5, np.inf, -0.01] + [0.25] * (n - 3)), state="narrow",
               mode="running", rejected={"bad_type": 3, "not_leased": 1}, overruns=2)
     kw.update(over)
     return kw
@@ -152,7 +152,7 @@ RESULT_EXAMPLES = {
     "release": {},
     "enable": {"mode": "holding"},
     "disable": {"mode": "disabled"},
-    "status": {"mode": "running", "health": "normal", "tick": 10, "tick_hz": 500.0, "arm": "reach7", "n": 2,
+    "status": {"mode": "running", "health": "clear", "tick": 10, "tick_hz": 500.0, "arm": "reach7", "n": 2,
                "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                "reduced_speed": False, "position": [0.0, 1.0], "twist_age_ms": 1.5, "joints_age_ms": None,
                "realtime": True},
@@ -211,7 +211,7 @@ def test_decode_intake_dispatches_by_topic(frames, n, cls):
 
 def test_decode_output_dispatches_by_topic():
     cmd = wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=np.zeros(N), target=np.zeros(N), answers=-1,
-                               scale=1.0, mode="disabled", health="normal")
+                               scale=1.0, mode="disabled", health="clear")
     assert isinstance(wire.decode_output([b"command", cmd]), wire.CommandMessage)
     assert isinstance(wire.decode_output([b"health", wire.encode_health(**_health_kwargs())], N),
                       wire.HealthMessage)
@@ -348,29 +348,29 @@ def test_encode_command_never_emits_a_non_finite_number(bad):
     rate[3] = bad
     with pytest.raises(InputError, match=r"command\.rate"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=rate, target=target, answers=-1, scale=1.0,
-                             mode="running", health="normal")
+                             mode="running", health="clear")
     with pytest.raises(InputError, match=r"command\.target"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=rate, answers=-1, scale=1.0,
-                             mode="running", health="normal")
+                             mode="running", health="clear")
     with pytest.raises(InputError, match=r"command\.scale"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=target, target=target, answers=-1, scale=bad,
-                             mode="running", health="normal")
+                             mode="running", health="clear")
 
 
 def test_encode_command_refuses_unknown_mode_and_wrong_lengths():
     z = np.zeros(N)
     with pytest.raises(InputError, match=r"command\.mode"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0, mode="idle",
-                             health="normal")
+                             health="clear")
     with pytest.raises(InputError, match=r"command\.health"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=z, answers=-1, scale=1.0,
                              mode="running", health="fine")
     with pytest.raises(InputError, match=r"command\.target"):
         wire.encode_command(seq=0, stamp_ns=0, tick=0, rate=z, target=np.zeros(N + 1), answers=-1,
-                             scale=1.0, mode="running", health="normal")
+                             scale=1.0, mode="running", health="clear")
     with pytest.raises(InputError, match="command"):
         wire.encode_command(seq=0, stamp_ns=0, tick=np.float64(1.5), rate=z, target=z, answers=-1, scale=1.0,
-                             mode="running", health="normal")
+                             mode="running", health="clear")
 
 
 @pytest.mark.parametrize("kwargs,field", [

@@ -169,8 +169,8 @@ def _health_fields(arm: Arm, q: np.ndarray, J: np.ndarray, options: SolverOption
         "weakest_direction": {"linear": h.weakest_linear.tolist(), "angular": h.weakest_angular.tolist()},
         "limit_margins": [_finite_or_none(m) for m in h.limit_margin],
         "state": h.state,
-        "state_thresholds": {"approaching_below": thresholds.approaching_below,
-                             "holding_below": thresholds.holding_below},
+        "state_thresholds": {"narrow_below_m": thresholds.narrow_below,
+                             "pinched_below_m": thresholds.pinched_below},
     }
 
 
@@ -235,8 +235,8 @@ def _format_health(report: dict[str, Any]) -> list[str]:
         + "] m/s, angular [" + ", ".join(f"{round(v, 3) + 0.0:.3f}" for v in w["angular"]) + "] rad/s",
         "  limit margins         (share of the range to the nearer limit)",
         f"                        {margins}",
-        f"  state                 {report['state']}   (approaching below {th['approaching_below']:g} m, "
-        f"holding below {th['holding_below']:g} m of the smallest singular value)",
+        f"  state                 {report['state']}   (narrow below {th['narrow_below_m']:g} m, "
+        f"pinched below {th['pinched_below_m']:g} m of the smallest singular value)",
     ]
 
 

@@ -31,8 +31,9 @@ DEFAULT_CONTROL = "tcp://127.0.0.1:47312"
 
 # --- enumerations --------------------------------------------------------------------------------
 TWIST_FRAMES: tuple[str, ...] = ("base", "tool")
-#: health states (singularity classifier with hysteresis)
-HEALTH_STATES: tuple[str, ...] = ("normal", "approaching", "holding")
+#: health states, from the smallest task-weighted singular value: clear; narrow (the weakest direction of
+#: motion narrowing); pinched (nearly shut). They only report: the arm keeps moving, damped.
+HEALTH_STATES: tuple[str, ...] = ("clear", "narrow", "pinched")
 OPS: tuple[str, ...] = ("claim", "renew", "release", "enable", "disable", "status", "arm", "counters",
                         "set", "clear_fault")
 #: modes of the service (the `mode` field of command, health and event; service/state.py drives them)

@@ -1,0 +1,258 @@
+"""Exact distances, closest points and normals between capsules and keep-out shapes, vectorised over
+pairs (k pairs at once, k >= 0).
+
+Every function takes base-frame arrays (metres) of k pairs, shape (k, 3) per point, (k,) per
+radius, and returns a `Contact`: the signed distance d (k,) (negative: penetration depth), the
+closest point on shape a (k, 3), the closest point on shape b (k, 3), and the unit normal from b to
+a (k, 3), all base frame, so that point_a ~= point_b + d * normal. Shape a is always the capsule.
+Kernels trust their input (finite arrays of matching shapes; radii >= 0); validation happens where
+shapes are loaded (`twistrate.solver.geometry`, `twistrate.solver.zones`).
+
+Methods (each with its own test against the collision library coal in tests/test_distance.py):
+* segment-segment closest points: Ericson 2004, Real-Time Collision Detection, section 5.1.9
+  (ClosestPtSegmentSegment), with its degenerate branches (either segment a point) and its
+  parallel branch (s = 0, then t and s re-clamped in turn); capsule-capsule distance is the segment
+  distance minus both radii (METHODS.md), capsule-sphere the same with a zero-length segment.
+* capsule-half-space: the signed distance n^T p - c of the two end points, the smaller one minus
+  the radius (exact: the distance of a point to a plane is affine along the segment).
+* capsule-box: the exact minimum over the segment of the box's signed distance function (convex
+  along the segment because the box is convex), found among a finite candidate set: outside the
+  box the squared distance is a piecewise quadratic in the segment parameter t whose pieces end
+  where the segment crosses a face plane, so the minimum is a clamped per-piece vertex; inside,
+  the signed distance max_i(|x_i| - h_i) is piecewise linear with kinks where two faces tie or a
+  coordinate changes sign, so the minimum is at a kink or an end point.
+Degenerate normals (touching or crossing shapes, where b - a vanishes) get their own branch: the
+direction perpendicular to both segments, else any perpendicular of the capsule's segment, else +z
+(capsule-capsule); the deepest face's outward normal (capsule-box).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+#: Squared length (m^2) below which a segment is treated as a point (Ericson's EPSILON branch).
+DEGENERATE_SQ_M2 = 1e-24
+#: Relative size of a e - b^2 against a e below which two segments are treated as parallel.
+PARALLEL_RTOL = 1e-12
+#: Distance (m) between closest points below which their difference gives no usable normal.
+TOUCH_M = 1e-12
+
+
+@dataclass(frozen=True, eq=False)
+class Contact:
+    """Distances and closest points of k pairs (see the module docstring).
+
+    distance : (k,) signed distance between the surfaces, m (negative: penetration depth).
+    point_a, point_b : (k, 3) closest points on shape a (the capsule) and shape b, base frame, m.
+    normal : (k, 3) unit normal from b to a, base frame.
+    """
+
+    distance: np.ndarray
+    point_a: np.ndarray
+    point_b: np.ndarray
+    normal: np.ndarray
+
+
+def _dot(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Row-wise dot products of (..., 3) arrays."""
+    return np.einsum("...i,...i->...", x, y)
+
+
+def _unit(v: np.ndarray) -> np.ndarray:
+    """(..., 3) rows divided by their length (rows must be non-zero)."""
+    return v / np.sqrt(_dot(v, v))[..., None]
+
+
+def segment_segment(p1: np.ndarray, q1: np.ndarray, p2: np.ndarray, q2: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Closest points of segments p1-q1 and p2-q2 (Ericson 2004, section 5.1.9), k pairs at once.
+
+    p1, q1, p2, q2 : (k, 3) end points, any common frame, m.
+    Returns (s, t, c1, c2): s, t (k,) in [0, 1] the parameters of the closest points
+    c1 = p1 + s (q1 - p1) and c2 = p2 + t (q2 - p2), each (k, 3) in the input frame.
+    Branches: both segments points (s = t = 0); the first a point (s = 0, t the projection); the
+    second a point (t = 0, s the projection); parallel (a e - b^2 <= PARALLEL_RTOL a e: s = 0, then
+    t and s re-clamped, which gives a closest pair because every s on the overlap is one);
+    otherwise the unconstrained minimiser clamped to the square, in Ericson's order.
+    """
+    d1 = q1 - p1
+    d2 = q2 - p2
+    r = p1 - p2
+    a = _dot(d1, d1)
+    e = _dot(d2, d2)
+    f = _dot(d2, r)
+    c = _dot(d1, r)
+    b = _dot(d1, d2)
+    point1 = a <= DEGENERATE_SQ_M2
+    point2 = e <= DEGENERATE_SQ_M2
+    a_safe = np.where(point1, 1.0, a)
+    e_safe = np.where(point2, 1.0, e)
+    denom = a * e - b * b
+    parallel = denom <= PARALLEL_RTOL * a * e
+    s = np.where(parallel, 0.0, np.clip((b * f - c * e) / np.where(parallel, 1.0, denom), 0.0, 1.0))
+    # General and parallel branches: t from s, clamped; where clamped, s recomputed from t.
+    t = (b * s + f) / e_safe
+    t_clamped = np.clip(t, 0.0, 1.0)
+    s = np.where(t == t_clamped, s, np.clip((b * t_clamped - c) / a_safe, 0.0, 1.0))
+    t = t_clamped
+    # Degenerate branches (Ericson's first three cases).
+    s = np.where(point1, 0.0, np.where(point2, np.clip(-c / a_safe, 0.0, 1.0), s))
+    t = np.where(point2, 0.0, np.where(point1, np.clip(f / e_safe, 0.0, 1.0), t))
+    return s, t, p1 + d1 * s[:, None], p2 + d2 * t[:, None]
+
+
+def _perpendicular(u: np.ndarray) -> np.ndarray:
+    """(k, 3) a unit vector perpendicular to each row of u (k, 3); +z where u is zero."""
+    pick_y = np.abs(u[:, 0]) >= np.abs(u[:, 1])
+    seed = np.zeros_like(u)
+    seed[pick_y, 1] = 1.0
+    seed[~pick_y, 0] = 1.0
+    w = np.cross(u, seed)
+    n2 = _dot(w, w)
+    out = np.zeros_like(u)
+    out[:, 2] = 1.0
+    ok = n2 > DEGENERATE_SQ_M2
+    out[ok] = w[ok] / np.sqrt(n2[ok])[:, None]
+    return out
+
+
+def capsule_capsule(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray,
+                    b0: np.ndarray, b1: np.ndarray, rb: np.ndarray) -> Contact:
+    """Capsule a (segment a0-a1, radius ra) against capsule b (b0-b1, rb), k pairs.
+
+    a0, a1, b0, b1 : (k, 3) segment end points, base frame, m; ra, rb : (k,) radii, m.
+    Returns a Contact; distance = |c_a - c_b| - ra - rb with c_a, c_b the segments' closest points
+    (Ericson 2004, 5.1.9). Where the segments touch or cross (|c_a - c_b| < TOUCH_M) the normal is
+    the unit cross product of the two directions, else a perpendicular of segment a (or of b when a
+    is a point), else +z.
+    """
+    _, _, ca, cb = segment_segment(a0, a1, b0, b1)
+    gap = ca - cb
+    length = np.sqrt(_dot(gap, gap))
+    touching = length < TOUCH_M
+    normal = gap / np.where(touching, 1.0, length)[:, None]
+    if np.any(touching):
+        da, db = (a1 - a0)[touching], (b1 - b0)[touching]
+        cross = np.cross(da, db)
+        fallback = _perpendicular(np.where((_dot(da, da) > DEGENERATE_SQ_M2)[:, None], da, db))
+        ok = (_dot(cross, cross) > DEGENERATE_SQ_M2)[:, None]
+        normal[touching] = np.where(ok, cross / np.sqrt(np.maximum(_dot(cross, cross), 1e-300))[:, None],
+                                    fallback)
+    return Contact(length - ra - rb, ca - normal * ra[:, None], cb + normal * rb[:, None], normal)
+
+
+def capsule_sphere(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray, center: np.ndarray,
+                   radius: np.ndarray) -> Contact:
+    """Capsule a (a0-a1, ra) against a sphere b (center (k, 3), radius (k,)), base frame, m.
+
+    A sphere is a capsule of zero length: `capsule_capsule` with b0 = b1 = center (its degenerate
+    branch: t = 0 and s the clamped projection of the centre on segment a).
+    """
+    return capsule_capsule(a0, a1, ra, center, center, radius)
+
+
+def capsule_half_space(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray,
+                       normal: np.ndarray, offset: np.ndarray) -> Contact:
+    """Capsule a (a0-a1, ra) against the half-space b = {x : normal^T x <= offset}, k pairs.
+
+    normal : (k, 3) unit normal of the boundary plane, pointing out of the half-space (into free
+        space), base frame; offset : (k,) plane offset c, m (the plane is normal^T x = c).
+    Returns a Contact: distance = min(n^T a0, n^T a1) - c - ra (METHODS.md; exact, as the plane
+    distance is affine along the segment); point_a the capsule surface point below the nearer end,
+    point_b that end projected on the plane, normal the plane normal. Ties (a segment parallel to
+    the plane) take a0.
+    """
+    s0 = _dot(normal, a0) - offset
+    s1 = _dot(normal, a1) - offset
+    take1 = s1 < s0
+    end = np.where(take1[:, None], a1, a0)
+    s = np.where(take1, s1, s0)
+    return Contact(s - ra, end - normal * ra[:, None], end - normal * s[:, None], normal.copy())
+
+
+def _box_candidates(a: np.ndarray, u: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """(k, m) candidate segment parameters in [0, 1] for `capsule_box` (box frame inputs).
+
+    a : (k, 3) segment start, u : (k, 3) segment direction (end - start), h : (k, 3) half extents.
+    """
+    k = len(a)
+    u_safe = np.where(u == 0.0, 1.0, u)
+    # Face-plane crossings a_i + u_i t = +-h_i: the ends of the outside quadratic pieces.
+    planes = np.concatenate([(h - a) / u_safe, (-h - a) / u_safe], axis=1)
+    planes = np.where(np.concatenate([u, u], axis=1) == 0.0, 0.0, planes)
+    ends = np.sort(np.clip(np.concatenate([np.zeros((k, 1)), np.ones((k, 1)), planes], axis=1), 0.0, 1.0),
+                   axis=1)
+    lo, hi = ends[:, :-1], ends[:, 1:]
+    mid = 0.5 * (lo + hi)
+    x = a[:, None, :] + u[:, None, :] * mid[:, :, None]  # (k, 7, 3) piece mid-points
+    side = np.where(x > h[:, None, :], 1.0, np.where(x < -h[:, None, :], -1.0, 0.0))
+    active = side != 0.0
+    offset = a[:, None, :] - side * h[:, None, :]
+    uu = np.where(active, u[:, None, :] ** 2, 0.0).sum(axis=2)
+    ua = np.where(active, u[:, None, :] * offset, 0.0).sum(axis=2)
+    flat = uu <= DEGENERATE_SQ_M2
+    vertex = np.where(flat, mid, -ua / np.where(flat, 1.0, uu))
+    vertex = np.clip(vertex, lo, hi)
+    # Inside kinks: a coordinate changes sign (t = -a_i / u_i), or two faces tie,
+    # sigma_i x_i - h_i = sigma_j x_j - h_j for axis pairs (i, j) and signs sigma.
+    zero = np.where(u == 0.0, 0.0, -a / u_safe)
+    kinks = [zero]
+    for i, j in ((0, 1), (0, 2), (1, 2)):
+        for si in (1.0, -1.0):
+            for sj in (1.0, -1.0):
+                den = si * u[:, i] - sj * u[:, j]
+                num = h[:, i] - h[:, j] - si * a[:, i] + sj * a[:, j]
+                kinks.append(np.where(den == 0.0, 0.0, num / np.where(den == 0.0, 1.0, den))[:, None])
+    return np.clip(np.concatenate([ends, vertex, *kinks], axis=1), 0.0, 1.0)
+
+
+def box_signed_distance(x: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """Signed distance (...,) of points x (..., 3) to the box |x_i| <= h_i, box frame, m: the outside
+    Euclidean distance, or minus the depth below the nearest face inside (common practice)."""
+    q = np.abs(x) - h
+    outside = np.sqrt((np.maximum(q, 0.0) ** 2).sum(axis=-1))
+    return outside + np.minimum(q.max(axis=-1), 0.0)
+
+
+def capsule_box(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray, center: np.ndarray,
+                R_base_box: np.ndarray, half: np.ndarray) -> Contact:
+    """Capsule a (a0-a1, ra) against a solid box b, k pairs.
+
+    center : (k, 3) box centre, base frame, m; R_base_box : (k, 3, 3) box axes (columns) in the base
+        frame; half : (k, 3) half edge lengths along the box axes, m.
+    Returns a Contact: distance = min over the segment of the box's signed distance, minus ra (exact;
+    see the module docstring); point_b the nearest box surface point, normal outward from it (the
+    deepest face's normal when the segment touches or enters the box).
+    """
+    k = len(a0)
+    a = np.einsum("kji,kj->ki", R_base_box, a0 - center)
+    u = np.einsum("kji,kj->ki", R_base_box, a1 - a0)
+    t = _box_candidates(a, u, half)
+    x = a[:, None, :] + u[:, None, :] * t[:, :, None]
+    sdf = box_signed_distance(x, half[:, None, :])
+    best = np.argmin(sdf, axis=1)
+    rows = np.arange(k)
+    xs = x[rows, best]
+    d = sdf[rows, best]
+    y = np.clip(xs, -half, half)
+    gap = xs - y
+    length = np.sqrt(_dot(gap, gap))
+    outside = length >= TOUCH_M
+    n_box = gap / np.where(outside, length, 1.0)[:, None]
+    if not np.all(outside):
+        inner = ~outside
+        depth = np.abs(xs[inner]) - half[inner]
+        axis = np.argmax(depth, axis=1)
+        sign = np.where(xs[inner, axis] < 0.0, -1.0, 1.0)
+        face = np.zeros((int(inner.sum()), 3))
+        face[np.arange(len(axis)), axis] = sign
+        n_box[inner] = face
+        y_in = xs[inner].copy()
+        y_in[np.arange(len(axis)), axis] = sign * half[inner, axis]
+        y[inner] = y_in
+    normal = np.einsum("kij,kj->ki", R_base_box, n_box)
+    point_b = center + np.einsum("kij,kj->ki", R_base_box, y)
+    point_a = center + np.einsum("kij,kj->ki", R_base_box, xs) - normal * ra[:, None]
+    return Contact(d - ra, point_a, point_b, normal)

@@ -65,6 +65,11 @@ def _unit(v: np.ndarray) -> np.ndarray:
     return v / np.sqrt(_dot(v, v))[..., None]
 
 
+def _clip01(x: np.ndarray) -> np.ndarray:
+    """x clamped to [0, 1] (two ufunc calls: cheaper than np.clip on small arrays)."""
+    return np.minimum(np.maximum(x, 0.0), 1.0)
+
+
 def segment_segment(p1: np.ndarray, q1: np.ndarray, p2: np.ndarray, q2: np.ndarray
                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Closest points of segments p1-q1 and p2-q2 (Ericson 2004, section 5.1.9), k pairs at once.
@@ -77,30 +82,27 @@ def segment_segment(p1: np.ndarray, q1: np.ndarray, p2: np.ndarray, q2: np.ndarr
     t and s re-clamped, which gives a closest pair because every s on the overlap is one);
     otherwise the unconstrained minimiser clamped to the square, in Ericson's order.
     """
-    d1 = q1 - p1
-    d2 = q2 - p2
-    r = p1 - p2
-    a = _dot(d1, d1)
-    e = _dot(d2, d2)
-    f = _dot(d2, r)
-    c = _dot(d1, r)
-    b = _dot(d1, d2)
-    point1 = a <= DEGENERATE_SQ_M2
-    point2 = e <= DEGENERATE_SQ_M2
-    a_safe = np.where(point1, 1.0, a)
-    e_safe = np.where(point2, 1.0, e)
-    denom = a * e - b * b
-    parallel = denom <= PARALLEL_RTOL * a * e
-    s = np.where(parallel, 0.0, np.clip((b * f - c * e) / np.where(parallel, 1.0, denom), 0.0, 1.0))
+    V = np.stack([q1 - p1, q2 - p2, p1 - p2], axis=1)  # rows d1, d2, r: (k, 3, 3)
+    G = V @ V.transpose(0, 2, 1)  # Gram matrix of d1, d2, r
+    a, b, c, e, f = G[:, 0, 0], G[:, 0, 1], G[:, 0, 2], G[:, 1, 1], G[:, 1, 2]
+    a_safe = np.maximum(a, DEGENERATE_SQ_M2)
+    e_safe = np.maximum(e, DEGENERATE_SQ_M2)
+    ae = a * e
+    denom = ae - b * b
+    parallel = denom <= PARALLEL_RTOL * ae
+    s = _clip01((b * f - c * e) / np.where(parallel, 1.0, denom))
+    s[parallel] = 0.0
     # General and parallel branches: t from s, clamped; where clamped, s recomputed from t.
     t = (b * s + f) / e_safe
-    t_clamped = np.clip(t, 0.0, 1.0)
-    s = np.where(t == t_clamped, s, np.clip((b * t_clamped - c) / a_safe, 0.0, 1.0))
+    t_clamped = _clip01(t)
+    s = np.where(t == t_clamped, s, _clip01((b * t_clamped - c) / a_safe))
     t = t_clamped
-    # Degenerate branches (Ericson's first three cases).
-    s = np.where(point1, 0.0, np.where(point2, np.clip(-c / a_safe, 0.0, 1.0), s))
-    t = np.where(point2, 0.0, np.where(point1, np.clip(f / e_safe, 0.0, 1.0), t))
-    return s, t, p1 + d1 * s[:, None], p2 + d2 * t[:, None]
+    point1 = a <= DEGENERATE_SQ_M2
+    point2 = e <= DEGENERATE_SQ_M2
+    if point1.any() or point2.any():  # Ericson's first three cases
+        s = np.where(point1, 0.0, np.where(point2, _clip01(-c / a_safe), s))
+        t = np.where(point2, 0.0, np.where(point1, _clip01(f / e_safe), t))
+    return s, t, p1 + V[:, 0] * s[:, None], p2 + V[:, 1] * t[:, None]
 
 
 def _perpendicular(u: np.ndarray) -> np.ndarray:
@@ -172,40 +174,62 @@ def capsule_half_space(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray,
     return Contact(s - ra, end - normal * ra[:, None], end - normal * s[:, None], normal.copy())
 
 
-def _box_candidates(a: np.ndarray, u: np.ndarray, h: np.ndarray) -> np.ndarray:
-    """(k, m) candidate segment parameters in [0, 1] for `capsule_box` (box frame inputs).
+def _box_tables() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Constant tables of `_box_candidates`.
 
-    a : (k, 3) segment start, u : (k, 3) segment direction (end - start), h : (k, 3) half extents.
+    D, S : (21, 3): the crossings t = (D h - S a) / (S u): face planes a_i + u_i t = +-h_i (6),
+        sign changes a_i + u_i t = 0 (3), and ties of two faces sigma_i x_i - h_i = sigma_j x_j - h_j
+        (3 axis pairs x 4 sign pairs = 12).
+    ACT, SIG : (27, 3): every outside configuration per axis (below: -1, inside: 0, above: +1) as
+        its active mask and signs; the vertex of its quadratic is
+        t = -(ACT (u a) - SIG (u h)) / (ACT u^2).
     """
-    k = len(a)
-    u_safe = np.where(u == 0.0, 1.0, u)
-    # Face-plane crossings a_i + u_i t = +-h_i: the ends of the outside quadratic pieces.
-    planes = np.concatenate([(h - a) / u_safe, (-h - a) / u_safe], axis=1)
-    planes = np.where(np.concatenate([u, u], axis=1) == 0.0, 0.0, planes)
-    ends = np.sort(np.clip(np.concatenate([np.zeros((k, 1)), np.ones((k, 1)), planes], axis=1), 0.0, 1.0),
-                   axis=1)
-    lo, hi = ends[:, :-1], ends[:, 1:]
-    mid = 0.5 * (lo + hi)
-    x = a[:, None, :] + u[:, None, :] * mid[:, :, None]  # (k, 7, 3) piece mid-points
-    side = np.where(x > h[:, None, :], 1.0, np.where(x < -h[:, None, :], -1.0, 0.0))
-    active = side != 0.0
-    offset = a[:, None, :] - side * h[:, None, :]
-    uu = np.where(active, u[:, None, :] ** 2, 0.0).sum(axis=2)
-    ua = np.where(active, u[:, None, :] * offset, 0.0).sum(axis=2)
-    flat = uu <= DEGENERATE_SQ_M2
-    vertex = np.where(flat, mid, -ua / np.where(flat, 1.0, uu))
-    vertex = np.clip(vertex, lo, hi)
-    # Inside kinks: a coordinate changes sign (t = -a_i / u_i), or two faces tie,
-    # sigma_i x_i - h_i = sigma_j x_j - h_j for axis pairs (i, j) and signs sigma.
-    zero = np.where(u == 0.0, 0.0, -a / u_safe)
-    kinks = [zero]
+    D, S = [], []
+    for i in range(3):
+        for sign in (1.0, -1.0):
+            D.append(np.eye(3)[i] * sign)
+            S.append(np.eye(3)[i])
+    for i in range(3):
+        D.append(np.zeros(3))
+        S.append(np.eye(3)[i])
     for i, j in ((0, 1), (0, 2), (1, 2)):
         for si in (1.0, -1.0):
             for sj in (1.0, -1.0):
-                den = si * u[:, i] - sj * u[:, j]
-                num = h[:, i] - h[:, j] - si * a[:, i] + sj * a[:, j]
-                kinks.append(np.where(den == 0.0, 0.0, num / np.where(den == 0.0, 1.0, den))[:, None])
-    return np.clip(np.concatenate([ends, vertex, *kinks], axis=1), 0.0, 1.0)
+                d = np.zeros(3)
+                d[i], d[j] = 1.0, -1.0
+                s = np.zeros(3)
+                s[i], s[j] = si, -sj
+                D.append(d)
+                S.append(s)
+    sig = np.array([[x, y, z] for x in (-1.0, 0.0, 1.0) for y in (-1.0, 0.0, 1.0) for z in (-1.0, 0.0, 1.0)])
+    out = (np.array(D).T.copy(), np.array(S).T.copy(), np.abs(sig).T.copy(), sig.T.copy())
+    for arr in out:
+        arr.setflags(write=False)
+    return out
+
+
+_BOX_D, _BOX_S, _BOX_ACT, _BOX_SIG = _box_tables()
+
+
+def _box_candidates(a: np.ndarray, u: np.ndarray, h: np.ndarray) -> np.ndarray:
+    """(k, 50) candidate segment parameters in [0, 1] for `capsule_box` (box frame inputs).
+
+    a : (k, 3) segment start, u : (k, 3) segment direction (end - start), h : (k, 3) half extents.
+    The set holds the end points 0 and 1, every crossing of `_box_tables` (the ends of the outside
+    quadratic pieces and the inside kinks) and the vertex of every outside configuration's quadratic:
+    the minimiser of the (convex) signed distance along the segment is one of them, because it is an
+    end point, a piece end or kink, or the vertex of the piece it lies in. Candidates whose
+    denominator vanishes are replaced by 0 (a feasible point, so the minimum is unaffected).
+    """
+    den = u @ _BOX_S
+    num = h @ _BOX_D - a @ _BOX_S
+    cross = np.divide(num, den, out=np.zeros_like(num), where=den != 0.0)
+    uu = (u * u) @ _BOX_ACT
+    vnum = (u * h) @ _BOX_SIG - (u * a) @ _BOX_ACT
+    vertex = np.divide(vnum, uu, out=np.zeros_like(vnum), where=uu > DEGENERATE_SQ_M2)
+    ends = np.zeros((len(a), 2))
+    ends[:, 1] = 1.0
+    return _clip01(np.concatenate([ends, cross, vertex], axis=1))
 
 
 def box_signed_distance(x: np.ndarray, h: np.ndarray) -> np.ndarray:

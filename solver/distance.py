@@ -28,6 +28,7 @@ direction perpendicular to both segments, else any perpendicular of the capsule'
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -280,3 +281,52 @@ def capsule_box(a0: np.ndarray, a1: np.ndarray, ra: np.ndarray, center: np.ndarr
     point_b = center + np.einsum("kij,kj->ki", R_base_box, y)
     point_a = center + np.einsum("kij,kj->ki", R_base_box, xs) - normal * ra[:, None]
     return Contact(d - ra, point_a, point_b, normal)
+
+
+def capsule_capsule_one(a0: list[float], a1: list[float], ra: float,
+                        b0: list[float], b1: list[float], rb: float
+                        ) -> tuple[float, list[float], list[float], list[float]]:
+    """One capsule pair in plain floats: `capsule_capsule` for k = 1 without numpy's per-call cost
+    (about 20 times cheaper for a single pair; the per-tick pass uses it for a few pairs).
+
+    a0, a1, b0, b1 : 3 floats each, base frame, m; ra, rb : radii, m.
+    Returns (distance m, point_a, point_b, normal from b to a), the lists of 3 floats each; the same
+    branches as `segment_segment` (Ericson 2004, 5.1.9), written as his scalar code. Where the
+    segments touch (|c_a - c_b| < TOUCH_M) it defers to `capsule_capsule` for the normal.
+    """
+    p1x, p1y, p1z = a0
+    p2x, p2y, p2z = b0
+    d1x, d1y, d1z = a1[0] - p1x, a1[1] - p1y, a1[2] - p1z
+    d2x, d2y, d2z = b1[0] - p2x, b1[1] - p2y, b1[2] - p2z
+    rx, ry, rz = p1x - p2x, p1y - p2y, p1z - p2z
+    a = d1x * d1x + d1y * d1y + d1z * d1z
+    e = d2x * d2x + d2y * d2y + d2z * d2z
+    f = d2x * rx + d2y * ry + d2z * rz
+    if a <= DEGENERATE_SQ_M2 and e <= DEGENERATE_SQ_M2:
+        s = t = 0.0
+    elif a <= DEGENERATE_SQ_M2:
+        s, t = 0.0, min(max(f / e, 0.0), 1.0)
+    else:
+        c = d1x * rx + d1y * ry + d1z * rz
+        if e <= DEGENERATE_SQ_M2:
+            s, t = min(max(-c / a, 0.0), 1.0), 0.0
+        else:
+            b = d1x * d2x + d1y * d2y + d1z * d2z
+            denom = a * e - b * b
+            s = min(max((b * f - c * e) / denom, 0.0), 1.0) if denom > PARALLEL_RTOL * a * e else 0.0
+            t = (b * s + f) / e
+            if t < 0.0:
+                s, t = min(max(-c / a, 0.0), 1.0), 0.0
+            elif t > 1.0:
+                s, t = min(max((b - c) / a, 0.0), 1.0), 1.0
+    cax, cay, caz = p1x + d1x * s, p1y + d1y * s, p1z + d1z * s
+    cbx, cby, cbz = p2x + d2x * t, p2y + d2y * t, p2z + d2z * t
+    gx, gy, gz = cax - cbx, cay - cby, caz - cbz
+    length = math.sqrt(gx * gx + gy * gy + gz * gz)
+    if length < TOUCH_M:
+        a0_, a1_, b0_, b1_ = (np.array([v], dtype=float) for v in (a0, a1, b0, b1))
+        c = capsule_capsule(a0_, a1_, np.array([ra]), b0_, b1_, np.array([rb]))
+        return float(c.distance[0]), c.point_a[0].tolist(), c.point_b[0].tolist(), c.normal[0].tolist()
+    nx, ny, nz = gx / length, gy / length, gz / length
+    return (length - ra - rb, [cax - nx * ra, cay - ny * ra, caz - nz * ra],
+            [cbx + nx * rb, cby + ny * rb, cbz + nz * rb], [nx, ny, nz])

@@ -1,4 +1,4 @@
-"""Velocity-damper rows of the keep-out contacts, A q_dot >= b, and the point Jacobians they use.
+"""Keep-out contacts, their velocity-damper rows A q_dot >= b, and the point Jacobians they use.
 
 Velocity damper (Faverjon & Tournassoud 1987, ICRA; in the form of Kanoun, Lamiraux & Wieber 2011,
 IEEE T-RO 27(4)): for each contact with distance d < d_i, n the unit normal from b to a and J_pa,
@@ -19,17 +19,40 @@ joints that do not carry the link zeroed.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from twistrate.solver.jacobians import offset_point_jacobian
-from twistrate.solver.keepout import Contacts
-from twistrate.solver.kinematics import cross_rows
+from twistrate.solver.kinematics import LEVI_CIVITA
 from twistrate.solver.zones import KeepOutConfig
 
 
+@dataclass(frozen=True, eq=False)
+class Contacts:
+    """Contacts of one pass (r >= 0 of them), one per damper row.
+
+    pair : (r,) index into `KeepOut.pair_names`.
+    distance : (r,) signed distance of the pair's surfaces, m.
+    point_a, point_b : (r, 3) closest points, base frame, m (a on an arm capsule).
+    normal : (r, 3) unit normal from b to a, base frame.
+    body_a, body_b : (r,) bodies carrying the points (0: the root link or a zone: not moving).
+    """
+
+    pair: np.ndarray
+    distance: np.ndarray
+    point_a: np.ndarray
+    point_b: np.ndarray
+    normal: np.ndarray
+    body_a: np.ndarray
+    body_b: np.ndarray
+
+
 def carrier_masks(n: int) -> np.ndarray:
-    """(n + 1, n) mask[b, j] = 1.0 when joint j moves body b (j < b), else 0.0."""
-    return (np.arange(n)[None, :] < np.arange(n + 1)[:, None]).astype(float)
+    """(n + 1, n) mask[b, j] = 1.0 when joint j moves body b (j < b), else 0.0 (read-only)."""
+    mask = (np.arange(n)[None, :] < np.arange(n + 1)[:, None]).astype(float)
+    mask.setflags(write=False)
+    return mask
 
 
 def distance_rate_rows(contacts: Contacts, J: np.ndarray, T_base_tool: np.ndarray,
@@ -40,15 +63,21 @@ def distance_rate_rows(contacts: Contacts, J: np.ndarray, T_base_tool: np.ndarra
     mask : (n + 1, n) from `carrier_masks`.
     n^T J_p q_dot = n^T v_tool + n^T (w x r) = n^T v_tool + (r x n)^T w with r = p - p_tool (the
     linear rows of the offset-point Jacobian), restricted to the joints moving each point's link.
+    Side b is skipped when no contact has a moving b (zones and the root link do not move).
     """
-    p_tool = T_base_tool[:3, 3]
     nrm = contacts.normal
-
-    def side(point: np.ndarray, body: np.ndarray) -> np.ndarray:
-        G = np.concatenate([nrm, cross_rows(point - p_tool, nrm)], axis=1) @ J  # (r, n)
-        return G * mask[body]
-
-    return side(contacts.point_a, contacts.body_a) - side(contacts.point_b, contacts.body_b)
+    r = len(nrm)
+    both = bool(contacts.body_b.any())
+    points = np.concatenate([contacts.point_a, contacts.point_b]) if both else contacts.point_a
+    normals = np.concatenate([nrm, nrm]) if both else nrm
+    W = np.empty((len(points), 6))
+    W[:, :3] = normals
+    # r x n for every row at once: Levi-Civita times the row-wise outer products (r, n).
+    outer = (points - T_base_tool[:3, 3])[:, :, None] * normals[:, None, :]
+    W[:, 3:] = outer.reshape(-1, 9) @ LEVI_CIVITA.T
+    G = W @ J
+    G *= mask[np.concatenate([contacts.body_a, contacts.body_b]) if both else contacts.body_a]
+    return G[:r] - G[r:] if both else G
 
 
 def damper_bounds(distance: np.ndarray, config: KeepOutConfig) -> np.ndarray:
@@ -61,6 +90,7 @@ def damper_rows(contacts: Contacts, J: np.ndarray, T_base_tool: np.ndarray, conf
     """Velocity-damper rows of the contacts: (A, b, pair) with A q_dot >= b.
 
     contacts : from `KeepOut.contacts` at the configuration of J.
+    mask : `carrier_masks(n)` when the caller keeps one (`KeepOut.masks`), else built here.
     J : (6, n) geometric Jacobian of the tool point, base frame, rows (v, w); T_base_tool (4, 4).
     Returns A : (r, n) m/s per unit joint rate (rad/s or m/s), b : (r,) m/s, pair : (r,) the
     contact's pair index (`KeepOut.pair_names`); r = 0 gives empty arrays of these shapes.

@@ -28,6 +28,7 @@ direction perpendicular to both segments, else any perpendicular of the capsule'
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
@@ -330,3 +331,72 @@ def capsule_capsule_one(a0: list[float], a1: list[float], ra: float,
     nx, ny, nz = gx / length, gy / length, gz / length
     return (length - ra - rb, [cax - nx * ra, cay - ny * ra, caz - nz * ra],
             [cbx + nx * rb, cby + ny * rb, cbz + nz * rb], [nx, ny, nz])
+
+
+def capsule_box_one(a0: list[float], a1: list[float], ra: float, center: list[float],
+                    R_base_box: list[list[float]], half: list[float]
+                    ) -> tuple[float, list[float], list[float], list[float]] | None:
+    """One separated capsule-box pair in plain floats (`capsule_box` for k = 1, cheaper for a few
+    pairs), or None when the segment touches or enters the box (the caller then uses
+    `capsule_box`, whose candidate set also covers the inside).
+
+    a0, a1 : segment end points, base frame, m; ra : radius, m; center : box centre, base frame;
+    R_base_box : 3 rows of 3, box axes as columns; half : half edge lengths, m.
+    Returns (distance, point_a, point_b, normal from b to a), as `capsule_box`.
+    Method: outside the box the squared distance along the segment is a convex piecewise quadratic
+    whose pieces end where the segment crosses a face plane; on each piece (active faces read at
+    its mid-point) the quadratic's vertex, clamped to the piece, is its minimum; the least of them
+    is the minimum over the segment (the same argument as `capsule_box`, without the inside part).
+    """
+    (r00, r01, r02), (r10, r11, r12), (r20, r21, r22) = R_base_box
+    px, py, pz = a0[0] - center[0], a0[1] - center[1], a0[2] - center[2]
+    vx, vy, vz = a1[0] - a0[0], a1[1] - a0[1], a1[2] - a0[2]
+    a = (r00 * px + r10 * py + r20 * pz, r01 * px + r11 * py + r21 * pz, r02 * px + r12 * py + r22 * pz)
+    u = (r00 * vx + r10 * vy + r20 * vz, r01 * vx + r11 * vy + r21 * vz, r02 * vx + r12 * vy + r22 * vz)
+    ax, ay, az = a
+    ux, uy, uz = u
+    hx, hy, hz = half
+    ts = [0.0, 1.0]
+    for ai, ui, hi in ((ax, ux, hx), (ay, uy, hy), (az, uz, hz)):
+        if ui != 0.0:
+            t = (hi - ai) / ui
+            if 0.0 < t < 1.0:
+                ts.append(t)
+            t = (-hi - ai) / ui
+            if 0.0 < t < 1.0:
+                ts.append(t)
+    ts.sort()
+    best_f, best_t = math.inf, 0.0
+    for lo, hi in itertools.pairwise(ts):
+        mid = 0.5 * (lo + hi)
+        num = den = 0.0
+        for ai, ui, hh in ((ax, ux, hx), (ay, uy, hy), (az, uz, hz)):
+            x = ai + ui * mid
+            if x > hh:
+                num += ui * (ai - hh)
+                den += ui * ui
+            elif x < -hh:
+                num += ui * (ai + hh)
+                den += ui * ui
+        t = min(max(-num / den, lo), hi) if den > DEGENERATE_SQ_M2 else lo
+        ex = ax + ux * t
+        ey = ay + uy * t
+        ez = az + uz * t
+        ex = ex - hx if ex > hx else (ex + hx if ex < -hx else 0.0)
+        ey = ey - hy if ey > hy else (ey + hy if ey < -hy else 0.0)
+        ez = ez - hz if ez > hz else (ez + hz if ez < -hz else 0.0)
+        f = ex * ex + ey * ey + ez * ez
+        if f < best_f:
+            best_f, best_t = f, t
+    if best_f < TOUCH_M * TOUCH_M:
+        return None
+    x = [a[i] + u[i] * best_t for i in range(3)]
+    y = [min(max(x[i], -half[i]), half[i]) for i in range(3)]
+    length = math.sqrt(best_f)
+    n = [(x[i] - y[i]) / length for i in range(3)]
+    rows = R_base_box
+    normal = [rows[k][0] * n[0] + rows[k][1] * n[1] + rows[k][2] * n[2] for k in range(3)]
+    point_b = [center[k] + rows[k][0] * y[0] + rows[k][1] * y[1] + rows[k][2] * y[2] for k in range(3)]
+    on_segment = [a0[k] + (a1[k] - a0[k]) * best_t for k in range(3)]
+    point_a = [on_segment[k] - normal[k] * ra for k in range(3)]
+    return length - ra, point_a, point_b, normal

@@ -26,12 +26,13 @@ One `KeepOut` serves one tick loop (the state is not shared between threads).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
 
 import numpy as np
 
 from twistrate.solver.arm import PRISMATIC, Arm
-from twistrate.solver.distance import capsule_box, capsule_capsule, capsule_capsule_one
+from twistrate.solver.damper import Contacts, damper_rows
+from twistrate.solver.distance import capsule_box, capsule_box_one, capsule_capsule, capsule_capsule_one
 from twistrate.solver.errors import ConfigError, ModelError
 from twistrate.solver.geometry import body_index
 from twistrate.solver.kinematics import Frames
@@ -43,26 +44,6 @@ EARLY_OUT_MARGIN_M = 1e-9
 #: (`capsule_capsule_one`), beyond it with the vectorised kernels (numpy's per-call cost dominates
 #: for a few pairs: measured about 20 times cheaper for one pair).
 SCALAR_PAIRS_MAX = 6
-
-
-@dataclass(frozen=True, eq=False)
-class Contacts:
-    """Contacts of one pass (r >= 0 of them), one per damper row.
-
-    pair : (r,) index into `KeepOut.pair_names`.
-    distance : (r,) signed distance of the pair's surfaces, m.
-    point_a, point_b : (r, 3) closest points, base frame, m (a on an arm capsule).
-    normal : (r, 3) unit normal from b to a, base frame.
-    body_a, body_b : (r,) bodies carrying the points (0: the root link or a zone: not moving).
-    """
-
-    pair: np.ndarray
-    distance: np.ndarray
-    point_a: np.ndarray
-    point_b: np.ndarray
-    normal: np.ndarray
-    body_a: np.ndarray
-    body_b: np.ndarray
 
 
 def _empty_contacts() -> Contacts:
@@ -135,6 +116,17 @@ class KeepOut:
         lever = levers[self._ia]
         lever[: self._seg_end] += levers[self._ib[: self._seg_end]]
         self._lever = lever  # (P, n) m per rad (or per m)
+        #: (n + 1, n) which joints move each body (for `damper.damper_rows(..., mask=...)`).
+        self.masks = (np.arange(arm.n)[None, :] < np.arange(arm.n + 1)[:, None]).astype(float)
+        self.masks.setflags(write=False)
+        # Plain-float copies for the few-pairs path.
+        self._ia_list, self._ib_list = self._ia.tolist(), self._ib.tolist()
+        self._radius_list, self._body_list = self._radius.tolist(), self._body.tolist()
+        self._hs_normal_list = zones.half_space_normal.tolist()
+        self._hs_offset_list = zones.half_space_offset.tolist()
+        self._box_lists = list(zip(zones.box_center.tolist(), zones.box_rotation.tolist(),
+                                   zones.box_half.tolist(), strict=True))
+        self._no_rows, self._no_bounds = np.zeros((0, arm.n)), np.zeros(0)
         # Cache: configuration of each pair's last exact distance, and its slack d - d_i there.
         self._q0 = np.zeros((len(pairs), arm.n))
         self._slack = np.full(len(pairs), -np.inf)
@@ -156,14 +148,61 @@ class KeepOut:
     def contacts(self, frames: Frames, q: np.ndarray) -> Contacts:
         """Contacts of every pair closer than d_i at q; half-space pairs give one per end point
         within d_i. frames : forward kinematics at q (n,) (`twistrate.solver.kinematics.forward`)."""
+        found = self._update(frames, q)
+        return found if isinstance(found, Contacts) else _contacts_of(found)
+
+    def rows(self, frames: Frames, q: np.ndarray, J: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray, Contacts]:
+        """This tick's velocity-damper rows: (A (r, n), b (r,), contacts) with A q_dot >= b, the
+        same as `damper.damper_rows(self.contacts(frames, q), J, frames.T_base_tool, self.config)`
+        (tests/test_keepout.py), built from plain floats when few pairs are near.
+
+        J : (6, n) geometric Jacobian of the tool point at q, base frame, rows (v, w).
+        """
+        found = self._update(frames, q)
+        if isinstance(found, Contacts):
+            if not len(found.pair):
+                return self._no_rows, self._no_bounds, found
+            A, b, _ = damper_rows(found, J, frames.T_base_tool, self.config, self.masks)
+            return A, b, found
+        if not found:
+            return self._no_rows, self._no_bounds, _EMPTY
+        cfg = self.config
+        tx, ty, tz = frames.T_base_tool[:3, 3].tolist()
+        W, bodies, b = [], [], []
+        both = any(row[6] for row in found)
+        for _, d, pa, pb, (nx, ny, nz), body_a, body_b in found:
+            for point in ((pa, pb) if both else (pa,)):
+                rx, ry, rz = point[0] - tx, point[1] - ty, point[2] - tz
+                W.append((nx, ny, nz, ry * nz - rz * ny, rz * nx - rx * nz, rx * ny - ry * nx))
+            bodies.append(body_a)
+            if both:
+                bodies.append(body_b)
+            b.append(-cfg.gain_m_s * (d - cfg.security_m) / (cfg.influence_m - cfg.security_m))
+        G = np.array(W) @ J
+        G *= self.masks[bodies]
+        A = G[0::2] - G[1::2] if both else G
+        return A, np.array(b), _contacts_of(found)
+
+    def _update(self, frames: Frames, q: np.ndarray) -> Contacts | list[tuple]:
+        """The early-out, the exact pass over the stale pairs and the cache update; returns the
+        contacts within d_i as Contacts, or (few pairs) as plain rows (pair, distance, point_a,
+        point_b, normal, body_a, body_b)."""
         grow = np.einsum("pn,pn->p", np.abs(q - self._q0), self._lever)
-        stale = np.flatnonzero(grow >= self._slack)
+        stale = np.nonzero(grow >= self._slack)[0]
         if not len(stale):
             return _EMPTY
-        d_pair, out = self._exact(self.place(frames), stale, nearest_end=False)
+        d_i = self.config.influence_m
+        if len(stale) <= SCALAR_PAIRS_MAX:
+            d_pair, rows = self._exact_few(self.place(frames), stale)
+            self._q0[stale] = q
+            self._slack[stale] = d_pair
+            self._slack[stale] -= d_i + EARLY_OUT_MARGIN_M
+            return [row for row in rows if row[1] < d_i]
+        d_arr, out = self._exact(self.place(frames), stale, nearest_end=False)
         self._q0[stale] = q
-        self._slack[stale] = d_pair - self.config.influence_m - EARLY_OUT_MARGIN_M
-        keep = out.distance < self.config.influence_m
+        self._slack[stale] = d_arr - d_i - EARLY_OUT_MARGIN_M
+        keep = out.distance < d_i
         if keep.all():
             return out
         return Contacts(*(getattr(out, f)[keep] for f in Contacts.__dataclass_fields__))
@@ -180,6 +219,47 @@ class KeepOut:
         grow = np.einsum("pn,pn->p", np.abs(q - self._q0), self._lever)
         return self._slack + self.config.influence_m - grow
 
+    def _exact_few(self, S: np.ndarray, idx: np.ndarray) -> tuple[list[float], list[tuple]]:
+        """`_exact` (nearest_end=False) for a few pairs in plain floats (boxes the segment touches or
+        enters go to the vectorised kernel): (pair distances, rows as in `_update`)."""
+        d_i = self.config.influence_m
+        ia, ib, radius, body = self._ia_list, self._ib_list, self._radius_list, self._body_list
+        ends = S.tolist()
+        d_pair: list[float] = []
+        rows: list[tuple] = []
+        for p in idx.tolist():
+            i, j = ia[p], ib[p]
+            a0, a1 = ends[i]
+            if p < self._seg_end:
+                b0, b1 = ends[j]
+                d, pa, pb, nrm = capsule_capsule_one(a0, a1, radius[i], b0, b1, radius[j])
+                d_pair.append(d)
+                rows.append((p, d, pa, pb, nrm, body[i], body[j]))
+            elif p < self._hs_end:
+                nx, ny, nz = nrm = self._hs_normal_list[j]
+                c, r = self._hs_offset_list[j], radius[i]
+                best = math.inf
+                for x, y, z in (a0, a1):
+                    s = nx * x + ny * y + nz * z - c
+                    best = min(best, s - r)
+                    if s - r < d_i:
+                        rows.append((p, s - r, [x - nx * r, y - ny * r, z - nz * r],
+                                     [x - nx * s, y - ny * s, z - nz * s], nrm, body[i], 0))
+                d_pair.append(best)
+            else:
+                center, rotation, half = self._box_lists[j]
+                one = capsule_box_one(a0, a1, radius[i], center, rotation, half)
+                if one is None:  # touching or inside: the vectorised kernel covers that
+                    d_box, c = self._exact(S, np.array([p]), nearest_end=False)
+                    d_pair.append(float(d_box[0]))
+                    rows += zip(c.pair.tolist(), c.distance.tolist(), c.point_a.tolist(),
+                                c.point_b.tolist(), c.normal.tolist(), c.body_a.tolist(),
+                                c.body_b.tolist(), strict=True)
+                else:
+                    d_pair.append(one[0])
+                    rows.append((p, *one, body[i], 0))
+        return d_pair, rows
+
     def _exact(self, S: np.ndarray, idx: np.ndarray, nearest_end: bool) -> tuple[np.ndarray, Contacts]:
         """Exact distances of pairs idx (sorted): ((len(idx),) pair distances, their contacts)."""
         zones = self.config.zones
@@ -189,15 +269,8 @@ class KeepOut:
         seg, hs, box = idx[: cut[0]], idx[cut[0]: cut[1]], idx[cut[1]:]
         if len(seg):
             i, j = self._ia[seg], self._ib[seg]
-            if len(seg) <= SCALAR_PAIRS_MAX:
-                Si, Sj = S[i].tolist(), S[j].tolist()
-                ri, rj = self._radius[i].tolist(), self._radius[j].tolist()
-                one = [capsule_capsule_one(x[0], x[1], u, y[0], y[1], v)
-                       for x, u, y, v in zip(Si, ri, Sj, rj, strict=True)]
-                dist, pa, pb, nrm = (np.array(col) for col in zip(*one, strict=True))
-            else:
-                c = capsule_capsule(S[i, 0], S[i, 1], self._radius[i], S[j, 0], S[j, 1], self._radius[j])
-                dist, pa, pb, nrm = c.distance, c.point_a, c.point_b, c.normal
+            c = capsule_capsule(S[i, 0], S[i, 1], self._radius[i], S[j, 0], S[j, 1], self._radius[j])
+            dist, pa, pb, nrm = c.distance, c.point_a, c.point_b, c.normal
             d_pair[: cut[0]] = dist
             parts.append((seg, dist, pa, pb, nrm, self._body[i], self._body[j]))
         if len(hs):
@@ -225,6 +298,15 @@ class KeepOut:
         if len(parts) == 1:
             return d_pair, Contacts(*parts[0])
         return d_pair, Contacts(*(np.concatenate(x) for x in zip(*parts, strict=True)))
+
+
+def _contacts_of(rows: list[tuple]) -> Contacts:
+    """Contacts from plain rows (pair, distance, point_a, point_b, normal, body_a, body_b)."""
+    if not rows:
+        return _EMPTY
+    cols = list(zip(*rows, strict=True))
+    return Contacts(np.array(cols[0]), np.array(cols[1]), np.array(cols[2]), np.array(cols[3]),
+                    np.array(cols[4]), np.array(cols[5]), np.array(cols[6]))
 
 
 def _levers(arm: Arm, body: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -17,6 +17,7 @@ import pytest
 from twistrate.solver.distance import (
     box_signed_distance,
     capsule_box,
+    capsule_box_one,
     capsule_capsule,
     capsule_capsule_one,
     capsule_half_space,
@@ -266,3 +267,33 @@ def test_box_signed_distance_closed_form():
     pts = np.array([[0.0, 0.0, 0.0], [0.3, 0.0, 0.0], [0.3, 0.2, 0.0], [0.19, 0.0, 0.0]])
     np.testing.assert_allclose(box_signed_distance(pts, h), [-0.05, 0.1, np.hypot(0.1, 0.1), -0.01],
                                atol=1e-15)
+
+
+def test_capsule_box_one_matches_coal_when_separated():
+    """The plain-float capsule-box (pieces of the outside quadratic) against coal, and None exactly
+    when the segment touches or enters the box (then the vectorised kernel takes over)."""
+    rng = np.random.default_rng(SEED + 8)
+    separated = 0
+    for k in range(CASES):
+        a0, a1 = rng.normal(size=(2, 3)) * 0.5
+        R = random_rotation(rng)
+        size = rng.uniform(0.02, 0.8, 3)
+        ctr = rng.normal(size=3) * 0.3
+        if k % 5 == 0:
+            a1 = a0 + R[:, k % 3] * 0.3  # parallel to a box axis: closest points not unique
+        r = rng.uniform(0.0, 0.1)
+        one_pair = capsule_box_one(a0.tolist(), a1.tolist(), r, ctr.tolist(), R.tolist(), (size / 2).tolist())
+        vec = capsule_box(one(a0), one(a1), one(r), one(ctr), R[None], one(size / 2))
+        segment_inside = vec.distance[0] + r <= 1e-12
+        assert (one_pair is None) == segment_inside
+        if one_pair is None:
+            continue
+        separated += 1
+        ga, Ta = coal_capsule(a0, a1, r)
+        d, _, _ = coal_distance(ga, Ta, coal.Box(*size), coal.Transform3s(R, ctr))
+        assert abs(one_pair[0] - d) < ORACLE_TOL
+        np.testing.assert_allclose(one_pair[3], vec.normal[0], atol=1e-9)
+        pa, pb, n = (np.array(v) for v in one_pair[1:])
+        np.testing.assert_allclose(pa, pb + one_pair[0] * n, atol=1e-12)
+        assert box_signed_distance(R.T @ (pb - ctr), size / 2) == pytest.approx(0.0, abs=1e-12)
+    assert separated > CASES // 3

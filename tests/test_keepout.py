@@ -222,3 +222,29 @@ def test_example_arms_touching_lists_are_complete(name):
     assert not np.any(constant & (samples[0] < ko.config.influence_m)), [
         ko.pair_names[p] for p in np.flatnonzero(constant & (samples[0] < ko.config.influence_m))]
     assert np.all(ko.all_contacts(forward(arm, arm.q_home)).distance > 0)
+
+
+@pytest.mark.parametrize("name, influence", [("reach7", 0.15), ("rail4", 0.15), ("reach7", 0.03)])
+def test_fused_rows_equal_damper_rows_of_the_contacts(name, influence):
+    """`KeepOut.rows` (plain floats for a few pairs) gives the rows `damper_rows` builds from
+    `KeepOut.contacts` (numpy), along the same walk; with a small influence distance most ticks
+    recompute pairs that then turn out not near (no rows)."""
+    arm = example(name)
+    cfg = parse_keepout({**SCENE, "influence_m": influence, "security_m": 0.01})
+    fused, plain = KeepOut(arm, cfg), KeepOut(arm, cfg)
+    rng = np.random.default_rng(SEED + 5)
+    q = random_q(arm, rng)
+    total = empty = 0
+    for step in range(200):
+        q = random_q(arm, rng) if step % 40 == 0 else np.clip(q + rng.normal(size=arm.n) * 0.01,
+                                                              arm.q_min, arm.q_max)
+        fr = forward(arm, q)
+        J = geometric_jacobian(arm, fr)
+        A, b, c = fused.rows(fr, q, J)
+        A2, b2, pair = damper_rows(plain.contacts(fr, q), J, fr.T_base_tool, cfg)
+        assert A.shape == (len(b), arm.n) and c.pair.tolist() == pair.tolist()
+        np.testing.assert_allclose(A, A2, atol=1e-12)
+        np.testing.assert_allclose(b, b2, atol=1e-12)
+        total += len(b)
+        empty += len(b) == 0
+    assert total > 0 and (empty > 0 or influence > 0.1)

@@ -94,3 +94,16 @@ def test_touching_names_are_checked_against_the_arm():
     assert frozenset(("shoulder", "forearm")) in pairs({})
     assert frozenset(("shoulder", "forearm")) not in pairs({"touching": [["shoulder_pitch", "forearm_roll"]]})
     assert not any("pedestal" in p for p in pairs({"self_collision": False}))
+
+
+def test_docs_example_section_is_valid():
+    """The `[keepout]` example in docs/keepout.md must stay valid."""
+    import pathlib
+    import re
+    import tomllib
+
+    text = (pathlib.Path(__file__).parent.parent / "docs" / "keepout.md").read_text()
+    block = re.search(r"```toml\n(\[keepout\].*?)```", text, re.S).group(1)
+    cfg = parse_keepout(tomllib.loads(block)["keepout"])
+    assert cfg.zones.half_space_names == ("table", "wall") and cfg.zones.box_names == ("feeder",)
+    KeepOut(load_arm("reach7"), cfg)  # its touching names are reach7's links

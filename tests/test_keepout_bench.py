@@ -4,7 +4,7 @@ Its cells must be what they claim: no damper row on any tick of `none_near`, row
 
 from __future__ import annotations
 
-from twistrate.service.keepout_bench import main, measure
+from twistrate.service.bench.keepout import measure, run
 
 
 def test_cells_are_what_they_claim():
@@ -17,5 +17,5 @@ def test_cells_are_what_they_claim():
 
 
 def test_bad_ticks_exit_2(capsys):
-    assert main(["--ticks", "3"]) == 2
+    assert run(["--ticks", "3"]) == 2
     assert "--ticks: got 3" in capsys.readouterr().err

@@ -1,6 +1,6 @@
-"""Benchmark of the keep-out pass against the free tick: `python -m twistrate.service.keepout_bench`.
+"""`twistrate bench keepout`: the cost of the keep-out pass against the free tick.
 
-`python -m twistrate.service.keepout_bench [--ticks N] [--json FILE]` records reach7 (8 capsules)
+`twistrate bench keepout [--ticks N] [--json FILE]` records reach7 (8 capsules)
 along a smooth free trajectory (no joint limit binds) in a cell of 3 zones (a table and a wall as
 half-spaces, a fixture box), then replays it and times, per state and in turn:
 
@@ -14,11 +14,7 @@ active on most ticks: the tool against both, at times the wrist too).
 Figures: medians and p99 (us), the ratio of the pass's median to resolve's median, rows per tick.
 The keep-out pass keeps state between ticks (its early-out), so states are replayed in their
 recorded order, one resolve and one pass per state. Wall-clock ratios on a shared machine swing; the
-lead measures published figures on a quiet one.
-
-To be registered under `twistrate bench solver` once the service reshaping lands (this module is
-new so as not to touch the moving service/bench.py).
-"""
+lead measures published figures on a quiet one."""
 
 from __future__ import annotations
 
@@ -109,8 +105,8 @@ def measure(ticks: int = 4000) -> dict[str, Any]:
     return out
 
 
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m twistrate.service.keepout_bench",
+def run(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate bench keepout",
                                      description="Time the keep-out pass against the free tick.")
     parser.add_argument("--ticks", type=int, default=4000)
     parser.add_argument("--json", metavar="FILE")
@@ -127,4 +123,4 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    raise SystemExit(run())

@@ -47,9 +47,13 @@ SCALAR_PAIRS_MAX = 6
 
 
 def _empty_contacts() -> Contacts:
+    """No contacts (read-only empty arrays of the documented shapes)."""
     z3 = np.zeros((0, 3))
     zi = np.zeros(0, dtype=int)
-    return Contacts(zi, np.zeros(0), z3, z3, z3, zi, zi)
+    z = np.zeros(0)
+    for arr in (z3, zi, z):
+        arr.setflags(write=False)
+    return Contacts(zi, z, z3, z3, z3, zi, zi)
 
 
 _EMPTY = _empty_contacts()
@@ -92,7 +96,8 @@ class KeepOut:
         self._radius = np.array([caps[k].radius for k in order] + list(zones.segment_radius), float)
         self._body = np.array([caps[k].body for k in order] + [0] * len(zones.segment_radius), dtype=int)
         levers = np.zeros((len(self._segments), arm.n))
-        levers[:km] = [_levers(arm, caps[k].body, caps[k].a, caps[k].b) for k in moving]
+        for row, k in enumerate(moving):
+            levers[row] = _levers(arm, caps[k].body, caps[k].a, caps[k].b)
         seg_names = [caps[k].name for k in order] + list(zones.segment_names)
         where = {k: s for s, k in enumerate(order)}
         pairs: list[tuple[int, int]] = []
@@ -127,6 +132,8 @@ class KeepOut:
         self._box_lists = list(zip(zones.box_center.tolist(), zones.box_rotation.tolist(),
                                    zones.box_half.tolist(), strict=True))
         self._no_rows, self._no_bounds = np.zeros((0, arm.n)), np.zeros(0)
+        self._no_rows.setflags(write=False)
+        self._no_bounds.setflags(write=False)
         # Cache: configuration of each pair's last exact distance, and its slack d - d_i there.
         self._q0 = np.zeros((len(pairs), arm.n))
         self._slack = np.full(len(pairs), -np.inf)

@@ -248,3 +248,15 @@ def test_fused_rows_equal_damper_rows_of_the_contacts(name, influence):
         total += len(b)
         empty += len(b) == 0
     assert total > 0 and (empty > 0 or influence > 0.1)
+
+
+def test_arm_without_capsules_has_no_pairs():
+    """An arm file without geometry: the pass runs and finds nothing (zones alone move nothing)."""
+    joint = Joint("swing", REVOLUTE, np.eye(4), np.array([0.0, 0.0, 1.0]), -3.0, 3.0, 2.0, 10.0)
+    arm = Arm.build("bare", [joint])
+    ko = KeepOut(arm, parse_keepout(SCENE))
+    q = np.zeros(1)
+    fr = forward(arm, q)
+    A, b, c = ko.rows(fr, q, geometric_jacobian(arm, fr))
+    assert ko.pair_count == 0 and A.shape == (0, 1) and b.shape == (0,) and len(c.pair) == 0
+    assert len(ko.all_contacts(fr).pair) == 0 and ko.lower_bounds(q).shape == (0,)

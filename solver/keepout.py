@@ -311,9 +311,10 @@ def _contacts_of(rows: list[tuple]) -> Contacts:
     """Contacts from plain rows (pair, distance, point_a, point_b, normal, body_a, body_b)."""
     if not rows:
         return _EMPTY
-    cols = list(zip(*rows, strict=True))
-    return Contacts(np.array(cols[0]), np.array(cols[1]), np.array(cols[2]), np.array(cols[3]),
-                    np.array(cols[4]), np.array(cols[5]), np.array(cols[6]))
+    ints = np.array([(p, ba, bb) for p, _, _, _, _, ba, bb in rows])
+    floats = np.array([(d, *pa, *pb, *n) for _, d, pa, pb, n, _, _ in rows])
+    return Contacts(ints[:, 0], floats[:, 0], floats[:, 1:4], floats[:, 4:7], floats[:, 7:10],
+                    ints[:, 1], ints[:, 2])
 
 
 def _levers(arm: Arm, body: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:

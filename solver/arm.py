@@ -25,6 +25,7 @@ from typing import Literal
 import numpy as np
 
 from twistrate.solver.errors import ModelError, field_error
+from twistrate.solver.geometry import ArmGeometry, body_names
 
 REVOLUTE: Literal["revolute"] = "revolute"
 PRISMATIC: Literal["prismatic"] = "prismatic"
@@ -138,6 +139,9 @@ class Arm:
         the last axis frame.
     jacobian_column_mask : (6, n) 1.0 where a revolute column has its cross-product / axis entries,
         0.0 for prismatic columns; prismatic_float : (n,) 1.0 for prismatic joints.
+
+    geometry : the links' capsules and the link pairs allowed to touch (`twistrate.solver.geometry`;
+        body 0 the root link, body i + 1 the link joint i moves); empty when the file gives none.
     """
 
     name: str
@@ -145,6 +149,7 @@ class Arm:
     T_base_root: np.ndarray
     T_last_tool: np.ndarray
     q_home: np.ndarray
+    geometry: ArmGeometry = field(default_factory=ArmGeometry)
     F_base: np.ndarray = field(init=False, repr=False)
     motion_const: np.ndarray = field(init=False, repr=False)
     motion_basis: np.ndarray = field(init=False, repr=False)
@@ -237,6 +242,11 @@ class Arm:
     def joint_names(self) -> tuple[str, ...]:
         return tuple(j.name for j in self.joints)
 
+    @property
+    def body_names(self) -> tuple[str, ...]:
+        """("root", joint names...): the name of each body (link) by index, n + 1 of them."""
+        return body_names(self.joint_names)
+
     @classmethod
     def build(
         cls,
@@ -245,8 +255,12 @@ class Arm:
         T_base_root: np.ndarray | None = None,
         T_last_tool: np.ndarray | None = None,
         q_home: np.ndarray | list[float] | None = None,
+        geometry: ArmGeometry | None = None,
     ) -> Arm:
-        """Validate every field and return the arm. Raises ModelError naming joint and key."""
+        """Validate every field and return the arm. Raises ModelError naming joint and key.
+
+        geometry : capsules on the bodies 0..n (see `twistrate.solver.geometry`), or None for none.
+        """
         if not joints:
             raise field_error(ModelError, "joints", [], "at least one actuated joint")
         seen: set[str] = set()
@@ -292,4 +306,6 @@ class Arm:
                     f"within [{j.position_min}, {j.position_max}]",
                 )
         home.setflags(write=False)
-        return cls(name, tuple(checked), T_root, T_tool, home)
+        names = body_names(tuple(j.name for j in checked))
+        shapes = (geometry or ArmGeometry()).check(n + 1, names)
+        return cls(name, tuple(checked), T_root, T_tool, home, shapes)

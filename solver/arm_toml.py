@@ -23,6 +23,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from twistrate.solver.arm import AXIS_NORM_TOLERANCE, PRISMATIC, REVOLUTE, Arm, Joint, check_transform
 from twistrate.solver.dh import DHRow, dh_chain
 from twistrate.solver.errors import ModelError, field_error
+from twistrate.solver.geometry import ROOT, ArmGeometry, Capsule, body_index, body_names, transform_capsule
 from twistrate.solver.validation import describe
 
 #: The only version of the TOML arm format this parser reads.
@@ -83,6 +84,16 @@ class JointSpec(_Table):
     home_m: float | None = None
 
 
+class CapsuleSpec(_Table):
+    """One capsule: segment a-b (m, in the named link's frame) and its radius (m)."""
+
+    link: Annotated[str, Field(min_length=1)]
+    name: str | None = None
+    a_m: Vec3
+    b_m: Vec3
+    radius_m: Annotated[float, Field(ge=0)]
+
+
 class ArmSpec(_Table):
     """The whole file."""
 
@@ -93,6 +104,8 @@ class ArmSpec(_Table):
     mount: FrameSpec = Field(default_factory=FrameSpec)
     tool: FrameSpec = Field(default_factory=FrameSpec)
     joint: Annotated[list[JointSpec], Field(min_length=1)]
+    capsule: list[CapsuleSpec] = Field(default_factory=list)
+    touching: list[Annotated[list[str], Field(min_length=2, max_length=2)]] = Field(default_factory=list)
 
 
 
@@ -223,18 +236,56 @@ def arm_from_spec(spec: ArmSpec) -> Arm:
         homes.append(home)
 
     T_last_tool = _frame("tool", spec.tool)
+    # Each link's frame in its joint's frame: identity, except a standard DH link i, whose DH
+    # frame {i} sits at the end of A_i(0) (the joint moves at the start of A_i).
+    T_joint_link = [np.eye(4)] * len(joints)
     if use_dh:
         assert spec.dh_convention is not None
         T_prev_list, T_last_extra = dh_chain(dh_rows, spec.dh_convention)
         joints = [Joint(j.name, j.kind, T, j.axis, j.position_min, j.position_max, j.velocity_max,
                         j.acceleration_max) for j, T in zip(joints, T_prev_list, strict=True)]
         T_last_tool = T_last_extra @ T_last_tool
+        if spec.dh_convention == "standard":
+            T_joint_link = [*T_prev_list[1:], T_last_extra]
     T_base_root = _frame("mount", spec.mount)
-    arm = Arm.build(spec.name, joints, T_base_root, T_last_tool, None)
+    geometry = _geometry(spec, tuple(j.name for j in joints), T_joint_link, T_last_tool)
+    arm = Arm.build(spec.name, joints, T_base_root, T_last_tool, None, geometry)
     if any(h is not None for h in homes):
         q_home = [arm.q_home[i] if h is None else h for i, h in enumerate(homes)]
-        arm = Arm.build(spec.name, joints, T_base_root, T_last_tool, q_home)
+        arm = Arm.build(spec.name, joints, T_base_root, T_last_tool, q_home, geometry)
     return arm
+
+
+#: The link name for capsules given in the tool frame (carried by the last joint's link).
+TOOL_LINK = "tool"
+
+
+def _geometry(spec: ArmSpec, joint_names: tuple[str, ...], T_joint_link: list[np.ndarray],
+              T_last_tool: np.ndarray) -> ArmGeometry:
+    """Capsules and touching pairs of the file, end points converted to the bodies' joint frames."""
+    names = body_names(joint_names)
+    capsules = []
+    for k, c in enumerate(spec.capsule):
+        where = f"capsule[{k}]"
+        label = c.name if c.name is not None else f"{c.link}.{k}"
+        raw = Capsule(label, 0, np.array(c.a_m), np.array(c.b_m), c.radius_m)
+        if c.link == TOOL_LINK:
+            capsules.append(transform_capsule(raw, T_last_tool, len(joint_names)))
+        elif c.link in names:
+            body = names.index(c.link)
+            T = np.eye(4) if c.link == ROOT else T_joint_link[body - 1]
+            capsules.append(transform_capsule(raw, T, body))
+        else:
+            raise field_error(ModelError, f"{where}.link", c.link,
+                              f"{ROOT!r}, {TOOL_LINK!r} or a joint name ({', '.join(joint_names)})")
+    touching = set()
+    for k, (x, y) in enumerate(spec.touching):
+        i = body_index(x, names, f"touching[{k}][0]")
+        j = body_index(y, names, f"touching[{k}][1]")
+        if i == j:
+            raise field_error(ModelError, f"touching[{k}]", [x, y], "two different links")
+        touching.add((min(i, j), max(i, j)))
+    return ArmGeometry(tuple(capsules), frozenset(touching))
 
 
 def _missing(field: str, accepted: str) -> ModelError:

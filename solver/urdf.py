@@ -29,6 +29,8 @@ import numpy as np
 from twistrate.solver.arm import PRISMATIC, REVOLUTE, Arm, Joint
 from twistrate.solver.arm_toml import xyz_rpy_transform
 from twistrate.solver.errors import ModelError, field_error
+from twistrate.solver.geometry import ArmGeometry
+from twistrate.solver.urdf_geometry import fixed_descendants, link_capsules
 
 #: Without a given acceleration limit a joint gets velocity_max / DEFAULT_ACCEL_RAMP_S: it can reach
 #: its velocity limit from rest in this time (s). URDF has no acceleration limits.
@@ -72,6 +74,7 @@ def _parse(text: str | bytes, base_link: str | None, tool_link: str | None,
     joints = root.findall("joint")
     by_child: dict[str, ET.Element] = {}
     children: dict[str, list[str]] = {}
+    joints_below: dict[str, list[ET.Element]] = {}
     for el in joints:
         name = el.get("name") or ""
         parent, child = _link_of(el, "parent"), _link_of(el, "child")
@@ -81,6 +84,7 @@ def _parse(text: str | bytes, base_link: str | None, tool_link: str | None,
                               "also has it as child: not a tree)")
         by_child[child] = el
         children.setdefault(parent, []).append(child)
+        joints_below.setdefault(parent, []).append(el)
     known = set(filter(None, links)) | set(by_child) | set(children)
 
     if base_link is None:
@@ -114,6 +118,7 @@ def _parse(text: str | bytes, base_link: str | None, tool_link: str | None,
 
     arm_joints: list[Joint] = []
     pending = np.eye(4)  # fixed transforms accumulated since the last actuated joint
+    chain_links = [(base_link, 0, np.eye(4))]  # (link, body, T_body_link)
     for el in chain:
         name = el.get("name") or ""
         jtype = el.get("type")
@@ -128,16 +133,37 @@ def _parse(text: str | bytes, base_link: str | None, tool_link: str | None,
         pending = pending @ _origin(el, where)
         kind = _KINDS[jtype]
         if kind is None:
+            chain_links.append((_link_of(el, "child"), len(arm_joints), pending))
             continue
         axis = _floats(el.find("axis"), "xyz", "1 0 0", 3, f"{where}.axis.xyz")
         lo, hi, velocity = _limits(el, where, jtype)
         arm_joints.append(Joint(name, kind, pending, axis, lo, hi, velocity, math.nan))  # type: ignore[arg-type]
         pending = np.eye(4)
+        chain_links.append((_link_of(el, "child"), len(arm_joints), pending))
     if not arm_joints:
         raise field_error(ModelError, "chain", f"{base_link} -> {tool_link}",
                           "a chain with at least one revolute, continuous or prismatic joint")
     arm_joints = _with_acceleration(arm_joints, acceleration)
-    return Arm.build(root.get("name") or "urdf", arm_joints, np.eye(4), pending, None)
+    geometry = _geometry(root, chain_links, joints_below)
+    return Arm.build(root.get("name") or "urdf", arm_joints, np.eye(4), pending, None, geometry)
+
+
+def _geometry(root: ET.Element, chain_links: list[tuple[str, int, np.ndarray]],
+              joints_below: dict[str, list[ET.Element]]) -> ArmGeometry:
+    """Capsules fitted to the <collision> shapes of the chain's links and of the links fixed to
+    them off the chain (`twistrate.solver.urdf_geometry`)."""
+    elements = {el.get("name"): el for el in root.findall("link")}
+    on_chain = {name for name, _, _ in chain_links}
+    capsules, unfitted = [], []
+    for name, body, T_body_link in chain_links:
+        found = [(name, T_body_link)] + [(d, T_body_link @ T) for d, T in
+                                         fixed_descendants(name, on_chain, joints_below)]
+        for link, T in found:
+            if link in elements:
+                caps, skipped = link_capsules(elements[link], body, T)
+                capsules += caps
+                unfitted += skipped
+    return ArmGeometry(tuple(capsules), frozenset(), tuple(unfitted))
 
 
 def _link_of(el: ET.Element, tag: str) -> str:

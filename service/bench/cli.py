@@ -9,6 +9,7 @@ import sys
 BENCHMARKS: dict[str, tuple[str, str]] = {
     "solver": ("twistrate.service.bench.solver", "per-tick cost of rate resolution on the example arms"),
     "service": ("twistrate.service.bench.service", "tick timing, latencies and CPU of a running service"),
+    "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
 }
 
 

@@ -32,6 +32,7 @@ from twistrate.service.wire import (
     HealthMessage,
     OutputMessage,
     ReplyMessage,
+    StateMessage,
 )
 from twistrate.solver.errors import ConfigError, ControlError, TwistrateError, WireError, field_error
 
@@ -341,6 +342,10 @@ class Link:
     def receive_health(self, timeout_s: float | None = None) -> HealthMessage:
         """The next health report (other kinds are skipped). Raises LinkTimeoutError."""
         return self._receive_kind(HealthMessage, timeout_s)
+
+    def receive_state(self, timeout_s: float | None = None) -> StateMessage:
+        """The next state report (other kinds are skipped). Raises LinkTimeoutError."""
+        return self._receive_kind(StateMessage, timeout_s)
 
     def receive_event(self, timeout_s: float | None = None) -> EventMessage:
         """The next event (other kinds are skipped). Raises LinkTimeoutError."""

@@ -233,6 +233,7 @@ class Pipeline:
             fut.set_result(result)
         if self.tick % self.health_every == 0 and q is not None:
             self.reports.publish_health(wall, q)
+            self.reports.publish_state(wall, q, qd)
         if self.state.events:
             self.reports.publish_events(wall)
         res = self.last_resolution

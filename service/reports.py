@@ -1,5 +1,6 @@
-"""The pipeline's reports: the health message at its rate (measures of twistrate.solver.health) and the
-events of the tick, encoded and handed to the pipeline's publish function."""
+"""The pipeline's reports: the health and state messages at the health rate (measures of
+twistrate.solver.health; the arm's pose) and the events of the tick, encoded and handed to the
+pipeline's publish function."""
 
 from __future__ import annotations
 
@@ -77,6 +78,29 @@ class HealthReporter:
         p.publish(wire.TOPIC_HEALTH, data)
         tel.out_seq["health"] += 1
         tel.counts["health_messages"] += 1
+
+    def publish_state(self, wall: int, q: np.ndarray, qd: np.ndarray) -> None:
+        """The state message at q (n,) with the commanded rates qd (n,): tool pose, joint origins and the
+        translational manipulability ellipsoid (singular value decomposition of J_v = J[:3], base frame)."""
+        p = self.p
+        tel = p.telemetry
+        try:
+            frames, J = p.kinematics(q)
+            U, s, _ = np.linalg.svd(J[:3], full_matrices=True)
+            radii = np.zeros(3)
+            radii[:s.size] = s
+            T = frames.T_base_tool
+            origins = np.vstack((np.zeros((1, 3)), frames.p_base, T[None, :3, 3]))
+            data = wire.encode_state(seq=tel.out_seq["state"], stamp_ns=wall, tick=p.tick, position=q,
+                                     rate=qd, tool_position=T[:3, 3], tool_rotation=T[:3, :3],
+                                     origins=origins, ellipsoid_radii=radii, ellipsoid_axes=U)
+        except (InputError, np.linalg.LinAlgError, ValueError) as exc:
+            tel.counts["publish_failed"] += 1
+            p.rlog.warning("state", p.clock(), f"state not published: {exc}")
+            return
+        p.publish(wire.TOPIC_STATE, data)
+        tel.out_seq["state"] += 1
+        tel.counts["state_messages"] += 1
 
     def publish_events(self, wall: int) -> None:
         p = self.p

@@ -19,8 +19,9 @@ from twistrate.service.tick import LatencyHistogram, Ticker
 from twistrate.solver.arm import Arm
 
 #: Counters every service has from the start (docs/operation.md "Counters").
-COUNTER_NAMES = ("accepted_twist", "accepted_joints", "commands", "health_messages", "events", "faults",
-                 "limit_events", "publish_failed", "solver_errors", "speculation_used", "gc_collections")
+COUNTER_NAMES = ("accepted_twist", "accepted_joints", "commands", "health_messages", "state_messages",
+                 "events", "faults", "limit_events", "publish_failed", "solver_errors", "speculation_used",
+                 "gc_collections")
 #: Latency histograms (name -> what it measures), reported as NAME_median_ns / _p99_ns / _max_ns.
 HISTOGRAMS = {
     "lateness": "tick wake-up after its deadline",
@@ -92,7 +93,7 @@ class Telemetry:
         self.hist: dict[str, LatencyHistogram] = {
             name: ticker.lateness if name == "lateness" else LatencyHistogram() for name in HISTOGRAMS}
         #: next seq of each output kind
-        self.out_seq = {"command": 0, "health": 0, "event": 0}
+        self.out_seq = {"command": 0, "health": 0, "event": 0, "state": 0}
 
     def reject(self, reason: str) -> None:
         self.rejected[reason] = self.rejected.get(reason, 0) + 1

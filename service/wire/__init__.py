@@ -24,8 +24,10 @@ from twistrate.service.wire.messages import (
     OutputMessage,
     ReplyMessage,
     RequestMessage,
+    StateMessage,
     TwistMessage,
 )
+from twistrate.service.wire.state import decode_state, encode_state
 from twistrate.service.wire.stream import (
     decode_command,
     decode_event,
@@ -43,8 +45,8 @@ from twistrate.service.wire.stream import (
 
 __all__ = [
     "CommandMessage", "EventMessage", "HealthMessage", "IntakeMessage", "JointsMessage", "OutputMessage",
-    "ReplyMessage", "RequestMessage", "TwistMessage", "decode_command", "decode_event", "decode_health",
-    "decode_intake", "decode_joints", "decode_output", "decode_reply", "decode_request", "decode_twist",
-    "encode_command", "encode_event", "encode_health", "encode_joints", "encode_reply", "encode_request",
-    "encode_twist", "error_code", "now_ns", "peek_request",
+    "ReplyMessage", "RequestMessage", "StateMessage", "TwistMessage", "decode_command", "decode_event",
+    "decode_health", "decode_intake", "decode_joints", "decode_output", "decode_reply", "decode_request",
+    "decode_state", "decode_twist", "encode_command", "encode_event", "encode_health", "encode_joints",
+    "encode_reply", "encode_request", "encode_state", "encode_twist", "error_code", "now_ns", "peek_request",
 ]

@@ -12,17 +12,19 @@ TOPIC_JOINTS = b"joints"
 TOPIC_COMMAND = b"command"
 TOPIC_HEALTH = b"health"
 TOPIC_EVENT = b"event"
+TOPIC_STATE = b"state"
 KIND_TWIST = "twist"
 KIND_JOINTS = "joints"
 KIND_COMMAND = "command"
 KIND_HEALTH = "health"
 KIND_EVENT = "event"
+KIND_STATE = "state"
 KIND_REQUEST = "request"
 KIND_REPLY = "reply"
-KINDS: tuple[str, ...] = (KIND_TWIST, KIND_JOINTS, KIND_COMMAND, KIND_HEALTH, KIND_EVENT, KIND_REQUEST,
-                          KIND_REPLY)
+KINDS: tuple[str, ...] = (KIND_TWIST, KIND_JOINTS, KIND_COMMAND, KIND_HEALTH, KIND_EVENT, KIND_STATE,
+                          KIND_REQUEST, KIND_REPLY)
 INTAKE_TOPICS: tuple[bytes, ...] = (TOPIC_TWIST, TOPIC_JOINTS)
-OUTPUT_TOPICS: tuple[bytes, ...] = (TOPIC_COMMAND, TOPIC_HEALTH, TOPIC_EVENT)
+OUTPUT_TOPICS: tuple[bytes, ...] = (TOPIC_COMMAND, TOPIC_HEALTH, TOPIC_EVENT, TOPIC_STATE)
 
 # --- default endpoints (the service binds, everyone else connects; loopback by default) -----------
 DEFAULT_INTAKE = "tcp://127.0.0.1:47310"
@@ -84,6 +86,7 @@ MAX_JOINTS_BYTES = 2048
 MAX_COMMAND_BYTES = 2048
 MAX_HEALTH_BYTES = 8192
 MAX_EVENT_BYTES = 4096
+MAX_STATE_BYTES = 8192
 MAX_CONTROL_BYTES = 16384
 MAX_TOPIC_BYTES = 16
 
@@ -100,6 +103,10 @@ MAX_JOINT_POSITION = 1000.0
 MAX_JOINT_VELOCITY = 100.0
 #: largest number of joints any message carries
 MAX_JOINTS = 32
+#: |each component| of a point of the arm in the base frame (state.tool, state.origins), m
+MAX_REACH_M = 100.0
+#: |each entry| of a rotation matrix or a unit axis (1 plus rounding)
+MAX_UNIT = 1.0 + 1e-9
 #: largest health measure (manipulability, singular values, damping), SI
 MAX_MEASURE = 1e9
 #: |each component| of the weakest direction's linear part, m/s per unit weighted twist (a component

@@ -106,6 +106,30 @@ class EventMessage(NamedTuple):
     mode: str
 
 
+class StateMessage(NamedTuple):
+    """A decoded state report: where the arm is, for drawing and for pose-based clients.
+
+    position : (n,) joint positions the tick used, rad or m. rate : (n,) rates commanded that tick.
+    tool_position : (3,) m and tool_rotation : (3, 3) of T_base_tool, base frame.
+    origins : (n + 2, 3) m, base frame: the base origin, each joint's origin in chain order, the tool
+        origin (a polyline of the arm).
+    ellipsoid_radii : (3,) and ellipsoid_axes : (3, 3) (columns the principal axes, base frame): the
+        translational manipulability ellipsoid of J_v, {J_v qd : |qd| <= 1}; radii are the singular
+        values of J_v, m/s per rad/s (per unit joint-rate norm), descending.
+    """
+
+    seq: int
+    stamp_ns: int
+    tick: int
+    position: np.ndarray
+    rate: np.ndarray
+    tool_position: np.ndarray
+    tool_rotation: np.ndarray
+    origins: np.ndarray
+    ellipsoid_radii: np.ndarray
+    ellipsoid_axes: np.ndarray
+
+
 class RequestMessage(NamedTuple):
     """A decoded control request. args : the op's own fields (see REQUEST_ARGS)."""
 
@@ -127,5 +151,5 @@ class ReplyMessage(NamedTuple):
     error_message: str | None
 
 
-OutputMessage = CommandMessage | HealthMessage | EventMessage
+OutputMessage = CommandMessage | HealthMessage | EventMessage | StateMessage
 IntakeMessage = TwistMessage | JointsMessage

@@ -69,6 +69,7 @@ from twistrate.service.wire.constants import (
     TOPIC_EVENT,
     TOPIC_HEALTH,
     TOPIC_JOINTS,
+    TOPIC_STATE,
     TOPIC_TWIST,
     TWIST_FRAMES,
 )
@@ -80,6 +81,7 @@ from twistrate.service.wire.messages import (
     OutputMessage,
     TwistMessage,
 )
+from twistrate.service.wire.state import decode_state
 
 _TWIST_REQUIRED = frozenset((*HEADER_KEYS, "linear", "angular", "frame", "lease"))
 _TWIST_OPTIONAL = frozenset(("point",))
@@ -391,5 +393,7 @@ def decode_output(frames: Sequence[bytes], n: int | None = None) -> OutputMessag
         return decode_health(frames[1], n)
     if topic == TOPIC_EVENT:
         return decode_event(frames[1])
+    if topic == TOPIC_STATE:
+        return decode_state(frames[1], n)
     raise wire_fail("unknown_kind", "topic", bytes(topic[:MAX_TOPIC_BYTES]),
-                    "b'command', b'health' or b'event'")
+                    "b'command', b'health', b'event' or b'state'")

@@ -5,6 +5,7 @@ pipeline's publish function."""
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -61,46 +62,51 @@ class HealthReporter:
             "limit_margin": h.limit_margin,
         }
 
-    def publish_health(self, wall: int, q: np.ndarray) -> None:
+    def _publish(self, kind: str, topic: bytes, encode: Callable[[int], bytes]) -> None:
+        """Encode (with the kind's next seq) and publish one report; a failure is counted and logged at a
+        bounded rate, never raised into the tick."""
         p = self.p
         tel = p.telemetry
         try:
-            h = self.measure(q)
-            self.last = h
-            data = wire.encode_health(seq=tel.out_seq["health"], stamp_ns=wall, tick=p.tick,
-                                      damping=p.damping, scale=min(1.0, max(0.0, p.scale)),
-                                      state=p.health_state, mode=p.mode, rejected=tel.rejected,
-                                      overruns=tel.ticker.overruns, **h)
+            data = encode(tel.out_seq[kind])
         except (InputError, np.linalg.LinAlgError, ValueError) as exc:
             tel.counts["publish_failed"] += 1
-            p.rlog.warning("health", p.clock(), f"health not published: {exc}")
+            p.rlog.warning(kind, p.clock(), f"{kind} not published: {exc}")
             return
-        p.publish(wire.TOPIC_HEALTH, data)
-        tel.out_seq["health"] += 1
-        tel.counts["health_messages"] += 1
+        p.publish(topic, data)
+        tel.out_seq[kind] += 1
+        tel.counts[f"{kind}_messages"] += 1
+
+    def publish_health(self, wall: int, q: np.ndarray) -> None:
+        p = self.p
+
+        def encode(seq: int) -> bytes:
+            h = self.measure(q)
+            self.last = h
+            return wire.encode_health(seq=seq, stamp_ns=wall, tick=p.tick, damping=p.damping,
+                                      scale=min(1.0, max(0.0, p.scale)), state=p.health_state, mode=p.mode,
+                                      rejected=p.telemetry.rejected, overruns=p.telemetry.ticker.overruns,
+                                      **h)
+
+        self._publish("health", wire.TOPIC_HEALTH, encode)
 
     def publish_state(self, wall: int, q: np.ndarray, qd: np.ndarray) -> None:
         """The state message at q (n,) with the commanded rates qd (n,): tool pose, joint origins and the
         translational manipulability ellipsoid (singular value decomposition of J_v = J[:3], base frame)."""
         p = self.p
-        tel = p.telemetry
-        try:
+
+        def encode(seq: int) -> bytes:
             frames, J = p.kinematics(q)
             U, s, _ = np.linalg.svd(J[:3], full_matrices=True)
             radii = np.zeros(3)
             radii[:s.size] = s
             T = frames.T_base_tool
             origins = np.vstack((np.zeros((1, 3)), frames.p_base, T[None, :3, 3]))
-            data = wire.encode_state(seq=tel.out_seq["state"], stamp_ns=wall, tick=p.tick, position=q,
-                                     rate=qd, tool_position=T[:3, 3], tool_rotation=T[:3, :3],
-                                     origins=origins, ellipsoid_radii=radii, ellipsoid_axes=U)
-        except (InputError, np.linalg.LinAlgError, ValueError) as exc:
-            tel.counts["publish_failed"] += 1
-            p.rlog.warning("state", p.clock(), f"state not published: {exc}")
-            return
-        p.publish(wire.TOPIC_STATE, data)
-        tel.out_seq["state"] += 1
-        tel.counts["state_messages"] += 1
+            return wire.encode_state(seq=seq, stamp_ns=wall, tick=p.tick, position=q, rate=qd,
+                                     tool_position=T[:3, 3], tool_rotation=T[:3, :3], origins=origins,
+                                     ellipsoid_radii=radii, ellipsoid_axes=U)
+
+        self._publish("state", wire.TOPIC_STATE, encode)
 
     def publish_events(self, wall: int) -> None:
         p = self.p

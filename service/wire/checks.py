@@ -181,6 +181,23 @@ def dec_vec_any(v: object, name: str, bound: float, lo_len: int, hi_len: int) ->
     return dec_vec(v, name, len(v), bound)
 
 
+def open_map(data: bytes, cap: int, kind: str, keys: frozenset[str], hot: bool) -> tuple[dict, int, int]:
+    """(map, seq, stamp_ns) of a message whose key set is exactly `keys`: size, msgpack, header, keys."""
+    m = unpack(data, cap, kind, hot)
+    check_header(m, kind)
+    if m.keys() != keys:
+        raise key_error(m, kind, keys, frozenset())
+    seq, stamp = seq_stamp(m, kind)
+    return m, seq, stamp
+
+
+def dec_joint_vec(v: object, name: str, n: int | None, bound: float) -> np.ndarray:
+    """A joint array: exactly n numbers, or 1 to MAX_JOINTS when n is None (the receiver does not know n)."""
+    if n is None:
+        return dec_vec_any(v, name, bound, 1, MAX_JOINTS)
+    return dec_vec(v, name, n, bound)
+
+
 def seq_stamp(m: dict, kind: str) -> tuple[int, int]:
     seq = m["seq"]
     stamp = m["stamp_ns"]

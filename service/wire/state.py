@@ -7,19 +7,16 @@ import numpy as np
 
 from twistrate.service.wire.checks import (
     HEADER_KEYS,
-    check_header,
     dec_int,
+    dec_joint_vec,
     dec_vec,
-    dec_vec_any,
     enc_floats,
     enc_int,
     header,
     input_fail,
-    key_error,
+    open_map,
     pack,
-    seq_stamp,
     submap,
-    unpack,
     wire_fail,
 )
 from twistrate.service.wire.constants import (
@@ -66,17 +63,10 @@ def encode_state(*, seq: int, stamp_ns: int | None, tick: int, position: np.ndar
 
 def decode_state(data: bytes, n: int | None = None) -> StateMessage:
     """Decode and check a state report; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m = unpack(data, MAX_STATE_BYTES, KIND_STATE, False)
-    check_header(m, KIND_STATE)
-    if m.keys() != _STATE_KEYS:
-        raise key_error(m, KIND_STATE, _STATE_KEYS, frozenset())
-    seq, stamp = seq_stamp(m, KIND_STATE)
+    m, seq, stamp = open_map(data, MAX_STATE_BYTES, KIND_STATE, _STATE_KEYS, False)
     tick = dec_int(m["tick"], "state.tick", 0, SEQ_MAX)
-    if n is None:
-        position = dec_vec_any(m["position"], "state.position", MAX_JOINT_POSITION, 1, MAX_JOINTS)
-        n = len(position)
-    else:
-        position = dec_vec(m["position"], "state.position", n, MAX_JOINT_POSITION)
+    position = dec_joint_vec(m["position"], "state.position", n, MAX_JOINT_POSITION)
+    n = len(position)
     rate = dec_vec(m["rate"], "state.rate", n, MAX_JOINT_VELOCITY)
     tool = submap(m["tool"], "state.tool", _TOOL_KEYS)
     tool_position = dec_vec(tool["position"], "state.tool.position", 3, MAX_REACH_M)

@@ -18,6 +18,7 @@ from twistrate.service.wire.checks import (
     HEADER_KEYS,
     check_header,
     dec_int,
+    dec_joint_vec,
     dec_num,
     dec_str,
     dec_vec,
@@ -29,6 +30,7 @@ from twistrate.service.wire.checks import (
     header,
     input_fail,
     key_error,
+    open_map,
     pack,
     seq_stamp,
     submap,
@@ -206,17 +208,10 @@ def encode_command(*, seq: int, stamp_ns: int, tick: int, rate: np.ndarray, targ
 
 def decode_command(data: bytes, n: int | None = None) -> CommandMessage:
     """Decode and check a command; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m = unpack(data, MAX_COMMAND_BYTES, KIND_COMMAND, True)
-    check_header(m, KIND_COMMAND)
-    if m.keys() != _COMMAND_KEYS:
-        raise key_error(m, KIND_COMMAND, _COMMAND_KEYS, frozenset())
-    seq, stamp = seq_stamp(m, KIND_COMMAND)
+    m, seq, stamp = open_map(data, MAX_COMMAND_BYTES, KIND_COMMAND, _COMMAND_KEYS, True)
     tick = dec_int(m["tick"], "command.tick", 0, SEQ_MAX)
-    if n is None:
-        rate = dec_vec_any(m["rate"], "command.rate", MAX_JOINT_VELOCITY, 1, MAX_JOINTS)
-        n = len(rate)
-    else:
-        rate = dec_vec(m["rate"], "command.rate", n, MAX_JOINT_VELOCITY)
+    rate = dec_joint_vec(m["rate"], "command.rate", n, MAX_JOINT_VELOCITY)
+    n = len(rate)
     target = dec_vec(m["target"], "command.target", n, MAX_JOINT_POSITION)
     answers = dec_int(m["answers"], "command.answers", -1, SEQ_MAX)
     scale = dec_num(m["scale"], "command.scale", 0.0, 1.0)
@@ -286,11 +281,7 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
 
 def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
     """Decode and check a health report; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m = unpack(data, MAX_HEALTH_BYTES, KIND_HEALTH, False)
-    check_header(m, KIND_HEALTH)
-    if m.keys() != _HEALTH_KEYS:
-        raise key_error(m, KIND_HEALTH, _HEALTH_KEYS, frozenset())
-    seq, stamp = seq_stamp(m, KIND_HEALTH)
+    m, seq, stamp = open_map(data, MAX_HEALTH_BYTES, KIND_HEALTH, _HEALTH_KEYS, False)
     tick = dec_int(m["tick"], "health.tick", 0, SEQ_MAX)
     man = submap(m["manipulability"], "health.manipulability", _MANIP_KEYS)
     whole = dec_num(man["whole"], "health.manipulability.whole", 0.0, MAX_MEASURE)
@@ -352,11 +343,7 @@ def encode_event(*, seq: int, tick: int, event: str, detail: str, mode: str,
 
 def decode_event(data: bytes) -> EventMessage:
     """Decode and check an event."""
-    m = unpack(data, MAX_EVENT_BYTES, KIND_EVENT, False)
-    check_header(m, KIND_EVENT)
-    if m.keys() != _EVENT_KEYS:
-        raise key_error(m, KIND_EVENT, _EVENT_KEYS, frozenset())
-    seq, stamp = seq_stamp(m, KIND_EVENT)
+    m, seq, stamp = open_map(data, MAX_EVENT_BYTES, KIND_EVENT, _EVENT_KEYS, False)
     tick = dec_int(m["tick"], "event.tick", 0, SEQ_MAX)
     event = dec_str(m["event"], "event.event", MAX_NAME_CHARS)
     detail = dec_str(m["detail"], "event.detail", MAX_TEXT_CHARS, allow_empty=True)

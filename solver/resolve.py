@@ -43,7 +43,7 @@ from typing import Literal
 import numpy as np
 
 from twistrate.solver.arm import Arm
-from twistrate.solver.damping import task_coefficients
+from twistrate.solver.damping import damping_factor, task_coefficients
 from twistrate.solver.errors import ConfigError, InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
@@ -56,11 +56,11 @@ from twistrate.solver.limits import (
     brake_along,
     plan_bounds,
     rate_bounds,
-    saturate,
     within_bounds,
 )
-from twistrate.solver.nullspace import LinearObjective, linear_objective, project
+from twistrate.solver.nullspace import LinearObjective, linear_objective
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
+from twistrate.solver.scaling import TRACK_DAMPING_MIN, bounded_damped_rates, max_scale
 from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 
 __all__ = [
@@ -119,6 +119,11 @@ class Resolution:
         m (D = W^-1/2 is the identity unless options.joint_weights is set).
     U : (6, min(6, n)) left singular vectors of the task-weighted Jacobian, base frame, (v, w)
         rows (angular rows in the weighted units).
+    tracking : True when no scale in [0, 1] was feasible and the rates are the bounded damped
+        least-squares ones (`twistrate.solver.scaling.bounded_damped_rates`): scale is 0 and
+        twist_achieved is the nearest twist the bounds allow, in nearly the asked direction.
+    twist_error (property) : (6,) twist_achieved - twist_desired, base frame, tool point, (v, w),
+        m/s and rad/s: what the tick fell short of, from scaling, damping or tracking together.
     """
 
     qd: np.ndarray
@@ -131,6 +136,7 @@ class Resolution:
     J: np.ndarray
     singular_values: np.ndarray
     U: np.ndarray
+    tracking: bool
 
     def __init__(
         self,
@@ -144,6 +150,7 @@ class Resolution:
         J: np.ndarray,
         singular_values: np.ndarray,
         U: np.ndarray,
+        tracking: bool = False,
     ) -> None:
         # Frozen: fill __dict__ directly, once per tick (cheaper than ten object.__setattr__ calls).
         fields = self.__dict__
@@ -157,6 +164,12 @@ class Resolution:
         fields["J"] = J
         fields["singular_values"] = singular_values
         fields["U"] = U
+        fields["tracking"] = tracking
+
+    @property
+    def twist_error(self) -> np.ndarray:
+        """(6,) twist_achieved - twist_desired, base frame, tool point, rows (v, w), m/s and rad/s."""
+        return self.twist_achieved - self.twist_desired
 
 
 
@@ -388,12 +401,15 @@ def _rates(
 
     scale = 1.0
     iterations = 0
+    tracking = False
     bplan = plan.bounds
     if bplan is not None and within_bounds(bplan, q, qd_prev, qd):
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
-            qd, scale, bits, iterations = _enforce(A, J, U, s, Vh, coef, y0, rank, tol, plan, q, qd_prev)
+            qd, scale, bits, iterations, tracking = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
+                                                             x * plan.task_scale, plan, q, qd_prev,
+                                                             options)
         else:
             bits = np.zeros(n, dtype=np.uint8)
         ok = np.isfinite(qd)
@@ -403,7 +419,7 @@ def _rates(
     # Positional, in field order (qd, twist_desired, twist_achieved, scale, damping, limits_active,
     # frames, J, singular_values, U): keyword passing costs about 0.5 us per tick.
     U_k = U if k == U.shape[1] else U[:, :k]
-    return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k), iterations
+    return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k, tracking), iterations
 
 
 def _objective_rates(
@@ -432,61 +448,93 @@ def _enforce(
     coef: np.ndarray,
     y0: np.ndarray | None,
     rank: int,
-    tol: float,
+    lam: float,
+    x_w: np.ndarray,
     plan: _Plan,
     q: np.ndarray,
     qd_prev: np.ndarray,
-) -> tuple[np.ndarray, float, np.ndarray, int]:
-    """Slow path: saturation in the null space with task scaling. Returns (qd, scale, bits, passes).
+    options: SolverOptions,
+) -> tuple[np.ndarray, float, np.ndarray, int, bool]:
+    """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking).
 
     A : (6, n) weighted Jacobian, J : (6, n) the geometric Jacobian, (U (6, 6), s, Vh (n, n)) the SVD
     of A, rank its numerical rank; coef : (rank,) task rates in the basis Vh[:rank]; y0 : the
-    objective rates when the fast path computed them (rank < n), else None (evaluated here).
-    When rank < 6 the task equations are restricted to the range of A (U_r^T A y = s U_r^T x_d;
-    the other rows are zero to the rank tolerance for every y), so the saturation works with a
-    full-row-rank matrix and its optimality refinement applies.
+    objective rates when the fast path computed them (rank < n), else None (evaluated here);
+    lam : the tick's damping factor (m); x_w : (6,) the asked twist, task-weighted (m/s).
+    The largest scale of the damped twist comes from `twistrate.solver.scaling.max_scale` on the
+    null-space parametrisation y = s y_task + Vh[rank:]^T z (exact for every rank, so rank < 6 needs
+    no special treatment). Passes: 1 for the scaling solve, 2 when tracking followed.
     """
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
     n = q.shape[0]
-    y_task = coef.dot(Vh[:rank])
     if y0 is None:
         y0 = _objective_rates(plan, q, J, U, s, Vh)
-    y_null = project(Vh, rank, y0) if y0 is not None and rank < n else None
     lo_y, hi_y = (bounds.lo, bounds.hi) if d is None else (bounds.lo / d, bounds.hi / d)
-    b0 = np.zeros(n) if y_null is None else y_null
-    iterations = 0
+    tracking = False
     if rank == 0:  # no task direction at all: only the objectives move the arm, clipped
-        y: np.ndarray | None = np.minimum(np.maximum(b0, lo_y), hi_y)
+        y: np.ndarray | None = np.minimum(np.maximum(np.zeros(n) if y0 is None else y0, lo_y), hi_y)
         scale = 1.0
+        passes = 1
     else:
-        if rank < A.shape[0]:
-            Ur = U[:, :rank]
-            A_t, x_t = Ur.T @ A, Ur.T @ (A @ y_task)
+        Vn = Vh[rank:]
+        z_pref = None if y0 is None or rank == n else Vn.dot(y0)
+        a = coef.dot(Vh[:rank])
+        a, lam = _resting_damping(A, a, x_w, lam, bounds, plan, options, d)
+        found = max_scale(a, Vn.T, lo_y, hi_y, z_pref)
+        passes = 1
+        if found is not None:
+            scale, y = found
         else:
-            A_t, x_t = A, A @ y_task  # x_t: the damped twist, weighted units (module docstring)
-        sat = saturate(A_t, x_t, y_task, b0, y0, lo_y, hi_y, rank, tol, refine=True)
-        iterations = sat.iterations
-        if sat.scale < 1.0:
-            # Second start: the null-space rates nearest the previous rates (least joint
-            # acceleration). Under acceleration bounds the feasible rates lie near qd_prev, which
-            # the minimum-norm start can miss; the task has priority over the objectives.
-            y_prev = qd_prev if d is None else qd_prev / d
-            near = saturate(A_t, x_t, y_task, project(Vh, rank, y_prev), y_prev, lo_y, hi_y, rank, tol,
-                            refine=True)
-            iterations += near.iterations
-            if near.y is not None and (sat.y is None or near.scale > sat.scale):
-                sat = near
-        y, scale = sat.y, sat.scale
-    if y is None:
+            scale, y, passes = 0.0, None, 2
+            if x_w.any():  # track: the bounded damped least-squares rates (twistrate.solver.scaling)
+                tracking = True
+                y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
+                y_prev = qd_prev if d is None else qd_prev / d
+                y = bounded_damped_rates(A, x_w, lo_y, hi_y, max(lam, TRACK_DAMPING_MIN), y_ref, y_prev)
+    if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
-        scale = 0.0
     else:
         if d is not None:
             y = y * d
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
-    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), iterations
+    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking
+
+
+def _resting_damping(
+    A: np.ndarray, a: np.ndarray, x_w: np.ndarray, lam: float, bounds, plan: _Plan, options: SolverOptions,
+    d: np.ndarray | None,
+) -> tuple[np.ndarray, float]:
+    """Damping of the joints the position limits leave free, and the task rates it gives.
+
+    A joint "rests" when the task rate a_i (weighted) pushes it toward a limit it is within one tick
+    of braking of (position speed bound on that side <= A T): it cannot help the task any more, and
+    the other joints may be near a singularity of their own that the damping of the whole A (lam)
+    does not see. Then the damping policy is applied to the singular values of A without the resting
+    columns; if that asks for more damping, the task rates become the damped least-squares rates of
+    those joints alone (resting joints 0), whose twist A a is the new damped twist the scaling
+    problem scales. Returns (a (n,), damping (m)).
+    """
+    n = a.shape[0]
+    speed = bounds.speed
+    reach = plan.bounds.AT_n if d is None else plan.bounds.AT_n / d
+    lo_side = speed[:n] if d is None else speed[:n] / d
+    hi_side = speed[n:] if d is None else speed[n:] / d
+    resting = ((a < 0.0) & (lo_side <= reach)) | ((a > 0.0) & (hi_side <= reach))
+    if not resting.any() or resting.all():
+        return a, lam
+    keep = ~resting
+    A_e = A[:, keep]
+    U_e, s_e, Vh_e = svd_full(A_e)
+    lam_e = damping_factor(s_e, options)
+    if lam_e <= lam:
+        return a, lam
+    r = numerical_rank(s_e, max(RANK_RTOL * float(s_e[0]), RANK_ATOL)) if s_e.size else 0
+    coef = (x_w @ U_e[:, :r]) * (s_e[:r] / (s_e[:r] ** 2 + lam_e * lam_e))
+    out = np.zeros(n)
+    out[keep] = coef @ Vh_e[:r]
+    return out, lam_e
 
 
 def _finite_fallback(plan: _Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:

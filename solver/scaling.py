@@ -1,0 +1,276 @@
+"""The task-scaling problem of one tick, solved exactly: the largest scale, and the bounded damped
+least-squares rates when no scale exists.
+
+Problem (weighted joint coordinates y, q_dot = D y; Flacco, De Luca & Khatib 2015, IEEE T-RO 31(3),
+the task scaling problem):
+
+    maximise s  subject to  A y = s x_d,  lo <= y <= hi,  0 <= s <= 1,
+
+A the (m, n) weighted Jacobian of rank r, x_d = A a the damped twist, a (n,) the damped task rates
+(in the row space of A). Design: every solution of A y = s x_d is y = s a + N z with N = Vh[r:]^T the
+(n, k) orthonormal null-space basis from the tick's own SVD (k = n - r), so the problem becomes an
+LP in w = (s, z), only 1 + k unknowns, with the 2n rate bounds as inequalities. No reduced
+Jacobian is ever formed, so no rank test can stop the search early (the greedy loop of
+`twistrate.solver.limits.saturate` stopped when dropping a joint lost rank, e.g. the elbow of a
+shoulder-elbow-wrist arm, and braked although a scale existed), and A y = s x_d holds by
+construction: the twist is scaled along its own direction, never bent.
+
+* k = 0 (6 joints, or fewer with full column rank): the scale interval is a ratio test.
+* k = 1 (7-joint arms): z is eliminated exactly (Fourier-Motzkin elimination; Dantzig & Eaves 1973,
+  J. Comb. Theory A 14, "Fourier-Motzkin elimination and its dual"): every pair of an upper and a
+  lower bound on z gives one linear condition on s, at most n^2 of them, all in a few vectorised
+  products; the largest s meeting all is the optimum. Cost independent of which bounds bind.
+* k >= 2: a primal active-set method on the (1 + k)-dimensional LP (Nocedal & Wright 2006,
+  "Numerical Optimization", 2nd ed., sections 16.5 and 13; the projected objective as the
+  direction, Bland's rule against cycling), with its phase 1 (minimise the largest bound violation
+  t, itself an LP started feasible) deciding feasibility.
+
+Secondary goal (the null-space objectives): among the rates of maximal scale, the one nearest the
+objective rates: z closest to z_pref = N^T y_0 (so y closest to s a + N N^T y_0, the unconstrained
+tick's own choice when s = 1). For k = 1 that is a clip of z_pref into the interval left at s*; for
+k >= 2 a least-distance QP with the same active-set method.
+
+No scale (the LP is infeasible: the previous rate cannot reach any task-consistent rate within one
+tick of acceleration): `bounded_damped_rates` gives the rates within the bounds whose weighted twist
+comes closest to the asked one,
+
+    minimise |A y - x_w|^2 + mu^2 |y - y_null|^2  subject to  lo <= y <= hi,
+
+the Euclidean norm of the task-weighted twist error (m/s; the norm the damped least squares of the
+free tick minimises, so with no bound active the answer is the free tick's own rates y_task + y_null
+when mu is its damping factor). Euclidean and damped because the solution is then unique and
+Lipschitz in the data: where the norm is flat (a singular direction) the damping term decides, so
+the rates do not jump between ticks; a max-norm or 1-norm fit would jump between vertices. Solved
+by the active-set method for bound-constrained least squares (Stark & Parker 1995, Comput. Stat. 10,
+"Bounded-variable least-squares: an algorithm and applications"; here on the stacked matrix
+[A; mu I], so every subproblem is regular).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: Slack (weighted rad/s) of the rate bounds inside the LP (rounding; the caller clips into them).
+BOUND_TOL = 1e-12
+#: Null-space components |N_ij| at most this are treated as 0 (the joint does not move along z_j).
+NULL_EPS = 1e-12
+#: Phase 1 accepts a point whose largest bound violation is at most this (weighted rad/s).
+FEASIBLE_TOL = 1e-10
+#: Relative size below which a projected direction or a multiplier counts as zero (active set).
+ACTIVE_RTOL = 1e-12
+#: Most iterations of an active-set solve per constraint (Bland's rule terminates far earlier).
+ACTIVE_MAX_PER_ROW = 4
+#: Smallest damping mu of the bounded least squares (m): keeps the problem strictly convex when
+#: the tick's damping factor is 0; its effect on a well-conditioned fit is of order (mu / s_min)^2.
+TRACK_DAMPING_MIN = 1e-3
+
+
+def max_scale(
+    a: np.ndarray, N: np.ndarray, lo: np.ndarray, hi: np.ndarray, z_pref: np.ndarray | None
+) -> tuple[float, np.ndarray] | None:
+    """Largest s in [0, 1] with y = s a + N z inside [lo, hi] (module docstring), and that y.
+
+    a : (n,) task rates of the whole damped twist, weighted joint coordinates. N : (n, k)
+    orthonormal basis of the null space of A (k >= 0). lo, hi : (n,) rate bounds, lo <= hi.
+    z_pref : (k,) preferred null-space coordinates (N^T y_0 of the objectives) or None (zeros).
+    Returns (s, y (n,)) or None when no s in [0, 1] is feasible. y may exceed the bounds by
+    BOUND_TOL (the caller clips).
+    """
+    k = N.shape[1]
+    lo_t = lo - BOUND_TOL
+    hi_t = hi + BOUND_TOL
+    if k == 0:
+        found = _scale_range(np.concatenate((hi_t, -lo_t)), np.concatenate((a, -a)))
+        if found is None:
+            return None
+        s = found[1]
+        return s, s * a
+    if k == 1:
+        return _max_scale_one(a, N[:, 0], lo_t, hi_t, 0.0 if z_pref is None else float(z_pref[0]))
+    return _max_scale_general(a, N, lo_t, hi_t, np.zeros(k) if z_pref is None else z_pref)
+
+
+def _scale_range(h: np.ndarray, f: np.ndarray) -> tuple[float, float] | None:
+    """Interval [s_lo, s_hi] within [0, 1] of s with s f <= h (elementwise; h, f (p,)), or None."""
+    up = f > 0.0
+    down = f < 0.0
+    flat = ~(up | down)
+    if flat.any() and h[flat].min() < 0.0:
+        return None
+    s_hi = min(1.0, float((h[up] / f[up]).min())) if up.any() else 1.0
+    s_lo = max(0.0, float((h[down] / f[down]).max())) if down.any() else 0.0
+    if s_lo > s_hi:
+        return None
+    return s_lo, s_hi
+
+
+def _max_scale_one(
+    a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float
+) -> tuple[float, np.ndarray] | None:
+    """k = 1: eliminate z (Fourier-Motzkin). Constraints g z + f s <= h with g = (nv, -nv),
+    f = (a, -a), h = (hi, -lo). An upper bound on z (g_p > 0) and a lower one (g_q < 0) combine with
+    the positive multipliers (|g_q|, g_p) into (f_p |g_q| + f_q g_p) s <= h_p |g_q| + h_q g_p; a joint
+    with |g| <= NULL_EPS bounds s directly."""
+    moves = np.abs(nv) > NULL_EPS
+    pos = nv > 0.0
+    # per joint: the constraint that bounds z from above, and the one from below
+    g_up = np.abs(nv[moves])
+    up_sel = pos[moves]
+    h_up = np.where(up_sel, hi_t[moves], -lo_t[moves])
+    f_up = np.where(up_sel, a[moves], -a[moves])
+    h_dn = np.where(up_sel, -lo_t[moves], hi_t[moves])
+    f_dn = np.where(up_sel, -a[moves], a[moves])
+    g_dn = g_up  # |g| of the lower-bounding constraint (the same joint's other side)
+    H = np.multiply.outer(h_up, g_dn)
+    H += np.multiply.outer(g_up, h_dn)
+    F = np.multiply.outer(f_up, g_dn)
+    F += np.multiply.outer(g_up, f_dn)
+    if moves.all():
+        h_all, f_all = H.ravel(), F.ravel()
+    else:
+        still = ~moves
+        h_all = np.concatenate((H.ravel(), hi_t[still], -lo_t[still]))
+        f_all = np.concatenate((F.ravel(), a[still], -a[still]))
+    found = _scale_range(h_all, f_all)
+    if found is None:
+        return None
+    s = found[1]
+    # z interval at s: z <= (h_up - s f_up) / g_up and z >= -(h_dn - s f_dn) / g_dn
+    z_hi = float(((h_up - s * f_up) / g_up).min()) if g_up.size else 0.0
+    z_lo = float((-(h_dn - s * f_dn) / g_dn).max()) if g_up.size else 0.0
+    z = 0.5 * (z_lo + z_hi) if z_lo > z_hi else min(max(z_pref, z_lo), z_hi)
+    return s, s * a + z * nv
+
+
+def _max_scale_general(
+    a: np.ndarray, N: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: np.ndarray
+) -> tuple[float, np.ndarray] | None:
+    """k >= 2: phase 1 (least largest violation), phase 2 (max s), then the least-distance QP in z."""
+    n, k = N.shape
+    d = 1 + k
+    M = np.concatenate((a[:, None], N), axis=1)  # y = M w, w = (s, z)
+    G = np.concatenate((M, -M, np.eye(1, d), -np.eye(1, d)))  # M w <= hi, -M w <= -lo, s <= 1, -s <= 0
+    h = np.concatenate((hi_t, -lo_t, [1.0, 0.0]))
+    # phase 1 in (w, t): G w - t <= h, -t <= 0; start w = (0, z_pref), t = the largest violation
+    w0 = np.concatenate(([0.0], z_pref))
+    t0 = max(0.0, float((G @ w0 - h).max()))
+    G1 = np.concatenate((np.concatenate((G, -np.ones((G.shape[0], 1))), axis=1), -np.eye(1, d + 1, d)))
+    h1 = np.concatenate((h, [0.0]))
+    c1 = -np.eye(1, d + 1, d)[0]
+    w1 = active_set(G1, h1, np.concatenate((w0, [t0])), c=c1)
+    if w1[-1] > FEASIBLE_TOL:
+        return None
+    # phase 2: max s from the feasible point (the violation t <= FEASIBLE_TOL is absorbed in h)
+    slack = h + max(0.0, float(w1[-1]))
+    w = active_set(G, slack, w1[:-1], c=np.eye(1, d)[0])
+    s = min(1.0, max(0.0, float(w[0])))
+    # secondary: z nearest z_pref with s fixed (G_z z <= h - s G_s)
+    Gz = G[: 2 * n, 1:]
+    hz = slack[: 2 * n] - s * G[: 2 * n, 0]
+    z = active_set(Gz, hz, w[1:], target=z_pref)
+    return s, s * a + N @ z
+
+
+def active_set(
+    G: np.ndarray, h: np.ndarray, w: np.ndarray, c: np.ndarray | None = None, target: np.ndarray | None = None
+) -> np.ndarray:
+    """Primal active-set method for a small problem over {w : G w <= h}, from a feasible w.
+
+    G : (p, d), h : (p,), w : (d,) feasible start. With `c` (d,): maximise c^T w (LP; bounded
+    feasible set assumed). With `target` (d,): minimise |w - target|^2 (least-distance QP). The
+    working set holds linearly independent active rows; the step is the objective's gradient
+    projected onto their null space (LP) or the exact minimiser there (QP); a zero step with all
+    multipliers of the right sign is optimal, else the row with the lowest index among the wrong
+    signs leaves (Bland's rule). Feasibility is kept throughout, so the iteration cap (rare,
+    degenerate cycling) still returns a feasible point.
+    """
+    p, d = G.shape
+    w = w.copy()
+    working: list[int] = []
+    lp = c is not None
+    for _ in range(ACTIVE_MAX_PER_ROW * (p + d)):
+        grad = c if lp else target - w  # type: ignore[operator]
+        if working:
+            Q, R = np.linalg.qr(G[working].T)  # (d, |W|), (|W|, |W|)
+            step = grad - Q @ (Q.T @ grad)
+        else:
+            Q = R = None
+            step = grad.copy()
+        scale = 1.0 + float(np.abs(grad).max())
+        if float(np.abs(step).max()) <= ACTIVE_RTOL * scale:
+            if not working:
+                return w
+            lam = np.linalg.solve(R, Q.T @ grad)  # G_W^T lam = grad
+            wrong = np.flatnonzero(lam < -ACTIVE_RTOL * scale)
+            if wrong.size == 0:
+                return w
+            working.pop(int(min(wrong, key=lambda i: working[i])))
+            continue
+        rate = G @ step
+        room = np.maximum(h - G @ w, 0.0)
+        blocking = rate > ACTIVE_RTOL * scale * (1.0 + np.abs(G).max(axis=1))
+        blocking[working] = False
+        alpha = np.inf if lp else 1.0
+        hit = -1
+        if blocking.any():
+            ratios = np.full(p, np.inf)
+            ratios[blocking] = room[blocking] / rate[blocking]
+            j = int(ratios.argmin())
+            if ratios[j] < alpha:
+                alpha, hit = float(ratios[j]), j
+        if not np.isfinite(alpha):
+            return w  # unbounded direction: cannot happen for the bounded problems here
+        w += alpha * step
+        if hit >= 0:
+            working.append(hit)  # else (QP): the minimiser on the working set, tested next pass
+    return w
+
+
+def bounded_damped_rates(
+    A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
+    y_start: np.ndarray,
+) -> np.ndarray:
+    """argmin |A y - x_w|^2 + mu^2 |y - y_ref|^2 over lo <= y <= hi (module docstring), (n,).
+
+    A : (m, n) weighted Jacobian; x_w : (m,) asked twist, task-weighted (m/s); lo, hi : (n,) bounds;
+    mu : damping (m), > 0; y_ref : (n,) the null-space objective rates (zeros for none);
+    y_start : (n,) any start (clipped into the bounds). Active-set method for bound-constrained
+    least squares (Stark & Parker 1995): free the bound variable whose gradient points inward the
+    most, solve the regular normal equations on the free set, step back to the first bound met.
+    """
+    n = A.shape[1]
+    H = A.T @ A
+    H[np.diag_indices(n)] += mu * mu
+    q = A.T @ x_w + (mu * mu) * y_ref
+    y = np.minimum(np.maximum(y_start, lo), hi)
+    fixed = (y <= lo) | (y >= hi)
+    for _ in range(ACTIVE_MAX_PER_ROW * 2 * n + 2):
+        free = ~fixed
+        if free.any():
+            rhs = q[free] - H[np.ix_(free, fixed)] @ y[fixed]
+            target = np.linalg.solve(H[np.ix_(free, free)], rhs)
+            current = y[free]
+            step = target - current
+            with np.errstate(divide="ignore", invalid="ignore"):
+                to_hi = np.where(step > 0.0, (hi[free] - current) / step, np.inf)
+                to_lo = np.where(step < 0.0, (lo[free] - current) / step, np.inf)
+            ratio = np.minimum(to_hi, to_lo)
+            j = int(ratio.argmin())
+            if ratio[j] < 1.0:
+                alpha = max(0.0, float(ratio[j]))
+                y[free] = current + alpha * step
+                idx = np.flatnonzero(free)[j]
+                y[idx] = hi[idx] if step[j] > 0.0 else lo[idx]
+                fixed[idx] = True
+                continue
+            y[free] = target
+        grad = H @ y - q  # KKT: at lo grad >= 0, at hi grad <= 0
+        at_lo = fixed & (y <= lo) & (lo < hi)
+        at_hi = fixed & (y >= hi) & (lo < hi)
+        viol = np.where(at_lo, -grad, 0.0) + np.where(at_hi, grad, 0.0)
+        j = int(viol.argmax())
+        tol = ACTIVE_RTOL * (1.0 + float(np.abs(q).max()))
+        if viol[j] <= tol:
+            break
+        fixed[j] = False
+    return np.minimum(np.maximum(y, lo), hi)

@@ -80,6 +80,8 @@ _UNMOVED = 1e-20
 SOURCE_RTOL = 1e-9
 #: Finite stand-in for 2 A d of an unlimited joint in the fused check (any value above e_hi works).
 _BIG = 1e300
+#: Sided speeds are capped at this (far above any sqrt(e_hi)) before squaring in `within_bounds`.
+_SPEED_CAP = 1e150
 _ONE = np.ones(1)
 _ONE.setflags(write=False)
 #: Relative tolerance on shadow prices (and on scale comparisons) in the optimality refinement.
@@ -198,6 +200,7 @@ def within_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray, qd: np.nd
     u = r[n2: 2 * n2]
     np.minimum(e, plan.e_hi, out=e)
     np.maximum(u, 0.0, out=u)
+    np.minimum(u, _SPEED_CAP, out=u)  # a huge (finite) request squares without overflow
     u *= u
     e -= u
     np.minimum(e, r[2 * n2:], out=e)

@@ -173,6 +173,10 @@ class Resolution:
 
 
 
+#: Factor applied before the sums of squares of the finiteness tests: (1.8e308 * 2^-540)^2 * 9 stays
+#: finite, so a huge finite input never overflows them (no warning); nan and inf still propagate.
+_SQUARE_SAFE = 2.0 ** -540
+
 #: Attribute of a SolverOptions instance holding the memoised `_Plan` of the last (arm, period).
 _PLAN_ATTR = "_resolve_plan"
 
@@ -356,7 +360,9 @@ def _plan(arm: Arm, options: SolverOptions, period: float) -> _Plan:
 def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
     # Fast test: nan and inf propagate into the sums of squares. Huge finite values can overflow
     # them to inf too; only then the exact element test runs (and passes).
-    if not math.isfinite(q.dot(q) + qd_prev.dot(qd_prev)) and not (
+    qs = q * _SQUARE_SAFE
+    ps = qd_prev * _SQUARE_SAFE
+    if not math.isfinite(qs.dot(qs) + ps.dot(ps)) and not (
             np.isfinite(q).all() and np.isfinite(qd_prev).all()):
         _raise_non_finite(q, qd_prev, twist)
 
@@ -372,7 +378,8 @@ def _rates(
 ) -> tuple[Resolution, int]:
     """Steps 2-6 of the module docstring, from forward kinematics and J at q."""
     x = _twist_base(twist, frames.T_base_tool)
-    if not math.isfinite(x.dot(x)) and not np.isfinite(x).all():  # as in _check_states
+    xs = x * _SQUARE_SAFE
+    if not math.isfinite(xs.dot(xs)) and not np.isfinite(x).all():  # as in _check_states
         _raise_non_finite(q, qd_prev, twist)
 
     A = J * plan.weight

@@ -1,0 +1,234 @@
+"""The saturated tick is complete: resolve's task scale equals the scaling LP's optimum whenever the LP
+is feasible, on shoulder-elbow-wrist 7-joint arms and on random arms of 2 to 9 joints (prismatic mixed
+in); when it is infeasible, the rates are the bounded damped least-squares ones.
+
+Oracles (outside the project): scipy.optimize.linprog with HiGHS for the scaling LP
+(Flacco, De Luca & Khatib 2015, IEEE T-RO 31(3): maximise s s.t. J q_dot = s x, bounds) and
+scipy.optimize.lsq_linear (method "bvls", Stark & Parker 1995, Comput. Stat. 10) for the bounded
+least squares.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+from arm_factory import random_arm
+from scipy.optimize import linprog, lsq_linear
+
+from twistrate.solver.arm import REVOLUTE, Arm, Joint
+from twistrate.solver.kinematics import forward, geometric_jacobian
+from twistrate.solver.limits import plan_bounds, rate_bounds
+from twistrate.solver.load import load_arm
+from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
+from twistrate.solver.resolve import DesiredTwist, resolve
+from twistrate.solver.scaling import TRACK_DAMPING_MIN, active_set, max_scale
+
+T = 0.002
+PLAIN = SolverOptions(damping="none", limit_gain=0.0)
+FREE = SolverOptions(damping="none", limit_gain=0.0, enforce_limits=False)
+L = PLAIN.characteristic_length
+W = np.array([1, 1, 1, L, L, L])
+
+
+def _lp_scale(A: np.ndarray, x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> float | None:
+    """max s s.t. A y = s x, lo <= y <= hi, 0 <= s <= 1 (linprog, HiGHS); None if infeasible."""
+    m, n = A.shape
+    res = linprog(np.r_[np.zeros(n), -1.0], A_eq=np.hstack([A, -x[:, None]]), b_eq=np.zeros(m),
+                  bounds=[*zip(lo, hi, strict=True), (0.0, 1.0)], method="highs")
+    return float(res.x[-1]) if res.status == 0 else None
+
+
+def sew_arm(rng: np.random.Generator) -> Arm:
+    """A random shoulder-elbow-wrist arm (invented test data): yaw, pitch, roll meeting at the shoulder,
+    an elbow pitch (the only joint that changes the shoulder-to-wrist distance), roll, pitch, roll meeting
+    at the wrist; random upper and lower arm lengths, limits, speeds and accelerations."""
+    upper, lower = rng.uniform(0.25, 0.5, 2)
+    z, y = np.array([0.0, 0.0, 1.0]), np.array([0.0, 1.0, 0.0])
+    offsets = [0.3, 0.0, 0.0, upper, 0.0, lower, 0.0]
+    axes = [z, y, z, y, z, y, z]
+    joints = []
+    for i in range(7):
+        Tf = np.eye(4)
+        Tf[2, 3] = offsets[i]
+        lim = rng.uniform(1.5, 3.0)
+        lo, hi = (-0.1, 2.6) if i == 3 else (-lim, lim)
+        joints.append(Joint(f"j{i}", REVOLUTE, Tf, axes[i], lo, hi, float(rng.uniform(1.5, 3.0)),
+                            float(rng.uniform(4.0, 12.0))))
+    tool = np.eye(4)
+    tool[2, 3] = 0.1
+    return Arm.build("sew7", joints, np.eye(4), tool)
+
+
+def _check_against_lp(arm: Arm, q: np.ndarray, qd_prev: np.ndarray, tw: DesiredTwist) -> str:
+    """resolve vs the LP at one state: 'free', 'scaled' or 'tracking'. Asserts the claims."""
+    r = resolve(arm, q, qd_prev, tw, T, PLAIN)
+    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+    assert np.all(r.qd >= b.lo - 1e-12) and np.all(r.qd <= b.hi + 1e-12)
+    x_d = resolve(arm, q, qd_prev, tw, T, FREE).twist_achieved * W  # the achievable (damped) twist
+    s_lp = _lp_scale(r.J * W[:, None], x_d, b.lo, b.hi)
+    if s_lp is None:
+        assert r.scale == 0.0 and (r.tracking or not np.any(r.twist_desired))
+        return "tracking"
+    assert not r.tracking
+    assert r.scale == pytest.approx(s_lp, abs=1e-7)
+    np.testing.assert_allclose(r.twist_achieved * W, r.scale * x_d, atol=1e-8 * (1 + np.abs(x_d).max()))
+    return "free" if r.scale == 1.0 and not r.limits_active.any() else "scaled"
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_scale_equals_the_lp_optimum_on_shoulder_elbow_wrist_arms(seed: int) -> None:
+    rng = np.random.default_rng(500 + seed)
+    kinds: dict[str, int] = {}
+    for _ in range(60):
+        arm = sew_arm(rng)
+        frac = rng.choice([0.002, 0.02, 0.5, 0.98, 0.998], size=7)
+        q = arm.q_min + (arm.q_max - arm.q_min) * frac
+        qd_prev = rng.uniform(-1, 1, 7) * arm.a_max * T * rng.choice([0.5, 3.0, 20.0])
+        tw = DesiredTwist(rng.normal(scale=0.6, size=3), rng.normal(scale=1.5, size=3))
+        kind = _check_against_lp(arm, q, qd_prev, tw)
+        kinds[kind] = kinds.get(kind, 0) + 1
+    assert kinds.get("scaled", 0) > 10  # the bounds bind on many of the cases
+
+
+@pytest.mark.parametrize("n", [2, 3, 4, 5, 6, 8, 9])
+def test_scale_equals_the_lp_optimum_on_random_arms(n: int) -> None:
+    rng = np.random.default_rng(700 + n)
+    kinds: dict[str, int] = {}
+    for _ in range(40):
+        arm = random_arm(rng, n=n)
+        frac = rng.choice([0.002, 0.02, 0.5, 0.98, 0.998], size=n)
+        q = arm.q_min + (arm.q_max - arm.q_min) * frac
+        qd_prev = rng.uniform(-1, 1, n) * arm.a_max * T * rng.choice([0.5, 3.0])
+        tw = DesiredTwist(rng.normal(scale=0.5, size=3), rng.normal(scale=1.0, size=3))
+        kind = _check_against_lp(arm, q, qd_prev, tw)
+        kinds[kind] = kinds.get(kind, 0) + 1
+    assert kinds.get("scaled", 0) > 5
+
+
+def test_general_active_set_agrees_with_the_lp() -> None:
+    # k >= 2 null-space dimensions use the active-set method; k <= 1 closed forms. All against HiGHS.
+    rng = np.random.default_rng(31)
+    for _ in range(300):
+        n = int(rng.integers(3, 10))
+        m = int(rng.integers(1, min(n, 6) + 1))
+        A = rng.normal(size=(m, n))
+        x = A @ rng.normal(size=n)
+        _, s, Vh = np.linalg.svd(A)
+        r = int(np.count_nonzero(s > 1e-10 * s[0]))
+        a = np.linalg.pinv(A) @ x
+        half = np.abs(a) * rng.uniform(0.05, 1.2, n) + 1e-3
+        c = rng.uniform(-1.5, 1.5, n) * half
+        lo, hi = c - half, c + half
+        found = max_scale(a, Vh[r:].T, lo, hi, None)
+        s_lp = _lp_scale(A, x, lo, hi)
+        assert (found is None) == (s_lp is None)
+        if found is not None:
+            assert found[0] == pytest.approx(s_lp, abs=1e-8)
+            y = found[1]
+            assert np.all(y >= lo - 1e-9) and np.all(y <= hi + 1e-9)
+            np.testing.assert_allclose(A @ y, found[0] * x, atol=1e-8)
+
+
+def test_active_set_least_distance_matches_a_projection() -> None:
+    # Least-distance QP onto a box written as G w <= h: the answer is the clip (common practice).
+    rng = np.random.default_rng(5)
+    for _ in range(50):
+        d = int(rng.integers(1, 5))
+        lo, hi = -rng.uniform(0.1, 1, d), rng.uniform(0.1, 1, d)
+        G = np.concatenate((np.eye(d), -np.eye(d)))
+        target = rng.normal(scale=2.0, size=d)
+        w = active_set(G, np.concatenate((hi, -lo)), np.zeros(d), target=target)
+        np.testing.assert_allclose(w, np.clip(target, lo, hi), atol=1e-12)
+
+
+def _sew_home() -> tuple[Arm, np.ndarray]:
+    arm = load_arm("reach7")  # a shoulder-elbow-wrist arm: elbow (joint 3) alone changes the reach
+    return arm, np.array(arm.q_home, dtype=float)
+
+
+def test_elbow_bounds_crossing_state_keeps_the_lp_scale() -> None:
+    # Rebuilt from issue 12: the elbow beyond its lower limit still moving outward, so its bounds cross
+    # and it is pinned at maximum braking; the six other joints have rank 5 without it. The twist
+    # asked is such that the elbow's pinned motion is 0.28 of it along the reach direction.
+    arm, q = _sew_home()
+    q[3] = arm.q_min[3] - 0.005
+    qd_prev = np.zeros(7)
+    qd_prev[3] = -0.4
+    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+    assert b.lo[3] == b.hi[3]  # pinned
+    J = geometric_jacobian(arm, forward(arm, q))
+    w = np.array([0.004, -0.003, 0.002, 0.0, 0.003, -0.002, 0.004])
+    y = w.copy()
+    y[3] = b.lo[3]
+    x = J @ y / 0.28
+    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    s_lp = _lp_scale(J * W[:, None], x * W, b.lo, b.hi)
+    assert s_lp is not None and s_lp >= 0.28 - 1e-9
+    assert r.scale == pytest.approx(s_lp, abs=1e-7)
+    np.testing.assert_allclose(r.twist_achieved, r.scale * x, atol=1e-9)
+
+
+def test_elbow_on_its_acceleration_bound_far_from_limits_keeps_the_lp_scale() -> None:
+    # Rebuilt from issue 12: mid-range configuration, the elbow moving; the twist needs the elbow to
+    # change its rate faster than one tick of acceleration, so the scale is set by the elbow's
+    # acceleration bound (0.67 of the twist), with every position limit far away.
+    arm, q = _sew_home()
+    qd_prev = np.array([0.05, -0.04, 0.03, 0.3, -0.02, 0.05, 0.01])
+    J = geometric_jacobian(arm, forward(arm, q))
+    y = qd_prev.copy()
+    y[3] += arm.a_max[3] * T
+    x = J @ y / 0.67
+    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    s_lp = _lp_scale(J * W[:, None], x * W, b.lo, b.hi)
+    assert s_lp is not None and 0.6 < s_lp < 1.0
+    assert r.scale == pytest.approx(s_lp, abs=1e-7)
+    assert r.qd[3] == pytest.approx(b.hi[3], abs=1e-9)  # the elbow on its acceleration bound
+    np.testing.assert_allclose(r.twist_achieved, r.scale * x, atol=1e-9)
+
+
+def test_no_scale_gives_the_bounded_least_squares_rates() -> None:
+    # A reversal asked at speed: no task-consistent rate is in reach. The rates are the bounded damped
+    # least-squares ones (scipy lsq_linear, bvls, on [A; mu I]) and bend less than braking would.
+    arm, q = _sew_home()
+    J = geometric_jacobian(arm, forward(arm, q))
+    rng = np.random.default_rng(9)
+    checked = 0
+    for _ in range(40):
+        qd_prev = rng.uniform(-0.5, 0.5, 7)
+        x = -J @ qd_prev * rng.uniform(0.5, 2.0) + rng.normal(scale=0.02, size=6)
+        r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+        if not r.tracking:
+            continue
+        b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+        assert _lp_scale(J * W[:, None], x * W, b.lo, b.hi) is None
+        mu = TRACK_DAMPING_MIN
+        ref = lsq_linear(np.vstack([J * W[:, None], mu * np.eye(7)]), np.r_[x * W, np.zeros(7)],
+                         bounds=(b.lo, b.hi), method="bvls", tol=1e-14)
+        np.testing.assert_allclose(r.qd, ref.x, atol=1e-9)
+        assert r.scale == 0.0
+        np.testing.assert_allclose(r.twist_error, r.twist_achieved - r.twist_desired)
+        braked = np.clip(qd_prev * max(0.0, float(np.max(1 - arm.a_max * T / np.abs(qd_prev)))), b.lo, b.hi)
+        assert np.linalg.norm((J @ r.qd - x) * W) <= np.linalg.norm((J @ braked - x) * W) + 1e-12
+        checked += 1
+    assert checked > 10
+
+
+@pytest.mark.parametrize("name", ["reach7", "bench6", "planar3", "rail4"])
+def test_huge_twists_raise_no_numpy_warning(name: str) -> None:
+    # Nothing on the tick path may warn (project rule); magnitudes up to the largest double.
+    arm = load_arm(name)
+    rng = np.random.default_rng(3)
+    q = np.array(arm.q_home, dtype=float)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        for mag in (1e100, 1e154, 1e155, 1e200, 1e300):
+            for policy in DAMPING_POLICIES:
+                for limits in (True, False):
+                    options = SolverOptions(damping=policy, enforce_limits=limits, manipulability_gain=1.0,
+                                            posture_gain=0.5)
+                    tw = DesiredTwist(rng.normal(size=3) * mag, rng.normal(size=3) * mag)
+                    r = resolve(arm, q, rng.normal(size=arm.n) * 0.1, tw, T, options)
+                    assert np.all(np.isfinite(r.qd)) and 0.0 <= r.scale <= 1.0

@@ -19,11 +19,13 @@ from scipy.optimize import linprog, lsq_linear
 
 from twistrate.solver.arm import REVOLUTE, Arm, Joint
 from twistrate.solver.kinematics import forward, geometric_jacobian
-from twistrate.solver.limits import plan_bounds, rate_bounds
+from twistrate.solver.limits import plan_bounds, rate_bounds, saturate
 from twistrate.solver.load import load_arm
+from twistrate.solver.nullspace import project
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
 from twistrate.solver.resolve import DesiredTwist, resolve
 from twistrate.solver.scaling import TRACK_DAMPING_MIN, active_set, max_scale
+from twistrate.solver.svd import numerical_rank, rank_tolerance, svd_full
 
 T = 0.002
 PLAIN = SolverOptions(damping="none", limit_gain=0.0)
@@ -148,44 +150,66 @@ def _sew_home() -> tuple[Arm, np.ndarray]:
     return arm, np.array(arm.q_home, dtype=float)
 
 
-def test_elbow_bounds_crossing_state_keeps_the_lp_scale() -> None:
-    # Rebuilt from issue 12: the elbow beyond its lower limit still moving outward, so its bounds cross
-    # and it is pinned at maximum braking; the six other joints have rank 5 without it. The twist
-    # asked is such that the elbow's pinned motion is 0.28 of it along the reach direction.
+def _issue_state(seed: int, crossing: bool):
+    """A state of the kind issue 12 describes, on reach7 (seeded; found by a search in which the greedy
+    loop of `limits.saturate` with its second start returned no scale while the LP had one): a random
+    configuration around home and previous rates of 1 to 10 ticks of acceleration; with `crossing`, the
+    elbow beyond its lower limit still moving outward (bounds crossed, pinned at maximum braking). The
+    twist is A y / s0 for a rate y inside the bounds, the elbow on one of its bounds half the time."""
     arm, q = _sew_home()
-    q[3] = arm.q_min[3] - 0.005
-    qd_prev = np.zeros(7)
-    qd_prev[3] = -0.4
-    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
-    assert b.lo[3] == b.hi[3]  # pinned
+    rng = np.random.default_rng(seed)
+    q = q + rng.uniform(-0.5, 0.5, 7)
+    qd_prev = rng.uniform(-1, 1, 7) * arm.a_max * T * rng.choice([1, 3, 10])
+    if crossing:
+        q[3] = arm.q_min[3] - rng.uniform(0.0005, 0.01)
+        qd_prev[3] = -rng.uniform(0.1, 0.8)
     J = geometric_jacobian(arm, forward(arm, q))
-    w = np.array([0.004, -0.003, 0.002, 0.0, 0.003, -0.002, 0.004])
-    y = w.copy()
-    y[3] = b.lo[3]
-    x = J @ y / 0.28
-    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+    s0 = rng.uniform(0.2, 0.9)
+    y = rng.uniform(b.lo, b.hi)
+    if rng.random() < 0.5:
+        y[3] = b.hi[3] if rng.random() < 0.5 else b.lo[3]
+    x = J @ y / s0
+    return arm, q, qd_prev, J, b, x
+
+
+def _greedy_scale(J: np.ndarray, x: np.ndarray, lo: np.ndarray, hi: np.ndarray, y_prev: np.ndarray):
+    """The saturation loop as resolve called it before (refinement on, second start from y_prev)."""
+    A, xw = J * W[:, None], x * W
+    U, s, Vh = svd_full(A)
+    tol = rank_tolerance(s)
+    r = numerical_rank(s, tol)
+    y_task = ((xw @ U[:, :r]) / s[:r]) @ Vh[:r]
+    sat = saturate(A, xw, y_task, np.zeros(7), None, lo, hi, r, tol, refine=True)
+    near = saturate(A, xw, y_task, project(Vh, r, y_prev), y_prev, lo, hi, r, tol, refine=True)
+    return None if sat.y is None and near.y is None else max(sat.scale, near.scale)
+
+
+def test_elbow_bounds_crossing_state_keeps_the_lp_scale() -> None:
+    # Issue 12, first state: the elbow's bounds cross (pinned at maximum braking); the six other joints
+    # have rank 5 without it, which stopped the greedy loop.
+    arm, q, qd_prev, J, b, x = _issue_state(148, crossing=True)
+    assert b.lo[3] == b.hi[3]  # pinned
     s_lp = _lp_scale(J * W[:, None], x * W, b.lo, b.hi)
-    assert s_lp is not None and s_lp >= 0.28 - 1e-9
-    assert r.scale == pytest.approx(s_lp, abs=1e-7)
+    assert s_lp is not None and s_lp > 0.25
+    assert _greedy_scale(J, x, b.lo, b.hi, qd_prev) is None  # the old loop braked here
+    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    assert r.scale == pytest.approx(s_lp, abs=1e-7) and not r.tracking
     np.testing.assert_allclose(r.twist_achieved, r.scale * x, atol=1e-9)
 
 
 def test_elbow_on_its_acceleration_bound_far_from_limits_keeps_the_lp_scale() -> None:
-    # Rebuilt from issue 12: mid-range configuration, the elbow moving; the twist needs the elbow to
-    # change its rate faster than one tick of acceleration, so the scale is set by the elbow's
-    # acceleration bound (0.67 of the twist), with every position limit far away.
-    arm, q = _sew_home()
-    qd_prev = np.array([0.05, -0.04, 0.03, 0.3, -0.02, 0.05, 0.01])
-    J = geometric_jacobian(arm, forward(arm, q))
-    y = qd_prev.copy()
-    y[3] += arm.a_max[3] * T
-    x = J @ y / 0.67
-    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
-    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    # Issue 12, second state: no joint near a position limit (every position-side bound is the velocity
+    # limit, the nearest limit over 60 degrees away); the optimum has the elbow on its acceleration bound.
+    arm, q, qd_prev, J, b, x = _issue_state(370, crossing=False)
+    assert b.velocity_bound.all()
+    assert np.degrees(np.minimum(q - arm.q_min, arm.q_max - q)).min() > 60.0
     s_lp = _lp_scale(J * W[:, None], x * W, b.lo, b.hi)
-    assert s_lp is not None and 0.6 < s_lp < 1.0
-    assert r.scale == pytest.approx(s_lp, abs=1e-7)
-    assert r.qd[3] == pytest.approx(b.hi[3], abs=1e-9)  # the elbow on its acceleration bound
+    assert s_lp is not None and s_lp > 0.2
+    assert _greedy_scale(J, x, b.lo, b.hi, qd_prev) is None  # the old loop braked here
+    r = resolve(arm, q, qd_prev, DesiredTwist(x[:3], x[3:]), T, PLAIN)
+    assert r.scale == pytest.approx(s_lp, abs=1e-7) and not r.tracking
+    assert min(abs(r.qd[3] - b.acc_lo[3]), abs(r.qd[3] - b.acc_hi[3])) < 1e-9  # elbow on its acc. bound
     np.testing.assert_allclose(r.twist_achieved, r.scale * x, atol=1e-9)
 
 

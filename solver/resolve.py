@@ -52,6 +52,7 @@ from twistrate.solver.limits import (
     LIMIT_POSITION,
     LIMIT_VELOCITY,
     BoundPlan,
+    RateBounds,
     active_bits,
     brake_along,
     plan_bounds,
@@ -487,7 +488,7 @@ def _enforce(
         Vn = Vh[rank:]
         z_pref = None if y0 is None or rank == n else Vn.dot(y0)
         a = coef.dot(Vh[:rank])
-        a, lam = _resting_damping(A, a, x_w, lam, bounds, plan, options, d)
+        a, lam = _resting_damping(A, a, x_w, lam, bounds, plan, options)
         found = max_scale(a, Vn.T, lo_y, hi_y, z_pref)
         passes = 1
         if found is not None:
@@ -497,8 +498,7 @@ def _enforce(
             if x_w.any():  # track: the bounded damped least-squares rates (twistrate.solver.scaling)
                 tracking = True
                 y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
-                y_prev = qd_prev if d is None else qd_prev / d
-                y = bounded_damped_rates(A, x_w, lo_y, hi_y, max(lam, TRACK_DAMPING_MIN), y_ref, y_prev)
+                y = bounded_damped_rates(A, x_w, lo_y, hi_y, max(lam, TRACK_DAMPING_MIN), y_ref)
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
     else:
@@ -509,9 +509,13 @@ def _enforce(
     return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking
 
 
+#: Damping policies whose factor grows as the singular values shrink (see `_resting_damping`).
+_DAMPING_BY_SIZE = ("singular_value", "manipulability")
+
+
 def _resting_damping(
-    A: np.ndarray, a: np.ndarray, x_w: np.ndarray, lam: float, bounds, plan: _Plan, options: SolverOptions,
-    d: np.ndarray | None,
+    A: np.ndarray, a: np.ndarray, x_w: np.ndarray, lam: float, bounds: RateBounds, plan: _Plan,
+    options: SolverOptions,
 ) -> tuple[np.ndarray, float]:
     """Damping of the joints the position limits leave free, and the task rates it gives.
 
@@ -523,12 +527,12 @@ def _resting_damping(
     those joints alone (resting joints 0), whose twist A a is the new damped twist the scaling
     problem scales. Returns (a (n,), damping (m)).
     """
+    if options.damping not in _DAMPING_BY_SIZE:
+        return a, lam  # the other policies never damp more for smaller singular values
     n = a.shape[0]
-    speed = bounds.speed
-    reach = plan.bounds.AT_n if d is None else plan.bounds.AT_n / d
-    lo_side = speed[:n] if d is None else speed[:n] / d
-    hi_side = speed[n:] if d is None else speed[n:] / d
-    resting = ((a < 0.0) & (lo_side <= reach)) | ((a > 0.0) & (hi_side <= reach))
+    speed = bounds.speed  # rad/s or m/s, like A T; a has the signs of the joint rates
+    reach = plan.bounds.AT_n
+    resting = ((a < 0.0) & (speed[:n] <= reach)) | ((a > 0.0) & (speed[n:] <= reach))
     if not resting.any() or resting.all():
         return a, lam
     keep = ~resting

@@ -50,6 +50,14 @@ from __future__ import annotations
 
 import numpy as np
 
+try:  # the LAPACK gufuncs behind numpy.linalg.solve / inv (private, hence the fallback; see svd.py)
+    from numpy.linalg import _umath_linalg as _gufuncs
+
+    _solve1 = _gufuncs.solve1
+    _inv = _gufuncs.inv
+except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
+    _solve1 = _inv = None
+
 #: Slack (weighted rad/s) of the rate bounds inside the LP (rounding; the caller clips into them).
 BOUND_TOL = 1e-12
 #: Null-space components |N_ij| at most this are treated as 0 (the joint does not move along z_j).
@@ -107,37 +115,39 @@ def _scale_range(h: np.ndarray, f: np.ndarray) -> tuple[float, float] | None:
 def _max_scale_one(
     a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float
 ) -> tuple[float, np.ndarray] | None:
-    """k = 1: eliminate z (Fourier-Motzkin). Constraints g z + f s <= h with g = (nv, -nv),
-    f = (a, -a), h = (hi, -lo). An upper bound on z (g_p > 0) and a lower one (g_q < 0) combine with
-    the positive multipliers (|g_q|, g_p) into (f_p |g_q| + f_q g_p) s <= h_p |g_q| + h_q g_p; a joint
-    with |g| <= NULL_EPS bounds s directly."""
-    moves = np.abs(nv) > NULL_EPS
-    pos = nv > 0.0
-    # per joint: the constraint that bounds z from above, and the one from below
-    g_up = np.abs(nv[moves])
-    up_sel = pos[moves]
-    h_up = np.where(up_sel, hi_t[moves], -lo_t[moves])
-    f_up = np.where(up_sel, a[moves], -a[moves])
-    h_dn = np.where(up_sel, -lo_t[moves], hi_t[moves])
-    f_dn = np.where(up_sel, -a[moves], a[moves])
-    g_dn = g_up  # |g| of the lower-bounding constraint (the same joint's other side)
-    H = np.multiply.outer(h_up, g_dn)
-    H += np.multiply.outer(g_up, h_dn)
-    F = np.multiply.outer(f_up, g_dn)
-    F += np.multiply.outer(g_up, f_dn)
-    if moves.all():
-        h_all, f_all = H.ravel(), F.ravel()
-    else:
-        still = ~moves
-        h_all = np.concatenate((H.ravel(), hi_t[still], -lo_t[still]))
-        f_all = np.concatenate((F.ravel(), a[still], -a[still]))
-    found = _scale_range(h_all, f_all)
-    if found is None:
+    """k = 1: eliminate z (Fourier-Motzkin). Joint i, signed so that its null-space coefficient
+    g_i = |nv_i| >= 0: l_i <= s f_i + z g_i <= u_i. An upper bound on z from joint j and a lower one
+    from joint i combine (multipliers g_i, g_j > 0) into s F_ij <= H_ij with
+    F_ij = g_i f_j - g_j f_i (antisymmetric) and H_ij = g_i u_j - g_j l_i. A joint with g_i <= NULL_EPS
+    is given g_i = 0, and the same pairs then state l_i <= s f_i <= u_i directly."""
+    neg = nv < 0.0
+    g = np.abs(nv)
+    g[g <= NULL_EPS] = 0.0
+    f = np.where(neg, -a, a)
+    u = np.where(neg, -lo_t, hi_t)
+    low = np.where(neg, -hi_t, lo_t)
+    X = np.multiply.outer(g, f)
+    F = X - X.T
+    H = np.multiply.outer(g, u)
+    H -= np.multiply.outer(low, g)
+    if H[F == 0.0].min() < 0.0:  # a condition independent of s fails (the diagonal is >= 0)
         return None
-    s = found[1]
-    # z interval at s: z <= (h_up - s f_up) / g_up and z >= -(h_dn - s f_dn) / g_dn
-    z_hi = float(((h_up - s * f_up) / g_up).min()) if g_up.size else 0.0
-    z_lo = float((-(h_dn - s * f_dn) / g_dn).max()) if g_up.size else 0.0
+    up = F > 0.0
+    s_hi, s_lo = 1.0, 0.0
+    if up.any():
+        Fp = F[up]
+        s_hi = min(1.0, float((H[up] / Fp).min()))
+        s_lo = max(0.0, float((H.T[up] / -Fp).max()))  # F_ji = -F_ij < 0: s >= H_ji / F_ji
+    if s_lo > s_hi:
+        return None
+    s = s_hi
+    moving = g > 0.0
+    if not moving.any():
+        return s, s * a
+    gm = g[moving]
+    sf = (s * f)[moving]
+    z_hi = float(((u[moving] - sf) / gm).min())
+    z_lo = float(((low[moving] - sf) / gm).max())
     z = 0.5 * (z_lo + z_hi) if z_lo > z_hi else min(max(z_pref, z_lo), z_hi)
     return s, s * a + z * nv
 
@@ -228,49 +238,80 @@ def active_set(
 
 def bounded_damped_rates(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
-    y_start: np.ndarray,
 ) -> np.ndarray:
     """argmin |A y - x_w|^2 + mu^2 |y - y_ref|^2 over lo <= y <= hi (module docstring), (n,).
 
     A : (m, n) weighted Jacobian; x_w : (m,) asked twist, task-weighted (m/s); lo, hi : (n,) bounds;
-    mu : damping (m), > 0; y_ref : (n,) the null-space objective rates (zeros for none);
-    y_start : (n,) any start (clipped into the bounds). Active-set method for bound-constrained
-    least squares (Stark & Parker 1995): free the bound variable whose gradient points inward the
-    most, solve the regular normal equations on the free set, step back to the first bound met.
+    mu : damping (m), > 0; y_ref : (n,) the null-space objective rates (zeros for none).
+    Active-set method for bound-constrained least squares (Stark & Parker 1995) on the regular
+    normal matrix H = A^T A + mu^2 I, through its inverse P: with the joints B held at values v_B the
+    minimiser is y* + P[:, B] lam, lam = P_BB^-1 (v_B - y*_B), y* = P q the unconstrained one, and
+    lam is the gradient at the held joints (H P = I), i.e. their multipliers. Start: y* clipped into
+    the bounds (the clipped joints held); each pass steps toward the minimiser of the held set and
+    holds the first joint that meets a bound, or, at that minimiser, releases every held joint whose
+    multiplier points inward (all at once: fewer passes; each step still descends and stays inside
+    the bounds, and the pass cap bounds the rare degenerate zig-zag).
     """
     n = A.shape[1]
     H = A.T @ A
     H[np.diag_indices(n)] += mu * mu
-    q = A.T @ x_w + (mu * mu) * y_ref
-    y = np.minimum(np.maximum(y_start, lo), hi)
-    fixed = (y <= lo) | (y >= hi)
+    q = A.T @ x_w
+    q += (mu * mu) * y_ref
+    y_star = _spd_solve(H, q)
+    y = np.minimum(np.maximum(y_star, lo), hi)
+    held = np.flatnonzero(y != y_star)
+    if held.size == 0:
+        return y
+    P = _spd_inv(H)
+    pinned = lo >= hi
+    tol = ACTIVE_RTOL * (1.0 + float(np.abs(q).max()))
+    inf = np.full(n, np.inf)
     for _ in range(ACTIVE_MAX_PER_ROW * 2 * n + 2):
-        free = ~fixed
-        if free.any():
-            rhs = q[free] - H[np.ix_(free, fixed)] @ y[fixed]
-            target = np.linalg.solve(H[np.ix_(free, free)], rhs)
-            current = y[free]
-            step = target - current
-            with np.errstate(divide="ignore", invalid="ignore"):
-                to_hi = np.where(step > 0.0, (hi[free] - current) / step, np.inf)
-                to_lo = np.where(step < 0.0, (lo[free] - current) / step, np.inf)
-            ratio = np.minimum(to_hi, to_lo)
-            j = int(ratio.argmin())
-            if ratio[j] < 1.0:
-                alpha = max(0.0, float(ratio[j]))
-                y[free] = current + alpha * step
-                idx = np.flatnonzero(free)[j]
-                y[idx] = hi[idx] if step[j] > 0.0 else lo[idx]
-                fixed[idx] = True
-                continue
-            y[free] = target
-        grad = H @ y - q  # KKT: at lo grad >= 0, at hi grad <= 0
-        at_lo = fixed & (y <= lo) & (lo < hi)
-        at_hi = fixed & (y >= hi) & (lo < hi)
-        viol = np.where(at_lo, -grad, 0.0) + np.where(at_hi, grad, 0.0)
-        j = int(viol.argmax())
-        tol = ACTIVE_RTOL * (1.0 + float(np.abs(q).max()))
-        if viol[j] <= tol:
+        if held.size:
+            P_B = P[:, held]
+            gap = y[held] - y_star[held]
+            lam = _spd_solve(P_B[held], gap) if held.size > 1 else gap / P_B[held[0]]
+            target = y_star + P_B @ lam
+            target[held] = y[held]
+        else:
+            lam = target = y_star
+        step = target - y
+        room = np.where(step > 0.0, hi - y, np.where(step < 0.0, lo - y, inf))
+        room /= np.where(step != 0.0, step, 1.0)
+        room[held] = np.inf
+        j = int(room.argmin())
+        if room[j] < 1.0:
+            y += max(0.0, float(room[j])) * step
+            y[j] = hi[j] if step[j] > 0.0 else lo[j]
+            held = np.append(held, j)
+            continue
+        y = target
+        if held.size == 0:
             break
-        fixed[j] = False
+        # multiplier lam_i = dF/dy_i of a held joint: at lo it must be >= 0, at hi <= 0. Every held
+        # joint with the wrong sign is released at once (the step that follows keeps feasibility)
+        viol = np.where(y[held] >= hi[held], lam, -lam)
+        release = (viol > tol) & ~pinned[held]
+        if not release.any():
+            break
+        held = held[~release]
+    free = np.ones(n, dtype=bool)
+    free[held] = False
+    if free.any():  # polish: the free joints' normal equations solved directly (accuracy of P)
+        H_F = H[free]
+        y[free] = _spd_solve(H_F[:, free], q[free] - H_F[:, held] @ y[held])
     return np.minimum(np.maximum(y, lo), hi)
+
+
+def _spd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """M^-1 b for a small symmetric positive definite M (regular by construction: mu > 0)."""
+    if _solve1 is not None:
+        return _solve1(M, b, signature="dd->d")
+    return np.linalg.solve(M, b)  # pragma: no cover
+
+
+def _spd_inv(M: np.ndarray) -> np.ndarray:
+    """M^-1 for a small symmetric positive definite M."""
+    if _inv is not None:
+        return _inv(M, signature="d->d")
+    return np.linalg.inv(M)  # pragma: no cover

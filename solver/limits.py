@@ -15,7 +15,8 @@ had ticks with no feasible scale with B = A and none with B = A / 2 (tests/test_
 Pushing reach7's base yaw on (`twistrate bench solver`, 4000 ticks) still has none on 36 % of the
 ticks with either value: once that joint rests on its limit, the other six make the pushed twist
 alone, the scale falls to the per-mille range near their own singularity, and the ticks alternate
-between a tiny scale and braking. Everything below holds for any B <= A; the derivation is written
+between a tiny scale and braking (measured with the greedy loop; such ticks now track, see
+`twistrate.solver.scaling`). Everything below holds for any B <= A; the derivation is written
 with A for the braking deceleration.
 
 The braking term is the discrete-time form of -sqrt(2 A d) (Flacco, De Luca & Khatib 2015, IEEE
@@ -39,25 +40,17 @@ q_prev_dot + AT), which equals max/min of the bounds whenever they do not cross.
 
 Saturation in the null space (SNS; Flacco, De Luca & Khatib 2012, ICRA, "Motion control of
 redundant robots under joint constraints: saturation in the null space"; IEEE T-RO 31(3) 2015,
-Algorithm 1): when the unconstrained rates break a bound, the joint that most limits the task
-scale is saturated at its bound (removed from the task, W_jj = 0, its rate fixed), the task is
-re-solved with the remaining joints (exact pseudo-inverse of A W, fresh SVD) and the largest task
-scale s in [0, 1] with every bound satisfied is tracked; the loop ends when the unscaled task fits
-(s = 1) or when removing joints drops the rank of A W below that of A, where the best (s, W,
-saturated rates) is restored. The result satisfies A y = s x exactly: the twist is scaled along
-its own direction, never bent.
+Algorithm 1), `saturate`: the greedy loop saturates the joint that most limits the task scale
+(removed from the task, its rate fixed), re-solves with the remaining joints and keeps the best
+scale; `saturate(refine=True)` continues with simplex pivots from the loop's last basis (`_refine`).
+It is kept here for reference and for its tests (tests/test_limits_lp.py). The per-tick solver no
+longer uses it: the loop stops when removing a joint drops the rank of the reduced Jacobian (on a
+shoulder-elbow-wrist arm, the six joints other than the elbow have rank 5), and then braked although
+a scale existed. `twistrate.solver.resolve` solves the scaling LP exactly instead
+(`twistrate.solver.scaling`), on the null-space parametrisation, which forms no reduced Jacobian.
 
-The greedy loop alone is not always maximal in s (tests/test_limits_lp.py keeps a counterexample
-against a linear program). `saturate(refine=True)` therefore continues from the loop's last basis
-with the optimality test of the scaling LP (shadow prices of the saturated joints) and simplex
-pivots (`_refine`); the scale is then maximal whenever the loop found a feasible scale at all.
-
-If no s in [0, 1] was found feasible (when the previous rate cannot be brought to any
-task-consistent rate within one tick of acceleration, e.g. a stop or reversal commanded at speed;
-the loop can also miss a feasible scale when rest is outside the bounds, which the caller's second
-start from the previous rate covers in practice), the hard bounds win: the joints decelerate
-together along the previous rate as hard as the slowest joint can (q_dot = c q_prev_dot, clipped
-into the bounds), and the reported scale is 0.
+`brake_along` remains the answer to a stop asked for at speed when no task-consistent rate is in
+reach: the joints decelerate together along the previous rate as hard as the slowest joint can.
 """
 
 from __future__ import annotations

@@ -13,20 +13,25 @@ One call of `resolve` per tick (contract: the data types and the signature are f
    manipulability gradient of `twistrate.solver.jacobians`, evaluated with the same SVD), both
    assembled in one product with Vh; the objectives are evaluated only when A has a null space
    (rank r < n) or the limits need them;
-6. hard limits (`twistrate.solver.limits`): if the rates break a bound, saturation in the null space
-   with task scaling.
+6. hard limits (`twistrate.solver.limits` for the bounds, `twistrate.solver.scaling` for the
+   solve): if the rates break a bound, the largest task scale, else tracking.
 
 How damping and saturation combine: damping decides which twist the arm is asked for near a
 singularity, x_d = A y_task (the "damped twist"; x_d = x when no damping acts and A has full row
-rank). Saturation then realises s * x_d with the exact pseudo-inverses of the reduced Jacobians,
-so the reported twist_achieved is s * x_d: the damped twist scaled along its own direction.
-Null-space objectives are secondary: when keeping them costs task scale (s < 1), the saturation
-is repeated starting from the previous rate instead (least joint acceleration; under acceleration
-bounds the feasible rates lie near it) and the larger scale wins. Each run ends with the
-optimality refinement of `twistrate.solver.limits.saturate`, so the scale is the maximum of the
-scaling LP whenever a feasible scale was found. When none exists (the previous rate cannot reach
-any task-consistent rate within one tick of acceleration), the joints brake along the previous
-rate and scale is 0 (`twistrate.solver.limits.brake_along`).
+rank). The hard limits then realise s * x_d with the largest s in [0, 1] the bounds allow (the
+scaling LP, solved exactly on the null-space parametrisation y = s y_task + Vh[r:]^T z, so the scale
+is its maximum whenever it is feasible, on every arm), so the reported twist_achieved is s * x_d:
+the damped twist scaled along its own direction. Null-space objectives are secondary: among the
+rates of maximal scale, the nearest to the objective rates. Damping and bounds work together: when
+a joint rests on a position limit (the task pushes it toward a limit it is within one tick of
+braking of), the damping policy is applied again to the Jacobian of the other joints, which may be
+near a singularity of their own that the whole arm's singular values do not show; where that asks
+for more damping, the damped twist is that of those joints alone (`_resting_damping`). When no
+scale exists (the previous rate cannot reach any rate making a scaled copy of x_d within one tick of
+acceleration, e.g. after a step of the asked twist), the rates are the bounded damped least-squares
+ones, whose task-weighted twist is nearest the asked one (`Resolution.tracking`, scale 0, the error
+in `Resolution.twist_error`); a stop asked for at speed (zero twist) brakes along the previous rate
+instead (`twistrate.solver.limits.brake_along`), so the tool keeps its path while it stops.
 
 Non-finite q, qd_prev or twist raises InputError naming the field; finite input always gives
 finite output (exactly singular configurations included). Per-(arm, period) constants derived from
@@ -415,7 +420,7 @@ def _rates(
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
-            qd, scale, bits, iterations, tracking = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
+            qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
                                                              x * plan.task_scale, plan, q, qd_prev,
                                                              options)
         else:
@@ -462,8 +467,10 @@ def _enforce(
     q: np.ndarray,
     qd_prev: np.ndarray,
     options: SolverOptions,
-) -> tuple[np.ndarray, float, np.ndarray, int, bool]:
-    """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking).
+) -> tuple[np.ndarray, float, np.ndarray, int, bool, float]:
+    """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking,
+    damping): damping is lam, or the larger damping of the joints the limits leave free
+    (`_resting_damping`) when that applied.
 
     A : (6, n) weighted Jacobian, J : (6, n) the geometric Jacobian, (U (6, 6), s, Vh (n, n)) the SVD
     of A, rank its numerical rank; coef : (rank,) task rates in the basis Vh[:rank]; y0 : the
@@ -506,7 +513,7 @@ def _enforce(
             y = y * d
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
-    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking
+    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking, lam
 
 
 #: Damping policies whose factor grows as the singular values shrink (see `_resting_damping`).

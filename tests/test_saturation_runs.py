@@ -1,0 +1,62 @@
+"""The scenario runs of the saturated tick (twistrate.service.saturation_runs): figures computed right on
+hand-made records, and short runs of the scripted wrist push and the demo pass meeting issue 12's
+criteria where they apply (bounds every tick; no chatter; scale 0 below 0.5 % on the jogged push).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from twistrate.service.saturation_runs import (
+    SIGN_DEADBAND,
+    demo_replay,
+    motion_figures,
+    push_through_wrist,
+    tick_cost,
+)
+from twistrate.solver.load import load_arm
+
+
+def test_figures_of_a_hand_made_record() -> None:
+    arm = load_arm("planar3")
+    N = 8
+    band = SIGN_DEADBAND * arm.v_max[0]
+    qd = np.zeros((N, 3))
+    qd[:, 0] = [0.1, 0.2, 0.5 * band, -0.1, -0.2, 0.0, 0.3, 0.3]  # two changes; the dead band keeps the sign
+    asked = np.zeros((N, 6))
+    asked[:4, 0] = 0.1
+    asked[4:7, 0] = -0.1  # one reversal, then a stop (not a turn)
+    run = {"asked": asked, "achieved": asked * 0.5, "qd": qd, "scale": np.array([1, 1, 0, 0, 1, 1, 1, 1.0]),
+           "tracking": np.array([0, 0, 1, 0, 0, 0, 0, 0], dtype=bool)}
+    f = motion_figures(arm, run, 0.3)
+    assert f["sign_changes"] == [2, 0, 0]
+    assert f["asked_direction_changes"] == 1
+    assert f["running_ticks"] == 7
+    assert f["scale_zero_fraction"] == 2 / 7 and f["tracking_fraction"] == 1 / 7
+    assert f["braking_fraction"] == 1 / 7
+    np.testing.assert_allclose(f["peak_acceleration_ratio"], 0.3 / (arm.a_max[0] * 0.002))
+    np.testing.assert_allclose(f["twist_error_max_m_s"], 0.05)
+
+
+def test_jogged_push_through_the_bench6_wrist_singularity() -> None:
+    f = push_through_wrist("bench6", seconds=3.0)
+    assert f["sigma_min_lowest_m"] < 1e-3  # really through the aligned wrist
+    assert f["scale_zero_fraction"] < 0.005
+    assert max(f["sign_changes"]) <= f["asked_direction_changes"] == 1
+    assert f["peak_acceleration_ratio"] <= 1.0 + 1e-9 and f["peak_velocity_ratio"] <= 1.0 + 1e-9
+
+
+def test_stepped_push_tracks_after_the_steps_only() -> None:
+    f = push_through_wrist("reach7", seconds=3.0, ramp_s=0.0)
+    assert f["asked_steps"] == 2
+    assert f["scale_zero_fraction"] == f["scale_zero_after_step_fraction"]  # none elsewhere
+    assert f["braking_fraction"] == 0.0 and f["stalled_fraction"] == 0.0
+    assert f["peak_acceleration_ratio"] <= 1.0 + 1e-9
+
+
+def test_demo_pass_start_and_timing_function_run() -> None:
+    f = demo_replay(seconds=3.5, reference=False)
+    assert f["running_ticks"] > 1500 and f["peak_acceleration_ratio"] <= 1.0 + 1e-9
+    assert f["stalled_fraction"] < 0.01
+    cost = tick_cost(ticks=100, repeats=1)
+    assert cost["states"] > 0 and cost["free_median_us"] > 0.0 and cost["saturated_median_us"] > 0.0

@@ -6,8 +6,9 @@ report:
 
 * `push_through_wrist`: a constant base-frame twist that drives the wrist bend of an example arm
   through its aligned (singular) posture and back (bench6: wrist_bend, reach7: wrist_pitch);
-* `demo_replay`: the demo's own scripted pass (`SCENARIO` of the demo command: base-frame twists
-  sampled at the source's 100 Hz), with the demo config's solver options and speed caps.
+* `demo_replay`: the demo's own scripted pass (`SCENARIO` of the demo command, its `scripted_twist`
+  passed in: base-frame twists sampled at the source's 100 Hz), with the demo config's solver options,
+  speed caps and simulated lag.
 
 Figures (`motion_figures`), over the running ticks (asked twist nonzero):
 * `scale_zero_fraction`: ticks at scale 0 (no scale of the damped twist was feasible), split into
@@ -30,7 +31,6 @@ Figures (`motion_figures`), over the running ticks (asked twist nonzero):
 
 from __future__ import annotations
 
-import importlib
 import math
 import time
 from collections.abc import Callable
@@ -214,24 +214,16 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
     return figures
 
 
-def _demo_twist() -> Callable[[float], tuple[str, Any, Any]]:
-    """The demo's `scripted_twist` (its module moves in the service reshape; both homes are tried)."""
-    for module in ("twistrate.service.demo", "twistrate.service.commands.demo"):
-        try:
-            return importlib.import_module(module).scripted_twist
-        except (ModuleNotFoundError, AttributeError):
-            continue
-    raise ModuleNotFoundError("the demo command's scripted_twist was not found")
+def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: SolverOptions | None = None,
+                seconds: float = 24.0, lag_s: float = DEMO_LAG_S, reference: bool = True) -> dict[str, Any]:
+    """The demo's scripted pass on reach7 at solver level (module docstring).
 
-
-def demo_replay(options: SolverOptions | None = None, seconds: float = 24.0, lag_s: float = DEMO_LAG_S,
-                reference: bool = True) -> dict[str, Any]:
-    """The demo's scripted pass on reach7 at solver level (module docstring). With `reference`, the
-    sign changes of the same pass without hard limits are reported too (`free_sign_changes`): the
+    scripted : the demo command's `scripted_twist`, t (s) -> (phase name, linear (3,) m/s, angular (3,)
+    rad/s), base frame (passed in: the service core does not import the commands). With `reference`,
+    the sign changes of the same pass without hard limits are reported too (`free_sign_changes`): the
     zero crossings the kinematics itself asks for."""
     arm = load_arm("reach7")
     options = DEMO_OPTIONS if options is None else options
-    scripted = _demo_twist()
 
     def twist_at(t: float) -> Twist:
         _, linear, angular = scripted(math.floor(t * SOURCE_HZ) / SOURCE_HZ)

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from twistrate.service.commands.demo import scripted_twist
 from twistrate.service.saturation_runs import (
     SIGN_DEADBAND,
     demo_replay,
@@ -55,7 +56,7 @@ def test_stepped_push_tracks_after_the_steps_only() -> None:
 
 
 def test_demo_pass_start_and_timing_function_run() -> None:
-    f = demo_replay(seconds=3.5, reference=False)
+    f = demo_replay(scripted_twist, seconds=3.5, reference=False)
     assert f["running_ticks"] > 1500 and f["peak_acceleration_ratio"] <= 1.0 + 1e-9
     assert f["stalled_fraction"] < 0.01
     cost = tick_cost(ticks=100, repeats=1)

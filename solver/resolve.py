@@ -67,7 +67,7 @@ from twistrate.solver.limits import (
 from twistrate.solver.nullspace import LinearObjective, linear_objective
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
 from twistrate.solver.scaling import TRACK_DAMPING_MIN, bounded_damped_rates, max_scale
-from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
+from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, singular_values, svd_full
 
 __all__ = [
     "LIMIT_ACCELERATION",
@@ -483,7 +483,7 @@ def _enforce(
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
     n = q.shape[0]
-    if y0 is None:
+    if y0 is None and rank < n:  # the objectives act only through the null space
         y0 = _objective_rates(plan, q, J, U, s, Vh)
     lo_y, hi_y = (bounds.lo, bounds.hi) if d is None else (bounds.lo / d, bounds.hi / d)
     tracking = False
@@ -544,10 +544,10 @@ def _resting_damping(
         return a, lam
     keep = ~resting
     A_e = A[:, keep]
-    U_e, s_e, Vh_e = svd_full(A_e)
-    lam_e = damping_factor(s_e, options)
+    lam_e = damping_factor(singular_values(A_e), options)
     if lam_e <= lam:
         return a, lam
+    U_e, s_e, Vh_e = svd_full(A_e)
     r = numerical_rank(s_e, max(RANK_RTOL * float(s_e[0]), RANK_ATOL)) if s_e.size else 0
     coef = (x_w @ U_e[:, :r]) * (s_e[:r] / (s_e[:r] ** 2 + lam_e * lam_e))
     out = np.zeros(n)

@@ -126,6 +126,13 @@ def _max_scale_one(
     f = np.where(neg, -a, a)
     u = np.where(neg, -lo_t, hi_t)
     low = np.where(neg, -hi_t, lo_t)
+    moving = g > 0.0
+    if moving.all():  # the common case first: does the whole twist (s = 1) fit some z?
+        z_hi = float(((u - f) / g).min())
+        z_lo = float(((low - f) / g).max())
+        if z_lo <= z_hi:
+            z = min(max(z_pref, z_lo), z_hi)
+            return 1.0, a + z * nv
     X = np.multiply.outer(g, f)
     F = X - X.T
     H = np.multiply.outer(g, u)
@@ -141,7 +148,6 @@ def _max_scale_one(
     if s_lo > s_hi:
         return None
     s = s_hi
-    moving = g > 0.0
     if not moving.any():
         return s, s * a
     gm = g[moving]

@@ -17,8 +17,9 @@ try:  # the gufunc behind numpy.linalg.svd(full_matrices=True); private, hence t
     from numpy.linalg import _umath_linalg as _gufuncs
 
     _svd_gufunc = _gufuncs.svd_f
+    _values_gufunc = _gufuncs.svd
 except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
-    _svd_gufunc = None
+    _svd_gufunc = _values_gufunc = None
 
 #: Relative rank tolerance: singular values <= RANK_RTOL * s_max are treated as zero (the
 #: direction is numerically singular). Used for the pseudo-inverse of policy "none", the
@@ -48,6 +49,21 @@ def svd_full(A: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         m, n = A.shape
         return np.eye(m), np.zeros(min(m, n)), np.eye(n)
     return U, s, Vh
+
+
+def singular_values(A: np.ndarray) -> np.ndarray:
+    """(min(m, n),) singular values of a finite float (m, n) matrix, descending (no vectors: cheaper).
+
+    Same gufunc route and fallbacks as `svd_full`; zeros if LAPACK does not converge.
+    """
+    if _values_gufunc is not None:
+        s = _values_gufunc(A, signature="d->d")
+        if s[0] == s[0]:
+            return s
+    try:
+        return np.linalg.svd(A, compute_uv=False)
+    except np.linalg.LinAlgError:
+        return np.zeros(min(A.shape))
 
 
 def rank_tolerance(s: np.ndarray) -> float:

@@ -10,6 +10,7 @@ least squares.
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 
 import numpy as np
@@ -25,7 +26,7 @@ from twistrate.solver.nullspace import project
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
 from twistrate.solver.resolve import DesiredTwist, resolve
 from twistrate.solver.scaling import TRACK_DAMPING_MIN, active_set, max_scale
-from twistrate.solver.svd import numerical_rank, rank_tolerance, svd_full
+from twistrate.solver.svd import numerical_rank, rank_tolerance, singular_values, svd_full
 
 T = 0.002
 PLAIN = SolverOptions(damping="none", limit_gain=0.0)
@@ -256,3 +257,32 @@ def test_huge_twists_raise_no_numpy_warning(name: str) -> None:
                     tw = DesiredTwist(rng.normal(size=3) * mag, rng.normal(size=3) * mag)
                     r = resolve(arm, q, rng.normal(size=arm.n) * 0.1, tw, T, options)
                     assert np.all(np.isfinite(r.qd)) and 0.0 <= r.scale <= 1.0
+
+
+def test_values_only_svd_matches_numpy() -> None:
+    rng = np.random.default_rng(8)
+    for shape in ((6, 7), (6, 6), (6, 3), (3, 5)):
+        A = rng.normal(size=shape)
+        np.testing.assert_allclose(singular_values(A), np.linalg.svd(A, compute_uv=False), rtol=1e-12)
+
+
+def test_a_joint_resting_on_its_limit_brings_the_damping_of_the_others() -> None:
+    # The demo's state at 18.5 s (reach7, wrist pitch on its 120 deg limit, camera roll asked): the whole
+    # arm is far from singular (no damping by the policy, Chiaverini 1997), but without the wrist pitch
+    # the other six joints are nearly singular; the policy applied to their Jacobian damps the task.
+    arm = load_arm("reach7")
+    q = np.radians([-16.5, 85.0, 87.8, 21.3, -14.1, 120.0, -99.3])
+    options = SolverOptions(damping="singular_value", damping_max=0.04, singular_value_threshold=0.05,
+                            limit_gain=0.0)
+    J = geometric_jacobian(arm, forward(arm, q))
+    A = J * W[:, None]
+    assert np.linalg.svd(A, compute_uv=False)[-1] > options.singular_value_threshold
+    assert np.linalg.svd(np.delete(A, 5, axis=1), compute_uv=False)[-1] < 0.01
+    tw = DesiredTwist(np.zeros(3), np.array([0.0, 0.0, 0.8]))
+    qd_prev = np.zeros(7)
+    free = resolve(arm, q, qd_prev, tw, T, dataclasses.replace(options, enforce_limits=False))
+    assert free.damping == 0.0 and free.qd[5] > 0.0  # the free tick would drive the wrist pitch on
+    r = resolve(arm, q, qd_prev, tw, T, options)
+    assert r.damping > 0.0
+    b = rate_bounds(plan_bounds(arm, T), q, qd_prev)
+    assert np.all(r.qd >= b.lo - 1e-12) and np.all(r.qd <= b.hi + 1e-12)

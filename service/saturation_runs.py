@@ -253,7 +253,8 @@ def tick_cost(name: str = "reach7", ticks: int = 2000, block: int = 40, repeats:
     broke a bound; `tracking_share` of them had no feasible scale). Every feature on unless `options`
     says otherwise (the solver benchmark's set). Each state is timed `repeats` times (blocks of both
     kinds alternating); medians and p99 (us) are over all timings, and `*_min_median_us` over the
-    per-state minimum (less sensitive to a shared machine's load). Wall time per call
+    per-state minimum (less sensitive to a shared machine's load), also split into the ticks with a
+    feasible scale (`scaled_min_median_us`) and the tracking ones. Wall time per call
     (time.perf_counter_ns); a guide for development, not a published figure.
     """
     arm = load_arm(name)
@@ -286,6 +287,10 @@ def tick_cost(name: str = "reach7", ticks: int = 2000, block: int = 40, repeats:
         out[f"{label}_p99_us"] = float(np.percentile(us, 99))
         out[f"{label}_min_median_us"] = float(np.median(us.min(axis=0)))
         out[f"{label}_min_p99_us"] = float(np.percentile(us.min(axis=0), 99))
+    track = np.array([s[3] >= 2 for s in limits[:count]])
+    per_state = times["saturated"].min(axis=0) / 1e3
+    for label, sel in (("scaled", ~track), ("tracking", track)):
+        out[f"{label}_min_median_us"] = float(np.median(per_state[sel])) if sel.any() else None
     out["saturated_to_free"] = out["saturated_median_us"] / out["free_median_us"]
     out["saturated_to_free_min"] = out["saturated_min_median_us"] / out["free_min_median_us"]
     return out

@@ -33,6 +33,7 @@ import math
 import numpy as np
 
 from twistrate.solver.options import SolverOptions
+from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, singular_values, svd_full
 
 #: Smallest attenuation factor used when converting selective damping to an equivalent l (keeps
 #: the reported damping finite; gamma_max > 0 is required by `twistrate.solver.resolve`).
@@ -148,3 +149,44 @@ def _selective(
         return coef, 0.0
     i = int(c.argmin())
     return coef, float(sr[i]) * math.sqrt(1.0 / max(worst, _ATTENUATION_FLOOR) - 1.0)
+
+
+#: Damping policies whose factor grows as the singular values shrink (see `_resting_damping`).
+_DAMPING_BY_SIZE = ("singular_value", "manipulability")
+
+
+def resting_joint_damping(
+    A: np.ndarray, a: np.ndarray, x_w: np.ndarray, lam: float, speed: np.ndarray, AT: np.ndarray,
+    options: SolverOptions,
+) -> tuple[np.ndarray, float]:
+    """Damping of the joints the position limits leave free, and the task rates it gives.
+
+    A joint "rests" when the task rate a_i (weighted) pushes it toward a limit it is within one tick
+    of braking of (position speed bound on that side <= A T): it cannot help the task any more, and
+    the other joints may be near a singularity of their own that the damping of the whole A (lam)
+    does not see. Then the damping policy is applied to the singular values of A without the resting
+    columns; if that asks for more damping, the task rates become the damped least-squares rates of
+    those joints alone (resting joints 0), whose twist A a is the new damped twist the scaling
+    problem scales. A : (m, n) weighted Jacobian; a : (n,) damped task rates (weighted coordinates);
+    x_w : (m,) weighted asked twist (m/s); lam : the tick's damping (m); speed : (2n,) sided
+    position/velocity speed bounds (`twistrate.solver.limits.RateBounds.speed`, lower side first);
+    AT : (n,) one tick of acceleration (rad/s or m/s). Returns (a (n,), damping (m)).
+    """
+    if options.damping not in _DAMPING_BY_SIZE:
+        return a, lam  # the other policies never damp more for smaller singular values
+    n = a.shape[0]
+    reach = AT  # speed and A T in joint units; a has the signs of the joint rates
+    resting = ((a < 0.0) & (speed[:n] <= reach)) | ((a > 0.0) & (speed[n:] <= reach))
+    if not resting.any() or resting.all():
+        return a, lam
+    keep = ~resting
+    A_e = A[:, keep]
+    lam_e = damping_factor(singular_values(A_e), options)
+    if lam_e <= lam:
+        return a, lam
+    U_e, s_e, Vh_e = svd_full(A_e)
+    r = numerical_rank(s_e, max(RANK_RTOL * float(s_e[0]), RANK_ATOL)) if s_e.size else 0
+    coef = (x_w @ U_e[:, :r]) * (s_e[:r] / (s_e[:r] ** 2 + lam_e * lam_e))
+    out = np.zeros(n)
+    out[keep] = coef @ Vh_e[:r]
+    return out, lam_e

@@ -26,7 +26,8 @@ rates of maximal scale, the nearest to the objective rates. Damping and bounds w
 a joint rests on a position limit (the task pushes it toward a limit it is within one tick of
 braking of), the damping policy is applied again to the Jacobian of the other joints, which may be
 near a singularity of their own that the whole arm's singular values do not show; where that asks
-for more damping, the damped twist is that of those joints alone (`_resting_damping`). When no
+for more damping, the damped twist is that of those joints alone
+(`twistrate.solver.damping.resting_joint_damping`). When no
 scale exists (the previous rate cannot reach any rate making a scaled copy of x_d within one tick of
 acceleration, e.g. after a step of the asked twist), the rates are the bounded damped least-squares
 ones, whose task-weighted twist is nearest the asked one (`Resolution.tracking`, scale 0, the error
@@ -48,7 +49,7 @@ from typing import Literal
 import numpy as np
 
 from twistrate.solver.arm import Arm
-from twistrate.solver.damping import damping_factor, task_coefficients
+from twistrate.solver.damping import resting_joint_damping, task_coefficients
 from twistrate.solver.errors import ConfigError, InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
@@ -57,7 +58,6 @@ from twistrate.solver.limits import (
     LIMIT_POSITION,
     LIMIT_VELOCITY,
     BoundPlan,
-    RateBounds,
     active_bits,
     brake_along,
     plan_bounds,
@@ -67,7 +67,7 @@ from twistrate.solver.limits import (
 from twistrate.solver.nullspace import LinearObjective, linear_objective
 from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
 from twistrate.solver.scaling import TRACK_DAMPING_MIN, bounded_damped_rates, max_scale
-from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, singular_values, svd_full
+from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 
 __all__ = [
     "LIMIT_ACCELERATION",
@@ -470,7 +470,7 @@ def _enforce(
 ) -> tuple[np.ndarray, float, np.ndarray, int, bool, float]:
     """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking,
     damping): damping is lam, or the larger damping of the joints the limits leave free
-    (`_resting_damping`) when that applied.
+    (`twistrate.solver.damping.resting_joint_damping`) when that applied.
 
     A : (6, n) weighted Jacobian, J : (6, n) the geometric Jacobian, (U (6, 6), s, Vh (n, n)) the SVD
     of A, rank its numerical rank; coef : (rank,) task rates in the basis Vh[:rank]; y0 : the
@@ -495,7 +495,7 @@ def _enforce(
         Vn = Vh[rank:]
         z_pref = None if y0 is None or rank == n else Vn.dot(y0)
         a = coef.dot(Vh[:rank])
-        a, lam = _resting_damping(A, a, x_w, lam, bounds, plan, options)
+        a, lam = resting_joint_damping(A, a, x_w, lam, bounds.speed, plan.bounds.AT_n, options)
         found = max_scale(a, Vn.T, lo_y, hi_y, z_pref)
         passes = 1
         if found is not None:
@@ -514,45 +514,6 @@ def _enforce(
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
     return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking, lam
-
-
-#: Damping policies whose factor grows as the singular values shrink (see `_resting_damping`).
-_DAMPING_BY_SIZE = ("singular_value", "manipulability")
-
-
-def _resting_damping(
-    A: np.ndarray, a: np.ndarray, x_w: np.ndarray, lam: float, bounds: RateBounds, plan: _Plan,
-    options: SolverOptions,
-) -> tuple[np.ndarray, float]:
-    """Damping of the joints the position limits leave free, and the task rates it gives.
-
-    A joint "rests" when the task rate a_i (weighted) pushes it toward a limit it is within one tick
-    of braking of (position speed bound on that side <= A T): it cannot help the task any more, and
-    the other joints may be near a singularity of their own that the damping of the whole A (lam)
-    does not see. Then the damping policy is applied to the singular values of A without the resting
-    columns; if that asks for more damping, the task rates become the damped least-squares rates of
-    those joints alone (resting joints 0), whose twist A a is the new damped twist the scaling
-    problem scales. Returns (a (n,), damping (m)).
-    """
-    if options.damping not in _DAMPING_BY_SIZE:
-        return a, lam  # the other policies never damp more for smaller singular values
-    n = a.shape[0]
-    speed = bounds.speed  # rad/s or m/s, like A T; a has the signs of the joint rates
-    reach = plan.bounds.AT_n
-    resting = ((a < 0.0) & (speed[:n] <= reach)) | ((a > 0.0) & (speed[n:] <= reach))
-    if not resting.any() or resting.all():
-        return a, lam
-    keep = ~resting
-    A_e = A[:, keep]
-    lam_e = damping_factor(singular_values(A_e), options)
-    if lam_e <= lam:
-        return a, lam
-    U_e, s_e, Vh_e = svd_full(A_e)
-    r = numerical_rank(s_e, max(RANK_RTOL * float(s_e[0]), RANK_ATOL)) if s_e.size else 0
-    coef = (x_w @ U_e[:, :r]) * (s_e[:r] / (s_e[:r] ** 2 + lam_e * lam_e))
-    out = np.zeros(n)
-    out[keep] = coef @ Vh_e[:r]
-    return out, lam_e
 
 
 def _finite_fallback(plan: _Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:

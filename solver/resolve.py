@@ -50,22 +50,20 @@ import numpy as np
 
 from twistrate.solver.arm import Arm
 from twistrate.solver.damping import resting_joint_damping, task_coefficients
-from twistrate.solver.errors import ConfigError, InputError, field_error
+from twistrate.solver.errors import InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
 from twistrate.solver.limits import (
     LIMIT_ACCELERATION,
     LIMIT_POSITION,
     LIMIT_VELOCITY,
-    BoundPlan,
     active_bits,
     brake_along,
-    plan_bounds,
     rate_bounds,
     within_bounds,
 )
-from twistrate.solver.nullspace import LinearObjective, linear_objective
-from twistrate.solver.options import DAMPING_POLICIES, SolverOptions
+from twistrate.solver.options import SolverOptions
+from twistrate.solver.plan import Plan, plan_of
 from twistrate.solver.scaling import TRACK_DAMPING_MIN, bounded_damped_rates, max_scale
 from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 
@@ -183,84 +181,6 @@ class Resolution:
 #: finite, so a huge finite input never overflows them (no warning); nan and inf still propagate.
 _SQUARE_SAFE = 2.0 ** -540
 
-#: Attribute of a SolverOptions instance holding the memoised `_Plan` of the last (arm, period).
-_PLAN_ATTR = "_resolve_plan"
-
-
-@dataclass(frozen=True)
-class _Plan:
-    """Constants of one (arm, options, period), derived and validated once.
-
-    task_scale : (6,) S = (1, 1, 1, L, L, L). col_scale : (n,) D = W^-1/2, or None for W = I.
-    weight : (6, n) multiplier with A = J * weight.
-    objective : the affine null-space objectives, or None.
-    manipulability_scale : the objective's factor on dw/dq in the weighted coordinates: the gain,
-        times D when joint weights are set (y_0 = D q_dot_0 with q_dot_0 = gain * dw/dq); None
-        when the gain is 0 (the gradient is then skipped).
-    bounds : rate-bound constants, or None when limits are not enforced.
-    """
-
-    arm: Arm
-    period: float
-    task_scale: np.ndarray
-    col_scale: np.ndarray | None
-    weight: np.ndarray
-    objective: LinearObjective | None
-    manipulability_scale: float | np.ndarray | None
-    bounds: BoundPlan | None
-
-
-def _positive(name: str, value: float, zero_ok: bool = False) -> float:
-    v = float(value)
-    if not (math.isfinite(v) and (v >= 0.0 if zero_ok else v > 0.0)):
-        accepted = "a finite number >= 0" if zero_ok else "a finite number > 0"
-        raise field_error(ConfigError, name, value, accepted)
-    return v
-
-
-def _vector(name: str, value: object, n: int, positive: bool) -> np.ndarray:
-    try:
-        v = np.asarray(value, dtype=float).reshape(-1)
-    except (TypeError, ValueError):
-        v = np.zeros(0)
-    ok = v.shape == (n,) and bool(np.all(np.isfinite(v))) and (not positive or bool(np.all(v > 0.0)))
-    if not ok:
-        raise field_error(ConfigError, name, value, f"{n} finite numbers" + (" > 0" if positive else ""))
-    return v
-
-
-def _prepare(arm: Arm, options: SolverOptions, period: float) -> _Plan:
-    """Validate `options` and `period` for `arm` and derive the per-tick constants (not per tick)."""
-    n = arm.n
-    if not (isinstance(period, (int, float)) and math.isfinite(period) and period > 0.0):
-        raise field_error(InputError, "period", period, "a finite tick period > 0 s")
-    if options.damping not in DAMPING_POLICIES:
-        raise field_error(ConfigError, "damping", options.damping, ", ".join(DAMPING_POLICIES))
-    _positive("damping_max", options.damping_max, zero_ok=True)
-    _positive("manipulability_threshold", options.manipulability_threshold)
-    _positive("singular_value_threshold", options.singular_value_threshold)
-    _positive("selective_step_max", options.selective_step_max)
-    L = _positive("characteristic_length", options.characteristic_length)
-    for name in ("limit_gain", "manipulability_gain", "posture_gain"):
-        _positive(name, getattr(options, name), zero_ok=True)
-    task_scale = np.array([1.0, 1.0, 1.0, L, L, L])
-    if options.joint_weights is None:
-        col_scale = None
-        weight = np.repeat(task_scale[:, None], n, axis=1)  # same shape as J: no broadcasting per tick
-        d = np.ones(n)
-    else:
-        w = _vector("joint_weights", options.joint_weights, n, positive=True)
-        col_scale = 1.0 / np.sqrt(w)
-        weight = task_scale[:, None] * col_scale[None, :]
-        d = col_scale
-    posture = arm.q_home if options.posture is None else _vector("posture", options.posture, n, False)
-    objective = linear_objective(arm, options.limit_gain, options.posture_gain, posture, d)
-    bounds = plan_bounds(arm, float(period)) if options.enforce_limits else None
-    gain = float(options.manipulability_gain)
-    manipulability_scale = None if gain == 0.0 else gain if col_scale is None else gain * col_scale
-    return _Plan(arm, float(period), task_scale, col_scale, weight, objective, manipulability_scale, bounds)
-
-
 def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
     """(6,) desired twist in the base frame at the tool point, rows (v, w), m/s and rad/s."""
     x = np.empty(6)
@@ -327,7 +247,7 @@ def resolve_counted(
 
     Each saturation pass costs one SVD of a reduced Jacobian (see `twistrate.solver.limits`).
     """
-    plan = _plan(arm, options, period)
+    plan = plan_of(arm, options, period)
     _check_states(q, qd_prev, twist)
     frames = forward(arm, q)
     return _rates(plan, q, qd_prev, twist, options, frames, geometric_jacobian(arm, frames))
@@ -349,18 +269,9 @@ def resolve_from_kinematics(
         returned in the Resolution). J : (6, n) geometric Jacobian at q, base frame, tool point,
         rows (v, w). Used by `twistrate bench solver` to time the same tick on compiled kinematics.
     """
-    plan = _plan(arm, options, period)
+    plan = plan_of(arm, options, period)
     _check_states(q, qd_prev, twist)
     return _rates(plan, q, qd_prev, twist, options, frames, J)
-
-
-def _plan(arm: Arm, options: SolverOptions, period: float) -> _Plan:
-    """The memoised constants of (arm, options, period), derived on first use or change."""
-    plan = options.__dict__.get(_PLAN_ATTR)
-    if plan is None or plan.arm is not arm or plan.period != period:
-        plan = _prepare(arm, options, period)
-        object.__setattr__(options, _PLAN_ATTR, plan)
-    return plan
 
 
 def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
@@ -374,7 +285,7 @@ def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> No
 
 
 def _rates(
-    plan: _Plan,
+    plan: Plan,
     q: np.ndarray,
     qd_prev: np.ndarray,
     twist: DesiredTwist,
@@ -436,7 +347,7 @@ def _rates(
 
 
 def _objective_rates(
-    plan: _Plan, q: np.ndarray, J: np.ndarray, U: np.ndarray, s: np.ndarray, Vh: np.ndarray
+    plan: Plan, q: np.ndarray, J: np.ndarray, U: np.ndarray, s: np.ndarray, Vh: np.ndarray
 ) -> np.ndarray | None:
     """(n,) rates y_0 of the null-space objectives in the weighted coordinates (before projection), or
     None when every objective gain is 0: the affine joint-range and posture terms plus the gradient of
@@ -463,7 +374,7 @@ def _enforce(
     rank: int,
     lam: float,
     x_w: np.ndarray,
-    plan: _Plan,
+    plan: Plan,
     q: np.ndarray,
     qd_prev: np.ndarray,
     options: SolverOptions,
@@ -516,7 +427,7 @@ def _enforce(
     return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking, lam
 
 
-def _finite_fallback(plan: _Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
+def _finite_fallback(plan: Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
     """Rates when the request overflowed: the rate nearest rest within the bounds, scale 0."""
     n = q.shape[0]
     if plan.bounds is None:

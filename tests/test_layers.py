@@ -6,7 +6,8 @@
 * the service core (everything in service/ but commands/ and bench/) imports solver and service, never
   clients, commands or benchmarks;
 * nothing outside commands/ and bench/ imports them;
-and the runtime's Service keeps a small state (at most MAX_SERVICE_ATTRIBUTES set in __init__).
+no module is longer than MAX_MODULE_LINES (one job a module), and the runtime's Service keeps a small
+state (at most MAX_SERVICE_ATTRIBUTES set in __init__).
 """
 
 from __future__ import annotations
@@ -16,6 +17,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 ERRORS = "twistrate.solver.errors"
+#: The longest module we keep (one job a module, under about 450 lines).
+MAX_MODULE_LINES = 450
 #: Attributes Service.__init__ may set: threads, sockets and life cycle only; tick state is the pipeline's.
 MAX_SERVICE_ATTRIBUTES = 25
 
@@ -110,3 +113,9 @@ def test_service_init_sets_few_attributes():
              for t in (node.targets if isinstance(node, ast.Assign) else [node.target])
              if isinstance(t, ast.Attribute) and isinstance(t.value, ast.Name) and t.value.id == "self"}
     assert 10 <= len(names) <= MAX_SERVICE_ATTRIBUTES, sorted(names)
+def test_no_module_is_longer_than_the_limit():
+    long = {str(p.relative_to(ROOT)): n for p in _modules().values()
+            if (n := len(p.read_text().splitlines())) > MAX_MODULE_LINES}
+    assert long == {}, f"modules over {MAX_MODULE_LINES} lines: {long}"
+
+

@@ -12,6 +12,7 @@ import numpy as np
 
 from twistrate.service import wire
 from twistrate.solver.errors import InputError
+from twistrate.solver.foresight import foresight, task_joint_weight
 from twistrate.solver.health import STATES, assess, next_state
 
 if TYPE_CHECKING:
@@ -31,6 +32,9 @@ class HealthReporter:
         #: the last health measures published (encode_health's keyword arguments)
         self.last: dict[str, Any] = {}
         self._q: np.ndarray | None = None
+        #: the (6, n) task and joint weighting of the foresight, for the options it was made for
+        self._weight: np.ndarray | None = None
+        self._weight_for: Any = None
 
     def measure(self, q: np.ndarray) -> dict[str, Any]:
         """Health measures at q as encode_health's keyword arguments: from this tick's resolution when
@@ -50,7 +54,7 @@ class HealthReporter:
         else:
             h = assess(p.arm, q, res, p.options)
         self._q = q
-        return {
+        return {**self._motion(q, res), **{
             "manipulability": h.manipulability,
             "manipulability_linear": h.manipulability_translational,
             "manipulability_angular": h.manipulability_rotational,
@@ -60,7 +64,23 @@ class HealthReporter:
             "weakest_linear": h.weakest_linear,
             "weakest_angular": h.weakest_angular,
             "limit_margin": h.limit_margin,
-        }
+        }}
+
+    def _motion(self, q: np.ndarray, res: Any) -> dict[str, Any]:
+        """The tick's twist achieved and its error, tracking, and the foresight along its rates (keyword
+        arguments of encode_health); none (the at-rest defaults) when the tick did not solve."""
+        if res is None:
+            return {}
+        p = self.p
+        if self._weight_for is not p.options:
+            self._weight = task_joint_weight(p.n, p.options.characteristic_length, p.options.joint_weights)
+            self._weight_for = p.options
+        f = foresight(p.arm, q, res.qd, res.J, res.U, res.singular_values, self._weight,
+                      p.thresholds.pinched_below)
+        return {"tracking": bool(res.tracking), "twist_achieved": res.twist_achieved,
+                "twist_error": res.twist_error, "sigma_min_rate_m_s": f.sigma_min_rate_m_s,
+                "time_to_pinched_s": f.time_to_pinched_s, "time_to_limit_s": f.time_to_limit_s,
+                "first_limit_joint": f.first_limit_joint, "time_to_first_limit_s": f.time_to_first_limit_s}
 
     def _publish(self, kind: str, topic: bytes, encode: Callable[[int], bytes]) -> None:
         """Encode (with the kind's next seq) and publish one report; a failure is counted and logged at a

@@ -255,3 +255,20 @@ def test_documented_json_example_matches_the_command(capsys):
             assert a == b
 
     compare(documented, live)
+
+
+def test_rate_adds_the_foresight_along_it(capsys):
+    # The planar arm straightening its elbow: the smallest singular value falls (the elbow singularity
+    # at q2 = 0; common practice), so a time to the pinched threshold exists; the elbow's own position
+    # limit is reached at (q_limit - q) / qd (by hand from the arm's limits) if nothing else is first.
+    rep = report(capsys, "planar3", "--at", "0,30,0", "--deg", "--rate", "0,-10,0")
+    f = rep["foresight"]
+    arm = load_arm("planar3")
+    q2, qd2 = np.radians(30.0), np.radians(-10.0)
+    assert f["rate"] == pytest.approx([0.0, qd2, 0.0])
+    assert f["sigma_min_rate_m_s"] < 0 and f["time_to_pinched_s"] > 0
+    assert f["time_to_limit_s"][0] is None and f["time_to_limit_s"][2] is None  # at rest: never
+    assert f["time_to_limit_s"][1] == pytest.approx((arm.q_min[1] - q2) / qd2)
+    assert f["first_limit_joint"] == 1
+    moving_away = report(capsys, "planar3", "--at", "0,30,0", "--deg", "--rate", "0,10,0")["foresight"]
+    assert moving_away["time_to_pinched_s"] is None  # moving away from the singularity

@@ -83,3 +83,26 @@ def test_the_service_reports_the_pose_of_the_positions_it_reports():
     np.testing.assert_allclose(A.T @ A, np.eye(3), atol=1e-9)
     np.testing.assert_allclose(A @ np.diag(r**2) @ A.T, Jv @ Jv.T, atol=1e-9)
     assert np.all(np.diff(r) <= 0)
+
+
+def test_health_carries_the_achieved_twist_its_error_and_the_foresight_of_the_solver():
+    # the service's health message as solver.foresight and the Resolution give them (themselves checked
+    # against finite differences and the planar two-link closed form in test_foresight.py)
+    cfg = make_config(simulation={"lag_s": 0.0})
+    with running_service(cfg) as run:
+        link = run.link()
+        link.claim("test")
+        link.enable()
+        v, w = [0.05, 0.0, -0.03], [0.0, 0.0, 0.2]
+        stream_until(link, v, w, lambda cs: sum(c.answers >= 0 for c in cs) > 30)
+        link.send_twist(v, w)
+        h = link.receive_health(timeout_s=2.0)
+        while h.mode != "running":
+            link.send_twist(v, w)
+            h = link.receive_health(timeout_s=2.0)
+    assert h.twist_achieved is not None and h.twist_error is not None
+    np.testing.assert_allclose(h.twist_achieved - h.twist_error, np.r_[v, w], atol=1e-9)  # the asked twist
+    assert h.tracking is False and h.sigma_min_rate_m_s is not None
+    assert h.time_to_limit_s.shape == (run.service.arm.n,)
+    if h.first_limit_joint is not None:
+        assert h.time_to_first_limit_s == pytest.approx(float(h.time_to_limit_s.min()))

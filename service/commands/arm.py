@@ -21,10 +21,12 @@ import numpy as np
 
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import InputError, ModelError, TwistrateError, field_error
+from twistrate.solver.foresight import foresight, task_joint_weight
 from twistrate.solver.health import assess
 from twistrate.solver.kinematics import forward, geometric_jacobian
 from twistrate.solver.load import parse_arm_source, read_arm_source
 from twistrate.solver.options import HealthThresholds, SolverOptions
+from twistrate.solver.svd import svd_full
 from twistrate.solver.urdf import DEFAULT_ACCEL_RAMP_S
 
 #: Version of the JSON report; bumped on any incompatible change of its keys or meaning.
@@ -52,7 +54,11 @@ def _parser() -> argparse.ArgumentParser:
                    help="URDF only: the chain's tool link (default: the single leaf)")
     p.add_argument("--at", metavar="Q1,Q2,...",
                    help="joint positions, comma-separated, one per joint (rad or m; default: home)")
-    p.add_argument("--deg", action="store_true", help="--at values of revolute joints are in degrees")
+    p.add_argument("--rate", metavar="QD1,QD2,...",
+                   help="joint rates, rad/s or m/s (deg/s with --deg): add the foresight along them (time "
+                        "to the pinched threshold, time to each position limit)")
+    p.add_argument("--deg", action="store_true",
+                   help="--at (and --rate) values of revolute joints are in degrees (per second)")
     p.add_argument("--length", metavar="M", type=str, default=None,
                    help="characteristic length (m) weighting angular against linear rows in the health "
                         f"measures (default {SolverOptions().characteristic_length})")
@@ -64,8 +70,8 @@ def _join_at(argv: list[str]) -> list[str]:
     """Turn `--at -10,20` into `--at=-10,20` so argparse does not read the value as an option."""
     out, i = [], 0
     while i < len(argv):
-        if argv[i] == "--at" and i + 1 < len(argv):
-            out.append(f"--at={argv[i + 1]}")
+        if argv[i] in ("--at", "--rate") and i + 1 < len(argv):
+            out.append(f"{argv[i]}={argv[i + 1]}")
             i += 2
         else:
             out.append(argv[i])
@@ -101,6 +107,25 @@ def parse_configuration(arm: Arm, text: str, degrees: bool) -> np.ndarray:
     return q
 
 
+def parse_rates(arm: Arm, text: str, degrees: bool) -> np.ndarray:
+    """qd : (n,) rad/s / m/s from the --rate text; InputError names --rate, the joint and the value."""
+    items = [s.strip() for s in text.split(",")]
+    if len(items) != arm.n:
+        raise field_error(InputError, "--rate", text, f"{arm.n} comma-separated values, one per joint "
+                          f"({', '.join(arm.joint_names)})")
+    qd = np.empty(arm.n)
+    for i, (item, joint) in enumerate(zip(items, arm.joints, strict=True)):
+        try:
+            value = float(item)
+        except ValueError:
+            value = math.nan
+        if not math.isfinite(value):
+            raise field_error(InputError, f"--rate value {i + 1} (joint {joint.name!r})", item,
+                              "a finite number")
+        qd[i] = math.radians(value) if degrees and arm.revolute[i] else value
+    return qd
+
+
 def _finite_or_none(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
@@ -117,12 +142,12 @@ def parse_length(text: str) -> float:
 
 
 def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: list[str],
-                 options: SolverOptions | None = None) -> dict[str, Any]:
+                 options: SolverOptions | None = None, rate: np.ndarray | None = None) -> dict[str, Any]:
     """The report as a JSON-ready dict (SI units; layout documented in docs/arm-format.md).
 
     q : (n,) joint positions, rad / m. q_source : "home" or "--at".
     options : solver options whose characteristic length and joint weights the health measures
-        use (defaults when None).
+        use (defaults when None). rate : (n,) joint rates, rad/s / m/s, for the foresight, or None.
     """
     options = SolverOptions() if options is None else options
     frames = forward(arm, q)
@@ -149,6 +174,8 @@ def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: lis
         "jacobian": J.tolist(),
     }
     report.update(_health_fields(arm, q, J, options))
+    if rate is not None:
+        report["foresight"] = _foresight_fields(arm, q, rate, J, options)
     report["notes"] = notes
     return report
 
@@ -172,6 +199,19 @@ def _health_fields(arm: Arm, q: np.ndarray, J: np.ndarray, options: SolverOption
         "state_thresholds": {"narrow_below_m": thresholds.narrow_below,
                              "pinched_below_m": thresholds.pinched_below},
     }
+
+
+def _foresight_fields(arm: Arm, q: np.ndarray, rate: np.ndarray, J: np.ndarray,
+                      options: SolverOptions) -> dict[str, Any]:
+    """twistrate.solver.foresight along `rate` (the health message's `foresight`, plus the rate itself)."""
+    weight = task_joint_weight(arm.n, options.characteristic_length, options.joint_weights)
+    U, s, _ = svd_full(J * weight)
+    s = s[:min(6, arm.n)]
+    f = foresight(arm, q, rate, J, U, s, weight, HealthThresholds().pinched_below)
+    return {"rate": rate.tolist(), "sigma_min_rate_m_s": f.sigma_min_rate_m_s,
+            "time_to_pinched_s": f.time_to_pinched_s,
+            "time_to_limit_s": [_finite_or_none(t) for t in f.time_to_limit_s],
+            "first_limit_joint": f.first_limit_joint, "time_to_first_limit_s": f.time_to_first_limit_s}
 
 
 def _num(v: float) -> str:
@@ -265,18 +305,19 @@ def main(argv: list[str] | None = None) -> int:
         if args.length is not None:
             options = SolverOptions(characteristic_length=parse_length(args.length))
         if args.at is None:
-            if args.deg:
-                raise field_error(InputError, "--deg", True, "only together with --at")
+            if args.deg and args.rate is None:
+                raise field_error(InputError, "--deg", True, "only together with --at or --rate")
             q, q_source = np.array(arm.q_home, dtype=float), "home"
         else:
             q, q_source = parse_configuration(arm, args.at, args.deg), "--at"
+        rate = None if args.rate is None else parse_rates(arm, args.rate, args.deg)
     except TwistrateError as exc:  # InputError, ModelError, or any other error of ours
         hint = ""
         if isinstance(exc, ModelError) and ("tool_link" in str(exc) or "base_link" in str(exc)):
             hint = "\n(choose the URDF chain with --base LINK and --tool LINK)"
         print(f"twistrate arm: {exc}{hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    report = build_report(arm, q, q_source, label, notes, options)
+    report = build_report(arm, q, q_source, label, notes, options, rate)
     text = json.dumps(report, indent=1, allow_nan=False) if args.json else format_text(report)
     try:
         print(text)

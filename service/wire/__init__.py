@@ -15,6 +15,7 @@ from twistrate.service.wire.control import (
     error_code,
     peek_request,
 )
+from twistrate.service.wire.health import decode_health, encode_health
 from twistrate.service.wire.messages import (
     CommandMessage,
     EventMessage,
@@ -31,14 +32,12 @@ from twistrate.service.wire.state import decode_state, encode_state
 from twistrate.service.wire.stream import (
     decode_command,
     decode_event,
-    decode_health,
     decode_intake,
     decode_joints,
     decode_output,
     decode_twist,
     encode_command,
     encode_event,
-    encode_health,
     encode_joints,
     encode_twist,
 )

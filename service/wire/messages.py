@@ -74,6 +74,17 @@ class HealthMessage(NamedTuple):
         +inf for a joint without position limits (nil on the wire).
     rejected : {reason: count} of refused intake messages since start.
     overruns : ticks that missed their deadline since start.
+    tracking : True when no scale of the asked twist fit the bounds and the rates are the bounded
+        least-squares ones nearest it (scale 0).
+    twist_achieved, twist_error : (6,) (v, w) base frame at the tool point, m/s and rad/s: the twist the
+        rates make and achieved - asked (scaling, damping and tracking together); None when not running.
+    sigma_min_rate_m_s : rate of the smallest task-weighted singular value along the commanded rates,
+        m/s, or None where it is not defined (repeated or zero value; not running).
+    time_to_pinched_s : first-order time until that value reaches the pinched threshold, s; 0 when
+        already there; None when moving away, steady or undefined.
+    time_to_limit_s : (n,) per joint, time until its commanded rate reaches the position limit it moves
+        toward, s; +inf never (nil on the wire). first_limit_joint / time_to_first_limit_s : the joint
+        (0-based) that gets there first and when, or None.
     """
 
     seq: int
@@ -93,6 +104,14 @@ class HealthMessage(NamedTuple):
     mode: str
     rejected: dict[str, int]
     overruns: int
+    tracking: bool
+    twist_achieved: np.ndarray | None
+    twist_error: np.ndarray | None
+    sigma_min_rate_m_s: float | None
+    time_to_pinched_s: float | None
+    time_to_limit_s: np.ndarray
+    first_limit_joint: int | None
+    time_to_first_limit_s: float | None
 
 
 class EventMessage(NamedTuple):

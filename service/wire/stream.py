@@ -8,8 +8,7 @@ magnitudes are checked in plain Python (twistrate.service.wire.checks).
 
 from __future__ import annotations
 
-import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 
 import msgpack
 import numpy as np
@@ -22,10 +21,8 @@ from twistrate.service.wire.checks import (
     dec_num,
     dec_str,
     dec_vec,
-    dec_vec_any,
     enc_floats,
     enc_int,
-    enc_num,
     enc_str,
     header,
     input_fail,
@@ -33,7 +30,6 @@ from twistrate.service.wire.checks import (
     open_map,
     pack,
     seq_stamp,
-    submap,
     unpack,
     wire_fail,
 )
@@ -41,29 +37,21 @@ from twistrate.service.wire.constants import (
     HEALTH_STATES,
     KIND_COMMAND,
     KIND_EVENT,
-    KIND_HEALTH,
     KIND_JOINTS,
     KIND_TWIST,
     MAX_ANGULAR_RADPS,
     MAX_COMMAND_BYTES,
-    MAX_DIRECTION,
     MAX_EVENT_BYTES,
-    MAX_HEALTH_BYTES,
     MAX_JOINT_POSITION,
     MAX_JOINT_VELOCITY,
     MAX_JOINTS,
     MAX_JOINTS_BYTES,
     MAX_LINEAR_MPS,
-    MAX_MAP_ENTRIES,
-    MAX_MARGIN_FRACTION,
-    MAX_MEASURE,
     MAX_NAME_CHARS,
     MAX_POINT_M,
     MAX_TEXT_CHARS,
     MAX_TOPIC_BYTES,
     MAX_TWIST_BYTES,
-    MAX_WEAKEST_ANGULAR,
-    MIN_MARGIN_FRACTION,
     MODES,
     PROTOCOL_VERSION,
     SEQ_MAX,
@@ -75,10 +63,10 @@ from twistrate.service.wire.constants import (
     TOPIC_TWIST,
     TWIST_FRAMES,
 )
+from twistrate.service.wire.health import decode_health
 from twistrate.service.wire.messages import (
     CommandMessage,
     EventMessage,
-    HealthMessage,
     JointsMessage,
     OutputMessage,
     TwistMessage,
@@ -218,106 +206,6 @@ def decode_command(data: bytes, n: int | None = None) -> CommandMessage:
     mode = dec_str(m["mode"], "command.mode", MAX_NAME_CHARS, MODES)
     health = dec_str(m["health"], "command.health", MAX_NAME_CHARS, HEALTH_STATES)
     return CommandMessage(seq, stamp, tick, rate, target, answers, scale, mode, health)
-
-
-# =================================================================================================
-# health (out, topic b"health", at the configured publish rate)
-# =================================================================================================
-
-_HEALTH_KEYS = frozenset((*HEADER_KEYS, "tick", "manipulability", "singular_values", "inverse_condition",
-                          "weakest", "damping", "scale", "limit_margin", "state", "mode", "rejected",
-                          "overruns"))
-_MANIP_KEYS = frozenset(("whole", "linear", "angular"))
-_WEAKEST_KEYS = frozenset(("linear", "angular"))
-
-
-def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: float,
-                  manipulability_linear: float, manipulability_angular: float,
-                  singular_values: np.ndarray, inverse_condition: float, weakest_linear: np.ndarray,
-                  weakest_angular: np.ndarray, damping: float, scale: float, limit_margin: np.ndarray,
-                  state: str, mode: str, rejected: Mapping[str, int], overruns: int) -> bytes:
-    """Encode a health report (fields as HealthMessage). limit_margin entries may be +inf (sent as nil)."""
-    m = header(KIND_HEALTH, seq, stamp_ns)
-    m["tick"] = enc_int(tick, "health.tick", 0, SEQ_MAX)
-    m["manipulability"] = {
-        "whole": enc_num(manipulability, "health.manipulability.whole", 0.0, MAX_MEASURE),
-        "linear": enc_num(manipulability_linear, "health.manipulability.linear", 0.0, MAX_MEASURE),
-        "angular": enc_num(manipulability_angular, "health.manipulability.angular", 0.0, MAX_MEASURE),
-    }
-    sv = enc_floats(singular_values, "health.singular_values", None, MAX_MEASURE)
-    if not 1 <= len(sv) <= 6 or min(sv) < 0.0:
-        raise input_fail("health.singular_values", sv, "1 to 6 non-negative numbers")
-    m["singular_values"] = sv
-    m["inverse_condition"] = enc_num(inverse_condition, "health.inverse_condition", 0.0, 1.0)
-    m["weakest"] = {"linear": enc_floats(weakest_linear, "health.weakest.linear", 3, MAX_DIRECTION),
-                    "angular": enc_floats(weakest_angular, "health.weakest.angular", 3,
-                                            MAX_WEAKEST_ANGULAR)}
-    m["damping"] = enc_num(damping, "health.damping", 0.0, MAX_MEASURE)
-    m["scale"] = enc_num(scale, "health.scale", 0.0, 1.0)
-    margins = np.asarray(limit_margin, dtype=float).reshape(-1)
-    if not 1 <= margins.size <= MAX_JOINTS:
-        raise input_fail("health.limit_margin", f"{margins.size} entries", f"1 to {MAX_JOINTS} entries")
-    wire_margins: list[float | None] = []
-    for x in margins.tolist():
-        if x == math.inf:
-            wire_margins.append(None)
-        elif MIN_MARGIN_FRACTION <= x <= MAX_MARGIN_FRACTION:
-            wire_margins.append(x)
-        else:
-            raise input_fail("health.limit_margin", margins.tolist(),
-                             f"fractions of the joint range in [{MIN_MARGIN_FRACTION:g}, 0.5], or +inf for "
-                             "an unlimited joint")
-    m["limit_margin"] = wire_margins
-    m["state"] = enc_str(state, "health.state", MAX_NAME_CHARS, HEALTH_STATES)
-    m["mode"] = enc_str(mode, "health.mode", MAX_NAME_CHARS, MODES)
-    if len(rejected) > MAX_MAP_ENTRIES:
-        raise input_fail("health.rejected", f"{len(rejected)} entries", f"at most {MAX_MAP_ENTRIES}")
-    m["rejected"] = {enc_str(k, "health.rejected key", MAX_NAME_CHARS):
-                     enc_int(v, f"health.rejected.{k}", 0, SEQ_MAX) for k, v in rejected.items()}
-    m["overruns"] = enc_int(overruns, "health.overruns", 0, SEQ_MAX)
-    return pack(m, MAX_HEALTH_BYTES, KIND_HEALTH)
-
-
-
-def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
-    """Decode and check a health report; n : expected joint count, or None to accept 1..MAX_JOINTS."""
-    m, seq, stamp = open_map(data, MAX_HEALTH_BYTES, KIND_HEALTH, _HEALTH_KEYS, False)
-    tick = dec_int(m["tick"], "health.tick", 0, SEQ_MAX)
-    man = submap(m["manipulability"], "health.manipulability", _MANIP_KEYS)
-    whole = dec_num(man["whole"], "health.manipulability.whole", 0.0, MAX_MEASURE)
-    lin = dec_num(man["linear"], "health.manipulability.linear", 0.0, MAX_MEASURE)
-    ang = dec_num(man["angular"], "health.manipulability.angular", 0.0, MAX_MEASURE)
-    sv = dec_vec_any(m["singular_values"], "health.singular_values", MAX_MEASURE, 1, 6)
-    if sv.min() < 0.0:
-        raise wire_fail("bad_value", "health.singular_values", sv.tolist(), "non-negative numbers")
-    inv = dec_num(m["inverse_condition"], "health.inverse_condition", 0.0, 1.0)
-    weak = submap(m["weakest"], "health.weakest", _WEAKEST_KEYS)
-    wl = dec_vec(weak["linear"], "health.weakest.linear", 3, MAX_DIRECTION)
-    wa = dec_vec(weak["angular"], "health.weakest.angular", 3, MAX_WEAKEST_ANGULAR)
-    damping = dec_num(m["damping"], "health.damping", 0.0, MAX_MEASURE)
-    scale = dec_num(m["scale"], "health.scale", 0.0, 1.0)
-    raw_margin = m["limit_margin"]
-    if type(raw_margin) is not list:
-        raise wire_fail("bad_type", "health.limit_margin", raw_margin, "an array of numbers or nil")
-    if n is not None and len(raw_margin) != n:
-        raise wire_fail("bad_length", "health.limit_margin", f"{len(raw_margin)} entries",
-                        f"exactly {n} entries")
-    if not 1 <= len(raw_margin) <= MAX_JOINTS:
-        raise wire_fail("bad_length", "health.limit_margin", f"{len(raw_margin)} entries",
-                    f"1 to {MAX_JOINTS} entries")
-    margin = np.array([math.inf if x is None else
-                       dec_num(x, f"health.limit_margin[{i}]", MIN_MARGIN_FRACTION, MAX_MARGIN_FRACTION)
-                       for i, x in enumerate(raw_margin)], dtype=float)
-    state = dec_str(m["state"], "health.state", MAX_NAME_CHARS, HEALTH_STATES)
-    mode = dec_str(m["mode"], "health.mode", MAX_NAME_CHARS, MODES)
-    raw_rej = m["rejected"]
-    if type(raw_rej) is not dict:
-        raise wire_fail("bad_type", "health.rejected", raw_rej, "a map of reason -> count")
-    rejected = {dec_str(k, "health.rejected key", MAX_NAME_CHARS):
-                dec_int(v, f"health.rejected.{k}", 0, SEQ_MAX) for k, v in raw_rej.items()}
-    overruns = dec_int(m["overruns"], "health.overruns", 0, SEQ_MAX)
-    return HealthMessage(seq, stamp, tick, whole, lin, ang, sv, inv, wl, wa, damping, scale, margin, state,
-                         mode, rejected, overruns)
 
 
 # =================================================================================================

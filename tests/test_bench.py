@@ -33,7 +33,7 @@ HAS_PINOCCHIO = importlib.util.find_spec("pinocchio") is not None
 
 def test_bench_solver_smoke_run_writes_every_figure(tmp_path: Path, capsys) -> None:
     out = tmp_path / "bench.json"
-    assert main(["solver", "--ticks", "100", "--rounds", "1", "--json", str(out)]) == 0
+    assert main(["solver", "--ticks", "100", "--rounds", "1", "--no-saturation", "--json", str(out)]) == 0
     text = capsys.readouterr().out
     assert "load average at start" in text and "load average at end" in text
     report = json.loads(out.read_text())
@@ -101,3 +101,15 @@ def test_reference_loop_damps_like_resolve_near_a_singularity() -> None:
     r = resolve(arm, q, np.zeros(6), tw, T, options)
     assert r.damping > 0.0
     np.testing.assert_allclose(_reference_rates("bench6", q, r.qd, tw, options), r.qd, rtol=1e-9, atol=1e-12)
+
+
+def test_the_saturation_section_prints_every_run_and_the_cost():
+    from twistrate.service.bench.saturation_report import format_saturation, saturation_section
+
+    section = saturation_section(("bench6",), push_s=0.6, demo_s=2.0, cost_ticks=100)
+    text = format_saturation(section)
+    assert set(section["runs"]) == {"bench6 jog", "bench6 steps", "demo pass"}
+    for name, run in section["runs"].items():
+        assert name in text
+        assert 0.0 <= run["scale_zero_fraction"] <= 1.0 and run["peak_acceleration_ratio"] <= 1.0 + 1e-9
+    assert section["cost"]["saturated_to_free"] > 0 and "x the free tick" in text

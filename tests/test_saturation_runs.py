@@ -1,4 +1,4 @@
-"""The scenario runs of the saturated tick (twistrate.service.saturation_runs): figures computed right on
+"""The scenario runs of the saturated tick (twistrate.service.bench.saturation): figures computed right on
 hand-made records, and short runs of the scripted wrist push and the demo pass meeting issue 12's
 criteria where they apply (bounds every tick; no chatter; scale 0 below 0.5 % on the jogged push).
 """
@@ -7,14 +7,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from twistrate.service.commands.demo import scripted_twist
-from twistrate.service.saturation_runs import (
+from twistrate.service.bench.saturation import (
     SIGN_DEADBAND,
     demo_replay,
     motion_figures,
     push_through_wrist,
     tick_cost,
 )
+from twistrate.service.commands.demo import scripted_twist
 from twistrate.solver.load import load_arm
 
 

@@ -44,6 +44,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.service.bench.compiled import pinocchio_model
+from twistrate.service.bench.saturation_report import format_saturation, saturation_section
 from twistrate.service.bench.straightforward import check_plain, plain_model, straightforward_tick
 from twistrate.solver.arm import Arm
 from twistrate.solver.kinematics import Frames
@@ -113,6 +114,8 @@ def run(argv: list[str]) -> int:
                         help="replays of the free trajectory (default %(default)s)")
     parser.add_argument("--arms", default=",".join(DEFAULT_ARMS),
                         help="comma-separated arm files or example names (default: %(default)s)")
+    parser.add_argument("--no-saturation", action="store_true",
+                        help="skip the saturated-tick section (the scripted pushes, the demo pass, its cost)")
     parser.add_argument("--period", type=float, default=DEFAULT_PERIOD_S,
                         help="tick period, s (default %(default)s)")
     ns = parser.parse_args(argv)
@@ -132,6 +135,9 @@ def run(argv: list[str]) -> int:
         figures = bench_arm(arm, name.strip(), ns.ticks, ns.period, ns.rounds)
         report["arms"][arm.name] = figures
         _print_arm(arm, figures)
+    if not ns.no_saturation:
+        report["saturation"] = saturation_section()
+        print(format_saturation(report["saturation"]) + "\n")
     report["load_average_end"] = _load_average()
     print(f"load average at end: {_fmt_load(report['load_average_end'])}")
     if ns.json:

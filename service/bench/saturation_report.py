@@ -1,0 +1,48 @@
+"""The saturated tick's section of `twistrate bench solver`: the scripted pushes through the wrist
+singularity (jogged and stepped), the demo's pass replayed at solver level, and the cost of the
+saturated 7-joint tick against the free one in the same process (service/bench/saturation.py)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from twistrate.service.bench.saturation import demo_replay, push_through_wrist, tick_cost
+from twistrate.service.commands.demo import scripted_twist
+
+#: Targets of the saturated tick (the 7-joint arm; ratios and shares, measured in one run).
+TARGETS = {"scale_zero_fraction": 0.005, "saturated_to_free": 2.0, "saturated_p99_us": 200.0,
+           "peak_acceleration_ratio": 1.0 + 1e-9}
+
+
+def saturation_section(arms: tuple[str, ...] = ("bench6", "reach7"), push_s: float = 4.0,
+                       demo_s: float = 24.0, cost_ticks: int = 2000) -> dict[str, Any]:
+    """Every figure of the section (plain numbers; printed by format_saturation). The durations and
+    the timed tick count are for smoke tests only; the figures come from the defaults."""
+    runs: dict[str, Any] = {}
+    for name in arms:
+        runs[f"{name} jog"] = push_through_wrist(name, seconds=push_s, ramp_s=0.25)
+        runs[f"{name} steps"] = push_through_wrist(name, seconds=push_s, ramp_s=0.0)
+    runs["demo pass"] = demo_replay(scripted_twist, seconds=demo_s)
+    return {"runs": runs, "cost": tick_cost("reach7", ticks=cost_ticks), "targets": TARGETS}
+
+
+def _pct(x: float | None) -> str:
+    return "n/a" if x is None else f"{100 * x:5.2f} %"
+
+
+def format_saturation(section: dict[str, Any]) -> str:
+    lines = ["saturated tick (closed loop at 500 Hz; shares of the running ticks):",
+             "  run             scale 0  after a step  below half   stalled  peak accel / limit  "
+             "sign changes (max) / asked turns"]
+    for name, r in section["runs"].items():
+        lines.append(f"  {name:<14} {_pct(r['scale_zero_fraction'])} "
+                     f"{_pct(r['scale_zero_after_step_fraction'])}     {_pct(r['below_half_fraction'])}  "
+                     f"{_pct(r['stalled_fraction'])}  "
+                     f"{r['peak_acceleration_ratio']:8.3f}           {max(r['sign_changes'])} / "
+                     f"{r['asked_direction_changes']}")
+    c = section["cost"]
+    lines.append(f"  cost ({c['arm']}): free tick median {c['free_median_us']:.1f} us, saturated median "
+                 f"{c['saturated_median_us']:.1f} us = {c['saturated_to_free']:.2f}x the free tick "
+                 f"(target <= 2x), saturated p99 {c['saturated_p99_us']:.1f} us (target <= 200); "
+                 f"{100 * c['tracking_share']:.0f} % of the saturated states track")
+    return "\n".join(lines)

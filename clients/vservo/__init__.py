@@ -1,0 +1,8 @@
+"""twistrate.clients.vservo: visual servoing of a camera loop (pure numpy, no wire, no clock).
+
+Camera model and projection (`camera`), rigid-motion helpers (`rigid`), the point interaction
+matrix (`interaction`), the image- and position-based laws (`laws`), camera-to-tool twists for a
+camera on the tool or fixed in the cell (`transforms`), the feature frame and its gate (`features`),
+one servo step (`servo`), the convergence criterion and error log (`errorlog`), and a synthetic
+camera of our own invented cell (`synthetic`).
+"""

@@ -1,0 +1,116 @@
+"""One camera frame's features, and the gate that decides whether the law may use them.
+
+A frame carries either image points with ids (pixels, optional depths) or a target pose, plus the
+capture time. The gate turns the newest frame, its arrival time and the present time into a state:
+only `tracking` lets a twist through; every other state means a zero twist and no motion until
+good features return. Times are seconds on one monotonic clock the caller owns (no clock here).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import StrEnum
+
+import numpy as np
+
+from twistrate.clients.vservo.interaction import MIN_POINTS
+
+
+class ServoState(StrEnum):
+    """What the servo is doing. Shown on the terminal line and written to the error log."""
+
+    WAITING = "waiting"     # no frame since start
+    TRACKING = "tracking"   # fresh, usable features: the law's twist goes out
+    SETTLED = "settled"     # tracking and within the convergence criterion (errorlog.Convergence)
+    STALE = "stale"         # the newest frame is older than the staleness bound: zero twist
+    MISSING = "missing"     # the newest frame holds no known feature (target not found): zero twist
+    TOO_FEW = "too_few"     # fewer than MIN_POINTS known points, or an unusable pose: zero twist
+
+
+@dataclass(frozen=True, eq=False)
+class PointFrame:
+    """Image points of one frame. ids (N,) int; pixels (N, 2) (u, v) px; depths (N,) m or None;
+    capture_s: capture time, s, on the receiver's clock (the sender's capture_ns mapped by the caller)."""
+
+    ids: np.ndarray
+    pixels: np.ndarray
+    depths: np.ndarray | None
+    capture_s: float
+
+
+@dataclass(frozen=True, eq=False)
+class PoseFrame:
+    """A target pose estimate of one frame: T_cam_target (4, 4) or None when the target was not found."""
+
+    T_cam_target: np.ndarray | None
+    capture_s: float
+
+
+Frame = PointFrame | PoseFrame
+
+
+@dataclass(frozen=True)
+class Gate:
+    """Freshness bounds. A frame is stale once `stale_after_s` has passed since it arrived, or once its
+    capture is older than `max_age_s` (capture to now; set it to inf when the camera's clock is not
+    synchronised with ours)."""
+
+    stale_after_s: float = 0.2
+    max_age_s: float = float("inf")
+
+
+@dataclass(frozen=True, eq=False)
+class Matched:
+    """Points of a frame matched to the desired ones by id, in the desired set's order.
+
+    index (M,) int: rows of the desired set; pixels (M, 2) px; depths (M,) m or None."""
+
+    index: np.ndarray
+    pixels: np.ndarray
+    depths: np.ndarray | None
+
+
+def match(frame: PointFrame, desired_ids: np.ndarray) -> Matched:
+    """The frame's points whose id is one of `desired_ids` (K,), in desired order, finite ones only.
+
+    A duplicated id in a frame is ambiguous: all its copies are dropped (common practice: never guess
+    which detection is the right one)."""
+    ids = np.asarray(frame.ids)
+    ok = np.isfinite(frame.pixels).all(axis=1)
+    if frame.depths is not None:
+        ok &= np.isfinite(frame.depths) & (frame.depths > 0.0)
+    unique, counts = np.unique(ids, return_counts=True)
+    ok &= np.isin(ids, unique[counts == 1])
+    rows, index = [], []
+    for k, wanted in enumerate(np.asarray(desired_ids)):
+        hit = np.flatnonzero((ids == wanted) & ok)
+        if hit.size:
+            rows.append(int(hit[0]))
+            index.append(k)
+    rows_a = np.array(rows, dtype=int)
+    depths = None if frame.depths is None else np.asarray(frame.depths, float)[rows_a]
+    return Matched(np.array(index, dtype=int), np.asarray(frame.pixels, float)[rows_a].reshape(-1, 2),
+                   depths)
+
+
+def gate_state(frame: Frame | None, arrived_s: float, now_s: float, gate: Gate,
+               matched: Matched | None = None) -> ServoState:
+    """The state the newest frame allows (never SETTLED: convergence is judged elsewhere).
+
+    frame: the newest frame or None; arrived_s: when it arrived; now_s: the present; matched: its
+    points matched to the desired set (point frames only)."""
+    if frame is None:
+        return ServoState.WAITING
+    if now_s - arrived_s > gate.stale_after_s or now_s - frame.capture_s > gate.max_age_s:
+        return ServoState.STALE
+    if isinstance(frame, PoseFrame):
+        if frame.T_cam_target is None:
+            return ServoState.MISSING
+        if not np.isfinite(frame.T_cam_target).all():
+            return ServoState.TOO_FEW
+        return ServoState.TRACKING
+    if matched is None or matched.index.size == 0:
+        return ServoState.MISSING
+    if matched.index.size < MIN_POINTS:
+        return ServoState.TOO_FEW
+    return ServoState.TRACKING

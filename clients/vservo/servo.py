@@ -1,0 +1,192 @@
+"""One servo step: the newest frame in, a camera twist (or zero) and a state out; the wire twist.
+
+Pure and clock-free: the caller passes its monotonic times. Image-based servoing of points matched
+by id to a desired set, or position-based servoing of a target pose; zero twist whenever the gate
+says the features are stale, missing or too few. Twists are (6,) linear first (v, w), m/s and rad/s.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from twistrate.clients.vservo import laws, transforms
+from twistrate.clients.vservo.camera import Intrinsics
+from twistrate.clients.vservo.errorlog import Convergence
+from twistrate.clients.vservo.features import (
+    Frame,
+    Gate,
+    PointFrame,
+    PoseFrame,
+    ServoState,
+    gate_state,
+    match,
+)
+from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate
+from twistrate.solver.errors import ConfigError, field_error
+
+#: The discrete-time loop e_{k+1} = (1 - lambda T) e_k is stable for 0 < lambda T < 2; we refuse gains
+#: beyond this share of that bound, since latency lowers it further (common practice).
+GAIN_PERIOD_MAX = 1.0
+ZERO = np.zeros(6)
+ZERO.setflags(write=False)
+
+
+@dataclass(frozen=True, eq=False)
+class PointGoal:
+    """Desired view of points: ids (K,) int, pixels (K, 2) px, depths (K,) m, K >= MIN_POINTS."""
+
+    ids: np.ndarray
+    pixels: np.ndarray
+    depths: np.ndarray
+
+    def __post_init__(self) -> None:
+        K = len(self.ids)
+        if K < MIN_POINTS or len(np.unique(self.ids)) != K:
+            raise field_error(ConfigError, "goal.ids", list(self.ids), f"at least {MIN_POINTS} distinct ids")
+        if np.shape(self.pixels) != (K, 2) or not np.isfinite(self.pixels).all():
+            raise field_error(ConfigError, "goal.pixels", np.shape(self.pixels), f"({K}, 2) finite pixels")
+        if np.shape(self.depths) != (K,) or not (np.asarray(self.depths) > 0.0).all():
+            raise field_error(ConfigError, "goal.depths", self.depths, f"{K} depths > 0 m")
+
+
+@dataclass(frozen=True, eq=False)
+class PoseGoal:
+    """Desired pose of the target in the camera frame: T_camstar_target (4, 4)."""
+
+    T_camstar_target: np.ndarray
+
+
+@dataclass(frozen=True)
+class Settings:
+    """How the servo runs. period_s: the servo period T (s) the gain is checked against."""
+
+    intrinsics: Intrinsics
+    gain: laws.GainSchedule
+    period_s: float
+    depth: DepthChoice = DepthChoice.MEAN
+    linear_max: float = 0.05
+    angular_max: float = 0.3
+    gate: Gate = field(default_factory=Gate)
+
+    def __post_init__(self) -> None:
+        if not (np.isfinite(self.period_s) and self.period_s > 0.0):
+            raise field_error(ConfigError, "period_s", self.period_s, "a servo period > 0 s")
+        if self.gain.largest * self.period_s > GAIN_PERIOD_MAX:
+            raise field_error(ConfigError, "gain", self.gain.largest,
+                              f"lambda * period <= {GAIN_PERIOD_MAX} (here lambda <= "
+                              f"{GAIN_PERIOD_MAX / self.period_s:g} 1/s)")
+        for name in ("linear_max", "angular_max"):
+            value = getattr(self, name)
+            if not (np.isfinite(value) and value > 0.0):
+                raise field_error(ConfigError, name, value, "a finite speed cap > 0")
+
+
+@dataclass(frozen=True, eq=False)
+class Step:
+    """One step's result. twist (6,): the camera twist to send (camera frame), zero unless tracking."""
+
+    state: ServoState
+    twist: np.ndarray
+    points: int = 0
+    error_px_mean: float | None = None
+    error_px_max: float | None = None
+    error_norm: float | None = None
+    error_m: float | None = None
+    error_rad: float | None = None
+    gain: float = 0.0
+
+    @property
+    def moving(self) -> bool:
+        return self.state in (ServoState.TRACKING, ServoState.SETTLED)
+
+
+class Servo:
+    """Holds the settings, the goal and the convergence count; `step` is the whole law."""
+
+    def __init__(self, settings: Settings, goal: PointGoal | PoseGoal,
+                 convergence: Convergence | None = None) -> None:
+        self.settings = settings
+        self.goal = goal
+        self.convergence = convergence or Convergence()
+        if isinstance(goal, PointGoal):
+            self._xy_star = settings.intrinsics.normalised(goal.pixels)
+
+    def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
+        """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
+        if isinstance(self.goal, PointGoal):
+            if frame is not None and not isinstance(frame, PointFrame):
+                self.convergence.reset()
+                return Step(ServoState.TOO_FEW, ZERO)
+            return self._points(frame, arrived_s, now_s)
+        if frame is not None and not isinstance(frame, PoseFrame):
+            self.convergence.reset()
+            return Step(ServoState.TOO_FEW, ZERO)
+        return self._pose(frame, arrived_s, now_s)
+
+    def _points(self, frame: PointFrame | None, arrived_s: float, now_s: float) -> Step:
+        goal, s = self.goal, self.settings
+        matched = match(frame, goal.ids) if frame is not None else None
+        state = gate_state(frame, arrived_s, now_s, s.gate, matched)
+        if state is not ServoState.TRACKING:
+            self.convergence.reset()
+            return Step(state, ZERO, points=0 if matched is None else int(matched.index.size))
+        k = matched.index
+        distance = np.linalg.norm(matched.pixels - goal.pixels[k], axis=1)
+        xy = s.intrinsics.normalised(matched.pixels)
+        e = (xy - self._xy_star[k]).ravel()
+        error_norm = float(np.linalg.norm(e))
+        L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k])
+        gain = s.gain(error_norm)
+        twist = laws.saturate(laws.ibvs_twist(L_hat, e, gain), s.linear_max, s.angular_max)
+        mean_px = float(distance.mean())
+        settled = self.convergence.update_points(mean_px)
+        return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, points=int(k.size),
+                    error_px_mean=mean_px, error_px_max=float(distance.max()), error_norm=error_norm,
+                    gain=gain)
+
+    def _pose(self, frame: PoseFrame | None, arrived_s: float, now_s: float) -> Step:
+        s = self.settings
+        state = gate_state(frame, arrived_s, now_s, s.gate)
+        if state is not ServoState.TRACKING:
+            self.convergence.reset()
+            return Step(state, ZERO)
+        t, theta_u = laws.pbvs_error(frame.T_cam_target, self.goal.T_camstar_target)
+        error_m, error_rad = float(np.linalg.norm(t)), float(np.linalg.norm(theta_u))
+        gain = s.gain(float(np.hypot(error_m, error_rad)))
+        twist = laws.pbvs_twist(frame.T_cam_target, self.goal.T_camstar_target, gain)
+        twist = laws.saturate(twist, s.linear_max, s.angular_max)
+        settled = self.convergence.update_pose(error_m, error_rad)
+        return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, error_m=error_m,
+                    error_rad=error_rad, gain=gain)
+
+
+@dataclass(frozen=True)
+class Mount:
+    """Where the camera is: on the tool (`tool`, T = T_tool_cam from the hand-eye calibration) or fixed
+    in the cell (`cell`, T = T_base_cam), (4, 4)."""
+
+    kind: str
+    T: np.ndarray
+
+    def __post_init__(self) -> None:
+        if self.kind not in ("tool", "cell"):
+            raise field_error(ConfigError, "mount", self.kind, "'tool' or 'cell'")
+
+
+def wire_twist(twist: np.ndarray, mount: Mount, p_base_tool: np.ndarray | None = None) -> dict:
+    """The service's twist fields {linear, angular, frame, point} (lists of float) for a camera twist
+    (6,). A camera on the tool needs nothing else (tool frame, at the camera); a camera in the cell
+    needs the tool origin p_base_tool (3,) m, base frame (base frame, at the camera's location)."""
+    if mount.kind == "tool":
+        linear, angular, point = transforms.camera_point_twist(twist, mount.T)
+        frame = "tool"
+    else:
+        if p_base_tool is None:
+            raise field_error(ConfigError, "p_base_tool", None,
+                              "the tool origin (3,) m for a camera in the cell")
+        linear, angular, point = transforms.eye_to_hand_twist(twist, mount.T, p_base_tool)
+        frame = "base"
+    return {"linear": [float(c) for c in linear], "angular": [float(c) for c in angular],
+            "frame": frame, "point": [float(c) for c in point]}

@@ -45,9 +45,10 @@ def pbvs_twist(T_cam_target: np.ndarray, T_camstar_target: np.ndarray, gain: flo
 
     The paper's section "Position-based visual servo", second choice of s: v_c = -lambda R^T c*t_c,
     w_c = -lambda theta u, R = c*R_c. Derivation checked in the tests: with v_c expressed in the
-    current camera frame, d(c*t_c)/dt = c*R_c v and d(theta u)/dt = L_theta_u w with
-    L_theta_u w = w when w is parallel to u; so e decays as exp(-lambda t) and the camera origin moves
-    on a straight line towards the desired one (in the desired frame).
+    current camera frame, d(c*t_c)/dt = c*R_c v and d(theta u)/dt = L_theta_u w, L_theta_u = I +
+    theta/2 [u]x + (1 - sinc theta / sinc^2(theta/2)) [u]x^2 (the paper prints -theta/2 for the
+    opposite rotation convention; finite differences fix ours). L_theta_u theta u = theta u, so e decays
+    as exp(-lambda t) and the camera origin moves on a straight line to the desired one (desired frame).
     """
     T_camstar_cam = T_camstar_target @ inverse(T_cam_target)
     t, R = T_camstar_cam[:3, 3], T_camstar_cam[:3, :3]

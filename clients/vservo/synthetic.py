@@ -78,12 +78,15 @@ def _panel_dots() -> np.ndarray:
                      [-0.05, 0.035, 0.0], [0.02, 0.012, 0.0]])
 
 
-def panel_cell() -> Cell:
-    """Eye-in-hand: the panel on the bench, the camera 4 cm beside the tool axis, turned 90 degrees."""
-    T_base_panel = transform(rotation_about([0, 0, 1], np.deg2rad(15.0)), np.array([0.55, 0.05, 0.20]))
-    T_tool_cam = transform(rotation_about([0, 0, 1], np.pi / 2), np.array([0.04, 0.0, 0.02]))
-    return Cell(DEMO_INTRINSICS, np.arange(21, 26), _panel_dots(), "base", T_base_panel,
-                Mount("tool", T_tool_cam))
+#: The panel on the bench: 0.20 m high, in front of the example arm, turned 15 degrees.
+T_BASE_PANEL = transform(rotation_about([0, 0, 1], np.deg2rad(15.0)), np.array([0.55, 0.05, 0.20]))
+#: The invented hand-eye calibration: 4 cm beside the tool axis, 2 cm below the tool, turned 90 degrees.
+T_TOOL_CAM = transform(rotation_about([0, 0, 1], np.pi / 2), np.array([0.04, 0.0, 0.02]))
+
+
+def panel_cell(intrinsics: Intrinsics = DEMO_INTRINSICS, T_tool_cam: np.ndarray = T_TOOL_CAM) -> Cell:
+    """Eye-in-hand: the panel on the bench seen by a camera on the tool (T_tool_cam (4, 4))."""
+    return Cell(intrinsics, np.arange(21, 26), _panel_dots(), "base", T_BASE_PANEL, Mount("tool", T_tool_cam))
 
 
 def panel_goal_tool_pose(cell: Cell, height_m: float = 0.22, yaw_rad: float = 0.0) -> np.ndarray:

@@ -1,0 +1,108 @@
+"""The features socket (docs/vision.md section 1): vservo's end (bind, SUB, newest frame) and a sender's
+end (connect, PUB) for camera pipelines written in Python, the synthetic camera and the benchmark.
+
+Every receive has a timeout; decode failures are counted by reason, never raised into the loop.
+"""
+
+from __future__ import annotations
+
+import time
+from collections import Counter
+from collections.abc import Sequence
+
+import numpy as np
+import zmq
+
+from twistrate.clients.vservo.features import PointFrame, PoseFrame
+from twistrate.service.wire import features as wf
+from twistrate.solver.errors import WireError
+
+#: Socket bounds (the protocol's habit, docs/protocol.md section 12).
+MAX_MESSAGE_BYTES = 65536
+RECEIVE_HWM = 100
+SEND_HWM = 100
+
+
+class FeatureInput:
+    """Binds a SUB to the features endpoint; `newest(timeout_s)` returns the newest good message.
+
+    camera: the only camera name accepted (others are counted `wrong_camera`)."""
+
+    def __init__(self, endpoint: str, camera: str, context: zmq.Context | None = None) -> None:
+        self.camera = camera
+        self.refused: Counter[str] = Counter()
+        self.received = 0
+        self._own = context is None
+        self._ctx = context or zmq.Context()
+        self._sock = self._ctx.socket(zmq.SUB)
+        self._sock.setsockopt(zmq.LINGER, 0)
+        self._sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
+        self._sock.setsockopt(zmq.RCVHWM, RECEIVE_HWM)
+        self._sock.setsockopt(zmq.SUBSCRIBE, wf.TOPIC_FEATURES)
+        self._sock.bind(endpoint)
+        self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
+
+    def newest(self, timeout_s: float) -> tuple[wf.FeaturesMessage, float] | None:
+        """Wait up to timeout_s for a message; then take every queued one and return the newest good one
+        with its arrival time (time.monotonic(), s), or None."""
+        if not self._sock.poll(max(0, int(timeout_s * 1000)), zmq.POLLIN):
+            return None
+        best = None
+        while self._sock.poll(0, zmq.POLLIN):
+            frames = self._sock.recv_multipart()
+            arrived = time.monotonic()
+            try:
+                message = wf.decode_features_frames(frames)
+            except WireError as exc:
+                self.refused[exc.reason] += 1
+                continue
+            if message.camera != self.camera:
+                self.refused["wrong_camera"] += 1
+                continue
+            self.received += 1
+            best = (message, arrived)
+        return best
+
+    def close(self) -> None:
+        self._sock.close(0)
+        if self._own:
+            self._ctx.term()
+
+
+def to_frame(message: wf.FeaturesMessage, arrived_s: float, kind: str,
+             wall_ns: int | None = None) -> PointFrame | PoseFrame:
+    """The servo's frame of a decoded message: kind "points" or "pose". capture_s is the arrival time
+    (monotonic) minus the capture age on the wall clock (0 when the capture stamp lies ahead of it)."""
+    now_ns = time.time_ns() if wall_ns is None else wall_ns
+    capture_s = arrived_s - max(0.0, (now_ns - message.capture_ns) / 1e9)
+    if kind == "pose":
+        return PoseFrame(message.T_cam_target, capture_s)
+    return PointFrame(message.ids, message.pixels, message.depths, capture_s)
+
+
+class FeatureSender:
+    """Connects a PUB to vservo's features endpoint and sends frames (seq counted here)."""
+
+    def __init__(self, endpoint: str, camera: str, context: zmq.Context | None = None) -> None:
+        self.camera = camera
+        self.seq = 0
+        self._own = context is None
+        self._ctx = context or zmq.Context()
+        self._sock = self._ctx.socket(zmq.PUB)
+        self._sock.setsockopt(zmq.LINGER, 0)
+        self._sock.setsockopt(zmq.SNDHWM, SEND_HWM)
+        self._sock.connect(endpoint)
+
+    def send(self, capture_ns: int, ids: Sequence[int] | np.ndarray = (), pixels: np.ndarray | Sequence = (),
+             depths: np.ndarray | None = None, T_cam_target: np.ndarray | None = None) -> int:
+        """Send one frame; returns its seq. Raises InputError for values the message cannot carry."""
+        self.seq += 1
+        data = wf.encode_features(seq=self.seq, camera=self.camera, capture_ns=capture_ns, ids=ids,
+                                  pixels=pixels, depths=depths, T_cam_target=T_cam_target)
+        self._sock.send_multipart([wf.TOPIC_FEATURES, data])
+        return self.seq
+
+    def close(self) -> None:
+        self._sock.close(0)
+        if self._own:
+            self._ctx.term()

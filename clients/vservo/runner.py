@@ -1,0 +1,196 @@
+"""The live camera loop: newest frame in, the servo's twist out to the service, a terminal line, a log.
+
+A client like any other: it claims the lease, enables motion and streams twists through the client
+library (twistrate.clients.link). One twist goes out per new frame, at once (so a frame's twist reaches
+the service's next tick), and at `run.rate_hz` while no frame arrives (the same law on the newest
+frame, or zero when the gate says stale / missing / too few). Stops on convergence unless `track`,
+after `seconds`, on `stop`, or when the service refuses it; always ends with a zero twist, disable
+and release.
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import TextIO
+
+import numpy as np
+
+from twistrate.clients.link import Link, LinkTimeoutError
+from twistrate.clients.vservo import config as vc
+from twistrate.clients.vservo.errorlog import ErrorLog
+from twistrate.clients.vservo.features import ServoState
+from twistrate.clients.vservo.feed import FeatureInput, to_frame
+from twistrate.clients.vservo.servo import Servo, Step, wire_twist
+from twistrate.service.wire import EventMessage, HealthMessage
+from twistrate.solver.errors import ConfigError, TwistrateError
+
+#: Terminal line refreshes per second.
+DISPLAY_HZ = 4.0
+#: Zero twists sent before letting go, so the arm is told to stop even if one is lost.
+FINAL_ZEROS = 3
+
+
+@dataclass
+class Outcome:
+    """How a run ended and what it saw. reason: settled, time, stopped, service (refused or lost)."""
+
+    reason: str = "stopped"
+    detail: str = ""
+    frames: int = 0
+    twists: int = 0
+    settled_at_s: float | None = None
+    states: dict[str, int] = field(default_factory=dict)
+    last: Step | None = None
+    times: list[float] = field(default_factory=list)
+    errors: list[float | None] = field(default_factory=list)
+
+
+def status_line(t_s: float, step: Step, twist: dict, mode: str, health: str, frames: int,
+                refused: int) -> str:
+    """One terminal line: time, state, feature error (pixels and normalised), twist sent, service."""
+    if step.error_px_mean is not None:
+        err = f"err {step.error_px_mean:7.2f} px ({step.error_norm:.4f})"
+    elif step.error_m is not None:
+        err = f"err {step.error_m * 1000:6.2f} mm {step.error_rad * 1000:6.2f} mrad"
+    else:
+        err = "err      -"
+    v = " ".join(f"{c:+.3f}" for c in twist["linear"])
+    w = " ".join(f"{c:+.3f}" for c in twist["angular"])
+    tail = f" refused {refused}" if refused else ""
+    return (f"t {t_s:6.2f} s  {step.state.value:<8} {step.points} pts  {err}  v [{v}] m/s  w [{w}] rad/s"
+            f" ({twist['frame']})  service {mode}/{health}  frames {frames}{tail}")
+
+
+class Runner:
+    """One vservo run against a service. tool_origin: a callable giving the tool origin (3,) m, base
+    frame, needed only for a camera in the cell (None otherwise). on_sent(features_seq, twist_seq) is
+    called for every twist sent in answer to a new frame (the benchmark pairs them)."""
+
+    def __init__(self, config: vc.VservoConfig, link: Link, feed: FeatureInput, *, track: bool = False,
+                 log: ErrorLog | None = None, out: TextIO | None = sys.stdout,
+                 tool_origin: Callable[[], np.ndarray | None] | None = None,
+                 on_sent: Callable[[int, int], None] | None = None) -> None:
+        self.config = config
+        self.link = link
+        self.feed = feed
+        self.track = track
+        self.log = log
+        self.out = out
+        self.mount = vc.mount(config)
+        if self.mount.kind == "cell" and tool_origin is None:
+            raise ConfigError("mount.on = 'cell': a camera in the cell needs the tool origin from the "
+                              "service (its `state` output); accepted here: mount.on = 'tool'")
+        self.tool_origin = tool_origin
+        self.on_sent = on_sent
+        self.servo = Servo(vc.settings(config), vc.goal(config), vc.convergence(config))
+        self.mode = "?"
+        self.health = "?"
+        self.stop_event = threading.Event()
+
+    def stop(self) -> None:
+        self.stop_event.set()
+
+    def _watch_service(self) -> None:
+        """Take the newest health / event messages queued (mode and health state)."""
+        while True:
+            try:
+                message = self.link.receive(0.0)
+            except LinkTimeoutError:
+                return
+            if isinstance(message, HealthMessage):
+                self.mode, self.health = message.mode, message.state
+            elif isinstance(message, EventMessage):
+                self.mode = message.mode
+
+    def _send(self, step: Step) -> tuple[int, dict]:
+        origin = self.tool_origin() if self.tool_origin is not None else None
+        if self.mount.kind == "cell" and origin is None:
+            step = Step(ServoState.STALE, np.zeros(6))  # no tool pose yet: nothing safe to send
+            origin = np.zeros(3)
+        twist = wire_twist(step.twist, self.mount, origin)
+        return self.link.send_twist(twist["linear"], twist["angular"], twist["frame"], twist["point"]), twist
+
+    def run(self, seconds: float | None = None) -> Outcome:
+        """Claim, enable, servo until done; then zero twists, disable, release. Returns the outcome."""
+        outcome = Outcome()
+        link, cfg = self.link, self.config
+        link.wait_ready(timeout_s=10.0)
+        link.claim("vservo", lease_ms=cfg.run.lease_ms)
+        try:
+            link.enable()
+            self._loop(seconds, outcome)
+        except TwistrateError as exc:
+            outcome.reason, outcome.detail = "service", str(exc)
+        finally:
+            self._let_go()
+        outcome.frames = self.feed.received
+        return outcome
+
+    def _loop(self, seconds: float | None, outcome: Outcome) -> None:
+        period = 1.0 / self.config.run.rate_hz
+        kind = self.config.law.kind
+        t0 = time.monotonic()
+        next_send = next_show = t0
+        frame, arrived, pending = None, t0, None
+        while not self.stop_event.is_set():
+            now = time.monotonic()
+            if seconds is not None and now - t0 >= seconds:
+                outcome.reason = "time"
+                return
+            got = self.feed.newest(min(max(0.0, next_send - now), 0.05))
+            if got is not None:
+                pending, arrived = got
+                frame = to_frame(pending, arrived, kind)
+            now = time.monotonic()
+            if got is None and now < next_send:
+                continue
+            step = self.servo.step(frame, arrived, now)
+            seq, twist = self._send(step)
+            outcome.twists += 1
+            if got is not None and self.on_sent is not None:
+                self.on_sent(pending.seq, seq)
+            next_send = now + period
+            outcome.states[step.state.value] = outcome.states.get(step.state.value, 0) + 1
+            outcome.last = step
+            outcome.times.append(now - t0)
+            outcome.errors.append(step.error_norm if step.moving else None)
+            settled = step.state is ServoState.SETTLED
+            if settled and outcome.settled_at_s is None:
+                outcome.settled_at_s = now - t0
+            if self.log is not None:
+                self.log.row(now - t0, step.state.value, step.points, step.error_px_mean, step.error_px_max,
+                             step.error_norm, step.error_m, step.error_rad, step.twist, step.gain, settled)
+            if now >= next_show:
+                self._watch_service()
+                self._show(now - t0, step, twist)
+                next_show = now + 1.0 / DISPLAY_HZ
+            if settled and not self.track:
+                self._show(now - t0, step, twist)
+                outcome.reason = "settled"
+                return
+
+    def _show(self, t_s: float, step: Step, twist: dict) -> None:
+        if self.out is None:
+            return
+        line = status_line(t_s, step, twist, self.mode, self.health, self.feed.received,
+                           sum(self.feed.refused.values()))
+        if self.out.isatty():
+            self.out.write("\r" + line[:200] + "\x1b[K")
+        else:
+            self.out.write(line + "\n")
+        self.out.flush()
+
+    def _let_go(self) -> None:
+        try:
+            for _ in range(FINAL_ZEROS):
+                self.link.send_twist([0.0] * 3, [0.0] * 3)
+            self.link.disable()
+            self.link.release()
+        except TwistrateError:
+            pass  # the lease lapsed or the service went: its watchdog brings the arm to rest
+        if self.out is not None and self.out.isatty():
+            self.out.write("\n")

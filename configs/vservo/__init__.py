@@ -1,0 +1,1 @@
+"""Example vservo configurations (invented cells), shipped as package data."""

@@ -1,0 +1,350 @@
+"""`twistrate vservo`: close a camera loop; `--synthetic` closes it on the invented panel cell, no hardware.
+
+Without `--synthetic`: reads the vservo configuration (camera, hand-eye calibration, law, goal,
+endpoints), binds the features socket a camera pipeline feeds (docs/vision.md) and streams the law's
+twists to a running service (twistrate.clients.vservo.runner).
+
+With `--synthetic`: starts `twistrate serve` with its built-in simulated arm (the packaged demo
+configuration, on free ports) as its own process, and a synthetic camera here that watches the
+service's commands, places the tool where the simulated arm is (forward kinematics of the joint
+targets), projects the panel's dots (twistrate.clients.vservo.synthetic) and sends them as features
+messages. The loop closes over the real sockets: vservo -> service -> simulated arm -> synthetic
+camera -> vservo. Pixel noise, latency, dropped frames and blackouts (the target hidden) are options.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import math
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import tomllib
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import zmq
+
+from twistrate.clients.link import Endpoints, Link
+from twistrate.clients.vservo import config as vc
+from twistrate.clients.vservo import synthetic
+from twistrate.clients.vservo.errorlog import ErrorLog
+from twistrate.clients.vservo.feed import FeatureInput, FeatureSender
+from twistrate.clients.vservo.runner import Outcome, Runner
+from twistrate.service import wire
+from twistrate.service.config import ServiceConfig, config_from_dict
+from twistrate.solver.errors import ConfigError, TwistrateError, WireError
+from twistrate.solver.kinematics import tool_pose
+
+CAUTIONS = (
+    "CAUTIONS",
+    "  - twistrate is not a safety-rated function.",
+    "  - A hardware emergency stop and an enabling device are required.",
+    "  - Do a risk assessment per the applicable standards (e.g. ISO 10218-1/-2, ISO 12100).",
+    "  - Try in simulation and at reduced speed first.",
+    "  - Defer to local codes and licensed practice.",
+    "  - A camera loop moves the arm towards whatever the camera reports: keep the cell clear.",
+)
+#: Default run time limit, s.
+DEFAULT_SECONDS = 30.0
+
+
+def free_endpoints(k: int) -> list[str]:
+    """k loopback TCP endpoints on ports free right now."""
+    socks = [socket.socket() for _ in range(k)]
+    for s in socks:
+        s.bind(("127.0.0.1", 0))
+    ports = [s.getsockname()[1] for s in socks]
+    for s in socks:
+        s.close()
+    return [f"tcp://127.0.0.1:{p}" for p in ports]
+
+
+def synthetic_service_config(path: str | None, endpoints: list[str]) -> tuple[ServiceConfig, str]:
+    """The service configuration of a synthetic run (the packaged demo one, or `path`) on the given
+    intake, output and control endpoints, quieter logging; returns it and its TOML text."""
+    if path is None:
+        text = resources.files("twistrate.configs.service").joinpath("demo.toml").read_text()
+        base = "."
+    else:
+        text, base = Path(path).read_text(), str(Path(path).parent)
+    data = tomllib.loads(text)
+    data["endpoints"] = dict(zip(("intake", "output", "control"), endpoints, strict=True))
+    data.setdefault("logging", {})["level"] = "warning"
+    data["recorder"] = {}
+    config = config_from_dict(data, base, source=path or "packaged demo.toml")
+    if not config.simulation.enabled:
+        raise ConfigError("service config: [simulation] enabled must be true for --synthetic; accepted: true")
+    data["arm"] = {**data.get("arm", {}), "file": config.arm.file}  # resolved against `path`
+    lines = []
+    for section, values in data.items():
+        if not isinstance(values, dict):
+            raise ConfigError(f"service config: {section} = {values!r}; accepted: tables only at the top")
+        lines.append(f"[{section}]")
+        lines += [f"{key} = {_toml(value)}" for key, value in values.items()]
+    return config, "\n".join(lines) + "\n"
+
+
+def _toml(value: object) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml(v) for v in value) + "]"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    raise ConfigError(f"service config: {value!r}; accepted: numbers, strings, booleans, arrays")
+
+
+class SyntheticPipeline:
+    """The synthetic camera as a camera pipeline: a thread that reads the service's newest command
+    (joint targets), computes T_base_tool with the solver's forward kinematics, captures a frame of the
+    cell at `rate_hz` and sends what the camera delivers to vservo's features endpoint."""
+
+    def __init__(self, camera: synthetic.SyntheticCamera, arm, output: str, features: str, name: str,
+                 rate_hz: float) -> None:
+        self.camera = camera
+        self.arm = arm
+        self.rate_hz = rate_hz
+        self.sent = 0
+        self.error: str | None = None
+        self.T_base_tool: np.ndarray | None = None
+        self._ctx = zmq.Context()
+        self._commands = self._ctx.socket(zmq.SUB)
+        self._commands.setsockopt(zmq.LINGER, 0)
+        self._commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
+        self._commands.connect(output)
+        self._sender = FeatureSender(features, name, self._ctx)
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="synthetic-camera", daemon=True)
+        self.t0 = time.monotonic()
+
+    def start(self) -> None:
+        self.t0 = time.monotonic()
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(5.0)
+        self._sender.close()
+        self._commands.close(0)
+        self._ctx.term()
+
+    def _newest_target(self) -> np.ndarray | None:
+        newest = None
+        while self._commands.poll(0, zmq.POLLIN):
+            newest = self._commands.recv_multipart()
+        if newest is None:
+            return None
+        try:
+            return wire.decode_command(newest[1], self.arm.n).target
+        except (WireError, IndexError):
+            return None
+
+    def _run(self) -> None:
+        period = 1.0 / self.rate_hz
+        next_capture = time.monotonic()
+        try:
+            while not self._stop.wait(max(0.0, next_capture - time.monotonic())):
+                next_capture += period
+                q = self._newest_target()
+                if q is not None:
+                    self.T_base_tool = tool_pose(self.arm, q)
+                if self.T_base_tool is None:
+                    continue
+                now = time.monotonic()
+                self.camera.capture(self.T_base_tool, now - self.t0)
+                frame = self.camera.poll(now - self.t0)
+                if frame is None:
+                    continue
+                capture_ns = time.time_ns() - int((now - self.t0 - frame.capture_s) * 1e9)
+                if self.camera.pose:
+                    self._sender.send(capture_ns, T_cam_target=frame.T_cam_target)
+                else:
+                    self._sender.send(capture_ns, frame.ids, frame.pixels, frame.depths)
+                self.sent += 1
+        except (TwistrateError, zmq.ZMQError) as exc:
+            self.error = str(exc)
+
+
+def _blackout(text: str) -> tuple[float, float]:
+    try:
+        start, end = (float(x) for x in text.split(":"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--blackout: got {text!r}; accepted: START:END seconds") from None
+    if not 0.0 <= start < end:
+        raise argparse.ArgumentTypeError(f"--blackout: got {text!r}; accepted: 0 <= START < END")
+    return start, end
+
+
+def decay_rate(times: list[float], norms: list[float | None], high: float = 1e-1,
+               low: float = 1e-3) -> float | None:
+    """Least-squares rate (1/s) of |e| over the tracked samples with low <= |e| / |e|_max <= high, or None."""
+    pts = [(t, e) for t, e in zip(times, norms, strict=True) if e is not None and e > 0.0]
+    if len(pts) < 5:
+        return None
+    top = max(e for _, e in pts)
+    window = [(t, math.log(e)) for t, e in pts if low * top <= e <= high * top]
+    if len(window) < 5:
+        return None
+    t, y = np.array(window).T
+    return float(-np.polyfit(t, y, 1)[0])
+
+
+def parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="twistrate vservo", description=__doc__.splitlines()[0])
+    p.add_argument("--config", help="vservo TOML file (default: the packaged panel cell, "
+                                    "configs/vservo/panel.toml)")
+    p.add_argument("--synthetic", action="store_true",
+                   help="start a simulated service and a synthetic camera of the panel cell")
+    p.add_argument("--track", action="store_true", help="keep tracking after convergence")
+    p.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
+                   help=f"stop after this long, s (default {DEFAULT_SECONDS:g})")
+    p.add_argument("--log", metavar="FILE",
+                   help="write the feature error per servo step (CSV, docs/vision.md)")
+    p.add_argument("--service-config", help="--synthetic: the service's TOML (default: the packaged demo)")
+    p.add_argument("--noise-px", type=float, default=0.0, help="--synthetic: pixel noise sigma, px")
+    p.add_argument("--latency-ms", type=float, default=0.0, help="--synthetic: capture to delivery, ms")
+    p.add_argument("--drop", type=float, default=0.0, help="--synthetic: fraction of frames dropped")
+    p.add_argument("--blackout", type=_blackout, action="append", default=[], metavar="START:END",
+                   help="--synthetic: hide the target between these run times, s (repeatable)")
+    p.add_argument("--seed", type=int, default=0, help="--synthetic: seed of noise and drops")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parser().parse_args(argv)
+    print("\n".join(CAUTIONS) + "\n", flush=True)
+    if not 0.0 < args.seconds <= 3600.0:
+        print(f"twistrate vservo: --seconds: got {args.seconds:g}; accepted: 0 < seconds <= 3600",
+              file=sys.stderr)
+        return 2
+    try:
+        config = vc.load_config(args.config)
+        return run_synthetic(args, config) if args.synthetic else run_live(args, config)
+    except (TwistrateError, zmq.ZMQError, OSError) as exc:
+        print(f"\ntwistrate vservo: {exc}", file=sys.stderr)
+        return 1
+
+
+def _open_log(path: str | None) -> tuple[ErrorLog | None, object]:
+    if path is None:
+        return None, contextlib.nullcontext()
+    out = open(path, "w", newline="")  # noqa: SIM115 (closed by the caller's ExitStack)
+    return ErrorLog(out), out
+
+
+def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
+    ep = config.endpoints
+    with contextlib.ExitStack() as stack:
+        log, out = _open_log(args.log)
+        stack.enter_context(out)  # type: ignore[arg-type]
+        feed = FeatureInput(ep.features, config.camera.name)
+        stack.callback(feed.close)
+        link = stack.enter_context(Link(Endpoints(ep.intake, ep.output, ep.control), client="vservo",
+                                        topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0))
+        print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
+              f"{ep.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
+        runner = Runner(config, link, feed, track=args.track, log=log)
+        signal.signal(signal.SIGINT, lambda *_: runner.stop())
+        outcome = runner.run(args.seconds)
+    _report(outcome, config, args.log)
+    return 0 if outcome.reason in ("settled", "time", "stopped") else 1
+
+
+def _goal_text(config: vc.VservoConfig) -> str:
+    if config.law.kind == "points":
+        return f"{len(config.goal.ids or [])} points"
+    return "a target pose"
+
+
+def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
+    if config.mount.on != "tool":
+        raise ConfigError("--synthetic: mount.on must be 'tool' (the synthetic cell has the camera on the "
+                          "tool); accepted: 'tool'")
+    if not 0.0 <= args.drop < 1.0 or args.noise_px < 0.0 or args.latency_ms < 0.0:
+        raise ConfigError("--noise-px, --latency-ms, --drop: accepted: noise >= 0, latency >= 0, "
+                          "0 <= drop < 1")
+    intake, output, control, features = free_endpoints(4)
+    service_config, text = synthetic_service_config(args.service_config, [intake, output, control])
+    arm = service_config.load_arm()
+    data = config.model_dump()
+    data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
+    config = vc.config_from_dict(data, "vservo config")
+    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    camera = synthetic.SyntheticCamera(cell, noise_px=args.noise_px, latency_s=args.latency_ms / 1000.0,
+                                       drop_rate=args.drop, seed=args.seed, blackouts=tuple(args.blackout),
+                                       pose=config.law.kind == "pose")
+    with contextlib.ExitStack() as stack:
+        tmp = stack.enter_context(tempfile.TemporaryDirectory(prefix="twistrate-vservo-"))
+        cfg_path = Path(tmp) / "service.toml"
+        cfg_path.write_text(text)
+        err_path = Path(tmp) / "service.err"
+        err = stack.enter_context(open(err_path, "w"))
+        service = subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", "serve",
+                                    "--config", str(cfg_path)], stdout=subprocess.DEVNULL, stderr=err)
+        stack.callback(_reap, service)
+        log, out = _open_log(args.log)
+        stack.enter_context(out)  # type: ignore[arg-type]
+        feed = FeatureInput(features, config.camera.name)
+        stack.callback(feed.close)
+        pipeline = SyntheticPipeline(camera, arm, output, features, config.camera.name, config.camera.rate_hz)
+        link = stack.enter_context(Link(Endpoints(intake, output, control), client="vservo",
+                                        topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0))
+        print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {control}; camera "
+              f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
+              f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
+        runner = Runner(config, link, feed, track=args.track, log=log)
+        signal.signal(signal.SIGINT, lambda *_: runner.stop())
+        pipeline.start()
+        stack.callback(pipeline.stop)
+        outcome = runner.run(args.seconds)
+        if service.poll() is not None:
+            print(f"the service exited: {err_path.read_text()[-500:]}", file=sys.stderr)
+    _report(outcome, config, args.log)
+    if pipeline.error:
+        print(f"  the synthetic camera failed: {pipeline.error}")
+    return 0 if outcome.reason in ("settled", "time", "stopped") and pipeline.error is None else 1
+
+
+def _reap(proc: subprocess.Popen) -> None:
+    if proc.poll() is None:
+        os.kill(proc.pid, signal.SIGTERM)
+        try:
+            proc.wait(10.0)
+        except subprocess.TimeoutExpired:
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.wait(5.0)
+
+
+def _report(outcome: Outcome, config: vc.VservoConfig, log_path: str | None) -> None:
+    last = outcome.last
+    lines = ["", "REPORT", f"  ended: {outcome.reason}" + (f" ({outcome.detail})" if outcome.detail else ""),
+             f"  frames {outcome.frames}, twists sent {outcome.twists}; steps per state: "
+             + ", ".join(f"{k} {v}" for k, v in sorted(outcome.states.items()))]
+    if outcome.settled_at_s is not None:
+        lines.append(f"  settled after {outcome.settled_at_s:.2f} s (mean error <= "
+                     f"{config.settle.threshold_px:g} px for {config.settle.hold_frames} frames)")
+    if last is not None and last.error_px_mean is not None:
+        lines.append(f"  last error: mean {last.error_px_mean:.3f} px, max {last.error_px_max:.3f} px, "
+                     f"normalised {last.error_norm:.5f}")
+    rate = decay_rate(outcome.times, outcome.errors)
+    if rate is not None:
+        law = config.law
+        lines.append(f"  feature error decay rate {rate:.3f} 1/s over the tail (|e| from 1e-1 to 1e-3 of its "
+                     f"largest); gain near the goal {law.gain_near:g} 1/s, far {law.gain_far:g} 1/s")
+    if log_path is not None:
+        lines.append(f"  error log: {log_path} (CSV; plot error_norm against time_s on a log scale)")
+    print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -39,6 +39,7 @@ class Outcome:
     """How a run ended and what it saw. reason: settled, time, stopped, service (refused or lost)."""
 
     reason: str = "stopped"
+    t0: float = 0.0  # time.monotonic() at the start of the loop; `times` count from it
     detail: str = ""
     frames: int = 0
     twists: int = 0
@@ -47,6 +48,7 @@ class Outcome:
     last: Step | None = None
     times: list[float] = field(default_factory=list)
     errors: list[float | None] = field(default_factory=list)
+    timeline: list[str] = field(default_factory=list)  # the state of every step, in step order
 
 
 def status_line(t_s: float, step: Step, twist: dict, mode: str, health: str, frames: int,
@@ -68,12 +70,14 @@ def status_line(t_s: float, step: Step, twist: dict, mode: str, health: str, fra
 class Runner:
     """One vservo run against a service. tool_origin: a callable giving the tool origin (3,) m, base
     frame, needed only for a camera in the cell (None otherwise). on_sent(features_seq, twist_seq) is
-    called for every twist sent in answer to a new frame (the benchmark pairs them)."""
+    called for every twist sent in answer to a new frame (the benchmark pairs them); on_start(t0) when
+    the loop starts (t0: time.monotonic(), the origin of the run's times)."""
 
     def __init__(self, config: vc.VservoConfig, link: Link, feed: FeatureInput, *, track: bool = False,
                  log: ErrorLog | None = None, out: TextIO | None = sys.stdout,
                  tool_origin: Callable[[], np.ndarray | None] | None = None,
-                 on_sent: Callable[[int, int], None] | None = None) -> None:
+                 on_sent: Callable[[int, int], None] | None = None,
+                 on_start: Callable[[float], None] | None = None) -> None:
         self.config = config
         self.link = link
         self.feed = feed
@@ -86,6 +90,7 @@ class Runner:
                               "service (its `state` output); accepted here: mount.on = 'tool'")
         self.tool_origin = tool_origin
         self.on_sent = on_sent
+        self.on_start = on_start
         self.servo = Servo(vc.settings(config), vc.goal(config), vc.convergence(config))
         self.mode = "?"
         self.health = "?"
@@ -133,7 +138,9 @@ class Runner:
     def _loop(self, seconds: float | None, outcome: Outcome) -> None:
         period = 1.0 / self.config.run.rate_hz
         kind = self.config.law.kind
-        t0 = time.monotonic()
+        t0 = outcome.t0 = time.monotonic()
+        if self.on_start is not None:
+            self.on_start(t0)
         next_send = next_show = t0
         frame, arrived, pending = None, t0, None
         while not self.stop_event.is_set():
@@ -158,6 +165,7 @@ class Runner:
             outcome.last = step
             outcome.times.append(now - t0)
             outcome.errors.append(step.error_norm if step.moving else None)
+            outcome.timeline.append(step.state.value)
             settled = step.state is ServoState.SETTLED
             if settled and outcome.settled_at_s is None:
                 outcome.settled_at_s = now - t0

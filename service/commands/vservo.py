@@ -67,9 +67,11 @@ def free_endpoints(k: int) -> list[str]:
     return [f"tcp://127.0.0.1:{p}" for p in ports]
 
 
-def synthetic_service_config(path: str | None, endpoints: list[str]) -> tuple[ServiceConfig, str]:
+def synthetic_service_config(path: str | None, endpoints: list[str],
+                             sections: dict | None = None) -> tuple[ServiceConfig, str]:
     """The service configuration of a synthetic run (the packaged demo one, or `path`) on the given
-    intake, output and control endpoints, quieter logging; returns it and its TOML text."""
+    intake, output and control endpoints, quieter logging, `sections` merged over its sections;
+    returns it and its TOML text."""
     if path is None:
         text = resources.files("twistrate.configs.service").joinpath("demo.toml").read_text()
         base = "."
@@ -79,6 +81,8 @@ def synthetic_service_config(path: str | None, endpoints: list[str]) -> tuple[Se
     data["endpoints"] = dict(zip(("intake", "output", "control"), endpoints, strict=True))
     data.setdefault("logging", {})["level"] = "warning"
     data["recorder"] = {}
+    for name, values in (sections or {}).items():
+        data[name] = {**data.get(name, {}), **values}
     config = config_from_dict(data, base, source=path or "packaged demo.toml")
     if not config.simulation.enabled:
         raise ConfigError("service config: [simulation] enabled must be true for --synthetic; accepted: true")
@@ -107,7 +111,8 @@ def _toml(value: object) -> str:
 class SyntheticPipeline:
     """The synthetic camera as a camera pipeline: a thread that reads the service's newest command
     (joint targets), computes T_base_tool with the solver's forward kinematics, captures a frame of the
-    cell at `rate_hz` and sends what the camera delivers to vservo's features endpoint."""
+    cell at `rate_hz` and sends what the camera delivers to vservo's features endpoint. Capturing starts
+    at `begin(t0)`, the origin (time.monotonic()) of the camera's times (blackouts count from it)."""
 
     def __init__(self, camera: synthetic.SyntheticCamera, arm, output: str, features: str, name: str,
                  rate_hz: float) -> None:
@@ -125,11 +130,13 @@ class SyntheticPipeline:
         self._sender = FeatureSender(features, name, self._ctx)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name="synthetic-camera", daemon=True)
-        self.t0 = time.monotonic()
+        self.t0: float | None = None
 
     def start(self) -> None:
-        self.t0 = time.monotonic()
         self._thread.start()
+
+    def begin(self, t0: float) -> None:
+        self.t0 = t0
 
     def stop(self) -> None:
         self._stop.set()
@@ -158,7 +165,7 @@ class SyntheticPipeline:
                 q = self._newest_target()
                 if q is not None:
                     self.T_base_tool = tool_pose(self.arm, q)
-                if self.T_base_tool is None:
+                if self.T_base_tool is None or self.t0 is None:
                     continue
                 now = time.monotonic()
                 self.camera.capture(self.T_base_tool, now - self.t0)
@@ -302,7 +309,7 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {control}; camera "
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
-        runner = Runner(config, link, feed, track=args.track, log=log)
+        runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin)
         signal.signal(signal.SIGINT, lambda *_: runner.stop())
         pipeline.start()
         stack.callback(pipeline.stop)

@@ -1,0 +1,116 @@
+"""Shared body of the closed-loop vservo tests over real sockets: `twistrate serve` with its simulated
+arm in its own process, the synthetic camera as a pipeline, the vservo runner, a watcher of commands."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from service_harness import reap
+
+from twistrate.clients.link import Endpoints, Link
+from twistrate.clients.vservo import config as vc
+from twistrate.clients.vservo import synthetic
+from twistrate.clients.vservo.feed import FeatureInput
+from twistrate.clients.vservo.runner import Outcome, Runner
+from twistrate.service import wire
+from twistrate.service.commands.vservo import SyntheticPipeline, free_endpoints, synthetic_service_config
+from twistrate.solver.kinematics import tool_pose
+
+#: Starting postures (joint offsets from home, rad) of the closed-loop tests: all see every dot.
+STARTS = {
+    "home": [0.0] * 7,
+    "turned": [0.12, 0.0, 0.0, 0.0, 0.0, 0.0, -0.25],
+    "lower-tilted": [0.0, 0.08, 0.05, -0.06, 0.0, 0.1, 0.1],
+}
+
+
+@dataclass
+class Closed:
+    outcome: Outcome
+    #: (service wall clock s, tick, target (n,) or None) of every command / health the watcher received
+    commands: list[tuple[float, int, np.ndarray | None]] = field(default_factory=list)
+    #: time.time() - time.monotonic() when the run started (maps run times to the wall clock)
+    wall_offset: float = 0.0
+    arm: Any = None
+    tick_s: float = 0.0
+
+    def arm_time(self, times: list[float]) -> np.ndarray:
+        """The simulated arm's own time (ticks x period, s) at run times (s since outcome.t0): the arm
+        integrates one nominal period per tick, so late ticks slow it down against the wall clock."""
+        wall = np.array([c[0] for c in self.commands])
+        ticks = np.array([c[1] for c in self.commands], dtype=float)
+        at = np.asarray(times) + self.outcome.t0 + self.wall_offset
+        return np.interp(at, wall, ticks) * self.tick_s
+
+    def tool_positions(self) -> tuple[np.ndarray, np.ndarray]:
+        """(run times (K,) s, tool origins (K, 3) m) of the commanded targets the watcher saw."""
+        t = np.array([c[0] for c in self.commands]) - self.outcome.t0 - self.wall_offset
+        p = np.array([tool_pose(self.arm, c[2])[:3, 3] for c in self.commands])
+        return t, p
+
+
+def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, track: bool = False,
+                law: dict[str, Any] | None = None, camera: dict[str, Any] | None = None,
+                watch_commands: bool = False) -> Closed:
+    """Run vservo on the panel cell against `twistrate serve` until settled (or `seconds`). The watcher
+    reads health messages (tick and stamp, 50 per second), or every command with `watch_commands`."""
+    intake, output, control, features = free_endpoints(4)
+    probe, _ = synthetic_service_config(None, [intake, output, control])
+    arm = probe.load_arm()
+    q0 = (arm.q_home + np.array(STARTS[start])).tolist()
+    service_config, text = synthetic_service_config(None, [intake, output, control],
+                                                    {"simulation": {"initial_posture": q0}})
+    (tmp_path / "service.toml").write_text(text)
+    err = (tmp_path / "service.err").open("w")
+    proc = subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", "serve", "--config",
+                             str(tmp_path / "service.toml")], stdout=subprocess.DEVNULL, stderr=err)
+    base = vc.load_config()
+    data = base.model_dump()
+    data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
+    data["law"] = {**data["law"], **(law or {})}
+    config = vc.config_from_dict(data)
+    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    cam = synthetic.SyntheticCamera(cell, **(camera or {}))
+    result = Closed(Outcome(), arm=arm, tick_s=1.0 / service_config.tick.rate_hz)
+    stop = threading.Event()
+    ep = Endpoints(intake, output, control)
+    feed = FeatureInput(features, config.camera.name)
+    pipeline = SyntheticPipeline(cam, arm, output, features, config.camera.name, config.camera.rate_hz)
+    topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
+    watcher = Link(ep, client="watch", topics=(topic,), timeout_s=2.0)
+    link = Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0)
+
+    def watch() -> None:
+        while not stop.is_set():
+            try:
+                message = watcher.receive(0.05)
+            except TimeoutError:
+                continue
+            target = getattr(message, "target", None)
+            result.commands.append((message.stamp_ns / 1e9, message.tick, target))
+
+    thread = threading.Thread(target=watch, daemon=True)
+    try:
+        runner = Runner(config, link, feed, track=track, out=None, on_start=pipeline.begin)
+        result.wall_offset = time.time() - time.monotonic()
+        thread.start()
+        pipeline.start()
+        result.outcome = runner.run(seconds)
+    finally:
+        stop.set()
+        thread.join(2.0)
+        pipeline.stop()
+        feed.close()
+        watcher.close()
+        link.close()
+        reap(proc)
+        err.close()
+    assert pipeline.error is None, pipeline.error
+    return result

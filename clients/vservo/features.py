@@ -70,27 +70,29 @@ class Matched:
     depths: np.ndarray | None
 
 
-def match(frame: PointFrame, desired_ids: np.ndarray) -> Matched:
-    """The frame's points whose id is one of `desired_ids` (K,), in desired order, finite ones only.
+def match(frame: PointFrame, desired_ids: np.ndarray | dict[int, int]) -> Matched:
+    """The frame's points whose id is one of the desired ids, in desired order, finite ones only.
 
-    A duplicated id in a frame is ambiguous: all its copies are dropped (common practice: never guess
-    which detection is the right one)."""
-    ids = np.asarray(frame.ids)
+    desired_ids: (K,) ids, or a prepared {id: row} map of them (faster on a hot path). A duplicated id
+    in a frame is ambiguous: all its copies are dropped (common practice: never guess which detection
+    is the right one). Small N: a plain loop beats array set operations here."""
+    rows_of = desired_ids if isinstance(desired_ids, dict) else {int(i): k for k, i in enumerate(desired_ids)}
     ok = np.isfinite(frame.pixels).all(axis=1)
     if frame.depths is not None:
         ok &= np.isfinite(frame.depths) & (frame.depths > 0.0)
-    unique, counts = np.unique(ids, return_counts=True)
-    ok &= np.isin(ids, unique[counts == 1])
-    rows, index = [], []
-    for k, wanted in enumerate(np.asarray(desired_ids)):
-        hit = np.flatnonzero((ids == wanted) & ok)
-        if hit.size:
-            rows.append(int(hit[0]))
-            index.append(k)
-    rows_a = np.array(rows, dtype=int)
-    depths = None if frame.depths is None else np.asarray(frame.depths, float)[rows_a]
-    return Matched(np.array(index, dtype=int), np.asarray(frame.pixels, float)[rows_a].reshape(-1, 2),
-                   depths)
+    seen: dict[int, int] = {}
+    dup: set[int] = set()
+    for j, (i, good) in enumerate(zip(np.asarray(frame.ids).tolist(), ok.tolist(), strict=True)):
+        if i in seen or i in dup:
+            dup.add(i)
+            seen.pop(i, None)
+        elif good and i in rows_of:
+            seen[i] = j
+    pairs = sorted((rows_of[i], j) for i, j in seen.items() if i not in dup)
+    index = np.array([k for k, _ in pairs], dtype=int)
+    rows = np.array([j for _, j in pairs], dtype=int)
+    depths = None if frame.depths is None else np.asarray(frame.depths, float)[rows]
+    return Matched(index, np.asarray(frame.pixels, float)[rows].reshape(-1, 2), depths)
 
 
 def gate_state(frame: Frame | None, arrived_s: float, now_s: float, gate: Gate,

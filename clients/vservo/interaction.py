@@ -36,10 +36,19 @@ def point_matrix(xy: np.ndarray, Z: np.ndarray) -> np.ndarray:
     twist in the camera frame; xy (N, 2) normalised coordinates, Z (N,) depths (m, > 0)."""
     x, y = xy[:, 0], xy[:, 1]
     inv_z = 1.0 / np.asarray(Z, dtype=float)
-    zero = np.zeros_like(x)
-    L = np.empty((2 * len(x), 6))
-    L[0::2] = np.column_stack([-inv_z, zero, x * inv_z, x * y, -(1.0 + x * x), y])
-    L[1::2] = np.column_stack([zero, -inv_z, y * inv_z, 1.0 + y * y, -x * y, -x])
+    L = np.zeros((2 * len(x), 6))
+    Lx, Ly = L[0::2], L[1::2]
+    Lx[:, 0] = -inv_z
+    Lx[:, 2] = x * inv_z
+    xy_ = x * y
+    Lx[:, 3] = xy_
+    Lx[:, 4] = -1.0 - x * x
+    Lx[:, 5] = y
+    Ly[:, 1] = -inv_z
+    Ly[:, 2] = y * inv_z
+    Ly[:, 3] = 1.0 + y * y
+    Ly[:, 4] = -xy_
+    Ly[:, 5] = -x
     return L
 
 

@@ -25,7 +25,9 @@ def ibvs_twist(L_hat: np.ndarray, e: np.ndarray, gain: float) -> np.ndarray:
     L_hat (2N, 6) interaction matrix estimate; e (2N,) feature error s - s*, normalised coordinates,
     rows (x_1, y_1, ...); gain lambda (1/s) > 0.
     """
-    return -gain * (np.linalg.pinv(L_hat, rcond=PINV_RCOND) @ e)
+    U, sigma, Vt = np.linalg.svd(L_hat, full_matrices=False)
+    keep = sigma > PINV_RCOND * sigma[0]
+    return -gain * (Vt[keep].T @ ((U[:, keep].T @ e) / sigma[keep]))
 
 
 def pbvs_error(T_cam_target: np.ndarray, T_camstar_target: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

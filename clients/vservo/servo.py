@@ -112,6 +112,7 @@ class Servo:
         self.convergence = convergence or Convergence()
         if isinstance(goal, PointGoal):
             self._xy_star = settings.intrinsics.normalised(goal.pixels)
+            self._rows = {int(i): k for k, i in enumerate(goal.ids)}
 
     def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
         """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
@@ -127,7 +128,7 @@ class Servo:
 
     def _points(self, frame: PointFrame | None, arrived_s: float, now_s: float) -> Step:
         goal, s = self.goal, self.settings
-        matched = match(frame, goal.ids) if frame is not None else None
+        matched = match(frame, self._rows) if frame is not None else None
         state = gate_state(frame, arrived_s, now_s, s.gate, matched)
         if state is not ServoState.TRACKING:
             self.convergence.reset()

@@ -10,6 +10,7 @@ BENCHMARKS: dict[str, tuple[str, str]] = {
     "solver": ("twistrate.service.bench.solver", "per-tick cost of rate resolution on the example arms"),
     "service": ("twistrate.service.bench.service", "tick timing, latencies and CPU of a running service"),
     "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
+    "vservo": ("twistrate.service.bench.vservo", "camera loop: features message to the command answering it"),
 }
 
 

@@ -261,10 +261,16 @@ def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
               f"{ep.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
         runner = Runner(config, link, feed, track=args.track, log=log)
-        signal.signal(signal.SIGINT, lambda *_: runner.stop())
+        _on_signals(runner)
         outcome = runner.run(args.seconds)
     _report(outcome, config, args.log)
     return 0 if outcome.reason in ("settled", "time", "stopped") else 1
+
+
+def _on_signals(runner: Runner) -> None:
+    """SIGINT and SIGTERM end the run cleanly: zero twists, disable, release."""
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, lambda *_: runner.stop())
 
 
 def _goal_text(config: vc.VservoConfig) -> str:
@@ -310,7 +316,7 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
         runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin)
-        signal.signal(signal.SIGINT, lambda *_: runner.stop())
+        _on_signals(runner)
         pipeline.start()
         stack.callback(pipeline.stop)
         outcome = runner.run(args.seconds)

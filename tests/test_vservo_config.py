@@ -1,0 +1,106 @@
+"""vservo's configuration: the packaged panel cell matches the synthetic cell it describes, and bad
+documents are refused naming the key, the value and what is accepted."""
+
+from __future__ import annotations
+
+import copy
+
+import numpy as np
+import pytest
+
+from twistrate.clients.vservo import config as vc
+from twistrate.clients.vservo import synthetic
+from twistrate.clients.vservo.interaction import DepthChoice
+from twistrate.clients.vservo.rigid import rotation_about
+from twistrate.clients.vservo.servo import PoseGoal
+from twistrate.solver.errors import ConfigError
+
+
+def test_packaged_config_describes_the_synthetic_panel_cell() -> None:
+    config = vc.load_config()
+    assert vc.intrinsics(config) == synthetic.DEMO_INTRINSICS
+    np.testing.assert_allclose(vc.mount(config).T, synthetic.T_TOOL_CAM, atol=1e-12)
+    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    view = cell.goal(synthetic.panel_goal_tool_pose(cell, height_m=0.22, yaw_rad=np.deg2rad(70.0)))
+    goal = vc.goal(config)
+    np.testing.assert_array_equal(goal.ids, view.ids)
+    np.testing.assert_allclose(goal.pixels, view.pixels, atol=1e-3)  # written with 3 decimals
+    np.testing.assert_allclose(goal.depths, view.depths, atol=1e-9)
+    settings = vc.settings(config)
+    assert settings.depth is DepthChoice.MEAN and settings.period_s == pytest.approx(1 / 30)
+
+
+def test_rpy_is_fixed_axis_roll_pitch_yaw() -> None:
+    # R = Rz(yaw) Ry(pitch) Rx(roll) (docs/arm-format.md; URDF's rpy convention, common practice).
+    R = vc.rpy([90.0, 0.0, 0.0])
+    np.testing.assert_allclose(R @ [0, 1, 0], [0, 0, 1], atol=1e-12)
+    R = vc.rpy([10.0, 20.0, 30.0])
+    expected = (rotation_about([0, 0, 1], np.radians(30)) @ rotation_about([0, 1, 0], np.radians(20))
+                @ rotation_about([1, 0, 0], np.radians(10)))
+    np.testing.assert_allclose(R, expected, atol=1e-12)
+
+
+def _doc() -> dict:
+    return vc.load_config().model_dump()
+
+
+@pytest.mark.parametrize(("change", "names"), [
+    (lambda d: d["camera"].update(fx=0.0), "camera.fx"),
+    (lambda d: d["camera"].update(colour="red"), "camera.colour"),
+    (lambda d: d["law"].update(depth="closest"), "law.depth"),
+    (lambda d: d["law"].update(gain_near=40.0), "law"),  # 40 / 30 Hz > 1
+    (lambda d: d["goal"].update(ids=[21, 22, 23]), "goal"),
+    (lambda d: d["goal"].update(ids=[21, 21, 23, 24, 25]), "goal.ids"),
+    (lambda d: d["mount"].update(on="wrist"), "mount.on"),
+    (lambda d: d.pop("camera"), "camera"),
+])
+def test_bad_documents_name_the_key(change, names: str) -> None:
+    doc = copy.deepcopy(_doc())
+    change(doc)
+    with pytest.raises(ConfigError, match=names.replace(".", r"\.")):
+        vc.config_from_dict(doc, "test.toml")
+
+
+def test_a_pose_goal() -> None:
+    doc = _doc()
+    doc["law"]["kind"] = "pose"
+    doc["goal"] = {"pose_xyz_m": [0.0, 0.0, 0.22], "pose_rpy_deg": [180.0, 0.0, 0.0]}
+    goal = vc.goal(vc.config_from_dict(doc))
+    assert isinstance(goal, PoseGoal)
+    np.testing.assert_allclose(goal.T_camstar_target[:3, :3], np.diag([1.0, -1.0, -1.0]), atol=1e-12)
+    doc["goal"] = {}
+    with pytest.raises(ConfigError, match="pose_xyz_m"):
+        vc.config_from_dict(doc)
+
+
+def test_unreadable_file_is_a_config_error(tmp_path) -> None:
+    with pytest.raises(ConfigError, match="cannot read"):
+        vc.load_config(tmp_path / "missing.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[camera\n")
+    with pytest.raises(ConfigError, match="not TOML"):
+        vc.load_config(bad)
+
+
+def test_a_camera_in_the_cell_needs_the_tool_origin() -> None:
+    # Eye-to-hand twists need the tool origin (servo.wire_twist); the service does not publish it yet.
+    from twistrate.clients.vservo.runner import Runner
+
+    doc = _doc()
+    doc["mount"]["on"] = "cell"
+    with pytest.raises(ConfigError, match=r"mount\.on"):
+        Runner(vc.config_from_dict(doc), link=None, feed=None)  # type: ignore[arg-type]
+
+
+def test_status_line_shows_error_twist_and_service() -> None:
+    from twistrate.clients.vservo.features import ServoState
+    from twistrate.clients.vservo.runner import status_line
+    from twistrate.clients.vservo.servo import Step
+
+    step = Step(ServoState.TRACKING, np.zeros(6), points=5, error_px_mean=12.5, error_px_max=20.0,
+                error_norm=0.05, gain=1.0)
+    twist = {"linear": [0.01, 0.0, -0.02], "angular": [0.0, 0.1, 0.0], "frame": "tool", "point": [0, 0, 0]}
+    line = status_line(1.5, step, twist, "running", "clear", 42, 3)
+    for part in ("tracking", "5 pts", "12.50 px", "(0.0500)", "+0.010", "-0.020", "(tool)", "running/clear",
+                 "frames 42", "refused 3"):
+        assert part in line, part

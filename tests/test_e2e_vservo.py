@@ -116,3 +116,17 @@ def test_feature_loss_brings_the_arm_to_rest_and_the_run_resumes(tmp_path: Path)
     before = [e for e, ti in zip(errors, times, strict=True) if e is not None and ti < 1.5][-1]
     assert before > 0.01  # hidden while still far from the goal ...
     assert o.states.get("settled", 0) > 0 and o.last.error_px_mean <= 1.0  # ... and converged after
+
+
+def test_position_based_law_converges_over_sockets(tmp_path: Path) -> None:
+    # The pose pipeline's goal: the panel 0.22 m straight ahead, turned as in the packaged points goal
+    # (T_cam_target = Rz(70 deg) Rx(180 deg), checked against the synthetic cell's own pose below).
+    goal = {"pose_xyz_m": [0.0, 0.0, 0.22], "pose_rpy_deg": [180.0, 0.0, 70.0]}
+    config = vc.load_config()
+    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    T_star = cell.T_cam_target(synthetic.panel_goal_tool_pose(cell, 0.22, np.deg2rad(70.0)))
+    np.testing.assert_allclose(vc.rpy(goal["pose_rpy_deg"]), T_star[:3, :3], atol=1e-12)
+    run = closed_loop(tmp_path, "turned", law={**CONSTANT, "kind": "pose"}, goal=goal)
+    o = run.outcome
+    assert o.reason == "settled", (o.reason, o.detail, o.states)
+    assert o.last.error_m <= 0.5e-3 and o.last.error_rad <= 2e-3

@@ -58,7 +58,7 @@ class Closed:
 
 def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, track: bool = False,
                 law: dict[str, Any] | None = None, camera: dict[str, Any] | None = None,
-                watch_commands: bool = False) -> Closed:
+                watch_commands: bool = False, goal: dict[str, Any] | None = None) -> Closed:
     """Run vservo on the panel cell against `twistrate serve` until settled (or `seconds`). The watcher
     reads health messages (tick and stamp, 50 per second), or every command with `watch_commands`."""
     intake, output, control, features = free_endpoints(4)
@@ -75,9 +75,11 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
     data = base.model_dump()
     data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
     data["law"] = {**data["law"], **(law or {})}
+    if goal is not None:
+        data["goal"] = goal
     config = vc.config_from_dict(data)
     cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
-    cam = synthetic.SyntheticCamera(cell, **(camera or {}))
+    cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **(camera or {}))
     result = Closed(Outcome(), arm=arm, tick_s=1.0 / service_config.tick.rate_hz)
     stop = threading.Event()
     ep = Endpoints(intake, output, control)

@@ -231,3 +231,16 @@ def test_settings_refuse_an_unstable_gain() -> None:
     cell, _, _ = _panel()
     with pytest.raises(ConfigError, match="gain"):
         vs.Settings(cell.intrinsics, laws.GainSchedule.constant(150.0), PERIOD_S)
+
+
+def test_convergence_counts_each_frame_once() -> None:
+    # A step may reuse the newest frame (no new image yet): the hold count must not grow with it.
+    cell, T_star, goal = _panel()
+    servo = vs.Servo(_settings(cell), goal)
+    ids, pixels, depths = cell.view(T_star)
+    frame = PointFrame(ids, pixels, depths, 0.0)
+    states = [servo.step(frame, 0.0, 0.001 * k).state.value for k in range(30)]
+    assert set(states) == {"tracking"}
+    for k in range(1, 12):
+        state = servo.step(PointFrame(ids, pixels, depths, 0.01 * k), 0.01 * k, 0.01 * k).state.value
+    assert state == "settled"  # 1 + 11 distinct frames >= hold_frames = 10

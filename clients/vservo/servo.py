@@ -110,6 +110,7 @@ class Servo:
         self.settings = settings
         self.goal = goal
         self.convergence = convergence or Convergence()
+        self._counted: Frame | None = None  # the last frame the convergence count has seen
         if isinstance(goal, PointGoal):
             self._xy_star = settings.intrinsics.normalised(goal.pixels)
             self._rows = {int(i): k for k, i in enumerate(goal.ids)}
@@ -125,6 +126,13 @@ class Servo:
             self.convergence.reset()
             return Step(ServoState.TOO_FEW, ZERO)
         return self._pose(frame, arrived_s, now_s)
+
+    def _count(self, frame: Frame, update) -> bool:
+        """Count each frame once toward convergence (a step may reuse the newest frame)."""
+        if frame is self._counted:
+            return self.convergence.settled
+        self._counted = frame
+        return update()
 
     def _points(self, frame: PointFrame | None, arrived_s: float, now_s: float) -> Step:
         goal, s = self.goal, self.settings
@@ -142,7 +150,7 @@ class Servo:
         gain = s.gain(error_norm)
         twist = laws.saturate(laws.ibvs_twist(L_hat, e, gain), s.linear_max, s.angular_max)
         mean_px = float(distance.mean())
-        settled = self.convergence.update_points(mean_px)
+        settled = self._count(frame, lambda: self.convergence.update_points(mean_px))
         return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, points=int(k.size),
                     error_px_mean=mean_px, error_px_max=float(distance.max()), error_norm=error_norm,
                     gain=gain)
@@ -158,7 +166,7 @@ class Servo:
         gain = s.gain(float(np.hypot(error_m, error_rad)))
         twist = laws.pbvs_twist(frame.T_cam_target, self.goal.T_camstar_target, gain)
         twist = laws.saturate(twist, s.linear_max, s.angular_max)
-        settled = self.convergence.update_pose(error_m, error_rad)
+        settled = self._count(frame, lambda: self.convergence.update_pose(error_m, error_rad))
         return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, error_m=error_m,
                     error_rad=error_rad, gain=gain)
 

@@ -114,3 +114,50 @@ def test_encoder_refuses_what_the_decoder_would() -> None:
         wf.encode_features(seq=1, camera="c", capture_ns=0, T_cam_target=np.diag([1.0, 1.0, -1.0, 1.0]))
     with pytest.raises(InputError, match=r"features\.points\.depth"):
         wf.encode_features(seq=1, camera="c", capture_ns=0, ids=[1, 2], pixels=[[0, 0], [1, 1]], depths=[0.3])
+
+
+def test_feature_input_keeps_the_newest_good_frame_and_counts_refusals() -> None:
+    import time
+
+    import zmq
+
+    from twistrate.clients.vservo.feed import FeatureInput, FeatureSender, to_frame
+
+    ctx = zmq.Context()
+    feed = FeatureInput("tcp://127.0.0.1:*", "bench-cam", ctx)
+    good = FeatureSender(feed.endpoint, "bench-cam", ctx)
+    other = FeatureSender(feed.endpoint, "side-cam", ctx)
+    raw = ctx.socket(zmq.XPUB)
+    raw.setsockopt(zmq.LINGER, 0)
+    raw.connect(feed.endpoint)
+    try:
+        # slow joiner: wait for the subscription on each sender (docs/protocol.md section 1); libzmq
+        # attaches a bound socket's new connections when its owner uses it, so the feed is polled
+        raw_ready, deadline = False, time.monotonic() + 5.0
+        while not (good.ready and other.ready and raw_ready) and time.monotonic() < deadline:
+            assert feed.newest(0.01) is None
+            good.wait_ready(0.01)
+            other.wait_ready(0.01)
+            raw_ready = raw_ready or (raw.poll(10) and raw.recv() == b"\x01features")
+        assert good.ready and other.ready and raw_ready
+        now = time.time_ns()
+        good.send(now - 50_000_000, [21, 22], [[1.0, 2.0], [3.0, 4.0]])
+        good.send(now - 10_000_000, [21, 22, 23], [[1.0, 2.0], [3.0, 4.0], [5.0, 6.0]])
+        other.send(now, [21], [[0.0, 0.0]])
+        raw.send_multipart([b"features", b"\xc1"])  # not msgpack
+        deadline = time.monotonic() + 2.0
+        newest = None
+        while time.monotonic() < deadline and (feed.received < 2 or sum(feed.refused.values()) < 2):
+            newest = feed.newest(0.1) or newest
+        assert newest is not None
+        message, arrived = newest
+        assert message.seq == 2 and list(message.ids) == [21, 22, 23]
+        assert feed.refused == {"wrong_camera": 1, "not_msgpack": 1}
+        frame = to_frame(message, arrived, "points", wall_ns=now)
+        assert arrived - frame.capture_s == pytest.approx(0.010)  # the capture was 10 ms before `now`
+    finally:
+        for s in (good, other):
+            s.close()
+        raw.close(0)
+        feed.close()
+        ctx.term()

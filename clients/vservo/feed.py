@@ -81,17 +81,32 @@ def to_frame(message: wf.FeaturesMessage, arrived_s: float, kind: str,
 
 
 class FeatureSender:
-    """Connects a PUB to vservo's features endpoint and sends frames (seq counted here)."""
+    """Connects an XPUB to vservo's features endpoint and sends frames (seq counted here). The XPUB
+    sees vservo's subscription arrive (`wait_ready`), so the first frames are not lost to the
+    publish/subscribe start-up (docs/protocol.md section 1)."""
 
     def __init__(self, endpoint: str, camera: str, context: zmq.Context | None = None) -> None:
         self.camera = camera
         self.seq = 0
         self._own = context is None
         self._ctx = context or zmq.Context()
-        self._sock = self._ctx.socket(zmq.PUB)
+        self._sock = self._ctx.socket(zmq.XPUB)
         self._sock.setsockopt(zmq.LINGER, 0)
         self._sock.setsockopt(zmq.SNDHWM, SEND_HWM)
         self._sock.connect(endpoint)
+        self.ready = False
+
+    def wait_ready(self, timeout_s: float) -> bool:
+        """Wait up to timeout_s for vservo's subscription to the features topic; True once it is up."""
+        deadline = time.monotonic() + timeout_s
+        while not self.ready:
+            remaining = deadline - time.monotonic()
+            if remaining <= 0 or not self._sock.poll(int(remaining * 1000) + 1, zmq.POLLIN):
+                return False
+            message = self._sock.recv()
+            if message == b"\x01" + wf.TOPIC_FEATURES:
+                self.ready = True
+        return True
 
     def send(self, capture_ns: int, ids: Sequence[int] | np.ndarray = (), pixels: np.ndarray | Sequence = (),
              depths: np.ndarray | None = None, T_cam_target: np.ndarray | None = None) -> int:

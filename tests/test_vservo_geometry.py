@@ -289,3 +289,13 @@ def test_degenerate_point_set_gives_a_bounded_finite_twist() -> None:
         warnings.simplefilter("error")
         V = laws.ibvs_twist(L, np.tile([0.01, 0.0], 4), 1.0)
     assert np.isfinite(V).all() and np.linalg.norm(V) < 1.0
+
+
+def test_a_given_desired_matrix_is_used_as_is() -> None:
+    rng = np.random.default_rng(12)
+    xy, xy_s = rng.normal(size=(4, 2)) * 0.1, rng.normal(size=(4, 2)) * 0.1
+    Z, Z_s = rng.uniform(0.3, 1.0, 4), rng.uniform(0.3, 1.0, 4)
+    L_s = point_matrix(xy_s, Z_s)
+    for choice in DepthChoice:
+        np.testing.assert_array_equal(estimate(choice, xy, Z, xy_s, Z_s, L_s),
+                                      estimate(choice, xy, Z, xy_s, Z_s))

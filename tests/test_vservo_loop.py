@@ -244,3 +244,23 @@ def test_convergence_counts_each_frame_once() -> None:
     for k in range(1, 12):
         state = servo.step(PointFrame(ids, pixels, depths, 0.01 * k), 0.01 * k, 0.01 * k).state.value
     assert state == "settled"  # 1 + 11 distinct frames >= hold_frames = 10
+
+
+@pytest.mark.parametrize("depth", list(DepthChoice))
+def test_a_partial_view_uses_the_matching_rows_of_the_goal(depth: DepthChoice) -> None:
+    # Four of five dots seen (id 23 missing): the twist is the law on those four, computed here directly
+    # from interaction.estimate and laws.ibvs_twist (the servo caches the desired matrix and picks rows).
+    from twistrate.clients.vservo.interaction import estimate
+
+    cell, T_star, goal = _panel()
+    settings = _settings(cell, depth)
+    ids, pixels, depths = cell.view(offset(T_star, *STARTS[0]))
+    keep = ids != 23
+    step = vs.Servo(settings, goal).step(PointFrame(ids[keep], pixels[keep], depths[keep], 0.0), 0.0, 0.0)
+    k = np.flatnonzero(goal.ids != 23)
+    xy, xy_star = cell.intrinsics.normalised(pixels[keep]), cell.intrinsics.normalised(goal.pixels[k])
+    e = (xy - xy_star).ravel()
+    L_hat = estimate(depth, xy, depths[keep], xy_star, goal.depths[k])
+    expected = laws.saturate(laws.ibvs_twist(L_hat, e, GAIN), 0.1, 1.0)
+    assert step.points == 4
+    np.testing.assert_allclose(step.twist, expected, atol=1e-12)

@@ -53,18 +53,21 @@ def point_matrix(xy: np.ndarray, Z: np.ndarray) -> np.ndarray:
 
 
 def estimate(choice: DepthChoice, xy: np.ndarray, Z: np.ndarray | None,
-             xy_star: np.ndarray, Z_star: np.ndarray) -> np.ndarray:
+             xy_star: np.ndarray, Z_star: np.ndarray, L_star: np.ndarray | None = None) -> np.ndarray:
     """(2N, 6) interaction matrix estimate L_hat for the chosen depth.
 
     xy (N, 2) current and xy_star (N, 2) desired normalised coordinates, in the same point order;
     Z (N,) current depth estimates (m) or None when none is known; Z_star (N,) desired depths (m).
     `current` uses (xy, Z); `desired` uses (xy_star, Z_star); `mean` averages both matrices.
     Without current depths, `current` uses the desired depths at the current points (a common
-    practice fallback: the paper's L_e with Z approximated by Z*), and `mean` likewise.
+    practice fallback: the paper's L_e with Z approximated by Z*), and `mean` likewise. L_star: the
+    desired matrix point_matrix(xy_star, Z_star) when the caller has it already (it is constant).
     """
     Z_now = Z_star if Z is None else Z
     if choice is DepthChoice.CURRENT:
         return point_matrix(xy, Z_now)
+    if L_star is None:
+        L_star = point_matrix(xy_star, Z_star)
     if choice is DepthChoice.DESIRED:
-        return point_matrix(xy_star, Z_star)
-    return 0.5 * (point_matrix(xy, Z_now) + point_matrix(xy_star, Z_star))
+        return L_star
+    return 0.5 * (point_matrix(xy, Z_now) + L_star)

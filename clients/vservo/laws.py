@@ -7,6 +7,7 @@ rad/s, expressed in the current camera frame (the paper's v_c).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -101,8 +102,8 @@ def saturate(twist: np.ndarray, linear_max: float, angular_max: float) -> np.nda
     One common factor keeps the direction of the whole twist (common practice: scaling each part or
     clipping components would bend the path the law asks for).
     """
-    v = float(np.linalg.norm(twist[:3]))
-    w = float(np.linalg.norm(twist[3:]))
+    v = math.sqrt(twist[0] * twist[0] + twist[1] * twist[1] + twist[2] * twist[2])
+    w = math.sqrt(twist[3] * twist[3] + twist[4] * twist[4] + twist[5] * twist[5])
     factor = 1.0
     if v > linear_max:
         factor = linear_max / v

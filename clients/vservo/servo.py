@@ -23,7 +23,7 @@ from twistrate.clients.vservo.features import (
     gate_state,
     match,
 )
-from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate
+from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate, point_matrix
 from twistrate.solver.errors import ConfigError, field_error
 
 #: The discrete-time loop e_{k+1} = (1 - lambda T) e_k is stable for 0 < lambda T < 2; we refuse gains
@@ -114,6 +114,9 @@ class Servo:
         if isinstance(goal, PointGoal):
             self._xy_star = settings.intrinsics.normalised(goal.pixels)
             self._rows = {int(i): k for k, i in enumerate(goal.ids)}
+            self._L_star = point_matrix(self._xy_star, goal.depths)  # (2K, 6), constant
+            self._f = np.array([settings.intrinsics.fx, settings.intrinsics.fy])
+            self._c = np.array([settings.intrinsics.cx, settings.intrinsics.cy])
 
     def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
         """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
@@ -142,11 +145,13 @@ class Servo:
             self.convergence.reset()
             return Step(state, ZERO, points=0 if matched is None else int(matched.index.size))
         k = matched.index
-        distance = np.linalg.norm(matched.pixels - goal.pixels[k], axis=1)
-        xy = s.intrinsics.normalised(matched.pixels)
+        distance = np.sqrt(((matched.pixels - goal.pixels[k]) ** 2).sum(axis=1))
+        xy = (matched.pixels - self._c) / self._f
         e = (xy - self._xy_star[k]).ravel()
-        error_norm = float(np.linalg.norm(e))
-        L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k])
+        error_norm = float(np.sqrt(e @ e))
+        full = k.size == len(goal.ids)  # every point seen: k is 0..K-1 in order (match keeps desired order)
+        L_star = self._L_star if full else self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
+        L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k], L_star)
         gain = s.gain(error_norm)
         twist = laws.saturate(laws.ibvs_twist(L_hat, e, gain), s.linear_max, s.angular_max)
         mean_px = float(distance.mean())

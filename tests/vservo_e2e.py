@@ -3,8 +3,8 @@ arm in its own process, the synthetic camera as a pipeline, the vservo runner, a
 
 from __future__ import annotations
 
+import contextlib
 import subprocess
-import sys
 import threading
 import time
 from dataclasses import dataclass, field
@@ -12,15 +12,15 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from service_harness import reap
+from service_harness import ANY_PORT, reap, serve_process
 
-from twistrate.clients.link import Endpoints, Link
+from twistrate.clients.link import Link
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureInput
 from twistrate.clients.vservo.runner import Outcome, Runner
 from twistrate.service import wire
-from twistrate.service.commands.vservo import SyntheticPipeline, free_endpoints, synthetic_service_config
+from twistrate.service.commands.vservo import SyntheticPipeline, synthetic_service_config
 from twistrate.solver.kinematics import tool_pose
 
 #: Starting postures (joint offsets from home, rad) of the closed-loop tests: all see every dot.
@@ -61,58 +61,53 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
                 watch_commands: bool = False, goal: dict[str, Any] | None = None) -> Closed:
     """Run vservo on the panel cell against `twistrate serve` until settled (or `seconds`). The watcher
     reads health messages (tick and stamp, 50 per second), or every command with `watch_commands`."""
-    intake, output, control, features = free_endpoints(4)
-    probe, _ = synthetic_service_config(None, [intake, output, control])
+    probe, _ = synthetic_service_config(None)
     arm = probe.load_arm()
     q0 = (arm.q_home + np.array(STARTS[start])).tolist()
-    service_config, text = synthetic_service_config(None, [intake, output, control],
-                                                    {"simulation": {"initial_posture": q0}})
+    service_config, text = synthetic_service_config(None, {"simulation": {"initial_posture": q0}})
     (tmp_path / "service.toml").write_text(text)
-    err = (tmp_path / "service.err").open("w")
-    proc = subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", "serve", "--config",
-                             str(tmp_path / "service.toml")], stdout=subprocess.DEVNULL, stderr=err)
-    base = vc.load_config()
-    data = base.model_dump()
-    data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
-    data["law"] = {**data["law"], **(law or {})}
-    if goal is not None:
-        data["goal"] = goal
-    config = vc.config_from_dict(data)
-    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
-    cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **(camera or {}))
     result = Closed(Outcome(), arm=arm, tick_s=1.0 / service_config.tick.rate_hz)
-    stop = threading.Event()
-    ep = Endpoints(intake, output, control)
-    feed = FeatureInput(features, config.camera.name)
-    pipeline = SyntheticPipeline(cam, arm, output, features, config.camera.name, config.camera.rate_hz)
-    topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
-    watcher = Link(ep, client="watch", topics=(topic,), timeout_s=2.0)
-    link = Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0)
+    with contextlib.ExitStack() as stack:
+        proc, ep = serve_process(tmp_path / "service.toml", tmp_path / "endpoints.json",
+                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        stack.callback(reap, proc)
+        feed = FeatureInput(ANY_PORT, "bench-cam")
+        stack.callback(feed.close)
+        data = vc.load_config().model_dump()
+        data["endpoints"] = {"features": feed.endpoint, "intake": ep.intake, "output": ep.output,
+                             "control": ep.control}
+        data["law"] = {**data["law"], **(law or {})}
+        if goal is not None:
+            data["goal"] = goal
+        config = vc.config_from_dict(data)
+        assert config.camera.name == "bench-cam"
+        cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+        cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **(camera or {}))
+        pipeline = SyntheticPipeline(cam, arm, ep.output, feed.endpoint, config.camera.name,
+                                     config.camera.rate_hz)
+        topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
+        watcher = stack.enter_context(Link(ep, client="watch", topics=(topic,), timeout_s=2.0))
+        link = stack.enter_context(Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT),
+                                        timeout_s=2.0))
+        stop = threading.Event()
 
-    def watch() -> None:
-        while not stop.is_set():
-            try:
-                message = watcher.receive(0.05)
-            except TimeoutError:
-                continue
-            target = getattr(message, "target", None)
-            result.commands.append((message.stamp_ns / 1e9, message.tick, target))
+        def watch() -> None:
+            while not stop.is_set():
+                try:
+                    message = watcher.receive(0.05)
+                except TimeoutError:
+                    continue
+                target = getattr(message, "target", None)
+                result.commands.append((message.stamp_ns / 1e9, message.tick, target))
 
-    thread = threading.Thread(target=watch, daemon=True)
-    try:
+        thread = threading.Thread(target=watch, daemon=True)
         runner = Runner(config, link, feed, track=track, out=None, on_start=pipeline.begin)
         result.wall_offset = time.time() - time.monotonic()
         thread.start()
+        stack.callback(thread.join, 2.0)
+        stack.callback(stop.set)
         pipeline.start()
+        stack.callback(pipeline.stop)
         result.outcome = runner.run(seconds)
-    finally:
-        stop.set()
-        thread.join(2.0)
-        pipeline.stop()
-        feed.close()
-        watcher.close()
-        link.close()
-        reap(proc)
-        err.close()
     assert pipeline.error is None, pipeline.error
     return result

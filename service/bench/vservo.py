@@ -38,7 +38,14 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureSender
 from twistrate.service import wire
-from twistrate.service.commands.vservo import free_endpoints, synthetic_service_config
+from twistrate.service.commands.vservo import (
+    ANY_PORT,
+    SERVE_START_S,
+    read_features_file,
+    synthetic_service_config,
+)
+from twistrate.service.wire.discovery import read_endpoints
+from twistrate.solver.errors import ConfigError
 from twistrate.solver.kinematics import tool_pose
 
 FRAME_HZ = 20.0
@@ -76,23 +83,32 @@ def _summary(values_ms: list[float]) -> dict[str, float]:
 
 def bench(rate_hz: float, seconds: float) -> dict[str, Any]:
     """One measured run at service tick rate `rate_hz` for `seconds` after the warm-up."""
-    intake, output, control, features = free_endpoints(4)
-    service_config, text = synthetic_service_config(None, [intake, output, control],
-                                                    {"tick": {"rate_hz": rate_hz}})
+    service_config, text = synthetic_service_config(None, {"tick": {"rate_hz": rate_hz}})
     arm = service_config.load_arm()
     data = vc.load_config().model_dump()
-    data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
+    data["endpoints"] = {**data["endpoints"], "features": ANY_PORT}
     data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ}
     data["camera"] = {**data["camera"], "rate_hz": FRAME_HZ}
     config = vc.config_from_dict(data, "bench vservo config")
     cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
-        (Path(tmp) / "service.toml").write_text(text)
-        (Path(tmp) / "vservo.toml").write_text(_toml_doc(data))
-        err = open(Path(tmp) / "stderr", "w")  # noqa: SIM115 (closed below)
-        service = _spawn(["serve", "--config", str(Path(tmp) / "service.toml")], err)
-        vservo = _spawn(["vservo", "--config", str(Path(tmp) / "vservo.toml"), "--track", "--seconds",
-                         str(WARMUP_S + seconds + 20.0)], err)
+        paths = {name: str(Path(tmp) / name) for name in ("service.toml", "vservo.toml", "endpoints.json",
+                                                          "features.json", "stderr")}
+        Path(paths["service.toml"]).write_text(text)
+        Path(paths["vservo.toml"]).write_text(_toml_doc(data))
+        err = open(paths["stderr"], "w")  # noqa: SIM115 (closed below)
+        endpoints = ["--endpoints-file", paths["endpoints.json"]]
+        service = _spawn(["serve", "--config", paths["service.toml"], *endpoints], err)
+        vservo = _spawn(["vservo", "--config", paths["vservo.toml"], *endpoints, "--features-file",
+                         paths["features.json"], "--track", "--seconds", str(WARMUP_S + seconds + 40.0)], err)
+        try:
+            output = read_endpoints(paths["endpoints.json"], SERVE_START_S)["output"]
+            features = read_features_file(paths["features.json"], SERVE_START_S)
+        except ConfigError as exc:
+            _stop(vservo, signal.SIGINT)
+            _stop(service)
+            err.close()
+            raise RuntimeError(f"{exc}: {Path(paths['stderr']).read_text()[-800:]}") from None
         ctx = zmq.Context()
         sub = ctx.socket(zmq.SUB)
         sub.setsockopt(zmq.LINGER, 0)
@@ -109,7 +125,7 @@ def bench(rate_hz: float, seconds: float) -> dict[str, Any]:
             _stop(service)
             err.close()
         if result["frames"] == 0:
-            raise RuntimeError("no frame was answered: " + (Path(tmp) / "stderr").read_text()[-800:])
+            raise RuntimeError("no frame was answered: " + Path(paths["stderr"]).read_text()[-800:])
     period_ms = 1000.0 / rate_hz
     result.update(rate_hz=rate_hz, seconds=seconds, frame_hz=FRAME_HZ,
                   target_p99_ms=period_ms + TARGET_EXTRA_MS)

@@ -16,10 +16,10 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import json
 import math
 import os
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -40,6 +40,7 @@ from twistrate.clients.vservo.feed import FeatureInput, FeatureSender
 from twistrate.clients.vservo.runner import Outcome, Runner
 from twistrate.service import wire
 from twistrate.service.config import ServiceConfig, config_from_dict
+from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import ConfigError, TwistrateError, WireError
 from twistrate.solver.kinematics import tool_pose
 
@@ -56,29 +57,52 @@ CAUTIONS = (
 DEFAULT_SECONDS = 30.0
 
 
-def free_endpoints(k: int) -> list[str]:
-    """k loopback TCP endpoints on ports free right now."""
-    socks = [socket.socket() for _ in range(k)]
-    for s in socks:
-        s.bind(("127.0.0.1", 0))
-    ports = [s.getsockname()[1] for s in socks]
-    for s in socks:
-        s.close()
-    return [f"tcp://127.0.0.1:{p}" for p in ports]
+#: Loopback with a port the operating system picks at bind time (read back, never guessed).
+ANY_PORT = "tcp://127.0.0.1:*"
+#: How long vservo waits for a started service to write its endpoints file, s.
+SERVE_START_S = 20.0
 
 
-def synthetic_service_config(path: str | None, endpoints: list[str],
-                             sections: dict | None = None) -> tuple[ServiceConfig, str]:
-    """The service configuration of a synthetic run (the packaged demo one, or `path`) on the given
-    intake, output and control endpoints, quieter logging, `sections` merged over its sections;
-    returns it and its TOML text."""
+def write_features_file(path: str | Path, endpoint: str) -> None:
+    """Write {"features": endpoint, "pid": ...} to `path` atomically (the bound features socket, for a
+    pipeline started after vservo)."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp.write_text(json.dumps({"features": endpoint, "pid": os.getpid()}) + "\n", encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def read_features_file(path: str | Path, wait_s: float) -> str:
+    """The features endpoint in `path` (written by `twistrate vservo --features-file`), waiting up to
+    wait_s s for it. Raises ConfigError naming the file."""
+    deadline = time.monotonic() + wait_s
+    while True:
+        try:
+            doc = json.loads(Path(path).read_text(encoding="utf-8"))
+            break
+        except FileNotFoundError:
+            if time.monotonic() >= deadline:
+                raise ConfigError(f"features file {path}: none after {wait_s:g} s; accepted: a file written "
+                                  "by `twistrate vservo --features-file`") from None
+            time.sleep(0.02)
+        except (OSError, ValueError) as exc:
+            raise ConfigError(f"features file {path}: {exc}; accepted: a JSON file") from None
+    if not isinstance(doc, dict) or not isinstance(doc.get("features"), str):
+        raise ConfigError(f"features file {path}: {doc!r}; accepted: a JSON object with a string `features`")
+    return doc["features"]
+
+
+def synthetic_service_config(path: str | None, sections: dict | None = None) -> tuple[ServiceConfig, str]:
+    """The service configuration of a synthetic run (the packaged demo one, or `path`) on loopback ports
+    the operating system picks, quieter logging, `sections` merged over its sections; returns it and
+    its TOML text (start it with `serve --endpoints-file` to learn the ports)."""
     if path is None:
         text = resources.files("twistrate.configs.service").joinpath("demo.toml").read_text()
         base = "."
     else:
         text, base = Path(path).read_text(), str(Path(path).parent)
     data = tomllib.loads(text)
-    data["endpoints"] = dict(zip(("intake", "output", "control"), endpoints, strict=True))
+    data["endpoints"] = {"intake": ANY_PORT, "output": ANY_PORT, "control": ANY_PORT}
     data.setdefault("logging", {})["level"] = "warning"
     data["recorder"] = {}
     for name, values in (sections or {}).items():
@@ -217,6 +241,10 @@ def parser() -> argparse.ArgumentParser:
                    help=f"stop after this long, s (default {DEFAULT_SECONDS:g})")
     p.add_argument("--log", metavar="FILE",
                    help="write the feature error per servo step (CSV, docs/vision.md)")
+    p.add_argument("--endpoints-file", metavar="FILE",
+                   help="the service's endpoints from the file `twistrate serve --endpoints-file FILE` wrote")
+    p.add_argument("--features-file", metavar="FILE",
+                   help="write where the features socket is bound (JSON), for a pipeline started later")
     p.add_argument("--service-config", help="--synthetic: the service's TOML (default: the packaged demo)")
     p.add_argument("--noise-px", type=float, default=0.0, help="--synthetic: pixel noise sigma, px")
     p.add_argument("--latency-ms", type=float, default=0.0, help="--synthetic: capture to delivery, ms")
@@ -251,15 +279,20 @@ def _open_log(path: str | None) -> tuple[ErrorLog | None, object]:
 
 def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
     ep = config.endpoints
+    service = Endpoints(ep.intake, ep.output, ep.control)
+    if args.endpoints_file:
+        service = Endpoints(**read_endpoints(args.endpoints_file, SERVE_START_S))
     with contextlib.ExitStack() as stack:
         log, out = _open_log(args.log)
         stack.enter_context(out)  # type: ignore[arg-type]
         feed = FeatureInput(ep.features, config.camera.name)
         stack.callback(feed.close)
-        link = stack.enter_context(Link(Endpoints(ep.intake, ep.output, ep.control), client="vservo",
-                                        topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0))
+        if args.features_file:
+            write_features_file(args.features_file, feed.endpoint)
+        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
+        link = stack.enter_context(Link(service, client="vservo", topics=topics, timeout_s=2.0))
         print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
-              f"{ep.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
+              f"{service.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
         runner = Runner(config, link, feed, track=args.track, log=log)
         _on_signals(runner)
         outcome = runner.run(args.seconds)
@@ -286,12 +319,8 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
     if not 0.0 <= args.drop < 1.0 or args.noise_px < 0.0 or args.latency_ms < 0.0:
         raise ConfigError("--noise-px, --latency-ms, --drop: accepted: noise >= 0, latency >= 0, "
                           "0 <= drop < 1")
-    intake, output, control, features = free_endpoints(4)
-    service_config, text = synthetic_service_config(args.service_config, [intake, output, control])
+    service_config, text = synthetic_service_config(args.service_config)
     arm = service_config.load_arm()
-    data = config.model_dump()
-    data["endpoints"] = {"features": features, "intake": intake, "output": output, "control": control}
-    config = vc.config_from_dict(data, "vservo config")
     cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
     camera = synthetic.SyntheticCamera(cell, noise_px=args.noise_px, latency_s=args.latency_ms / 1000.0,
                                        drop_rate=args.drop, seed=args.seed, blackouts=tuple(args.blackout),
@@ -301,18 +330,25 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         cfg_path = Path(tmp) / "service.toml"
         cfg_path.write_text(text)
         err_path = Path(tmp) / "service.err"
+        ep_path = Path(tmp) / "endpoints.json"
         err = stack.enter_context(open(err_path, "w"))
         service = subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", "serve",
-                                    "--config", str(cfg_path)], stdout=subprocess.DEVNULL, stderr=err)
+                                    "--config", str(cfg_path), "--endpoints-file", str(ep_path)],
+                                   stdout=subprocess.DEVNULL, stderr=err)
         stack.callback(_reap, service)
+        try:
+            ep = Endpoints(**read_endpoints(ep_path, SERVE_START_S))
+        except ConfigError as exc:
+            raise ConfigError(f"{exc}\n  the service said: {err_path.read_text()[-500:]}") from None
         log, out = _open_log(args.log)
         stack.enter_context(out)  # type: ignore[arg-type]
-        feed = FeatureInput(features, config.camera.name)
+        feed = FeatureInput(ANY_PORT, config.camera.name)
         stack.callback(feed.close)
-        pipeline = SyntheticPipeline(camera, arm, output, features, config.camera.name, config.camera.rate_hz)
-        link = stack.enter_context(Link(Endpoints(intake, output, control), client="vservo",
-                                        topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT), timeout_s=2.0))
-        print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {control}; camera "
+        pipeline = SyntheticPipeline(camera, arm, ep.output, feed.endpoint, config.camera.name,
+                                     config.camera.rate_hz)
+        link = stack.enter_context(Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT),
+                                        timeout_s=2.0))
+        print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {ep.control}; camera "
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
         runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin)

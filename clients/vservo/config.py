@@ -25,8 +25,14 @@ from twistrate.clients.vservo.features import Gate
 from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice
 from twistrate.clients.vservo.rigid import rotation_about, transform
 from twistrate.clients.vservo.servo import Mount, PointGoal, PoseGoal, Settings
-from twistrate.service.wire import DEFAULT_CONTROL, DEFAULT_INTAKE, DEFAULT_OUTPUT
-from twistrate.service.wire.features import DEFAULT_FEATURES, MAX_FEATURE_ID, MAX_NAME_CHARS
+from twistrate.service.wire import (
+    DEFAULT_CONTROL,
+    DEFAULT_FEATURES,
+    DEFAULT_INTAKE,
+    DEFAULT_OUTPUT,
+    MAX_FEATURE_ID,
+    MAX_NAME_CHARS,
+)
 from twistrate.solver.errors import ConfigError
 
 CONFIG_PACKAGE = "twistrate.configs.vservo"

@@ -14,7 +14,7 @@ import numpy as np
 import zmq
 
 from twistrate.clients.vservo.features import PointFrame, PoseFrame
-from twistrate.service.wire import features as wf
+from twistrate.service import wire
 from twistrate.solver.errors import WireError
 
 #: Socket bounds (the protocol's habit, docs/protocol.md section 12).
@@ -38,11 +38,11 @@ class FeatureInput:
         self._sock.setsockopt(zmq.LINGER, 0)
         self._sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
         self._sock.setsockopt(zmq.RCVHWM, RECEIVE_HWM)
-        self._sock.setsockopt(zmq.SUBSCRIBE, wf.TOPIC_FEATURES)
+        self._sock.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_FEATURES)
         self._sock.bind(endpoint)
         self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
 
-    def newest(self, timeout_s: float) -> tuple[wf.FeaturesMessage, float] | None:
+    def newest(self, timeout_s: float) -> tuple[wire.FeaturesMessage, float] | None:
         """Wait up to timeout_s for a message; then take every queued one and return the newest good one
         with its arrival time (time.monotonic(), s), or None."""
         if not self._sock.poll(max(0, int(timeout_s * 1000)), zmq.POLLIN):
@@ -52,7 +52,7 @@ class FeatureInput:
             frames = self._sock.recv_multipart()
             arrived = time.monotonic()
             try:
-                message = wf.decode_features_frames(frames)
+                message = wire.decode_features_frames(frames)
             except WireError as exc:
                 self.refused[exc.reason] += 1
                 continue
@@ -69,7 +69,7 @@ class FeatureInput:
             self._ctx.term()
 
 
-def to_frame(message: wf.FeaturesMessage, arrived_s: float, kind: str,
+def to_frame(message: wire.FeaturesMessage, arrived_s: float, kind: str,
              wall_ns: int | None = None) -> PointFrame | PoseFrame:
     """The servo's frame of a decoded message: kind "points" or "pose". capture_s is the arrival time
     (monotonic) minus the capture age on the wall clock (0 when the capture stamp lies ahead of it)."""
@@ -104,7 +104,7 @@ class FeatureSender:
             if remaining <= 0 or not self._sock.poll(int(remaining * 1000) + 1, zmq.POLLIN):
                 return False
             message = self._sock.recv()
-            if message == b"\x01" + wf.TOPIC_FEATURES:
+            if message == b"\x01" + wire.TOPIC_FEATURES:
                 self.ready = True
         return True
 
@@ -112,9 +112,9 @@ class FeatureSender:
              depths: np.ndarray | None = None, T_cam_target: np.ndarray | None = None) -> int:
         """Send one frame; returns its seq. Raises InputError for values the message cannot carry."""
         self.seq += 1
-        data = wf.encode_features(seq=self.seq, camera=self.camera, capture_ns=capture_ns, ids=ids,
+        data = wire.encode_features(seq=self.seq, camera=self.camera, capture_ns=capture_ns, ids=ids,
                                   pixels=pixels, depths=depths, T_cam_target=T_cam_target)
-        self._sock.send_multipart([wf.TOPIC_FEATURES, data])
+        self._sock.send_multipart([wire.TOPIC_FEATURES, data])
         return self.seq
 
     def close(self) -> None:

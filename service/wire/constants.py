@@ -166,3 +166,22 @@ REPLY_RESULTS: dict[str, frozenset[str]] = {
     "set": frozenset(("params",)),
     "clear_fault": frozenset(("mode",)),
 }
+
+# --- the features message of a camera pipeline (docs/vision.md; its own socket, vservo binds it) ----
+TOPIC_FEATURES = b"features"
+KIND_FEATURES = "features"
+DEFAULT_FEATURES = "tcp://127.0.0.1:47315"
+#: map frame cap, bytes (the largest frame, 64 points with depths, a pose and a 64-character name: 3.2 kB)
+MAX_FEATURES_BYTES = 4096
+MAX_FEATURE_POINTS = 64
+MAX_FEATURE_ID = 2**31 - 1
+#: |u|, |v|, px
+MAX_PIXEL = 1e5
+#: depth of a point, m (exclusive 0)
+MAX_DEPTH_M = 100.0
+#: |each component| of the target position, m
+MAX_TARGET_M = 100.0
+#: |each rotation entry| <= 1 + this; |R R^T - I| and |det R - 1| <= this
+ROTATION_TOL = 1e-6
+#: reason keys of the features message beyond REASONS (docs/vision.md section 2)
+FEATURE_REASONS: tuple[str, ...] = ("bad_rotation", "wrong_camera")

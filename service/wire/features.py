@@ -9,7 +9,6 @@ or None.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import NamedTuple
 
 import numpy as np
 
@@ -33,51 +32,27 @@ from twistrate.service.wire.checks import (
     unpack,
     wire_fail,
 )
-from twistrate.service.wire.constants import MAX_NAME_CHARS, MAX_TOPIC_BYTES, STAMP_MAX
-
-TOPIC_FEATURES = b"features"
-KIND_FEATURES = "features"
-#: vservo binds its SUB here; a camera pipeline connects a PUB.
-DEFAULT_FEATURES = "tcp://127.0.0.1:47315"
-#: map frame cap, bytes (the largest frame, 64 points with depths, a pose and a 64-character name: 3.2 kB)
-MAX_FEATURES_BYTES = 4096
-MAX_FEATURE_POINTS = 64
-MAX_FEATURE_ID = 2**31 - 1
-#: |u|, |v|, px
-MAX_PIXEL = 1e5
-#: depth of a point, m (exclusive 0)
-MAX_DEPTH_M = 100.0
-#: |each component| of the target position, m
-MAX_TARGET_M = 100.0
-#: |each rotation entry| <= 1 + this; |R R^T - I| and |det R - 1| <= this
-ROTATION_TOL = 1e-6
-#: reason keys of the features message beyond the protocol's (docs/vision.md section 2)
-FEATURE_REASONS = ("bad_rotation", "wrong_camera")
+from twistrate.service.wire.constants import (
+    KIND_FEATURES,
+    MAX_DEPTH_M,
+    MAX_FEATURE_ID,
+    MAX_FEATURE_POINTS,
+    MAX_FEATURES_BYTES,
+    MAX_NAME_CHARS,
+    MAX_PIXEL,
+    MAX_TARGET_M,
+    MAX_TOPIC_BYTES,
+    ROTATION_TOL,
+    STAMP_MAX,
+    TOPIC_FEATURES,
+)
+from twistrate.service.wire.messages import FeaturesMessage
 
 _KEYS = frozenset((*HEADER_KEYS, "camera", "capture_ns", "points", "pose"))
 _POINT_KEYS = frozenset(("id", "u", "v", "depth"))
 _POSE_KEYS = frozenset(("position", "rotation"))
 _NO_IDS = np.zeros(0, dtype=np.int64)
 _NO_PIXELS = np.zeros((0, 2))
-
-
-class FeaturesMessage(NamedTuple):
-    """A decoded features message.
-
-    camera : the camera's name. capture_ns : capture time, ns since 1970 UTC, the pipeline's clock.
-    ids : (N,) int; pixels : (N, 2) (u, v) px of the undistorted image; depths : (N,) m when every point
-    carries one, else None (vservo then uses the desired depths). T_cam_target : (4, 4) the target's
-    pose in the camera frame, or None.
-    """
-
-    seq: int
-    stamp_ns: int
-    camera: str
-    capture_ns: int
-    ids: np.ndarray
-    pixels: np.ndarray
-    depths: np.ndarray | None
-    T_cam_target: np.ndarray | None
 
 
 def _check_rotation(R: np.ndarray, name: str, fail) -> None:

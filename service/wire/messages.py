@@ -170,5 +170,24 @@ class ReplyMessage(NamedTuple):
     error_message: str | None
 
 
+class FeaturesMessage(NamedTuple):
+    """A decoded features message.
+
+    camera : the camera's name. capture_ns : capture time, ns since 1970 UTC, the pipeline's clock.
+    ids : (N,) int; pixels : (N, 2) (u, v) px of the undistorted image; depths : (N,) m when every point
+    carries one, else None (vservo then uses the desired depths). T_cam_target : (4, 4) the target's
+    pose in the camera frame, or None.
+    """
+
+    seq: int
+    stamp_ns: int
+    camera: str
+    capture_ns: int
+    ids: np.ndarray
+    pixels: np.ndarray
+    depths: np.ndarray | None
+    T_cam_target: np.ndarray | None
+
+
 OutputMessage = CommandMessage | HealthMessage | EventMessage | StateMessage
 IntakeMessage = TwistMessage | JointsMessage

@@ -1,0 +1,60 @@
+"""The tool's pose from the service's planned `state` output (RULES of the project: published at the
+health rate; its `tool` field is {position: [3] m, rotation: [9] row-major} of T_base_tool, base frame).
+
+Coded against a plain mapping of that shape until the wire decodes the message: a camera in the cell
+needs the tool origin for its twists (servo.wire_twist), and a synthetic camera the whole pose.
+`ToolPose.update(state)` keeps the newest; `origin()` is what `Runner(tool_origin=...)` takes.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from twistrate.solver.errors import InputError, field_error
+
+#: A rotation whose R R^T differs from I by more than this is refused (rounding of 9 float64s is ~1e-15).
+ROTATION_TOL = 1e-6
+
+
+def tool_pose_from_state(state: Mapping[str, Any]) -> np.ndarray:
+    """(4, 4) T_base_tool of a `state` message's `tool` field. Raises InputError naming the field."""
+    tool = state.get("tool") if isinstance(state, Mapping) else None
+    if not isinstance(tool, Mapping):
+        raise field_error(InputError, "state.tool", tool, "a map {position: [3] m, rotation: [9] row-major}")
+    position, rotation = tool.get("position"), tool.get("rotation")
+    ok = (isinstance(position, (list, tuple)) and len(position) == 3 and isinstance(rotation, (list, tuple))
+          and len(rotation) == 9 and all(isinstance(x, (int, float)) and not isinstance(x, bool)
+                                         and math.isfinite(x) for x in (*position, *rotation)))
+    if not ok:
+        raise field_error(InputError, "state.tool", tool,
+                          "position: 3 finite numbers, rotation: 9 finite numbers")
+    R = np.array(rotation, dtype=float).reshape(3, 3)
+    if np.abs(R @ R.T - np.eye(3)).max() > ROTATION_TOL or np.linalg.det(R) < 0.0:
+        raise field_error(InputError, "state.tool.rotation", list(rotation),
+                          f"a rotation, row-major (orthonormal within {ROTATION_TOL:g}, det +1)")
+    T = np.eye(4)
+    T[:3, :3] = R
+    T[:3, 3] = position
+    return T
+
+
+class ToolPose:
+    """The newest tool pose from `state` messages; None until one arrived. Bad ones are counted."""
+
+    def __init__(self) -> None:
+        self.T_base_tool: np.ndarray | None = None
+        self.refused = 0
+
+    def update(self, state: Mapping[str, Any]) -> None:
+        try:
+            self.T_base_tool = tool_pose_from_state(state)
+        except InputError:
+            self.refused += 1
+
+    def origin(self) -> np.ndarray | None:
+        """(3,) tool origin, base frame, m, or None."""
+        return None if self.T_base_tool is None else self.T_base_tool[:3, 3].copy()

@@ -130,3 +130,31 @@ def test_position_based_law_converges_over_sockets(tmp_path: Path) -> None:
     o = run.outcome
     assert o.reason == "settled", (o.reason, o.detail, o.states)
     assert o.last.error_m <= 0.5e-3 and o.last.error_rad <= 2e-3
+
+
+def test_a_camera_in_the_cell_converges_over_sockets(tmp_path: Path) -> None:
+    # Eye-to-hand (synthetic.plate_cell): the post camera sees a plate carried by the tool; vservo takes
+    # the tool origin from the service's `state` output and sends base-frame twists at the camera's
+    # location (transforms.eye_to_hand_twist, checked against finite differences in
+    # tests/test_vservo_geometry.py). The goal is the view from a reachable posture near home.
+    from scipy.spatial.transform import Rotation
+
+    from twistrate.solver.load import load_arm
+
+    cam = synthetic.T_BASE_POST_CAM
+    # scipy's extrinsic "xyz" angles are fixed-axis roll, pitch, yaw: R = Rz Ry Rx, our rpy_deg
+    mount = {"on": "cell", "xyz_m": cam[:3, 3].tolist(),
+             "rpy_deg": Rotation.from_matrix(cam[:3, :3]).as_euler("xyz", degrees=True).tolist()}
+    np.testing.assert_allclose(vc.rpy(mount["rpy_deg"]), cam[:3, :3], atol=1e-12)
+    arm = load_arm("reach7")
+    T_goal = tool_pose(arm, arm.q_home + np.array([0.1, 0.05, 0.0, -0.1, 0.0, 0.1, 0.3]))
+    view = synthetic.plate_cell().goal(T_goal)
+    goal = {"ids": view.ids.tolist(), "pixels": view.pixels.tolist(), "depths_m": view.depths.tolist()}
+    run = closed_loop(tmp_path, "home", law=CONSTANT, mount=mount, goal=goal)
+    o = run.outcome
+    assert o.reason == "settled", (o.reason, o.detail, o.states)
+    assert o.last.error_px_mean <= 1.0
+    rate = decay_rate(list(run.arm_time(o.times)), o.errors, 1e-1, 1e-3)
+    frame_s = 1.0 / vc.load_config().camera.rate_hz
+    low, high = predicted_rate(GAIN, frame_s, 0.02, 0.0), predicted_rate(GAIN, frame_s, 0.02, run.tick_s)
+    assert low * (1 - RATE_TOL_E2E) <= rate <= high * (1 + RATE_TOL_E2E), (rate, low, high)

@@ -82,14 +82,19 @@ def test_unreadable_file_is_a_config_error(tmp_path) -> None:
         vc.load_config(bad)
 
 
-def test_a_camera_in_the_cell_needs_the_tool_origin() -> None:
-    # Eye-to-hand twists need the tool origin (servo.wire_twist); the service does not publish it yet.
+def test_a_camera_in_the_cell_takes_the_tool_origin_from_state_messages() -> None:
+    # Eye-to-hand twists need the tool origin (servo.wire_twist): by default the newest `state` message.
+    from types import SimpleNamespace
+
     from twistrate.clients.vservo.runner import Runner
 
     doc = _doc()
     doc["mount"]["on"] = "cell"
-    with pytest.raises(ConfigError, match=r"mount\.on"):
-        Runner(vc.config_from_dict(doc), link=None, feed=None)  # type: ignore[arg-type]
+    runner = Runner(vc.config_from_dict(doc), link=None, feed=None)  # type: ignore[arg-type]
+    assert runner.tool_origin() is None
+    runner.poses.update_message(SimpleNamespace(tool_position=np.array([0.5, 0.1, 0.3]),
+                                                tool_rotation=np.eye(3)))
+    np.testing.assert_array_equal(runner.tool_origin(), [0.5, 0.1, 0.3])
 
 
 def test_status_line_shows_error_twist_and_service() -> None:

@@ -19,8 +19,9 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureInput
 from twistrate.clients.vservo.runner import Outcome, Runner
+from twistrate.clients.vservo.synthetic_feed import SyntheticPipeline
 from twistrate.service import wire
-from twistrate.service.commands.vservo import SyntheticPipeline, synthetic_service_config
+from twistrate.service.commands.vservo import synthetic_service_config
 from twistrate.solver.kinematics import tool_pose
 
 #: Starting postures (joint offsets from home, rad) of the closed-loop tests: all see every dot.
@@ -58,7 +59,8 @@ class Closed:
 
 def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, track: bool = False,
                 law: dict[str, Any] | None = None, camera: dict[str, Any] | None = None,
-                watch_commands: bool = False, goal: dict[str, Any] | None = None) -> Closed:
+                watch_commands: bool = False, goal: dict[str, Any] | None = None,
+                mount: dict[str, Any] | None = None) -> Closed:
     """Run vservo on the panel cell against `twistrate serve` until settled (or `seconds`). The watcher
     reads health messages (tick and stamp, 50 per second), or every command with `watch_commands`."""
     probe, _ = synthetic_service_config(None)
@@ -79,16 +81,20 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
         data["law"] = {**data["law"], **(law or {})}
         if goal is not None:
             data["goal"] = goal
+        if mount is not None:
+            data["mount"] = mount
         config = vc.config_from_dict(data)
         assert config.camera.name == "bench-cam"
-        cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+        if config.mount.on == "tool":
+            cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+        else:
+            cell = synthetic.plate_cell(vc.intrinsics(config), vc.mount(config).T)
         cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **(camera or {}))
-        pipeline = SyntheticPipeline(cam, arm, ep.output, feed.endpoint, config.camera.name,
-                                     config.camera.rate_hz)
+        pipeline = SyntheticPipeline(cam, ep.output, feed.endpoint, config.camera.name, config.camera.rate_hz)
         topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
         watcher = stack.enter_context(Link(ep, client="watch", topics=(topic,), timeout_s=2.0))
-        link = stack.enter_context(Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT),
-                                        timeout_s=2.0))
+        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT, wire.TOPIC_STATE)
+        link = stack.enter_context(Link(ep, client="vservo", topics=topics, timeout_s=2.0))
         stop = threading.Event()
 
         def watch() -> None:

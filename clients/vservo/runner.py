@@ -25,8 +25,10 @@ from twistrate.clients.vservo.errorlog import ErrorLog
 from twistrate.clients.vservo.features import ServoState
 from twistrate.clients.vservo.feed import FeatureInput, to_frame
 from twistrate.clients.vservo.servo import Servo, Step, wire_twist
+from twistrate.clients.vservo.toolpose import ToolPose
+from twistrate.service import wire
 from twistrate.service.wire import EventMessage, HealthMessage
-from twistrate.solver.errors import ConfigError, TwistrateError
+from twistrate.solver.errors import TwistrateError
 
 #: Terminal line refreshes per second.
 DISPLAY_HZ = 4.0
@@ -69,9 +71,11 @@ def status_line(t_s: float, step: Step, twist: dict, mode: str, health: str, fra
 
 class Runner:
     """One vservo run against a service. tool_origin: a callable giving the tool origin (3,) m, base
-    frame, needed only for a camera in the cell (None otherwise). on_sent(features_seq, twist_seq) is
-    called for every twist sent in answer to a new frame (the benchmark pairs them); on_start(t0) when
-    the loop starts (t0: time.monotonic(), the origin of the run's times)."""
+    frame, needed only for a camera in the cell; by default the newest `state` message the link
+    receives (subscribe it to b"state"; until one arrives the twist is zero and the state `stale`).
+    on_sent(features_seq, twist_seq) is called for every twist sent in answer to a new frame (the
+    benchmark pairs them); on_start(t0) when the loop starts (t0: time.monotonic(), the origin of the
+    run's times)."""
 
     def __init__(self, config: vc.VservoConfig, link: Link, feed: FeatureInput, *, track: bool = False,
                  log: ErrorLog | None = None, out: TextIO | None = sys.stdout,
@@ -85,9 +89,9 @@ class Runner:
         self.log = log
         self.out = out
         self.mount = vc.mount(config)
+        self.poses = ToolPose()
         if self.mount.kind == "cell" and tool_origin is None:
-            raise ConfigError("mount.on = 'cell': a camera in the cell needs the tool origin from the "
-                              "service (its `state` output); accepted here: mount.on = 'tool'")
+            tool_origin = self.poses.origin  # fed by the link's `state` messages (subscribe to b"state")
         self.tool_origin = tool_origin
         self.on_sent = on_sent
         self.on_start = on_start
@@ -110,6 +114,8 @@ class Runner:
                 self.mode, self.health = message.mode, message.state
             elif isinstance(message, EventMessage):
                 self.mode = message.mode
+            elif isinstance(message, wire.StateMessage):
+                self.poses.update_message(message)
 
     def _send(self, step: Step) -> tuple[int, dict]:
         origin = self.tool_origin() if self.tool_origin is not None else None
@@ -156,6 +162,8 @@ class Runner:
             if got is None and now < next_send:
                 continue
             step = self.servo.step(frame, arrived, now)
+            if self.mount.kind == "cell":
+                self._watch_service()  # the newest tool origin before the twist goes out
             seq, twist = self._send(step)
             outcome.twists += 1
             if got is not None and self.on_sent is not None:

@@ -97,13 +97,16 @@ def panel_goal_tool_pose(cell: Cell, height_m: float = 0.22, yaw_rad: float = 0.
     return cell.T_carrier @ T_panel_cam @ inverse(cell.mount.T)
 
 
-def plate_cell() -> Cell:
-    """Eye-to-hand: a plate 6 cm below the tool, the camera on a post at (0.9, -0.4, 0.6) m looking at
-    the space in front of the arm."""
+#: The invented post camera: at (0.9, -0.4, 0.6) m looking at the space in front of the arm.
+T_BASE_POST_CAM = look_at(np.array([0.9, -0.4, 0.6]), np.array([0.5, 0.0, 0.35]), np.array([0.0, 0.0, 1.0]))
+
+
+def plate_cell(intrinsics: Intrinsics = DEMO_INTRINSICS, T_base_cam: np.ndarray = T_BASE_POST_CAM) -> Cell:
+    """Eye-to-hand: a plate 6 cm past the tool origin along its z axis, five dots (ids 31-35), seen by a
+    camera fixed in the cell at T_base_cam (4, 4)."""
     T_tool_plate = transform(np.eye(3), np.array([0.0, 0.0, 0.06]))
-    T_base_cam = look_at(np.array([0.9, -0.4, 0.6]), np.array([0.5, 0.0, 0.35]), np.array([0.0, 0.0, 1.0]))
     dots = _panel_dots() * 0.6
-    return Cell(DEMO_INTRINSICS, np.arange(31, 36), dots, "tool", T_tool_plate, Mount("cell", T_base_cam))
+    return Cell(intrinsics, np.arange(31, 36), dots, "tool", T_tool_plate, Mount("cell", T_base_cam))
 
 
 @dataclass

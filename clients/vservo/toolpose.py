@@ -1,9 +1,9 @@
-"""The tool's pose from the service's planned `state` output (RULES of the project: published at the
-health rate; its `tool` field is {position: [3] m, rotation: [9] row-major} of T_base_tool, base frame).
+"""The tool's pose from the service's `state` output (docs/protocol.md 7.6: at the health rate; its
+`tool` field is {position: [3] m, rotation: [9] row-major} of T_base_tool, base frame).
 
-Coded against a plain mapping of that shape until the wire decodes the message: a camera in the cell
-needs the tool origin for its twists (servo.wire_twist), and a synthetic camera the whole pose.
-`ToolPose.update(state)` keeps the newest; `origin()` is what `Runner(tool_origin=...)` takes.
+A camera in the cell needs the tool origin for its twists (servo.wire_twist). `ToolPose` keeps the
+newest, from a decoded message (`update_message`) or a plain map of the message's shape (`update`);
+`origin()` is what `Runner(tool_origin=...)` takes.
 """
 
 from __future__ import annotations
@@ -48,6 +48,13 @@ class ToolPose:
     def __init__(self) -> None:
         self.T_base_tool: np.ndarray | None = None
         self.refused = 0
+
+    def update_message(self, message: Any) -> None:
+        """Take a decoded state message (twistrate.service.wire.StateMessage: tool_position (3,) m,
+        tool_rotation (3, 3), base frame)."""
+        T = np.eye(4)
+        T[:3, :3], T[:3, 3] = message.tool_rotation, message.tool_position
+        self.T_base_tool = T
 
     def update(self, state: Mapping[str, Any]) -> None:
         try:

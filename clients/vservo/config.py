@@ -105,7 +105,7 @@ class EndpointsSection(_Section):
 
 class RunSection(_Section):
     rate_hz: Annotated[float, Field(gt=0.0, le=1000.0)] = 50.0  # twists per second without new frames
-    lease_ms: Annotated[int, Field(ge=50, le=60_000)] = 1000
+    lease_ms: Annotated[int, Field(ge=50, le=60_000)] = 3000
 
 
 class VservoConfig(_Section):

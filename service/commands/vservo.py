@@ -273,7 +273,9 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         stack.callback(feed.close)
         pipeline = SyntheticPipeline(camera, ep.output, feed.endpoint, config.camera.name,
                                      config.camera.rate_hz)
-        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT, wire.TOPIC_STATE)
+        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
+        if config.mount.on == "cell":
+            topics += (wire.TOPIC_STATE,)  # the tool origin for a camera in the cell
         link = stack.enter_context(Link(ep, client="vservo", topics=topics, timeout_s=2.0))
         print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {ep.control}; camera "
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "

@@ -4,6 +4,7 @@ arm in its own process, the synthetic camera as a pipeline, the vservo runner, a
 from __future__ import annotations
 
 import contextlib
+import multiprocessing
 import subprocess
 import threading
 import time
@@ -14,7 +15,7 @@ from typing import Any
 import numpy as np
 from service_harness import ANY_PORT, reap, serve_process
 
-from twistrate.clients.link import Link
+from twistrate.clients.link import Endpoints, Link
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureInput
@@ -73,30 +74,16 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
         proc, ep = serve_process(tmp_path / "service.toml", tmp_path / "endpoints.json",
                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         stack.callback(reap, proc)
-        feed = FeatureInput(ANY_PORT, "bench-cam")
-        stack.callback(feed.close)
         data = vc.load_config().model_dump()
-        data["endpoints"] = {"features": feed.endpoint, "intake": ep.intake, "output": ep.output,
+        data["endpoints"] = {"features": ANY_PORT, "intake": ep.intake, "output": ep.output,
                              "control": ep.control}
         data["law"] = {**data["law"], **(law or {})}
         if goal is not None:
             data["goal"] = goal
         if mount is not None:
             data["mount"] = mount
-        config = vc.config_from_dict(data)
-        assert config.camera.name == "bench-cam"
-        if config.mount.on == "tool":
-            cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
-        else:
-            cell = synthetic.plate_cell(vc.intrinsics(config), vc.mount(config).T)
-        cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **(camera or {}))
-        pipeline = SyntheticPipeline(cam, ep.output, feed.endpoint, config.camera.name, config.camera.rate_hz)
         topic = wire.TOPIC_COMMAND if watch_commands else wire.TOPIC_HEALTH
         watcher = stack.enter_context(Link(ep, client="watch", topics=(topic,), timeout_s=2.0))
-        topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
-        if config.mount.on == "cell":
-            topics += (wire.TOPIC_STATE,)
-        link = stack.enter_context(Link(ep, client="vservo", topics=topics, timeout_s=2.0))
         stop = threading.Event()
 
         def watch() -> None:
@@ -109,13 +96,61 @@ def closed_loop(tmp_path: Path, start: str = "home", seconds: float = 20.0, trac
                 result.commands.append((message.stamp_ns / 1e9, message.tick, target))
 
         thread = threading.Thread(target=watch, daemon=True)
-        runner = Runner(config, link, feed, track=track, out=None, on_start=pipeline.begin)
-        result.wall_offset = time.time() - time.monotonic()
+        result.wall_offset = time.time() - time.monotonic()  # one machine: one monotonic clock for both
         thread.start()
         stack.callback(thread.join, 2.0)
         stack.callback(stop.set)
-        pipeline.start()
-        stack.callback(pipeline.stop)
-        result.outcome = runner.run(seconds)
-    assert pipeline.error is None, pipeline.error
+        # vservo and its camera in their own process, as deployed: this one's threads (the watcher) and
+        # whatever earlier tests left in it (switch interval, collector state) do not share their GIL
+        ctx = multiprocessing.get_context("spawn")
+        parent, child = ctx.Pipe()
+        worker = ctx.Process(target=_vservo_process, args=(data, camera or {}, seconds, track, child))
+        worker.start()
+        stack.callback(_end_process, worker)
+        assert parent.poll(seconds + 60.0), "the vservo process sent no outcome"
+        result.outcome, error = parent.recv()
+    assert error is None, error
     return result
+
+
+def _end_process(worker: Any) -> None:
+    worker.join(10.0)
+    if worker.is_alive():
+        worker.kill()
+        worker.join(5.0)
+
+
+def _vservo_process(data: dict[str, Any], camera: dict[str, Any], seconds: float, track: bool,
+                    conn: Any) -> None:
+    """The vservo side of a closed loop: feature input, synthetic camera pipeline, runner."""
+    feed = FeatureInput(ANY_PORT, "bench-cam")
+    data["endpoints"]["features"] = feed.endpoint
+    config = vc.config_from_dict(data)
+    if config.mount.on == "tool":
+        cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
+    else:
+        cell = synthetic.plate_cell(vc.intrinsics(config), vc.mount(config).T)
+    cam = synthetic.SyntheticCamera(cell, pose=config.law.kind == "pose", **camera)
+    ep = config.endpoints
+    pipeline = SyntheticPipeline(cam, ep.output, feed.endpoint, config.camera.name, config.camera.rate_hz)
+    topics = (wire.TOPIC_HEALTH, wire.TOPIC_EVENT)
+    if config.mount.on == "cell":
+        topics += (wire.TOPIC_STATE,)
+    outcome, error = Outcome(reason="failed"), None
+    try:
+        with Link(Endpoints(ep.intake, ep.output, ep.control), client="vservo", topics=topics,
+                  timeout_s=2.0) as link:
+            runner = Runner(config, link, feed, track=track, out=None, on_start=pipeline.begin)
+            pipeline.start()
+            try:
+                outcome = runner.run(seconds)
+            finally:
+                pipeline.stop()
+        error = pipeline.error
+    except Exception as exc:  # reported to the test, which fails with it
+        error = f"{type(exc).__name__}: {exc}"
+    finally:
+        feed.close()
+        conn.send((outcome, error))
+        conn.close()
+

@@ -41,21 +41,27 @@ def speed_cap_factor(linear: np.ndarray, angular: np.ndarray, point: np.ndarray,
     return s
 
 
-def ramp_to_rest(qd: np.ndarray, a_max: np.ndarray, period: float) -> np.ndarray:
-    """Rates one tick closer to rest, all joints slowed by one common factor (the joint-space
+def ramp_to_rest(qd: np.ndarray, a_max: np.ndarray, dt: float) -> np.ndarray:
+    """Rates `dt` seconds closer to rest, all joints slowed by one common factor (the joint-space
     direction is kept), the most constrained joint decelerating at exactly its a_max.
 
-    qd : (n,) rates commanded last tick (rad/s or m/s). a_max : (n,) acceleration limits (> 0).
-    period : tick period T, s. Returns new (n,) rates; every |change_i| <= a_max_i * T, and rest
-    (all zeros exactly) is reached after ceil(max_i |qd_i| / (a_max_i T)) ticks.
+    qd : (n,) rates commanded last (rad/s or m/s). a_max : (n,) acceleration limits (> 0).
+    dt : time since qd was commanded, s (the actual elapsed time, not a tick count: a late tick
+    removes as much as the deceleration allows over the time that really passed, never more; dt <= 0
+    keeps qd). Returns new (n,) rates; every |change_i| <= a_max_i * dt. The factor is common, so the
+    most constrained joint stays the same one and the rates follow the straight line from the stop's
+    start to rest in time: rest (all zeros exactly) is reached once the time summed over the calls
+    reaches max_i |qd_i| / a_max_i of the first call, however that time was cut into calls.
     """
     speed = np.abs(qd)
     top = float(speed.max()) if speed.size else 0.0
     if top == 0.0:
         return np.zeros_like(qd)
-    # Fraction of the current rates that may be removed this tick without exceeding any a_max_i T.
+    if not dt > 0.0:
+        return qd.copy()
+    # Fraction of the current rates that may be removed over dt without exceeding any a_max_i dt.
     with np.errstate(divide="ignore", over="ignore"):
-        fraction = float(np.min(a_max * period / speed))
+        fraction = float(np.min(a_max * dt / speed))
     if fraction >= 1.0:
         return np.zeros_like(qd)
     return qd * (1.0 - fraction)

@@ -89,6 +89,8 @@ class Pipeline:
         # tick state
         self.tick = 0
         self.qd = np.zeros(self.n)
+        #: monotonic ns at which self.qd was commanded (the stop ramp follows the clock from it)
+        self.qd_ns = 0
         self.mode = self.state.mode
         self.health_state = self.reports.initial_state
         self.scale, self.cap, self.damping = 1.0, 1.0, 0.0
@@ -119,6 +121,7 @@ class Pipeline:
         """The tick starts at `now` (monotonic ns): nothing arrived before it; a simulated arm's joint
         state is fresh from it."""
         self.intake.empty_ns = now
+        self.qd_ns = now
         if self.sim is not None:
             self.intake.q_rx_ns = now
 
@@ -192,11 +195,13 @@ class Pipeline:
                        and intake.twist_rx_ns >= state.epoch_ns and state.holds(twist.lease, now))
         joints_fresh = q is not None and now - intake.q_rx_ns <= self.joints_timeout_ns
         qd_prev = self.qd
+        # the time the previous rates really were in force: a late tick ramps by it, not by one period
+        elapsed_s = (now - self.qd_ns) / 1e9
         mode = state.step(now, twist_fresh, joints_fresh, not qd_prev.any())
         solved = self._solve(q, qd_prev, intake.desired) if mode == st.RUNNING else None
         if solved is None:
             self._spec = None
-            qd = ramp_to_rest(qd_prev, self.arm.a_max, self.period_s)
+            qd = ramp_to_rest(qd_prev, self.arm.a_max, elapsed_s)
             mode = state.mode
         else:
             qd = solved[0].qd
@@ -207,11 +212,12 @@ class Pipeline:
                 data = self._encode(wall, q, qd, solved)
             if data is None and solved is not None:  # not encodable: fault, hold
                 solved, mode = None, state.mode
-                qd = ramp_to_rest(qd_prev, self.arm.a_max, self.period_s)
+                qd = ramp_to_rest(qd_prev, self.arm.a_max, elapsed_s)
                 self.mode = mode
                 data = self._encode(wall, q, qd, None)
             if data is not None:
                 self._send_command(data, qd, solved is not None)
+        self.qd_ns = now
         self._this = (wall, q, qd, solved, replies, mode)
 
     def finish(self) -> None:

@@ -54,3 +54,31 @@ def test_ramp_bounded_direction_kept_and_stop_time(qd0, period, data):
         ticks += 1
         assert ticks <= expected + 1
     assert expected <= ticks <= expected + 1
+
+
+@settings(max_examples=100, deadline=None, derandomize=True)
+@given(st.lists(st.floats(-3.0, 3.0), min_size=1, max_size=7),
+       st.lists(st.floats(0.0005, 0.05), min_size=1, max_size=150), st.data())
+def test_ramp_follows_the_clock_however_the_time_is_cut(qd0, gaps, data):
+    """Irregular calls (late ticks): the rates stay on or under the straight line from qd0 to rest over
+    T = max_i |qd0_i| / a_max_i (constant deceleration, common practice), each step within a_max * dt,
+    and rest is reached at the first call at or after T, not later."""
+    qd0 = np.array(qd0)
+    a_max = np.array(data.draw(st.lists(st.floats(2.0, 20.0), min_size=qd0.size, max_size=qd0.size)))
+    stop_s = float(np.max(np.abs(qd0) / a_max))
+    qd, t = qd0.copy(), 0.0
+    for dt in gaps:
+        new = ramp_to_rest(qd, a_max, dt)
+        t += dt
+        assert np.all(np.abs(new - qd) <= a_max * dt * (1 + 1e-12))
+        left = max(0.0, 1.0 - t / stop_s) if stop_s > 0 else 0.0
+        assert np.all(np.abs(new) <= np.abs(qd0) * left + 1e-9)
+        if t >= stop_s * (1 + 1e-9):
+            assert not new.any()
+        qd = new
+
+
+def test_ramp_keeps_the_rates_for_no_elapsed_time():
+    qd = np.array([0.5, -0.2])
+    np.testing.assert_array_equal(ramp_to_rest(qd, np.array([5.0, 5.0]), 0.0), qd)
+    np.testing.assert_array_equal(ramp_to_rest(qd, np.array([5.0, 5.0]), -1e-3), qd)

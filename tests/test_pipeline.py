@@ -34,20 +34,29 @@ class Rig:
                        lambda topic, data: self.out.append((topic, data)))
         self.pipe.start(self.t)
         self.seq = itertools.count(1)
+        self.deadline = self.t
+        #: the clock at each tick's command()
+        self.command_ns: list[int] = []
 
-    def tick(self, twist: tuple[list[float], list[float]] | None = None, token: str | None = None) -> None:
+    def tick(self, twist: tuple[list[float], list[float]] | None = None, token: str | None = None,
+             late_ns: int = 0) -> None:
+        """One tick; late_ns: the tick thread wakes that long after its deadline (a stalled CPU)."""
         p = self.pipe
-        deadline = self.t + p.period_ns
-        self.t = deadline - 500_000
+        deadline = self.deadline + p.period_ns
+        while deadline - 500_000 < self.t:  # the next slot on the grid still ahead (service/tick.py)
+            deadline += p.period_ns
+        self.deadline = deadline
+        self.t = deadline - 500_000 + late_ns
         if twist is not None:
             self.inbox.append([wire.TOPIC_TWIST, wire.encode_twist(seq=next(self.seq), lease=token,
                                                                   linear=twist[0], angular=twist[1],
                                                                   stamp_ns=self.t)])
         p.prepare(deadline)
-        self.t = deadline
+        self.t = deadline + late_ns
         p.command(deadline)
+        self.command_ns.append(self.t)
         p.finish()
-        self.t = deadline + 100_000
+        self.t = deadline + late_ns + 100_000
 
     def commands(self) -> list[wire.CommandMessage]:
         return [wire.decode_command(data, self.pipe.n) for topic, data in self.out
@@ -105,6 +114,47 @@ def test_a_silent_source_brings_the_arm_to_rest_within_the_acceleration_limits()
     ramp_ticks = math.ceil(float(np.max(np.abs(cs[first_stop - 1].rate) / p.arm.a_max)) / p.period_s)
     at_rest = next(i for i, c in enumerate(cs) if i > first_stop and not c.rate.any())
     assert at_rest - first_stop <= ramp_ticks + 1
+
+
+def test_late_ticks_ramp_by_the_time_that_passed_and_rest_comes_on_time():
+    """Ticks arriving 0 to 14 periods late during the stop: each rate is where the acceleration limit puts
+    it at that time since the last command (|change| <= a_max * elapsed), never above the straight line
+    from the stop's start to rest, and the arm is at rest by the timeout + the deceleration time + one
+    (late) tick gap after the last twist, not one period per tick later (constant deceleration from qd0
+    takes max_i |qd0_i| / a_max_i: kinematics, common practice)."""
+    rig = Rig()
+    token = _enable(rig)
+    for _ in range(100):
+        rig.tick(([0.1, 0.0, 0.0], [0.0, 0.0, 0.3]), token)
+    p = rig.pipe
+    last_twist_ns = rig.command_ns[-1]
+    rng = np.random.default_rng(11)
+    n_before = len(rig.commands())
+    lates = []
+    for _ in range(400):
+        late = int(rng.choice([0, 0, 1, 3, 14]) * p.period_ns + rng.integers(0, p.period_ns // 2))
+        lates.append(late)
+        rig.tick(late_ns=late)
+        if rig.commands()[-1].mode == "holding":
+            break
+    cs = rig.commands()[n_before - 1:]
+    times = rig.command_ns[n_before - 1:]
+    modes = [c.mode for c in cs]
+    assert modes[-1] == "holding" and not cs[-1].rate.any() and "stopping" in modes
+    assert max(lates) > 10 * p.period_ns  # ticks really were late
+    first_stop = modes.index("stopping")
+    qd0, t0 = cs[first_stop - 1].rate, times[first_stop - 1]  # the last answering rates, when sent
+    stop_s = float(np.max(np.abs(qd0) / p.arm.a_max))
+    for (a, ta), (b, tb) in itertools.pairwise(zip(cs[first_stop - 1:], times[first_stop - 1:], strict=True)):
+        assert np.all(np.abs(b.rate - a.rate) <= p.arm.a_max * (tb - ta) / 1e9 * (1 + 1e-9))
+        assert np.all(np.abs(b.rate) <= np.abs(qd0) * max(0.0, 1 - (tb - t0) / 1e9 / stop_s) + 1e-12)
+    at_rest = next(i for i, c in enumerate(cs) if i > first_stop and not c.rate.any())
+    # the first tick at or after t0 + stop_s commands rest
+    assert times[at_rest - 1] < t0 + stop_s * 1e9 <= times[at_rest] + 1_000
+    gap = max(b - a for a, b in itertools.pairwise(times))
+    assert times[at_rest] - last_twist_ns <= p.twist_timeout_ns + stop_s * 1e9 + gap
+    # fewer ticks than a ramp counted in ticks needs (ceil(stop_s / T)): the late ones removed more
+    assert at_rest - first_stop + 1 < math.ceil(stop_s / p.period_s)
 
 
 def test_control_operations_run_at_the_next_tick_boundary_and_report_its_mode():

@@ -30,7 +30,7 @@ import numpy as np
 from twistrate.service import state as st
 from twistrate.service import wire
 from twistrate.service.config import ServiceConfig
-from twistrate.service.intake import Intake, Poll
+from twistrate.service.intake import DRAIN_BUDGET_NS, Intake, Poll
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.reports import HealthReporter
 from twistrate.service.simarm import SimArm
@@ -67,6 +67,8 @@ class Pipeline:
         self.rate_hz = float(config.tick.rate_hz)
         self.period_ns = round(1e9 / self.rate_hz)
         self.period_s = self.period_ns / 1e9
+        #: the time budget of the drain before the deadline, ns (a third of it at the deadline)
+        self.drain_budget_ns = min(DRAIN_BUDGET_NS, self.period_ns // 8)
         self.health_every = max(1, round(self.rate_hz / config.tick.health_hz))
         self.twist_timeout_ns = int(config.watchdog.twist_timeout_ms * 1e6)
         self.joints_timeout_ns = int(config.watchdog.joints_timeout_ms * 1e6)
@@ -148,9 +150,10 @@ class Pipeline:
 
     # -- the tick ------------------------------------------------------------------------------------
 
-    def _take_input(self, now: int) -> None:
-        """Drain the intake and check the newest joint state against the limits (once per state)."""
-        self.intake.drain(self.poll, now)
+    def _take_input(self, now: int, budget_ns: int) -> None:
+        """Drain the intake (within budget_ns) and check the newest joint state against the limits (once
+        per state)."""
+        self.intake.drain(self.poll, now, budget_ns)
         q = self.intake.q
         if q is not None and q is not self._range_ok and self.state.mode not in (st.FAULT, st.SHUTDOWN):
             if ((q >= self._q_lo) & (q <= self._q_hi)).all():  # NaN compares False: out of range too
@@ -168,7 +171,7 @@ class Pipeline:
 
     def prepare(self, deadline: int) -> None:
         """Before the deadline: take what has arrived, its kinematics, and the speculative command."""
-        self._take_input(self.clock())
+        self._take_input(self.clock(), self.drain_budget_ns)
         q = self.intake.q
         if q is not None:
             self.kinematics(q)
@@ -188,7 +191,7 @@ class Pipeline:
                 fut.set_exception(exc)
         if self.shutdown_why is not None and state.mode != st.SHUTDOWN:
             state.shutdown(self.shutdown_why)
-        self._take_input(now)
+        self._take_input(now, self.drain_budget_ns // 3)  # the publish waits for this one
         q, twist = intake.q, intake.twist
         # the intake took only the holder's twists; the lease may have ended since
         twist_fresh = (twist is not None and now - intake.twist_rx_ns <= self.twist_timeout_ns

@@ -19,8 +19,9 @@ from twistrate.service.tick import LatencyHistogram, Ticker
 from twistrate.solver.arm import Arm
 
 #: Counters every service has from the start (docs/operation.md "Counters").
-COUNTER_NAMES = ("accepted_twist", "accepted_joints", "commands", "health_messages", "state_messages",
-                 "events", "faults", "limit_events", "publish_failed", "solver_errors", "speculation_used",
+COUNTER_NAMES = ("accepted_twist", "accepted_joints", "superseded", "commands", "health_messages",
+                 "state_messages", "events", "faults", "limit_events", "publish_failed", "solver_errors",
+                 "speculation_used",
                  "gc_collections")
 #: Latency histograms (name -> what it measures), reported as NAME_median_ns / _p99_ns / _max_ns.
 HISTOGRAMS = {

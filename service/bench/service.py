@@ -18,6 +18,9 @@ client. It reports
   stamp (the service's wall clock at the tick's wake-up);
 * the service process's CPU share over the measured window (/proc/PID/stat utime + stime, as a
   fraction of one core);
+* with --flood, each rate runs a second time with an intake flood beside it (service/bench/flood.py: a
+  local process sending refused twists as fast as it can): what it sent, what the service took
+  (refused, superseded), and the same figures;
 * context: the CPU of all benchmark processes, the load average, and the CPU wake-up latency request in
   force on the machine during the window (the service holds 0 µs when it runs real-time; see
   docs/operation.md).
@@ -51,6 +54,8 @@ DEFAULT_RATES = (500.0, 1000.0)
 DEFAULT_SECONDS = 10.0
 #: Run before the measured window (processes start, connections settle, caches warm), s.
 WARMUP_S = 2.0
+#: The warm-up waits at most this much longer for the driver and the source to be heard, s.
+START_LIMIT_S = 60.0
 #: Twists per second of the source.
 SOURCE_HZ = 200.0
 TARGET_LATENESS_P99_US = {500.0: 100.0, 1000.0: 150.0}
@@ -114,6 +119,11 @@ def _source(ep: Endpoints, seconds: float) -> int:
     return 0
 
 
+def _flowing(counters: dict[str, int]) -> bool:
+    """The driver's joint state and the source's twists both reach the service."""
+    return counters.get("accepted_joints", 0) > 0 and counters.get("accepted_twist", 0) > 0
+
+
 def _spawn(args: list[str]) -> subprocess.Popen:
     return subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                             text=True)
@@ -130,9 +140,11 @@ def _stop(proc: subprocess.Popen, timeout_s: float = 10.0) -> str:
     return err or ""
 
 
-def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -> dict[str, Any]:
+def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
+               flood: bool = False) -> dict[str, Any]:
     """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures.
-    rt_priority : the service's --rt-priority (None: its configured default)."""
+    rt_priority : the service's --rt-priority (None: its configured default).
+    flood : also run an intake flood (service/bench/flood.py) through the measured window."""
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(CONFIG_TEXT.format(rate_hz=rate_hz))
@@ -143,6 +155,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
             serve_args += ["--rt-priority", str(rt_priority)]
         serve = _spawn(serve_args)
         procs = [serve]
+        flooder = flood_sent = None
         try:
             ep = Endpoints(**read_endpoints(ep_file, SERVE_START_S))
             procs.append(_spawn(["twistrate.service.commands.cli", "sim", "--config", str(path),
@@ -154,10 +167,19 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
                 procs.append(_spawn(["twistrate.service.bench.service", "--source", ep.intake, ep.output,
                                      ep.control, str(WARMUP_S + seconds + 1.0)]))
                 end_warmup = time.monotonic() + WARMUP_S
-                while time.monotonic() < end_warmup:
+                give_up = end_warmup + START_LIMIT_S
+                while time.monotonic() < end_warmup or not _flowing(link.counters()):
+                    if time.monotonic() > give_up:  # a loaded machine starts processes slowly
+                        raise RuntimeError("bench service: no joint state or twist reached the service "
+                                           f"within {START_LIMIT_S:g} s of the warm-up")
                     link.drain()
                     time.sleep(0.05)
                 link.drain()
+                if flood:
+                    flooder = subprocess.Popen([sys.executable, "-m", "twistrate.service.bench.flood",
+                                                ep.intake, str(seconds)], stdout=subprocess.PIPE,
+                                               stderr=subprocess.PIPE, text=True)
+                    procs.append(flooder)
                 c0 = link.counters()
                 ours = [serve.pid, *(p.pid for p in procs[1:]), os.getpid()]
                 cpu0, wall0 = cpu_seconds(serve.pid), time.monotonic()
@@ -174,8 +196,11 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
                 cpu1, wall1 = cpu_seconds(serve.pid), time.monotonic()
                 ours1, load1 = sum(cpu_seconds(pid) for pid in ours), load_average()
                 c1 = link.counters()
+                if flooder is not None:
+                    with contextlib.suppress(subprocess.TimeoutExpired, ValueError):
+                        flood_sent = int(flooder.communicate(timeout=10.0)[0])
         finally:
-            errors = [_stop(p) for p in reversed(procs)]
+            errors = [_stop(p) for p in reversed(procs) if p is not flooder or flooder.returncode is None]
     ticks = c1["ticks"] - c0["ticks"]
     overruns = c1["overruns"] - c0["overruns"]
     lat = np.array(received, dtype=float) / 1000.0
@@ -212,6 +237,10 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None) -
         "speculation_used_fraction": (c1.get("speculation_used", 0) - c0.get("speculation_used", 0)) / ticks
         if ticks else math.nan,
         "rejected_total": c1.get("rejected_total", 0),
+        "flood": flood,
+        "flood_sent": flood_sent,
+        "flood_refused": c1.get("rejected_not_leased", 0) - c0.get("rejected_not_leased", 0),
+        "superseded": c1.get("superseded", 0) - c0.get("superseded", 0),
         "rt_priority": rt_priority,
         "realtime": realtime,
         "cpu_wake_latency_us": wake_latency,
@@ -270,13 +299,17 @@ def format_result(r: dict[str, Any]) -> str:
     lines[-1] += ("; CPU wake-up latency request: unknown" if wake is None else
                   "; CPU wake-up latency request: none" if wake >= NO_WAKE_LATENCY_REQUEST_US else
                   f"; CPU wake-up latency request: {wake} us")
+    if r.get("flood"):
+        lines.insert(1, f"  intake flood      {r['flood_sent']} twists sent under a lease nobody holds; the "
+                        f"service took {r['flood_refused']} (refused not_leased) and superseded "
+                        f"{r['superseded']} unread")
     if r.get("process_errors"):
         lines.append(f"  process errors: {r['process_errors']}")
     return "\n".join(lines)
 
 
 def run(argv: list[str] | None = None) -> int:
-    """`twistrate bench service [--json FILE] [--seconds S] [--rates HZ,HZ] [--rt-priority N]`."""
+    """`twistrate bench service [--json FILE] [--seconds S] [--rates HZ,HZ] [--rt-priority N] [--flood]`."""
     parser = argparse.ArgumentParser(prog="twistrate bench service", description=__doc__.splitlines()[0])
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="measured time per rate, s")
@@ -285,6 +318,9 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--rt-priority", type=int, default=None, metavar="N",
                         help="pass --rt-priority N to the service (default: the service's own default, "
                              "SCHED_FIFO when permitted; 0: normal scheduling)")
+    parser.add_argument("--flood", action="store_true",
+                        help="run each rate twice: without, then with an intake flood (a local process "
+                             "sending refused twists as fast as it can)")
     parser.add_argument("--source", nargs=4, metavar=("INTAKE", "OUTPUT", "CONTROL", "SECONDS"),
                         help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -303,12 +339,15 @@ def run(argv: list[str] | None = None) -> int:
         return 2
     results = []
     for rate in rates:
-        r = bench_rate(rate, args.seconds, args.rt_priority)
-        print(format_result(r), flush=True)
-        results.append(r)
+        for flood in (False, True) if args.flood else (False,):
+            r = bench_rate(rate, args.seconds, args.rt_priority, flood)
+            print(format_result(r), flush=True)
+            results.append(r)
     if args.json:
         doc = {"benchmark": "service", "machine": {"cpus": os.cpu_count(), "python": sys.version.split()[0]},
-               "rates": {f"{r['rate_hz']:g}": r for r in results}}
+               "rates": {f"{r['rate_hz']:g}": r for r in results if not r["flood"]}}
+        if args.flood:
+            doc["flood"] = {f"{r['rate_hz']:g}": r for r in results if r["flood"]}
         Path(args.json).write_text(json.dumps(doc, indent=2, default=float))
     return 0
 

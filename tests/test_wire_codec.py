@@ -546,3 +546,31 @@ def test_sketch_style_plain_maps_decode():
     # float32 from another language's encoder is still a number
     f32 = msgpack.packb({**twist, "linear": [0.5, 0, 0]}, use_single_float=True)
     assert wire.decode_twist(f32).linear[0] == 0.5
+
+
+def test_the_reused_packer_gives_packbs_bytes_per_thread_and_is_empty_after_a_failure():
+    """service/wire/checks.py packb keeps one Packer per thread: its bytes equal msgpack.packb's (the
+    reference encoder), threads do not mix their output, and a failed pack leaves nothing behind."""
+    import threading
+
+    import msgpack
+
+    from twistrate.service.wire.checks import packb
+
+    with pytest.raises(OverflowError):
+        packb({"big": 2**70})
+    assert packb({"a": [1.5, 2]}) == msgpack.packb({"a": [1.5, 2]})
+    errors = []
+
+    def work(k):
+        for i in range(2000):
+            m = {"thread": k, "i": i, "v": [float(i)] * 7}
+            if packb(m) != msgpack.packb(m):
+                errors.append((k, i))
+
+    threads = [threading.Thread(target=work, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors

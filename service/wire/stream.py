@@ -10,7 +10,6 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-import msgpack
 import numpy as np
 
 from twistrate.service.wire.checks import (
@@ -29,6 +28,7 @@ from twistrate.service.wire.checks import (
     key_error,
     open_map,
     pack,
+    packb,
     seq_stamp,
     unpack,
     wire_fail,
@@ -186,7 +186,7 @@ def encode_command(*, seq: int, stamp_ns: int, tick: int, rate: np.ndarray, targ
     if health not in HEALTH_STATES:
         raise input_fail("command.health", health, f"one of {', '.join(HEALTH_STATES)}")
     try:
-        return msgpack.packb({"proto": PROTOCOL_VERSION, "kind": KIND_COMMAND, "seq": seq,
+        return packb({"proto": PROTOCOL_VERSION, "kind": KIND_COMMAND, "seq": seq,
                               "stamp_ns": stamp_ns, "tick": tick, "rate": r, "target": t,
                               "answers": answers, "scale": float(scale), "mode": mode, "health": health})
     except OverflowError as exc:  # a counter beyond 64 bits

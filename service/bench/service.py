@@ -18,6 +18,9 @@ client. It reports
   stamp (the service's wall clock at the tick's wake-up);
 * the service process's CPU share over the measured window (/proc/PID/stat utime + stime, as a
   fraction of one core);
+* the floor: right after the service stopped, a bare loop (service/bench/floor.py) with the same rate,
+  scheduling and CPU wake-up request and no work, for as long; its overruns and lateness beside ours
+  (target: our overrun fraction at most the floor's + 0.05 percentage points);
 * with --flood, each rate runs a second time with an intake flood beside it (service/bench/flood.py: a
   local process sending refused twists as fast as it can): what it sent, what the service took
   (refused, superseded), and the same figures;
@@ -47,7 +50,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.clients.link import Endpoints, Link
-from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US, cpu_wake_latency_in_force_us
+from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US, DEFAULT_RT_PRIORITY, cpu_wake_latency_in_force_us
 from twistrate.service.wire.discovery import read_endpoints
 
 DEFAULT_RATES = (500.0, 1000.0)
@@ -61,6 +64,8 @@ SOURCE_HZ = 200.0
 TARGET_LATENESS_P99_US = {500.0: 100.0, 1000.0: 150.0}
 TARGET_OVERRUN_FRACTION = 0.001
 TARGET_CPU_FRACTION_500 = 0.35
+#: Overruns of the service at most this many percentage points above the bare loop's (the floor).
+TARGET_POINTS_ABOVE_FLOOR = 0.05
 #: What the kernel reports as the CPU wake-up latency when nobody requests one, us (Linux PM QoS,
 #: PM_QOS_CPU_LATENCY_DEFAULT_VALUE: 2000 s).
 NO_WAKE_LATENCY_REQUEST_US = 2_000_000_000
@@ -122,6 +127,16 @@ def _source(ep: Endpoints, seconds: float) -> int:
 def _flowing(counters: dict[str, int]) -> bool:
     """The driver's joint state and the source's twists both reach the service."""
     return counters.get("accepted_joints", 0) > 0 and counters.get("accepted_twist", 0) > 0
+
+
+def measure_floor(rate_hz: float, seconds: float, rt_priority: int | None) -> dict[str, Any]:
+    """The bare loop (service/bench/floor.py) at the same rate and scheduling, right after the service
+    stopped, in its own process for `seconds`."""
+    prio = DEFAULT_RT_PRIORITY if rt_priority is None else rt_priority
+    out = subprocess.run([sys.executable, "-m", "twistrate.service.bench.floor", f"{rate_hz:g}",
+                          f"{seconds:g}", str(prio)], capture_output=True, text=True,
+                         timeout=seconds + 60.0, check=True)
+    return json.loads(out.stdout)
 
 
 def _spawn(args: list[str]) -> subprocess.Popen:
@@ -201,6 +216,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
                         flood_sent = int(flooder.communicate(timeout=10.0)[0])
         finally:
             errors = [_stop(p) for p in reversed(procs) if p is not flooder or flooder.returncode is None]
+    floor = None if flood else measure_floor(rate_hz, seconds, rt_priority)
     ticks = c1["ticks"] - c0["ticks"]
     overruns = c1["overruns"] - c0["overruns"]
     lat = np.array(received, dtype=float) / 1000.0
@@ -251,6 +267,11 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
         "cpu_fraction": TARGET_CPU_FRACTION_500 if rate_hz == 500.0 else None,
         "arrival_to_publish_p99_us": period_us + ARRIVAL_TARGET_EXTRA_US,
     }
+    if floor is not None:
+        result["floor"] = floor
+        above = result["overrun_fraction"] - floor["overrun_fraction"]
+        result["overrun_points_above_floor"] = 100.0 * above
+        result["targets"]["overrun_points_above_floor"] = TARGET_POINTS_ABOVE_FLOOR
     bad = [e.strip().splitlines()[-1] for e in errors if "Traceback" in e]
     if bad:
         result["process_errors"] = bad
@@ -299,6 +320,14 @@ def format_result(r: dict[str, Any]) -> str:
     lines[-1] += ("; CPU wake-up latency request: unknown" if wake is None else
                   "; CPU wake-up latency request: none" if wake >= NO_WAKE_LATENCY_REQUEST_US else
                   f"; CPU wake-up latency request: {wake} us")
+    floor = r.get("floor")
+    if floor is not None:
+        lines.insert(5, f"  floor (bare loop) lateness median {floor['lateness_median_us']:5.1f} us  p99 "
+                        f"{floor['lateness_p99_us']:7.1f} us  max {floor['lateness_max_us']:8.1f} us; "
+                        f"overruns "
+                        f"{floor['overruns']} of {floor['ticks']} ({100 * floor['overrun_fraction']:.3f} %); "
+                        f"ours {r['overrun_points_above_floor']:+.3f} points"
+                        f"{_verdict(r['overrun_points_above_floor'], TARGET_POINTS_ABOVE_FLOOR)}")
     if r.get("flood"):
         lines.insert(1, f"  intake flood      {r['flood_sent']} twists sent under a lease nobody holds; the "
                         f"service took {r['flood_refused']} (refused not_leased) and superseded "

@@ -30,6 +30,9 @@ SECRET_SUFFIX = ".key_secret"
 Z85_KEY_CHARS = 40
 #: File mode of a secret key file.
 SECRET_MODE = 0o600
+#: Permission bits that refuse a secret key file: group or others may read, write or execute it (the
+#: secret would be known beyond its owner; common practice, as for SSH private keys).
+OTHERS_MAY_READ = 0o077
 PUBLIC_MODE = 0o644
 TRANSPORTS: tuple[str, ...] = ("tcp", "ipc", "inproc")
 
@@ -146,6 +149,7 @@ def load_secret_keypair(path: str | Path,
     """(public, secret) Z85 keys from a secret key file. Raises ConfigError naming `field_name`."""
     path = Path(path)
     try:
+        mode = path.stat().st_mode
         public, secret = zmq.auth.load_certificate(path)
     except (OSError, ValueError):
         raise field_error(ConfigError, field_name, str(path),
@@ -153,6 +157,10 @@ def load_secret_keypair(path: str | Path,
     if secret is None:
         raise field_error(ConfigError, field_name, str(path),
                           "the secret key file NAME.key_secret, not the public NAME.key")
+    if mode & OTHERS_MAY_READ:
+        raise field_error(ConfigError, field_name, str(path),
+                          f"a secret key file only its owner may read or write (it has mode "
+                          f"{mode & 0o777:04o}: chmod 600)")
     return _check_key(public, field_name, path), _check_key(secret, field_name, path)
 
 

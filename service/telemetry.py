@@ -16,6 +16,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from twistrate.service.tick import LatencyHistogram, Ticker
+from twistrate.service.wire import REASONS
 from twistrate.solver.arm import Arm
 
 #: Counters every service has from the start (docs/operation.md "Counters").
@@ -23,6 +24,9 @@ COUNTER_NAMES = ("accepted_twist", "accepted_joints", "superseded", "commands", 
                  "state_messages", "events", "faults", "limit_events", "publish_failed", "solver_errors",
                  "speculation_used",
                  "gc_collections")
+#: Every reason an intake message can be refused for: the codec's (but `unknown_op`, a control reason)
+#: and the service's own.
+INTAKE_REASONS = tuple(r for r in (*REASONS, "not_leased", "unexpected_joints") if r != "unknown_op")
 #: Latency histograms (name -> what it measures), reported as NAME_median_ns / _p99_ns / _max_ns.
 HISTOGRAMS = {
     "lateness": "tick wake-up after its deadline",
@@ -105,6 +109,8 @@ class Telemetry:
         out["ticks"] = self.ticker.ticks
         out["overruns"] = self.ticker.overruns
         rejected = dict(self.rejected)
+        for reason in INTAKE_REASONS:  # every reason from the start, 0 until its first refusal
+            out[f"rejected_{reason}"] = 0
         for reason, count in rejected.items():
             out[f"rejected_{reason}"] = count
         out["rejected_total"] = sum(rejected.values())

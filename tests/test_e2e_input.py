@@ -55,7 +55,7 @@ def test_every_bad_input_class_is_counted_and_the_stream_continues():
     cfg = make_config(watchdog={"twist_timeout_ms": 1000.0})
     with running_service(cfg) as run:
         link = run.link()
-        lease = link.claim("test")
+        lease = link.claim("test", lease_ms=60_000)  # the waits below may outlast a short lease
         link.enable()
         stream_until(link, [0.01, 0, 0], [0, 0, 0], lambda cs: any(c.answers >= 0 for c in cs))
         pub = zmq.Context.instance().socket(zmq.PUB)

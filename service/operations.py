@@ -63,6 +63,7 @@ def status(p: Pipeline, now: int) -> dict[str, Any]:
         "health": p.health_state,
         "tick": p.tick,
         "tick_hz": p.rate_hz,
+        "health_hz": p.rate_hz / p.health_every,
         "arm": p.arm.name,
         "n": p.n,
         "holder": None if lease is None else lease.client,

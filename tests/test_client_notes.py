@@ -40,9 +40,11 @@ def test_control_requests_in_other_framings_are_answered_behind_the_same_frames(
             dealer.close()
 
 
-def test_every_intake_reason_is_counted_from_the_start():
-    with running_service(make_config()) as run:
-        counters = run.link().counters()
+def test_every_intake_reason_is_counted_from_the_start_and_status_reports_the_health_rate():
+    with running_service(make_config(tick={"rate_hz": 500.0, "health_hz": 50.0})) as run:
+        link = run.link()
+        assert link.status()["health_hz"] == 50.0
+        counters = link.counters()
         for reason in INTAKE_REASONS:
             assert counters[f"rejected_{reason}"] == 0
         assert counters["rejected_total"] == 0 and counters["superseded"] == 0

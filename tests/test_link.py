@@ -69,7 +69,8 @@ class Peer:
         if op == "set":
             return {"params": dict(req.args["params"])}
         if op == "status":
-            return {"mode": "disabled", "health": "clear", "tick": 1, "tick_hz": 500.0, "arm": "reach7",
+            return {"mode": "disabled", "health": "clear", "tick": 1, "tick_hz": 500.0, "health_hz": 50.0,
+                    "arm": "reach7",
                     "n": N, "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                     "reduced_speed": False, "position": [0.0] * N, "twist_age_ms": None,
                     "joints_age_ms": None, "realtime": False}

@@ -9,6 +9,7 @@ import sys
 BENCHMARKS: dict[str, tuple[str, str]] = {
     "solver": ("twistrate.service.bench.solver", "per-tick cost of rate resolution on the example arms"),
     "service": ("twistrate.service.bench.service", "tick timing, latencies and CPU of a running service"),
+    "limits": ("twistrate.service.bench.limits", "every rate bound checked under random use of the solver"),
     "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
     "vservo": ("twistrate.service.bench.vservo", "camera loop: features message to the command answering it"),
 }

@@ -4,7 +4,10 @@ It connects to a running service like a real driver would: subscribes to `comman
 applies the newest command's rates to the simulated arm (service/simarm.py, the config's lag and the
 arm's own limits), and answers each command with `joints` (position and velocity) on the intake.
 Like a drive with its own watchdog, it ramps to rest within the acceleration limits when no command
-has arrived for COMMAND_TIMEOUT_S. The service must run with `[simulation] enabled = false` to use it.
+has arrived for COMMAND_TIMEOUT_S (so it is at rest within COMMAND_TIMEOUT_S + max_i |qd_i| / a_max_i +
+one loop period after the last command, whatever happened to the service: tests/test_e2e_faults.py
+kills the service with SIGKILL mid-motion). The service must run with `[simulation] enabled = false` to
+use it.
 """
 
 from __future__ import annotations
@@ -95,12 +98,14 @@ class SimDriver:
                         got = True
                         self.received += 1
             now = clock()
-            self.sim.step((now - last_step) * 1e-9)  # the motion since the last step, at the old rates
+            dt = (now - last_step) * 1e-9
+            self.sim.step(dt)  # the motion since the last step, at the old rates
             last_step = now
             if got:
                 last_cmd = now
             elif now - last_cmd > COMMAND_TIMEOUT_S * 1e9:  # the drive's own watchdog
-                rate = ramp_to_rest(self.sim.qd, self.arm.a_max, idle_ms * 1e-3)
+                # by the time that really passed (a late loop removes more, never beyond a_max dt)
+                rate = ramp_to_rest(self.sim.qd, self.arm.a_max, dt)
             self.sim.command(rate)
             data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
             self.joints.send_multipart((wire.TOPIC_JOINTS, data))

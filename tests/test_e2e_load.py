@@ -102,6 +102,11 @@ def test_a_flood_at_full_rate_leaves_the_tick_its_rate_and_everything_taken_is_c
         link.claim("test", lease_ms=60_000)  # the control plane shares the CPU with the flood
         link.enable()
         stream_until(link, *SLOW, lambda cs: sum(c.answers >= 0 for c in cs) > 50)
+        # the same window without the flood first: the machine's own rate now (it is shared)
+        q0, t_q = link.counters(), time.monotonic()
+        stream_until(link, *SLOW, lambda cs: time.monotonic() - t_q >= FLOOD_S, limit_s=FLOOD_S + 20.0)
+        q1, t_q1 = link.counters(), time.monotonic()
+        quiet_rate = (q1["ticks"] - q0["ticks"]) / (t_q1 - t_q)
         c0, t0 = link.counters(), time.monotonic()
         flood = subprocess.Popen([sys.executable, "-m", "twistrate.service.bench.flood", run.endpoints.intake,
                                   str(FLOOD_S)], stdout=subprocess.PIPE, text=True)
@@ -115,12 +120,14 @@ def test_a_flood_at_full_rate_leaves_the_tick_its_rate_and_everything_taken_is_c
         c1, t1 = link.counters(), time.monotonic()
     d = {k: c1.get(k, 0) - c0.get(k, 0) for k in ("ticks", "overruns", "rejected_not_leased", "superseded",
                                                   "accepted_twist")}
-    expected_ticks = (t1 - t0) * run.service.rate_hz
+    expected_ticks = (t1 - t0) * quiet_rate
     print(f"flood: {sent} sent, {d['rejected_not_leased']} refused not_leased, {d['superseded']} superseded; "
-          f"ticks {d['ticks']} of {expected_ticks:.0f} expected, {d['overruns']} overruns; "
-          f"{sum(c.answers >= 0 for c in cs)} of {len(cs)} commands answering a twist")
+          f"ticks {d['ticks']} against {expected_ticks:.0f} at the rate without it ({quiet_rate:.0f} Hz), "
+          f"{d['overruns']} overruns; {sum(c.answers >= 0 for c in cs)} of {len(cs)} commands answering")
     assert sent > 10_000 and d["rejected_not_leased"] > 0 and d["superseded"] > 0
     assert d["rejected_not_leased"] + d["superseded"] <= sent
-    # the tick kept its rate: the issue measured 90 to 230 Hz of 500 under the same flood before
+    # the tick kept its rate (against the same service's rate just before, on this shared machine): the
+    # issue measured 90 to 230 Hz of 500 under the same flood before; the drain before the time budget
+    # gave 60 % of the ticks here under the flood beside 93 % after it
     assert d["ticks"] >= 0.8 * expected_ticks
     assert any(c.answers >= 0 for c in cs[len(cs) // 2:])  # the holder still moves the arm

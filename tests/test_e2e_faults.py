@@ -12,7 +12,7 @@ import time
 
 import numpy as np
 import pytest
-from service_harness import LOOP_LIMIT_S, reap, serve_process, stream_until
+from service_harness import LOOP_LIMIT_S, reap, serve_process, stream_until, wait_for
 
 from twistrate.clients.link import Link
 from twistrate.service.config import load_config
@@ -54,6 +54,7 @@ def test_sigkill_of_the_service_mid_motion_and_the_driver_stops_the_arm_itself(t
         with Link(ep, timeout_s=5.0) as link:
             link.wait_ready(timeout_s=10.0, topics=(b"twist", b"joints"))
             link.arm()
+            wait_for(lambda: link.counters()["accepted_joints"] > 0, limit_s=30.0)  # the driver is heard
             link.claim("test", lease_ms=60_000)
             link.enable()
             stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 50 and

@@ -111,6 +111,8 @@ def test_a_flood_at_full_rate_leaves_the_tick_its_rate_and_everything_taken_is_c
         flood = subprocess.Popen([sys.executable, "-m", "twistrate.service.bench.flood", run.endpoints.intake,
                                   str(FLOOD_S)], stdout=subprocess.PIPE, text=True)
         try:
+            assert flood.stdout.readline().strip() == "flooding"  # started (slow on a loaded machine)
+            c0, t0 = link.counters(), time.monotonic()
             cs = stream_until(link, *SLOW, lambda cs: flood.poll() is not None, limit_s=FLOOD_S + 20.0)
             sent = int(flood.communicate(timeout=20)[0])
         finally:

@@ -4,8 +4,9 @@
 `python -m twistrate.service.bench.flood INTAKE SECONDS` connects a PUB socket to the service's intake
 and sends one pre-encoded, well-formed twist under a lease nobody holds in a tight loop for SECONDS (so
 each one costs the service a full decode before it is refused `not_leased`, the dearest refusal), then
-prints the number of messages it handed to ZeroMQ. ZeroMQ drops what the socket's send high-water mark
-does not hold; the service counts what it took (rejected_not_leased, superseded).
+prints the number of messages it handed to ZeroMQ (after a line `flooding` when it starts). ZeroMQ
+drops what the socket's send high-water mark does not hold; the service counts what it took
+(rejected_not_leased, superseded).
 """
 
 from __future__ import annotations
@@ -33,6 +34,7 @@ def flood(intake: str, seconds: float) -> int:
     frames = (wire.TOPIC_TWIST, data)
     send = pub.send_multipart
     sent = 0
+    print("flooding", flush=True)  # started (imports done): a parent may time its window from here
     end = time.monotonic() + min(seconds, FLOOD_LIMIT_S)
     try:
         while True:
@@ -52,7 +54,8 @@ def main(argv: list[str] | None = None) -> int:
     if len(args) != 2:
         print("usage: python -m twistrate.service.bench.flood INTAKE SECONDS", file=sys.stderr)
         return 2
-    print(flood(args[0], float(args[1])), flush=True)
+    sent = flood(args[0], float(args[1]))
+    print(sent, flush=True)
     return 0
 
 

@@ -213,7 +213,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
                 c1 = link.counters()
                 if flooder is not None:
                     with contextlib.suppress(subprocess.TimeoutExpired, ValueError):
-                        flood_sent = int(flooder.communicate(timeout=10.0)[0])
+                        flood_sent = int(flooder.communicate(timeout=10.0)[0].split()[-1])
         finally:
             errors = [_stop(p) for p in reversed(procs) if p is not flooder or flooder.returncode is None]
     floor = None if flood else measure_floor(rate_hz, seconds, rt_priority)

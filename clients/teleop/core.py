@@ -15,6 +15,22 @@ from twistrate.clients.teleop.keyboard import COMMAND_KEYS, KeyHold
 from twistrate.clients.teleop.pipeline import AxisPipeline, Shaped
 from twistrate.clients.teleop.profile import Profile
 from twistrate.clients.teleop.session import Action, TeleopSession
+from twistrate.solver.errors import ConfigError, field_error
+
+
+def check_buttons(profile: Profile, info: DeviceInfo) -> list[str]:
+    """Profile button indices against the device's buttons. Raises ConfigError when hold-to-move needs
+    a hold button the device lacks; returns notices for other missing buttons (their actions stay on
+    the terminal keys)."""
+    count = len(info.buttons)
+    hold = profile.buttons.hold
+    if profile.motion.hold_to_move and hold is not None and hold >= count:
+        raise field_error(ConfigError, "buttons.hold", hold,
+                          f"a button index below {count} ({info.name!r} has {count} buttons), or "
+                          "motion.hold_to_move = false to move without a hold button")
+    return [f"buttons.{name} = {index}: {info.name!r} has {count} buttons; use the terminal key"
+            for name, index in profile.buttons.model_dump().items()
+            if index is not None and index >= count and name != "hold"]
 
 
 class TeleopCore:

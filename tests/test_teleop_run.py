@@ -128,3 +128,13 @@ def test_line_text_states_frame_scale_twist_mode_and_reasons() -> None:
     view = View("base", 0.25, "none", False, (0.0,) * 3, (0.0,) * 3, "disabled", None, None,
                 ["no lease (held by pad)", "disabled (press Enter to enable)"], "")
     assert "stopped: no lease (held by pad); disabled (press Enter to enable)" in text(view)
+
+
+def test_a_state_message_gives_the_session_the_tool_pose() -> None:
+    profile = profile_from_dict({"motion": {"point": [0.0, 0.0, 0.1]}})
+    run = TeleopRun(TeleopCore(profile), FakeLink())
+    R = [0.0, -1.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 1.0]
+    run._state({"kind": "state", "tick": 1, "tool": {"position": [0.4, 0.0, 0.3], "rotation": R}})
+    assert run.session.R_base_tool is not None and run.session.R_base_tool[1, 0] == 1.0
+    run._state({"kind": "state", "tool": {"rotation": [1.0]}})  # malformed: ignored, pose kept
+    assert run.session.R_base_tool[1, 0] == 1.0

@@ -17,6 +17,8 @@ import time
 from collections.abc import Callable
 from typing import Any
 
+import numpy as np
+
 from twistrate.clients.teleop.core import TeleopCore
 from twistrate.clients.teleop.session import (
     Action,
@@ -160,6 +162,16 @@ class TeleopRun:
                 self.apply(self.session.service_mode(message.mode, message.state, message.scale))
             elif isinstance(message, EventMessage):
                 self.apply(self.session.service_event(message.event, message.mode, message.detail))
+            else:
+                self._state(message)
+
+    def _state(self, message: Any) -> None:
+        """A `state` message (planned topic): tool = {position: [3] m, rotation: [9] row-major} of
+        T_base_tool, base frame; an object with a `tool` attribute or a map with a "tool" key."""
+        tool = message.get("tool") if isinstance(message, dict) else getattr(message, "tool", None)
+        rotation = tool.get("rotation") if isinstance(tool, dict) else getattr(tool, "rotation", None)
+        if rotation is not None and len(rotation) == 9:
+            self.session.tool_pose(np.asarray(rotation, dtype=float).reshape(3, 3))
 
     async def _status(self) -> None:
         while True:

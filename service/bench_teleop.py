@@ -71,11 +71,15 @@ def stream(t0: float, times: np.ndarray) -> list:
 def match(event_t: np.ndarray, sends: list[tuple[float, int, bool]],
           commands: list[tuple[float, int]]) -> np.ndarray:
     """(k,) latencies, s: each event time to the receipt of the first command answering the first
-    (moving) twist sent at or after it. Events without such a twist or command are left out."""
+    (moving) twist sent at or after it. Events without such a twist or command are left out, and so
+    are events before the first moving twist (they waited for the operator's enable, not the path)."""
     send_t = [s[0] for s in sends]
+    first = next((s[0] for s in sends if s[2]), math.inf)
     out = []
     j = 0
     for t in event_t:
+        if t < first:
+            continue
         i = bisect.bisect_left(send_t, t)
         if i >= len(sends) or not sends[i][2]:
             continue
@@ -109,15 +113,16 @@ class _Recorder:
 
 
 class _Keys:
-    def __init__(self) -> None:
+    """The operator: presses Enter once the lease is there (again, should an enable be refused)."""
+
+    def __init__(self, session: Any) -> None:
+        self.session = session
         self.t0 = time.monotonic()
-        self.done = False
 
     def read(self) -> str:
-        if not self.done and time.monotonic() - self.t0 >= ENABLE_AT_S:
-            self.done = True
-            return "\r"
-        return ""
+        s = self.session
+        ready = s.lease and not s.armed and not s._enabling and time.monotonic() - self.t0 >= ENABLE_AT_S
+        return "\r" if ready else ""
 
 
 async def _teleop_round(link: AsyncLink, rec: _Recorder, times: np.ndarray, rate_hz: float) -> np.ndarray:
@@ -126,7 +131,7 @@ async def _teleop_round(link: AsyncLink, rec: _Recorder, times: np.ndarray, rate
     t0 = time.monotonic()
     core = TeleopCore(profile, ReplaySource(stream(t0, times)), DEVICE, client="bench-teleop")
     start = len(rec.sends), len(rec.commands)
-    await TeleopRun(core, link, keys=_Keys(), lease_ms=2000).run(LEAD_S + float(times[-1]) + 0.5)
+    await TeleopRun(core, link, keys=_Keys(core.session), lease_ms=2000).run(LEAD_S + float(times[-1]) + 0.5)
     await asyncio.sleep(0.1)
     return match(t0 + LEAD_S + times, rec.sends[start[0]:], rec.commands[start[1]:])
 

@@ -7,10 +7,11 @@ import asyncio
 import time
 
 import uvloop
+from teleop_streams import Operator, StartWhenEnabled
 
 from twistrate.clients.teleop.core import TeleopCore
 from twistrate.clients.teleop.device import DeviceInfo
-from twistrate.clients.teleop.events import EV_KEY, Gone, RawEvent, ReplaySource, axis_frame
+from twistrate.clients.teleop.events import EV_KEY, Gone, RawEvent, axis_frame
 from twistrate.clients.teleop.line import text
 from twistrate.clients.teleop.profile import profile_from_dict
 from twistrate.clients.teleop.run import TeleopRun
@@ -72,35 +73,20 @@ class FakeLink:
             yield None
 
 
-class Keys:
-    """Types `script` [(time after start s, chars)] into the driver."""
-
-    def __init__(self, script) -> None:
-        self.script = list(script)
-        self.t0 = time.monotonic()
-
-    def read(self) -> str:
-        now = time.monotonic() - self.t0
-        out = ""
-        while self.script and self.script[0][0] <= now:
-            out += self.script.pop(0)[1]
-        return out
-
-
 def test_driver_claims_enables_streams_and_stops_on_loss_then_quits() -> None:
-    t0 = time.monotonic()
-    items = [RawEvent(t0, EV_KEY, BTN_0, 1)]
-    t_gone = t0 + 0.6
-    t = t0 + 0.3
+    items = [RawEvent(0.0, EV_KEY, BTN_0, 1)]  # times from the enable (StartWhenEnabled)
+    t_gone = 0.3
+    t = 0.05
     while t < t_gone:
         items += axis_frame(t, [350, 0, 0, 0, 0, 0])
         t += 0.008
     items.append(Gone(t_gone))
     profile = profile_from_dict({"device": {"settle_ms": 50.0}})
-    core = TeleopCore(profile, ReplaySource(items), PUCK)
+    core = TeleopCore(profile, None, PUCK)
+    core.source = StartWhenEnabled(items, core.session)
     link = FakeLink()
     views: list[View] = []
-    run = TeleopRun(core, link, keys=Keys([(0.15, "\r"), (0.9, "x")]), show=views.append)
+    run = TeleopRun(core, link, keys=Operator(core.session), show=views.append)
     sent = uvloop.run(asyncio.wait_for(run.run(seconds=5.0), 10.0))
     what = [w for _, w, _ in link.log]
     assert what[0] == "claim" and "enable" in what

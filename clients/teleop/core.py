@@ -34,7 +34,7 @@ def check_buttons(profile: Profile, info: DeviceInfo) -> list[str]:
 
 
 class TeleopCore:
-    """profile : the profile. source, info : the device (both None in keyboard mode). client : the
+    """profile : the profile. source, info : the device (info None: keyboard mode). client : the
     lease client name. The rest offset is averaged over the profile's settle time from the first
     poll (hands off); until then no deflection reaches the session."""
 
@@ -42,7 +42,7 @@ class TeleopCore:
                  client: str = "teleop") -> None:
         self.profile = profile
         self.source = source
-        self.keyboard = source is None
+        self.keyboard = info is None
         self.stage = DeviceStage(info, profile.device.idle_ms * 1e-3) if info is not None else None
         self.pipeline = AxisPipeline(profile, info)
         self.keys = KeyHold(profile.keyboard.first_gap_ms * 1e-3, profile.keyboard.repeat_gap_ms * 1e-3) \

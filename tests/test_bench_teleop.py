@@ -14,11 +14,12 @@ from twistrate.service import bench_teleop
 def test_match_takes_the_first_twist_after_each_event_and_the_first_command_answering_it() -> None:
     sends = [(1.000, 10, True), (1.008, 11, True), (1.016, 12, False), (1.024, 13, True)]
     commands = [(1.001, 9), (1.0035, 10), (1.0055, 10), (1.0101, 11), (1.030, 13)]
-    events = np.array([0.995, 1.003, 1.012, 1.020])
+    events = np.array([0.995, 1.000, 1.003, 1.012, 1.020])
     lat = bench_teleop.match(events, sends, commands)
-    # 0.995 -> twist 10 -> first command answering 10 at 1.0035; 1.003 -> twist 11 -> 1.0101;
-    # 1.012 -> twist 12 is zeros (at rest): left out; 1.020 -> twist 13 -> 1.030
-    np.testing.assert_allclose(lat, [0.0085, 0.0071, 0.010])
+    # 0.995: before the first moving twist (it waited for the enable): left out; 1.000 -> twist 10 ->
+    # the first command answering 10 at 1.0035; 1.003 -> twist 11 -> 1.0101; 1.012 -> twist 12 is
+    # zeros (at rest): left out; 1.020 -> twist 13 -> 1.030
+    np.testing.assert_allclose(lat, [0.0035, 0.0071, 0.010])
 
 
 def test_report_times_span_the_gaps() -> None:

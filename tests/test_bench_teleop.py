@@ -8,7 +8,7 @@ import json
 import numpy as np
 import pytest
 
-from twistrate.service import bench_teleop
+from twistrate.service.bench import teleop as bench_teleop
 
 
 def test_match_takes_the_first_twist_after_each_event_and_the_first_command_answering_it() -> None:

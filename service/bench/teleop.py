@@ -35,7 +35,7 @@ from twistrate.clients.teleop.device import DeviceInfo
 from twistrate.clients.teleop.events import EV_KEY, RawEvent, ReplaySource, axis_frame
 from twistrate.clients.teleop.profile import profile_from_dict
 from twistrate.clients.teleop.run import TeleopRun
-from twistrate.service.bench_service import _config_text, _spawn, _stop, load_average
+from twistrate.service.bench.service import _config_text, _spawn, _stop, load_average
 
 DEFAULT_SECONDS = 10.0
 DEFAULT_TICK_HZ = 500.0
@@ -186,7 +186,7 @@ def bench(seconds: float, tick_hz: float, rate_hz: float) -> dict[str, Any]:
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(text)
-        serve = _spawn(["twistrate.service.cli", "serve", "--config", str(path)])
+        serve = _spawn(["twistrate.service.commands.cli", "serve", "--config", str(path)])
         try:
             try:
                 import uvloop

@@ -74,6 +74,7 @@ class AsyncLink:
         self.on_lease_lost = on_lease_lost
         self.lease: str | None = None
         self.lease_ms: int | None = None
+        self.lease_lost: TwistrateError | None = None  # why the last lease was lost, if it was
         self.renewed_at = 0.0
         self.restart = RestartWatch()
         self._seq = {wire.KIND_TWIST: 0, wire.KIND_REQUEST: 0}
@@ -182,6 +183,9 @@ class AsyncLink:
 
     def _token(self) -> str:
         if self.lease is None:
+            if self.lease_lost is not None:
+                raise ControlError("no_lease", f"lease: lost ({self.lease_lost}); accepted: a token from "
+                                   "claim() (claim again)")
             raise no_lease_error()
         return self.lease
 
@@ -193,6 +197,7 @@ class AsyncLink:
         result = await self.request("claim", **args)
         self.lease, self.lease_ms = result["lease"], result["lease_ms"]
         self.renewed_at = time.monotonic()
+        self.lease_lost = None
         if self.auto_renew:
             self._task("renew", self._renew_loop)
         return result["lease"]
@@ -216,6 +221,7 @@ class AsyncLink:
                 await asyncio.sleep(RENEW_RETRY_S)
             except ControlError as exc:
                 self.lease = self.lease_ms = None
+                self.lease_lost = exc
                 if self.on_lease_lost is not None:
                     self.on_lease_lost(exc)
                 return
@@ -271,6 +277,10 @@ class AsyncLink:
 
     def _saw_tick(self, tick: int) -> None:
         if self.restart.see(tick):
+            if self.lease is not None:
+                self.lease_lost = ControlError("no_lease", f"the service restarted (tick {tick} after "
+                                               f"{self.restart.highest_before}); a restarted service is "
+                                               "disabled and holds no lease")
             self.lease = self.lease_ms = None  # the new instance knows no lease of ours
             task = self._tasks.get("renew")
             if task is not None:

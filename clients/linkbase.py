@@ -132,12 +132,14 @@ class RestartWatch:
 
     def __init__(self) -> None:
         self.highest: int | None = None
+        self.highest_before: int | None = None  # the highest tick of the instance before the restart
         self.restarts = 0
 
     def see(self, tick: int) -> bool:
         restarted = self.highest is not None and tick + RESTART_MARGIN_TICKS < self.highest
         if restarted:
             self.restarts += 1
+            self.highest_before = self.highest
             self.highest = tick
         elif self.highest is None or tick > self.highest:
             self.highest = tick

@@ -115,9 +115,13 @@ def main(argv: list[str] | None = None) -> int:
         return _fail(str(exc), 2)
     print(KEY_HELP if args.keyboard else
           "keys: Enter enable, space stop, t frame, +/- speed, m lock, n dominant, x or Ctrl-C quit")
-    print("motion is disabled: press Enter to enable" +
-          ("; hold the hold button to move" if profile.motion.hold_to_move and not args.keyboard else ""))
     tty = os.isatty(sys.stdin.fileno())
+    if tty:
+        print("motion is disabled: press Enter to enable" +
+              ("; hold the hold button to move" if profile.motion.hold_to_move and not args.keyboard else ""))
+    else:
+        print("motion is disabled and stays so: standard input is not a terminal, so nobody can press "
+              "Enter to enable (run it in a terminal)")
     line: Any = PlainLine(sys.stdout)
     if not args.plain and sys.stdout.isatty():
         with contextlib.suppress(ImportError):  # rich comes with the teleop extra

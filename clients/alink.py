@@ -277,7 +277,7 @@ class AsyncLink:
 
     def _saw_tick(self, tick: int) -> None:
         if self.restart.see(tick):
-            if self.lease is not None:
+            if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
                 self.lease_lost = ControlError("no_lease", f"the service restarted (tick {tick} after "
                                                f"{self.restart.highest_before}); a restarted service is "
                                                "disabled and holds no lease")

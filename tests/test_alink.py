@@ -119,12 +119,15 @@ def test_a_restarted_service_is_noticed_and_the_lease_dropped() -> None:
     run = first.__enter__()
     ep = run.endpoints
     endpoints = Endpoints(ep.intake, ep.output, ep.control)
+    # the new instance binds where the first one was bound
+    again = make_config(tick={"rate_hz": 250.0},
+                        endpoints={"intake": ep.intake, "output": ep.output, "control": ep.control})
     exited: list[bool] = []
     with contextlib.ExitStack() as stack:
         def restart() -> None:  # the same endpoints, a new service instance
             exited.append(True)
             first.__exit__(None, None, None)
-            stack.enter_context(running_service(config))
+            stack.enter_context(running_service(again))
 
         async def body() -> None:
             async with AsyncLink(endpoints, client="r", timeout_s=2.0,

@@ -11,6 +11,7 @@ BENCHMARKS: dict[str, tuple[str, str]] = {
     "service": ("twistrate.service.bench.service", "tick timing, latencies and CPU of a running service"),
     "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
     "vservo": ("twistrate.service.bench.vservo", "camera loop: features message to the command answering it"),
+    "teleop": ("twistrate.service.bench.teleop", "device event to command published through teleop"),
 }
 
 

@@ -30,12 +30,14 @@ from typing import Any
 import numpy as np
 
 from twistrate.clients.alink import AsyncLink
+from twistrate.clients.linkbase import Endpoints
 from twistrate.clients.teleop.core import TeleopCore
 from twistrate.clients.teleop.device import DeviceInfo
 from twistrate.clients.teleop.events import EV_KEY, RawEvent, ReplaySource, axis_frame
 from twistrate.clients.teleop.profile import profile_from_dict
 from twistrate.clients.teleop.run import TeleopRun
-from twistrate.service.bench.service import _config_text, _spawn, _stop, load_average
+from twistrate.service.bench.service import CONFIG_TEXT, SERVE_START_S, _spawn, _stop, load_average
+from twistrate.service.wire.discovery import read_endpoints
 
 DEFAULT_SECONDS = 10.0
 DEFAULT_TICK_HZ = 500.0
@@ -181,13 +183,16 @@ def _stats(lat: np.ndarray) -> dict[str, float]:
 
 
 def bench(seconds: float, tick_hz: float, rate_hz: float) -> dict[str, Any]:
-    text, ep = _config_text(tick_hz)
-    text = text.replace("[simulation]\nenabled = false", "[simulation]\nenabled = true")
+    text = CONFIG_TEXT.format(rate_hz=tick_hz).replace("[simulation]\nenabled = false",
+                                                       "[simulation]\nenabled = true")
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(text)
-        serve = _spawn(["twistrate.service.commands.cli", "serve", "--config", str(path)])
+        ep_file = str(Path(tmp) / "endpoints.json")
+        serve = _spawn(["twistrate.service.commands.cli", "serve", "--config", str(path), "--endpoints-file",
+                        ep_file])
         try:
+            ep = Endpoints(**read_endpoints(ep_file, SERVE_START_S))
             try:
                 import uvloop
 

@@ -30,6 +30,7 @@ from twistrate.clients.teleop.line import PlainLine, RichLine
 from twistrate.clients.teleop.profile import load_profile
 from twistrate.clients.teleop.run import TeleopRun
 from twistrate.service import wire
+from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import ConfigError, TwistrateError
 
 CAUTIONS = (
@@ -55,6 +56,8 @@ def _parser() -> argparse.ArgumentParser:
     for name, default in (("intake", wire.DEFAULT_INTAKE), ("output", wire.DEFAULT_OUTPUT),
                           ("control", wire.DEFAULT_CONTROL)):
         p.add_argument(f"--{name}", default=default, help=f"the service's {name} endpoint ({default})")
+    p.add_argument("--endpoints-file", help="read the endpoints from the file `twistrate serve "
+                                            "--endpoints-file` writes (instead of the three above)")
     p.add_argument("--server-key", help="the service's public key file (CURVE; with --client-key)")
     p.add_argument("--client-key", help="this client's secret key file (CURVE; with --server-key)")
     p.add_argument("--client", default="teleop", help="client name sent with the claim (default teleop)")
@@ -81,7 +84,10 @@ def _list() -> int:
 
 async def _session(args: argparse.Namespace, core: TeleopCore, keys: Any, show: Any) -> int:
     curve = CurveKeys.from_files(args.server_key, args.client_key) if args.server_key else None
-    endpoints = Endpoints(args.intake, args.output, args.control)
+    if args.endpoints_file:
+        endpoints = Endpoints(**read_endpoints(args.endpoints_file))
+    else:
+        endpoints = Endpoints(args.intake, args.output, args.control)
     async with AsyncLink(endpoints, curve, client=args.client, renew=False, timeout_s=1.0) as link:
         await link.wait_ready(3.0)
         await link.arm()

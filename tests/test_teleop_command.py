@@ -72,8 +72,8 @@ def test_keyboard_mode_in_a_terminal_moves_the_tool_along_the_held_axis() -> Non
         ep = run.endpoints
         main_fd, child_fd = pty.openpty()
         proc = subprocess.Popen(
-            [sys.executable, "-c", "import sys; from twistrate.service.commands.teleop import main; "
-             "sys.exit(main(sys.argv[1:]))", "--keyboard", "--plain", "--intake", ep.intake,
+            [sys.executable, "-m", "twistrate.service.commands.cli", "teleop", "--keyboard", "--plain",
+             "--intake", ep.intake,
              "--output", ep.output, "--control", ep.control, "--seconds", "20"],
             stdin=child_fd, stdout=child_fd, stderr=child_fd, close_fds=True)
         os.close(child_fd)

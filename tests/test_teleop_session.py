@@ -131,8 +131,11 @@ def test_lease_loss_and_fault_and_restart() -> None:
     assert _twists(actions)[0].zero and any(isinstance(a, Disable) for a in actions)
     assert "no lease" in s.why_not_moving()[0]
     assert Claim() in s.tick(0.01), "claims again (claiming does not move anything)"
-    s.claimed(True, 0.02, lease_ms=1000)
-    assert _twists(s.tick(0.03)) == [] and not s.armed
+    s.claimed(False, 0.02, holder="pad")  # refused: another client took it meanwhile
+    assert Claim() not in s.tick(0.03) and "no lease (held by pad)" in s.why_not_moving()
+    assert Claim() in s.tick(1.03), "and again a second later, not on every tick"
+    s.claimed(True, 1.04, lease_ms=1000)
+    assert _twists(s.tick(1.05)) == [] and not s.armed
 
     s = _ready()
     s.device_frame(_frame(held=[0]), _moving(), 0.0)

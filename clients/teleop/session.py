@@ -33,6 +33,8 @@ from twistrate.clients.teleop.profile import Profile
 COMMANDS = ("arm", "stop", "frame", "faster", "slower", "lock", "dominant", "quit")
 #: Renew the lease when this fraction of its duration has passed (docs/protocol.md section 9).
 RENEW_FRACTION = 1.0 / 3.0
+#: After a refused claim (another holder, no reply), claim again no sooner than this, s.
+CLAIM_RETRY_S = 1.0
 #: A point shorter than this is the tool origin (no pose needed to express it in the base frame), m.
 ZERO_POINT_M = 1e-9
 ZERO3 = (0.0, 0.0, 0.0)
@@ -145,6 +147,7 @@ class TeleopSession:
         self.lease_ms: int | None = None
         self._renewed_at = 0.0
         self._claiming = False
+        self._next_claim = 0.0
         self.armed = False  # the operator enabled motion and nothing has disabled it since
         self._enabling = False
         self.device_present = True
@@ -253,7 +256,7 @@ class TeleopSession:
         if self.lease and self.lease_ms and now_s - self._renewed_at >= self.lease_ms * 1e-3 * RENEW_FRACTION:
             self._renewed_at = now_s  # one renewal in flight at a time; the result resets it
             actions.append(Renew())
-        elif not self.lease and not self._claiming:
+        elif not self.lease and not self._claiming and now_s >= self._next_claim:
             self._claiming = True
             actions.append(Claim())
         return actions
@@ -346,6 +349,8 @@ class TeleopSession:
     def claimed(self, ok: bool, now_s: float, lease_ms: int | None = None,
                 holder: str | None = None) -> list[Action]:
         self._claiming = False
+        if not ok:
+            self._next_claim = now_s + CLAIM_RETRY_S
         self.lease = ok
         self.lease_ms = lease_ms if ok else None
         self._renewed_at = now_s

@@ -18,7 +18,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "vservo": ("vservo", "close a camera loop (visual servoing); --synthetic: on a simulated cell"),
     "teleop": ("teleop", "jog the arm from a six-axis hand controller or the keyboard"),
     "bench": ("twistrate.service.bench.cli",
-              "benchmarks: `bench solver`, `bench service`, `bench keepout`, `bench vservo`"),
+              "benchmarks: `bench solver`, `bench service`, `bench keepout`, `bench vservo`, `bench teleop`"),
 }
 
 

@@ -102,6 +102,9 @@ def main(argv: list[str] | None = None) -> int:
         return _list()
     if bool(args.server_key) != bool(args.client_key):
         return _fail("--server-key and --client-key go together (CURVE needs both)", 2)
+    if not wire.LEASE_MS_MIN <= args.lease_ms <= wire.LEASE_MS_MAX:
+        return _fail(f"--lease-ms: got {args.lease_ms}; accepted: {wire.LEASE_MS_MIN} to {wire.LEASE_MS_MAX} "
+                     "(and within the service's [lease] range)", 2)
     if args.seconds is not None and not 0.0 < args.seconds <= 86400.0:
         return _fail(f"--seconds: got {args.seconds:g}; accepted: 0 < seconds <= 86400", 2)
     try:

@@ -124,3 +124,12 @@ def test_a_state_message_gives_the_session_the_tool_pose() -> None:
     assert run.session.R_base_tool is not None and run.session.R_base_tool[1, 0] == 1.0
     run._state({"kind": "state", "tool": {"rotation": [1.0]}})  # malformed: ignored, pose kept
     assert run.session.R_base_tool[1, 0] == 1.0
+
+
+def test_the_holder_named_in_a_lease_held_refusal() -> None:
+    from twistrate.clients.teleop.run import holder_of
+
+    # the service's wording (service/state.py), behind the op the link puts in front
+    refusal = ControlError("lease_held", "claim: claim: lease held by 'pad'; accepted: ...")
+    assert holder_of(refusal) == "pad"
+    assert holder_of(ControlError("no_lease", "renew: lease: expired")) is None

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import re
 import signal
 import time
 from collections.abc import Callable
@@ -40,6 +41,12 @@ STATUS_PERIOD_S = 0.5
 LINE_PERIOD_S = 0.1
 #: How long the closing disable and release may take, s.
 CLOSE_TIMEOUT_S = 2.0
+
+
+def holder_of(refusal: ControlError) -> str | None:
+    """The holder a `lease_held` refusal names ("... lease held by 'pad'; ..."), or None."""
+    found = re.search(r"held by '([^']*)'", str(refusal))
+    return found.group(1) if found else None
 
 
 class TeleopRun:
@@ -117,8 +124,7 @@ class TeleopRun:
                 await self.link.release()
         except ControlError as exc:
             if isinstance(action, Claim):
-                holder = str(exc).split("held by", 1)[-1].strip(" .:'\"") if "held by" in str(exc) else None
-                self.apply(s.claimed(False, self.clock(), holder=holder))
+                self.apply(s.claimed(False, self.clock(), holder=holder_of(exc)))
             elif isinstance(action, Renew):
                 self.apply(s.renewed(False, self.clock()))
             elif isinstance(action, Enable):

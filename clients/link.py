@@ -2,8 +2,12 @@
 
 Used by tests, the benchmark, the demo's scripted twist source and other clients. It speaks only
 the protocol: messages are built and checked by `twistrate.service.wire`, the protocol's reference
-implementation. Every receive has a timeout; nothing here waits forever. Not thread-safe: use one
-Link per thread.
+implementation, through the message code it shares with the asyncio client (twistrate.clients.linkbase).
+Every receive has a timeout; nothing here waits forever. Not thread-safe: use one Link per thread.
+
+The automatic lease renewal never blocks a twist: `send_twist` sends the renew request and returns;
+the reply is taken up by later calls. A restarted service is noticed from its tick counter
+(`on_restart`, `restart.restarts`): the lease it no longer knows is dropped, and nothing re-enables.
 
     with Link() as link:
         link.wait_ready()
@@ -17,14 +21,29 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import zmq
-import zmq.auth
 
+from twistrate.clients.linkbase import (  # the shared message code; re-exported for existing callers
+    DEFAULT_TIMEOUT_S,
+    MAX_MESSAGE_BYTES,
+    RECEIVE_HWM,
+    RENEW_FRACTION,
+    SEND_HWM,
+    CurveKeys,
+    Endpoints,
+    LinkTimeoutError,
+    RestartWatch,
+    configure_socket,
+    no_lease_error,
+    plain,
+    read_reply,
+    renew_due,
+    reply_result,
+    request_frames,
+)
 from twistrate.service import wire
 from twistrate.service.wire import (
     CommandMessage,
@@ -34,65 +53,10 @@ from twistrate.service.wire import (
     ReplyMessage,
     StateMessage,
 )
-from twistrate.solver.errors import ConfigError, ControlError, TwistrateError, WireError, field_error
+from twistrate.solver.errors import ControlError, TwistrateError
 
-#: Default reply timeout of a control request, s.
-DEFAULT_TIMEOUT_S = 1.0
-#: Renew the lease when this fraction of its duration has passed since the last claim/renew.
-RENEW_FRACTION = 1.0 / 3.0
-#: Socket bounds of the client (the service sets its own; docs/protocol.md section 12).
-MAX_MESSAGE_BYTES = 65536
-SEND_HWM = 100
-RECEIVE_HWM = 1000
-
-
-class LinkTimeoutError(TwistrateError, TimeoutError):
-    """No reply (or no message) within the timeout."""
-
-
-def plain(value: Any) -> Any:
-    """`value` with numpy scalars made Python ones (np.float64 -> float, np.int64 -> int, np.bool_ -> bool,
-    np.str_ -> str), inside maps, lists and tuples too; anything else unchanged. The codec accepts only
-    Python types (a numpy float is not a msgpack float to it); callers of the link need not care."""
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, Mapping):
-        return {plain(k): plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [plain(v) for v in value]
-    return value
-
-
-@dataclass(frozen=True)
-class Endpoints:
-    """Where the service listens (it binds; the link connects)."""
-
-    intake: str = wire.DEFAULT_INTAKE
-    output: str = wire.DEFAULT_OUTPUT
-    control: str = wire.DEFAULT_CONTROL
-
-
-@dataclass(frozen=True)
-class CurveKeys:
-    """CURVE keys of a client (Z85 bytes): the service's public key and the client's own pair."""
-
-    server_public: bytes
-    public: bytes
-    secret: bytes
-
-    @classmethod
-    def from_files(cls, server_public_file: str | Path, client_secret_file: str | Path) -> CurveKeys:
-        """Read the service's NAME.key and the client's NAME.key_secret (from `twistrate keys`)."""
-        try:
-            server_public, _ = zmq.auth.load_certificate(server_public_file)
-            public, secret = zmq.auth.load_certificate(client_secret_file)
-        except (OSError, ValueError) as exc:
-            raise field_error(ConfigError, "curve key file", str(exc),
-                              "key files written by `twistrate keys`") from None
-        if secret is None:
-            raise field_error(ConfigError, "client_secret_file", str(client_secret_file),
-                              "the client's NAME.key_secret file (public and secret key)")
-        return cls(server_public, public, secret)
+__all__ = ["DEFAULT_TIMEOUT_S", "MAX_MESSAGE_BYTES", "RECEIVE_HWM", "RENEW_FRACTION", "SEND_HWM", "CurveKeys",
+           "Endpoints", "Link", "LinkTimeoutError", "plain"]
 
 
 class Link:
@@ -101,14 +65,16 @@ class Link:
     endpoints : where the service listens. curve : client keys when the service uses CURVE.
     timeout_s : default reply timeout of control requests. client : name sent with `claim`.
     topics : output topics to subscribe to (command, health, event; empty tuple for none).
-    auto_renew : renew the lease from send_twist/send_joints when a third of it has passed.
-    n : joint count, checked in received commands and health (None: any; `arm()` sets it).
+    auto_renew : renew the lease from send_twist when a third of it has passed (without waiting for
+    the reply). n : joint count, checked in received commands and health (None: any; `arm()` sets it).
+    on_restart() : called when a restarted service is noticed (the lease is then already dropped).
     """
 
     def __init__(self, endpoints: Endpoints | None = None, curve: CurveKeys | None = None, *,
                  timeout_s: float = DEFAULT_TIMEOUT_S, client: str = "link",
                  topics: Sequence[bytes] = wire.OUTPUT_TOPICS, auto_renew: bool = True,
-                 n: int | None = None, context: zmq.Context | None = None) -> None:
+                 n: int | None = None, context: zmq.Context | None = None,
+                 on_restart: Callable[[], None] | None = None) -> None:
         self.endpoints = endpoints or Endpoints()
         self.timeout_s = float(timeout_s)
         self.client = client
@@ -117,6 +83,10 @@ class Link:
         self.lease: str | None = None
         self.lease_ms: int | None = None
         self._renewed_at = 0.0
+        self._renewing: tuple[int, float] | None = None  # (seq, sent at) of a renewal in flight
+        self.lease_lost: TwistrateError | None = None  # why the last lease was lost, if it was
+        self.restart = RestartWatch()
+        self.on_restart = on_restart
         self._seq = {wire.KIND_TWIST: 0, wire.KIND_JOINTS: 0, wire.KIND_REQUEST: 0}
         self._own_context = context is None
         self._ctx = context or zmq.Context()
@@ -132,16 +102,7 @@ class Link:
         self._closed = False
 
     def _socket(self, kind: int, curve: CurveKeys | None) -> zmq.Socket:
-        sock = self._ctx.socket(kind)
-        sock.setsockopt(zmq.LINGER, 0)
-        sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
-        sock.setsockopt(zmq.SNDHWM, SEND_HWM)
-        sock.setsockopt(zmq.RCVHWM, RECEIVE_HWM)
-        if curve is not None:
-            sock.curve_serverkey = curve.server_public
-            sock.curve_publickey = curve.public
-            sock.curve_secretkey = curve.secret
-        return sock
+        return configure_socket(self._ctx.socket(kind), curve)
 
     # -- life cycle ----------------------------------------------------------------------------------
 
@@ -185,13 +146,17 @@ class Link:
         """Send one control request and return its result map. Raises ControlError(code, message)
         when refused, LinkTimeoutError when no reply arrives in time, WireError on a malformed reply.
         Argument values may be numpy scalars (see `plain`)."""
-        seq = self._seq[wire.KIND_REQUEST] = self._seq[wire.KIND_REQUEST] + 1
-        data = wire.encode_request(seq=seq, op=op, **{k: plain(v) for k, v in args.items()})
-        self._control.send_multipart([b"", data])
+        seq = self._send_request(op, args)
         reply = self._await_reply(seq, op, self.timeout_s if timeout_s is None else timeout_s)
-        if not reply.ok:
-            raise ControlError(reply.error_code or "internal", f"{op}: {reply.error_message}")
-        return reply.result
+        result = reply_result(reply, op)
+        if op == "status" and isinstance(result.get("tick"), int):
+            self._saw_tick(result["tick"])
+        return result
+
+    def _send_request(self, op: str, args: Mapping[str, Any]) -> int:
+        seq = self._seq[wire.KIND_REQUEST] = self._seq[wire.KIND_REQUEST] + 1
+        self._control.send_multipart(request_frames(seq, op, args))
+        return seq
 
     def _await_reply(self, seq: int, op: str, timeout_s: float) -> ReplyMessage:
         deadline = time.monotonic() + timeout_s
@@ -199,13 +164,11 @@ class Link:
             remaining = deadline - time.monotonic()
             if remaining <= 0 or not self._control.poll(int(remaining * 1000) + 1, zmq.POLLIN):
                 raise LinkTimeoutError(f"{op}: no reply from {self.endpoints.control} within {timeout_s:g} s")
-            frames = self._control.recv_multipart()
-            if len(frames) != 2 or frames[0] != b"":
-                raise WireError("bad_frames", f"reply frames: got {len(frames)}; accepted: [b'', map]")
-            reply = wire.decode_reply(frames[1])
+            reply = read_reply(self._control.recv_multipart())
             if reply.seq == seq:
                 return reply
-            # a late reply to an earlier request that timed out: drop it and keep waiting
+            self._renewal_reply(reply)
+            # else a late reply to an earlier request that timed out: dropped
 
     def claim(self, client: str | None = None, lease_ms: int | None = None) -> str:
         """Take the lease; returns (and keeps) the token."""
@@ -215,11 +178,16 @@ class Link:
         result = self.request("claim", **args)
         self.lease, self.lease_ms = result["lease"], result["lease_ms"]
         self._renewed_at = time.monotonic()
+        self._renewing = None
+        self.lease_lost = None
         return result["lease"]
 
     def _token(self) -> str:
         if self.lease is None:
-            raise ControlError("no_lease", "lease: got None; accepted: a token from claim() (claim first)")
+            if self.lease_lost is not None:
+                raise ControlError("no_lease", f"lease: lost ({self.lease_lost}); accepted: a token from "
+                                   "claim() (claim again)")
+            raise no_lease_error()
         return self.lease
 
     def renew(self) -> int:
@@ -230,15 +198,54 @@ class Link:
         return result["lease_ms"]
 
     def renew_if_due(self) -> None:
-        """Renew when RENEW_FRACTION of the lease has passed since the last claim/renew."""
-        if self.lease is not None and self.lease_ms is not None and \
-                time.monotonic() - self._renewed_at >= self.lease_ms * 1e-3 * RENEW_FRACTION:
+        """Renew (and wait for the reply) when RENEW_FRACTION of the lease has passed since the last
+        claim/renew."""
+        if self.lease is not None and renew_due(time.monotonic(), self._renewed_at, self.lease_ms):
             self.renew()
+
+    def _renew_without_waiting(self) -> None:
+        """When due: send a renew request and return; its reply is taken up by later calls."""
+        self._take_replies()
+        now = time.monotonic()
+        if self._renewing is not None and now - self._renewing[1] > self.timeout_s:
+            self._renewing = None  # no reply in time: the lease may still be valid, ask again
+        due = renew_due(now, self._renewed_at, self.lease_ms)
+        if self.lease is not None and self._renewing is None and due:
+            self._renewing = (self._send_request("renew", {"lease": self.lease}), now)
+
+    def _take_replies(self) -> None:
+        """Take up replies already waiting (without blocking): a renewal's; late ones are dropped."""
+        while self._renewing is not None and self._control.poll(0, zmq.POLLIN):
+            self._renewal_reply(read_reply(self._control.recv_multipart()))
+
+    def _renewal_reply(self, reply: ReplyMessage) -> None:
+        if self._renewing is None or reply.seq != self._renewing[0]:
+            return
+        sent_at = self._renewing[1]
+        self._renewing = None
+        if reply.ok:
+            self.lease_ms = reply.result["lease_ms"]
+            self._renewed_at = sent_at  # the lease runs from no later than the request
+        else:
+            self.lease_lost = ControlError(reply.error_code or "no_lease", f"renew: {reply.error_message}")
+            self.lease = self.lease_ms = None
+
+    def _saw_tick(self, tick: int) -> None:
+        if self.restart.see(tick):
+            if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
+                self.lease_lost = ControlError("no_lease", f"the service restarted (tick {tick} after "
+                                               f"{self.restart.highest_before}); a restarted service is "
+                                               "disabled and holds no lease")
+            self.lease = self.lease_ms = None
+            self._renewing = None
+            if self.on_restart is not None:
+                self.on_restart()
 
     def release(self) -> None:
         """Give the lease up (motion is disabled by the service)."""
         self.request("release", lease=self._token())
         self.lease = self.lease_ms = None
+        self._renewing = None
 
     def enable(self) -> str:
         """Allow motion; returns the mode."""
@@ -277,7 +284,7 @@ class Link:
         ("base" or "tool"); point (3,) m offset of the reference point from the tool origin in
         `frame`. Returns its seq. Raises InputError for values the protocol refuses."""
         if self.auto_renew:
-            self.renew_if_due()
+            self._renew_without_waiting()
         seq = self._seq[wire.KIND_TWIST] = self._seq[wire.KIND_TWIST] + 1
         data = wire.encode_twist(seq=seq, lease=self._token(), linear=linear, angular=angular, frame=frame,
                                   point=point)
@@ -322,7 +329,9 @@ class Link:
         timeout = self.timeout_s if timeout_s is None else timeout_s
         if not self._output.poll(max(0, int(timeout * 1000)), zmq.POLLIN):
             raise LinkTimeoutError(f"no message from {self.endpoints.output} within {timeout:g} s")
-        return wire.decode_output(self._output.recv_multipart(), self.n)
+        message = wire.decode_output(self._output.recv_multipart(), self.n)
+        self._saw_tick(message.tick)
+        return message
 
     def _receive_kind(self, cls: type, timeout_s: float | None) -> Any:
         timeout = self.timeout_s if timeout_s is None else timeout_s

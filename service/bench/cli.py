@@ -12,6 +12,7 @@ BENCHMARKS: dict[str, tuple[str, str]] = {
     "limits": ("twistrate.service.bench.limits", "every rate bound checked under random use of the solver"),
     "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
     "vservo": ("twistrate.service.bench.vservo", "camera loop: features message to the command answering it"),
+    "teleop": ("twistrate.service.bench.teleop", "device event to command published through teleop"),
 }
 
 

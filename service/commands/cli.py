@@ -16,8 +16,9 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "record": ("record", "record a running service, or summarise a recording"),
     "keys": ("keys", "make CURVE key pairs for non-loopback endpoints"),
     "vservo": ("vservo", "close a camera loop (visual servoing); --synthetic: on a simulated cell"),
+    "teleop": ("teleop", "jog the arm from a six-axis hand controller or the keyboard"),
     "bench": ("twistrate.service.bench.cli",
-              "benchmarks: `bench solver`, `bench service`, `bench keepout`, `bench vservo`"),
+              "benchmarks: `bench solver`, `bench service`, `bench keepout`, `bench vservo`, `bench teleop`"),
 }
 
 

@@ -1,0 +1,146 @@
+"""What the blocking and the asyncio client share: endpoints, keys, socket set-up, request and reply
+handling, lease timing and service-restart detection. No I/O of its own: both link forms call these
+around their own sockets, so they build and check every message the same way (twistrate.service.wire).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zmq
+import zmq.auth
+
+from twistrate.service import wire
+from twistrate.service.wire import ReplyMessage
+from twistrate.solver.errors import ConfigError, ControlError, TwistrateError, WireError, field_error
+
+#: Default reply timeout of a control request, s.
+DEFAULT_TIMEOUT_S = 1.0
+#: Renew the lease when this fraction of its duration has passed since the last claim/renew.
+RENEW_FRACTION = 1.0 / 3.0
+#: Socket bounds of the client (the service sets its own; docs/protocol.md section 12).
+MAX_MESSAGE_BYTES = 65536
+SEND_HWM = 100
+RECEIVE_HWM = 1000
+
+
+class LinkTimeoutError(TwistrateError, TimeoutError):
+    """No reply (or no message) within the timeout."""
+
+
+def plain(value: Any) -> Any:
+    """`value` with numpy scalars made Python ones (np.float64 -> float, np.int64 -> int, np.bool_ -> bool,
+    np.str_ -> str), inside maps, lists and tuples too; anything else unchanged. The codec accepts only
+    Python types (a numpy float is not a msgpack float to it); callers of the link need not care."""
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, Mapping):
+        return {plain(k): plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [plain(v) for v in value]
+    return value
+
+
+@dataclass(frozen=True)
+class Endpoints:
+    """Where the service listens (it binds; the link connects)."""
+
+    intake: str = wire.DEFAULT_INTAKE
+    output: str = wire.DEFAULT_OUTPUT
+    control: str = wire.DEFAULT_CONTROL
+
+
+@dataclass(frozen=True)
+class CurveKeys:
+    """CURVE keys of a client (Z85 bytes): the service's public key and the client's own pair."""
+
+    server_public: bytes
+    public: bytes
+    secret: bytes
+
+    @classmethod
+    def from_files(cls, server_public_file: str | Path, client_secret_file: str | Path) -> CurveKeys:
+        """Read the service's NAME.key and the client's NAME.key_secret (from `twistrate keys`)."""
+        try:
+            server_public, _ = zmq.auth.load_certificate(server_public_file)
+            public, secret = zmq.auth.load_certificate(client_secret_file)
+        except (OSError, ValueError) as exc:
+            raise field_error(ConfigError, "curve key file", str(exc),
+                              "key files written by `twistrate keys`") from None
+        if secret is None:
+            raise field_error(ConfigError, "client_secret_file", str(client_secret_file),
+                              "the client's NAME.key_secret file (public and secret key)")
+        return cls(server_public, public, secret)
+
+
+def configure_socket(sock: zmq.Socket, curve: CurveKeys | None) -> zmq.Socket:
+    """The client's socket options (no linger, size and queue bounds, CURVE when given)."""
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
+    sock.setsockopt(zmq.SNDHWM, SEND_HWM)
+    sock.setsockopt(zmq.RCVHWM, RECEIVE_HWM)
+    if curve is not None:
+        sock.curve_serverkey = curve.server_public
+        sock.curve_publickey = curve.public
+        sock.curve_secretkey = curve.secret
+    return sock
+
+
+def request_frames(seq: int, op: str, args: Mapping[str, Any]) -> list[bytes]:
+    """The DEALER frames of one control request (numpy scalars in args allowed)."""
+    return [b"", wire.encode_request(seq=seq, op=op, **{k: plain(v) for k, v in args.items()})]
+
+
+def read_reply(frames: Sequence[bytes]) -> ReplyMessage:
+    """Decode the DEALER frames of one reply. Raises WireError when malformed."""
+    if len(frames) != 2 or frames[0] != b"":
+        raise WireError("bad_frames", f"reply frames: got {len(frames)}; accepted: [b'', map]")
+    return wire.decode_reply(frames[1])
+
+
+def reply_result(reply: ReplyMessage, op: str) -> dict[str, Any]:
+    """The result map of a reply, or ControlError(code, message) when refused."""
+    if not reply.ok:
+        raise ControlError(reply.error_code or "internal", f"{op}: {reply.error_message}")
+    return reply.result
+
+
+def no_lease_error() -> ControlError:
+    return ControlError("no_lease", "lease: got None; accepted: a token from claim() (claim first)")
+
+
+def renew_due(now_s: float, renewed_at_s: float, lease_ms: int | None) -> bool:
+    """A third (RENEW_FRACTION) of the lease has passed since the last claim or renew."""
+    return lease_ms is not None and now_s - renewed_at_s >= lease_ms * 1e-3 * RENEW_FRACTION
+
+
+#: A tick this far below the highest seen means a new service instance (a status reply may lag the
+#: published commands by a few ticks; a restarted service starts again from tick 0).
+RESTART_MARGIN_TICKS = 100
+
+
+class RestartWatch:
+    """Notices a restarted service from what it publishes: a new service starts its tick counter at
+    zero, so a tick more than RESTART_MARGIN_TICKS below the highest seen (from commands, health,
+    events or status) means a new instance. `see(tick)` returns True once per restart. A restarted
+    service is disabled and holds no lease (docs/protocol.md sections 9 and 10): the client must
+    claim again, and only the operator may enable."""
+
+    def __init__(self) -> None:
+        self.highest: int | None = None
+        self.highest_before: int | None = None  # the highest tick of the instance before the restart
+        self.restarts = 0
+
+    def see(self, tick: int) -> bool:
+        restarted = self.highest is not None and tick + RESTART_MARGIN_TICKS < self.highest
+        if restarted:
+            self.restarts += 1
+            self.highest_before = self.highest
+            self.highest = tick
+        elif self.highest is None or tick > self.highest:
+            self.highest = tick
+        return restarted

@@ -1,0 +1,1 @@
+"""Teleop profiles shipped as package data (default.toml)."""

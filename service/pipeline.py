@@ -234,6 +234,9 @@ class Pipeline:
         if self.tick % self.health_every == 0 and q is not None:
             self.reports.publish_health(wall, q)
             self.reports.publish_state(wall, q, qd)
+        rec = self.recorder
+        if rec is not None and rec.notice is not None:  # the writer stopped (full disk, size cap)
+            self.emit_event("recording_stopped", rec.take_notice())
         if self.state.events:
             self.reports.publish_events(wall)
         res = self.last_resolution

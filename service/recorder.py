@@ -28,14 +28,23 @@ Record fields (SI; base frame; twists rows (v, w) at the tool point):
 The tick thread only copies one row into a preallocated ring buffer; a writer thread appends full
 rows to the file every FLUSH_S. If the writer falls a whole ring behind, rows are dropped and
 counted (`dropped`), never waited for.
+
+A recording never overwrites a file: `open()` creates it exclusively (an existing file is refused
+with a clear message; `{time}` in the path becomes the UTC start time, e.g. `run-{time}.trec`). The
+service opens its recording only once its sockets are bound, so a service that fails to start
+touches no file. A write error (a full disk) or the size cap (`max_bytes`) stops the recording,
+never the tick: the writer thread sets `notice`, which the tick thread turns into the
+`recording_stopped` event (`take_notice`).
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import struct
 import threading
+import time
 from pathlib import Path
 from typing import Any
 
@@ -54,6 +63,18 @@ FLUSH_S = 0.1
 #: Ring buffer length, s of ticks (at least MIN_RING records).
 RING_S = 4.0
 MIN_RING = 1024
+#: `{time}` in a recording path becomes the UTC start time in this format.
+TIME_PLACEHOLDER = "{time}"
+TIME_FORMAT = "%Y%m%dT%H%M%SZ"
+
+
+def expand_path(path: str | Path, wall_s: float | None = None) -> Path:
+    """`path` with TIME_PLACEHOLDER replaced by the UTC time wall_s (default now), TIME_FORMAT."""
+    text = str(path)
+    if TIME_PLACEHOLDER in text:
+        stamp = time.strftime(TIME_FORMAT, time.gmtime(time.time() if wall_s is None else wall_s))
+        text = text.replace(TIME_PLACEHOLDER, stamp)
+    return Path(text)
 
 
 def record_dtype(n: int) -> np.dtype:
@@ -78,14 +99,24 @@ def _fields_of(dtype: np.dtype) -> list[list[Any]]:
 class Recorder:
     """Append-only recording of one arm's ticks.
 
-    path : output file (created or truncated). arm : the arm (joint names, n). tick_hz : tick rate.
-    source : "service" or "output". unavailable : field names the source cannot fill.
-    capacity : ring length in rows (default RING_S of ticks, at least MIN_RING).
+    path : output file, created exclusively (never overwritten; `{time}` becomes the UTC start
+    time). arm : the arm (joint names, n). tick_hz : tick rate. source : "service" or "output".
+    unavailable : field names the source cannot fill. capacity : ring length in rows (default
+    RING_S of ticks, at least MIN_RING). open_now : create the file now (False: at `open()`, which
+    the service calls once its sockets are bound). max_bytes : stop recording before the file
+    would grow past this size (None: no cap).
     """
 
     def __init__(self, path: str | Path, arm: Arm, tick_hz: float, source: str = "service",
-                 unavailable: tuple[str, ...] = (), capacity: int | None = None) -> None:
+                 unavailable: tuple[str, ...] = (), capacity: int | None = None, open_now: bool = True,
+                 max_bytes: int | None = None) -> None:
         self.path = Path(path)
+        self.max_bytes = max_bytes
+        self.bytes_written = 0
+        #: why the recording stopped early (write error, size cap), or None
+        self.stopped: str | None = None
+        #: set with `stopped` by the writer thread; taken once by the tick thread (take_notice)
+        self.notice: str | None = None
         self.n = arm.n
         self.dtype = record_dtype(arm.n)
         if capacity is None:
@@ -103,16 +134,42 @@ class Recorder:
             "health_states": list(HEALTH_STATES), "fields": _fields_of(self.dtype),
             "record_bytes": self.dtype.itemsize, "unavailable": list(unavailable),
         }
-        try:
-            self._file = open(self.path, "wb")  # noqa: SIM115 (closed by close())
-        except OSError as exc:
-            raise field_error(InputError, "recording path", str(self.path),
-                              f"a writable file ({exc.strerror})") from None
+        self._file: Any = None
         self._header_written = False
         self._stop = threading.Event()
         self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._writer, name="twistrate-recorder", daemon=True)
+        if open_now:
+            self.open()
+
+    @property
+    def is_open(self) -> bool:
+        return self._file is not None
+
+    def open(self) -> None:
+        """Create the file exclusively and start the writer thread (idempotent). Raises InputError
+        when the file exists or cannot be created; then nothing was written."""
+        if self._file is not None:
+            return
+        path = expand_path(self.path)
+        try:
+            self._file = open(path, "xb")  # noqa: SIM115 (closed by close())
+        except FileExistsError:
+            raise field_error(InputError, "recording path", str(path),
+                              "a file that does not exist yet (a recording never overwrites one: move it, "
+                              f"or put {TIME_PLACEHOLDER} in the name for the start time)") from None
+        except OSError as exc:
+            raise field_error(InputError, "recording path", str(path),
+                              f"a writable file ({exc.strerror})") from None
+        self.path = path
         self._thread.start()
+
+    def take_notice(self) -> str | None:
+        """Why the recording stopped, once (tick thread); None when there is nothing new."""
+        notice = self.notice
+        if notice is not None:
+            self.notice = None
+        return notice
 
     # -- tick thread ---------------------------------------------------------------------------------
 
@@ -125,6 +182,8 @@ class Recorder:
         t_ns : monotonic time of the tick, ns. wall_ns : wall clock (only the first one is kept).
         """
         w = self._w
+        if self.stopped is not None:
+            return
         if w - self._r >= self._cap:
             self.dropped += 1
             return
@@ -152,27 +211,53 @@ class Recorder:
 
     def _write_header(self) -> None:
         text = json.dumps(self._header, separators=(",", ":")).encode("utf-8")
-        self._file.write(MAGIC + struct.pack("<I", len(text)) + text)
+        data = MAGIC + struct.pack("<I", len(text)) + text
+        self._file.write(data)
+        self.bytes_written += len(data)
         self._header_written = True
+
+    def _stop_recording(self, why: str) -> None:
+        """Stop for good (writer side): keep what is written, close the file, leave a notice."""
+        self.stopped = why
+        with contextlib.suppress(OSError):
+            self._file.close()
+        self.notice = why
 
     def _flush(self) -> None:
         with self._lock:
             w = self._w
             r = self._r
-            if w == r or self._file.closed:
+            if w == r or self._file is None or self._file.closed or self.stopped is not None:
                 return
-            if not self._header_written:
-                self._write_header()
-            cap = self._cap
-            a, b = r % cap, w % cap
-            if a < b:
-                chunks = [self._ring[a:b]]
-            else:
-                chunks = [self._ring[a:], self._ring[:b]]
-            for chunk in chunks:
-                self._file.write(chunk.tobytes())
-            self._r = w
-            self._file.flush()
+            try:
+                if not self._header_written:
+                    self._write_header()
+                cap = self._cap
+                a, b = r % cap, w % cap
+                if a < b:
+                    chunks = [self._ring[a:b]]
+                else:
+                    chunks = [self._ring[a:], self._ring[:b]]
+                capped = False
+                for chunk in chunks:
+                    if self.max_bytes is not None:
+                        room = (self.max_bytes - self.bytes_written) // self.dtype.itemsize
+                        if room < len(chunk):
+                            chunk, capped = chunk[:max(0, room)], True
+                    data = chunk.tobytes()
+                    self._file.write(data)
+                    self.bytes_written += len(data)
+                    if capped:
+                        break
+                self._r = w
+                self._file.flush()
+            except OSError as exc:
+                self._stop_recording(f"{self.path}: write failed ({exc.strerror or exc}); the recording "
+                                     f"stopped after {self.bytes_written} bytes, the service goes on")
+                return
+            if capped:
+                self._stop_recording(f"{self.path}: size cap of {self.max_bytes} bytes reached; the "
+                                     "recording stopped, the service goes on ([recorder] max_mb)")
 
     def _writer(self) -> None:
         while not self._stop.wait(FLUSH_S):
@@ -181,14 +266,20 @@ class Recorder:
     def close(self) -> None:
         """Write what is left and close the file (any thread; idempotent)."""
         self._stop.set()
-        if threading.current_thread() is not self._thread:
+        if self._file is None:  # never opened: no file
+            return
+        if threading.current_thread() is not self._thread and self._thread.is_alive():
             self._thread.join(2.0)
         self._flush()
         with self._lock:
             if not self._file.closed:
-                if not self._header_written:
-                    self._write_header()
-                self._file.close()
+                try:
+                    if not self._header_written:
+                        self._write_header()
+                except OSError as exc:
+                    self.stopped = self.notice = f"{self.path}: write failed ({exc.strerror or exc})"
+                with contextlib.suppress(OSError):
+                    self._file.close()
 
     @property
     def rows(self) -> int:

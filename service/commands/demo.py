@@ -46,7 +46,8 @@ DEFAULT_SECONDS = 24.0
 SOURCE_HZ = 100.0
 #: Live summary refreshes per second.
 DISPLAY_HZ = 4.0
-DEFAULT_RECORDING = "twistrate-demo.trec"
+#: The demo's recording: {time} becomes the UTC start time (a recording never overwrites a file).
+DEFAULT_RECORDING = "twistrate-demo-{time}.trec"
 
 
 @dataclass(frozen=True)
@@ -278,6 +279,7 @@ def main(argv: list[str] | None = None) -> int:
         arm = config.load_arm()
         recording = None if args.no_record else Path(args.record)
         recorder = None if recording is None else Recorder(recording, arm, config.tick.rate_hz)
+        recording = None if recorder is None else recorder.path  # {time} filled in
         service, control, note = start_service(config, recorder)
     except (TwistrateError, zmq.ZMQError, OSError) as exc:
         print(f"twistrate demo: {exc}", file=sys.stderr)

@@ -17,7 +17,9 @@ from collections.abc import Callable
 
 import numpy as np
 
+from twistrate.service import state as st
 from twistrate.service import wire
+from twistrate.service.joint_source import JointSourceGuard
 from twistrate.service.state import ServiceState
 from twistrate.service.telemetry import RateLimitedLog, Telemetry
 from twistrate.solver.errors import WireError
@@ -40,7 +42,8 @@ class Intake:
     """
 
     def __init__(self, n: int, simulated: bool, state: ServiceState, telemetry: Telemetry,
-                 rlog: RateLimitedLog, clock: Callable[[], int], fault: Callable[[str], None]) -> None:
+                 rlog: RateLimitedLog, clock: Callable[[], int], fault: Callable[[str], None],
+                 guard: JointSourceGuard | None = None) -> None:
         self.n = n
         self.simulated = simulated
         self.state = state
@@ -60,6 +63,8 @@ class Intake:
         self.q_rx_ns = 0
         #: monotonic ns of the last poll that found no message waiting
         self.empty_ns = 0
+        #: the one-source check of joint state (service/joint_source.py), or None
+        self.guard = guard
 
     def reject(self, reason: str, now: int, text: str) -> None:
         self.telemetry.reject(reason)
@@ -101,6 +106,24 @@ class Intake:
                 if self.simulated:
                     self.reject("unexpected_joints", now, "joint state sent to a service simulating its arm")
                     continue
+                if self.guard is not None and self._second_source(msg, now):
+                    continue
                 counts["accepted_joints"] += 1
                 self.q = msg.position
                 self.q_rx_ns = now
+
+    # -- one joint-state source (service/joint_source.py) ---------------------------------------------
+
+    def _second_source(self, msg: wire.JointsMessage, now: int) -> bool:
+        """True (and a fault) when msg cannot come from the driver that sent the previous state. In
+        fault (or shutdown) every state is taken as the new reference: after clear_fault the check
+        starts again from the newest one."""
+        guard = self.guard
+        if self.state.mode in (st.FAULT, st.SHUTDOWN):
+            guard.reset(msg.position, now, msg.source)
+            return False
+        reason = guard.check(msg.position, now, msg.source)
+        if reason is None:
+            return False
+        self.fault(reason)
+        return True

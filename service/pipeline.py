@@ -31,6 +31,7 @@ from twistrate.service import state as st
 from twistrate.service import wire
 from twistrate.service.config import ServiceConfig
 from twistrate.service.intake import Intake, Poll
+from twistrate.service.joint_source import JointSourceGuard
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.reports import HealthReporter
 from twistrate.service.simarm import SimArm
@@ -79,8 +80,9 @@ class Pipeline:
         posture = config.initial_posture(arm)
         self.sim = SimArm.from_arm(arm, config.simulation.lag_s, None if posture is None else
                                    np.array(posture)) if config.simulation.enabled else None
+        guard = None if self.sim is not None else JointSourceGuard(arm.joint_names, arm.v_max, arm.revolute)
         self.intake = Intake(self.n, self.sim is not None, self.state, self.telemetry, self.rlog, clock,
-                             self.fault)
+                             self.fault, guard)
         if self.sim is not None:
             self.intake.q = self.sim.q
         self._base_options = config.solver_options(arm)

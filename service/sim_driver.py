@@ -9,6 +9,7 @@ has arrived for COMMAND_TIMEOUT_S. The service must run with `[simulation] enabl
 
 from __future__ import annotations
 
+import os
 import time
 
 import numpy as np
@@ -54,6 +55,8 @@ class SimDriver:
         self.commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
         self.commands.connect(ep["output"])
         self.joints.connect(ep["intake"])
+        #: the driver's name in every joint state (docs/protocol.md 7.2): one per process
+        self.source = f"twistrate-sim-{os.getpid()}"
         self.seq = 0
         self.received = 0
         self.refused = 0
@@ -102,7 +105,8 @@ class SimDriver:
             elif now - last_cmd > COMMAND_TIMEOUT_S * 1e9:  # the drive's own watchdog
                 rate = ramp_to_rest(self.sim.qd, self.arm.a_max, idle_ms * 1e-3)
             self.sim.command(rate)
-            data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
+            data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd,
+                                      source=self.source)
             self.joints.send_multipart((wire.TOPIC_JOINTS, data))
             self.seq += 1
 

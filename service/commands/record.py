@@ -24,6 +24,7 @@ import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.clients.probe import probe
 from twistrate.service import wire
 from twistrate.service.config import load_config
 from twistrate.service.recorder import Recorder, format_summary, plot_svg, read_recording, summarize
@@ -42,6 +43,7 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
     arm = config.load_arm()
     ep = endpoints or config.endpoints.model_dump()
     period = 1.0 / config.tick.rate_hz
+    probe(Endpoints(ep["intake"], ep["output"], ep["control"]))  # no service answers: no file
     recorder = Recorder(out, arm, config.tick.rate_hz, source="output", unavailable=WIRE_UNAVAILABLE)
     damping = sigma_min = manip = math.nan
     zeros6 = np.full(6, math.nan)

@@ -190,7 +190,10 @@ class Link:
         self._control.send_multipart([b"", data])
         reply = self._await_reply(seq, op, self.timeout_s if timeout_s is None else timeout_s)
         if not reply.ok:
-            raise ControlError(reply.error_code or "internal", f"{op}: {reply.error_message}")
+            text = reply.error_message or ""
+            # name the op once: the service's message may already start with it ("claim: lease held ...")
+            raise ControlError(reply.error_code or "internal", text if text.startswith(f"{op}:") else
+                               f"{op}: {text}")
         return reply.result
 
     def _await_reply(self, seq: int, op: str, timeout_s: float) -> ReplyMessage:

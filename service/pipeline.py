@@ -33,6 +33,7 @@ from twistrate.service.config import ServiceConfig
 from twistrate.service.intake import Intake, Poll
 from twistrate.service.joint_source import JointSourceGuard
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
+from twistrate.service.recorder import limit_events
 from twistrate.service.reports import HealthReporter
 from twistrate.service.simarm import SimArm
 from twistrate.service.telemetry import RateLimitedLog, Snapshot, Telemetry
@@ -319,8 +320,8 @@ class Pipeline:
     def _commit(self, res: Resolution, cap: float, health: str) -> None:
         """Book a tick's resolution (after its command went out)."""
         new_limits = res.limits_active
-        if (new_limits & ~self.limits_active).any():
-            self.telemetry.counts["limit_events"] += 1
+        if (new_limits & ~self.limits_active).any():  # one definition with the recording summary
+            self.telemetry.counts["limit_events"] += limit_events(self.limits_active, new_limits)
         self.limits_active = new_limits
         self.cap = cap
         self.scale = float(res.scale)

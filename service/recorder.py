@@ -316,12 +316,19 @@ def read_recording(path: str | Path) -> tuple[dict[str, Any], np.ndarray]:
     return header, records
 
 
+def limit_events(prev: np.ndarray, new: np.ndarray) -> int:
+    """The one definition of a limit event: a joint whose limit bits gain a bit it did not have the tick
+    before (one event per joint and tick). prev, new : (n,) or (ticks, n) uint8 limit bits. Used by the
+    service's `limit_events` counter and by the recording summary alike."""
+    return int(np.count_nonzero(new & ~prev))
+
+
 def _rising_edges(bits: np.ndarray) -> int:
-    """Number of (joint, tick) where a limit bit turns on."""
-    if len(bits) < 2:
-        return int(np.count_nonzero(bits))
+    """Limit events over a recording's (ticks, n) limit bits (the first row against no limits)."""
+    if len(bits) == 0:
+        return 0
     prev = np.vstack([np.zeros((1, bits.shape[1]), dtype=bits.dtype), bits[:-1]])
-    return int(np.count_nonzero(bits & ~prev))
+    return limit_events(prev, bits)
 
 
 def summarize(header: dict[str, Any], rec: np.ndarray) -> dict[str, Any]:

@@ -192,19 +192,21 @@ class PassClock:
         self.t = 0.0
         self.s = 0.0
         self._share = 1.0
+        self._moving = False
 
     def sent(self, linear: tuple[float, ...], angular: tuple[float, ...]) -> None:
         """The twist just sent (its speed-cap factor is the share of it the service will use)."""
         lin, ang = np.asarray(linear, float), np.asarray(angular, float)
-        if lin.any() or ang.any():
+        self._moving = bool(lin.any() or ang.any())
+        if self._moving:
             t = self.tunables
             self._share = speed_cap_factor(lin, ang, np.zeros(3), t.tool_linear_max, t.angular_max)
         else:
-            self._share = 1.0  # nothing to hold back
+            self._share = 1.0  # nothing to hold back (and a zero twist's scale says nothing)
 
     def advance(self, t: float, scale: float | None) -> float:
         """The pass time at wall time t s (since the start); scale : the newest command's, or None."""
-        share = self._share * (1.0 if scale is None else scale)
+        share = self._share * (1.0 if scale is None or not self._moving else scale)
         self.s += (t - self.t) * max(PASS_RATE_MIN, min(1.0, share))
         self.t = t
         return self.s
@@ -390,7 +392,8 @@ def fit(lines: list[str], width: int = PANEL_COLUMNS) -> list[str]:
     out: list[str] = []
     for line in lines:
         indent = " " * (len(line) - len(line.lstrip()) + 2)
-        out += textwrap.wrap(line, width, subsequent_indent=indent, break_on_hyphens=False) or [""]
+        out += textwrap.wrap(line, width, subsequent_indent=indent, break_on_hyphens=False,
+                             break_long_words=False) or [""]
     return out
 
 

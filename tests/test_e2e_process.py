@@ -96,7 +96,7 @@ def test_sim_process_drives_a_service_in_driver_mode(tmp_path):
         with Link(endpoints, timeout_s=2.0) as link:
             link.wait_ready(timeout_s=20.0, topics=(b"twist", b"joints"))
             link.arm()
-            link.claim("test")
+            link.claim("test", lease_ms=5000)  # a loaded machine may stall this process past a short lease
             link.enable()
             cs = stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 100)
             status = link.status()

@@ -314,10 +314,11 @@ class Link:
         return sent
 
     def send_joints(self, position: Sequence[float] | np.ndarray,
-                    velocity: Sequence[float] | np.ndarray | None = None) -> int:
-        """Send measured joint state (a driver's job): position (n,) rad or m, velocity (n,) or None."""
+                    velocity: Sequence[float] | np.ndarray | None = None, source: str | None = None) -> int:
+        """Send measured joint state (a driver's job): position (n,) rad or m, velocity (n,) or None;
+        source : the driver's name, the same in every joint state it sends (docs/protocol.md 7.2)."""
         seq = self._seq[wire.KIND_JOINTS] = self._seq[wire.KIND_JOINTS] + 1
-        data = wire.encode_joints(seq=seq, position=position, velocity=velocity)
+        data = wire.encode_joints(seq=seq, position=position, velocity=velocity, source=source)
         self._intake.send_multipart([wire.TOPIC_JOINTS, data])
         return seq
 

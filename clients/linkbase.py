@@ -105,7 +105,10 @@ def read_reply(frames: Sequence[bytes]) -> ReplyMessage:
 def reply_result(reply: ReplyMessage, op: str) -> dict[str, Any]:
     """The result map of a reply, or ControlError(code, message) when refused."""
     if not reply.ok:
-        raise ControlError(reply.error_code or "internal", f"{op}: {reply.error_message}")
+        text = reply.error_message or ""
+        # name the op once: the service's message may already start with it ("claim: lease held ...")
+        raise ControlError(reply.error_code or "internal",
+                           text if text.startswith(f"{op}:") else f"{op}: {text}")
     return reply.result
 
 

@@ -188,7 +188,8 @@ def _check_arm_source(file: str) -> None:
 
 
 def _resolve_paths(data: dict[str, Any], base: Path) -> dict[str, Any]:
-    """Make the file paths of the document absolute against `base` (strings only; types are checked later)."""
+    """Make the file paths of the document (arm, keys, recording) absolute against `base` (strings only;
+    types are checked later)."""
     arm = data.get("arm")
     if isinstance(arm, dict) and isinstance(arm.get("file"), str) and arm["file"]:
         candidate = base / arm["file"]
@@ -203,6 +204,9 @@ def _resolve_paths(data: dict[str, Any], base: Path) -> dict[str, Any]:
             sec["client_public_keys"] = [str(base / p) if isinstance(p, str) else p
                                          for p in sec["client_public_keys"]]
         data["security"] = sec
+    rec = data.get("recorder")
+    if isinstance(rec, dict) and isinstance(rec.get("path"), str) and rec["path"]:
+        data["recorder"] = {**rec, "path": str(base / rec["path"])}
     return data
 
 

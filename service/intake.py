@@ -15,10 +15,11 @@ deadline):
    `unknown_kind`) without decoding anything.
 
 Every frame taken is counted once: `accepted_twist` / `accepted_joints` (the one decoded and used), a
-refusal reason (`rejected_REASON`: the wire reasons, `not_leased`, `unexpected_joints`), or `superseded`:
-taken in the same drain as a newer message of its topic and discarded unread (never decoded, so
-never checked), either because a newer one was accepted or because the budget ran out while newer
-ones were decoded and refused. Refusals are logged at a bounded rate.
+refusal reason (`rejected_REASON`: the wire reasons, `not_leased`, `unexpected_joints`,
+`second_source`), or `superseded`: taken in the same drain as a newer message of its topic and
+discarded unread (never decoded, so never checked), either because a newer one was accepted or
+because the budget ran out while newer ones were decoded and refused. Refusals are logged at a
+bounded rate.
 
 Arrival bound: a message taken by drain() was not waiting at the last poll that found the queue empty
 (`empty_ns`, a clock reading taken just before that poll), so it arrived after that instant; the
@@ -31,7 +32,9 @@ from collections.abc import Callable
 
 import numpy as np
 
+from twistrate.service import state as st
 from twistrate.service import wire
+from twistrate.service.joint_source import JointSourceGuard
 from twistrate.service.state import ServiceState
 from twistrate.service.telemetry import RateLimitedLog, Telemetry
 from twistrate.solver.errors import WireError
@@ -60,7 +63,8 @@ class Intake:
     """
 
     def __init__(self, n: int, simulated: bool, state: ServiceState, telemetry: Telemetry,
-                 rlog: RateLimitedLog, clock: Callable[[], int], fault: Callable[[str], None]) -> None:
+                 rlog: RateLimitedLog, clock: Callable[[], int], fault: Callable[[str], None],
+                 guard: JointSourceGuard | None = None) -> None:
         self.n = n
         self.simulated = simulated
         self.state = state
@@ -80,6 +84,8 @@ class Intake:
         self.q_rx_ns = 0
         #: monotonic ns of the last poll that found no message waiting
         self.empty_ns = 0
+        #: the one-source check of joint state (service/joint_source.py), or None
+        self.guard = guard
 
     def reject(self, reason: str, now: int, text: str) -> None:
         self.telemetry.reject(reason)
@@ -166,8 +172,29 @@ class Intake:
             if self.simulated:
                 self.reject("unexpected_joints", now, "joint state sent to a service simulating its arm")
                 continue
+            if self.guard is not None and self._second_source(msg, now):
+                # refused (and the service faulted); the older states of this drain are not used either
+                self.telemetry.reject("second_source")
+                counts["superseded"] += k
+                return
             counts["accepted_joints"] += 1
             counts["superseded"] += k
             self.q = msg.position
             self.q_rx_ns = now
             return
+
+    # -- one joint-state source (service/joint_source.py) ---------------------------------------------
+
+    def _second_source(self, msg: wire.JointsMessage, now: int) -> bool:
+        """True (and a fault) when msg cannot come from the driver that sent the previous state. In
+        fault (or shutdown) every state is taken as the new reference: after clear_fault the check
+        starts again from the newest one."""
+        guard = self.guard
+        if self.state.mode in (st.FAULT, st.SHUTDOWN):
+            guard.reset(msg.position, now, msg.source)
+            return False
+        reason = guard.check(msg.position, now, msg.source)
+        if reason is None:
+            return False
+        self.fault(reason)
+        return True

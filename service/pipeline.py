@@ -31,7 +31,9 @@ from twistrate.service import state as st
 from twistrate.service import wire
 from twistrate.service.config import ServiceConfig
 from twistrate.service.intake import DRAIN_BUDGET_NS, Intake, Poll
+from twistrate.service.joint_source import JointSourceGuard
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
+from twistrate.service.recorder import limit_events
 from twistrate.service.reports import HealthReporter
 from twistrate.service.simarm import SimArm
 from twistrate.service.telemetry import RateLimitedLog, Snapshot, Telemetry
@@ -81,8 +83,9 @@ class Pipeline:
         posture = config.initial_posture(arm)
         self.sim = SimArm.from_arm(arm, config.simulation.lag_s, None if posture is None else
                                    np.array(posture)) if config.simulation.enabled else None
+        guard = None if self.sim is not None else JointSourceGuard(arm.joint_names, arm.v_max, arm.revolute)
         self.intake = Intake(self.n, self.sim is not None, self.state, self.telemetry, self.rlog, clock,
-                             self.fault)
+                             self.fault, guard)
         if self.sim is not None:
             self.intake.q = self.sim.q
         self._base_options = config.solver_options(arm)
@@ -243,6 +246,9 @@ class Pipeline:
         if self.tick % self.health_every == 0 and q is not None:
             self.reports.publish_health(wall, q)
             self.reports.publish_state(wall, q, qd)
+        rec = self.recorder
+        if rec is not None and rec.notice is not None:  # the writer stopped (full disk, size cap)
+            self.emit_event("recording_stopped", rec.take_notice())
         if self.state.events:
             self.reports.publish_events(wall)
         res = self.last_resolution
@@ -323,8 +329,8 @@ class Pipeline:
     def _commit(self, res: Resolution, cap: float, health: str) -> None:
         """Book a tick's resolution (after its command went out)."""
         new_limits = res.limits_active
-        if (new_limits & ~self.limits_active).any():
-            self.telemetry.counts["limit_events"] += 1
+        if (new_limits & ~self.limits_active).any():  # one definition with the recording summary
+            self.telemetry.counts["limit_events"] += limit_events(self.limits_active, new_limits)
         self.limits_active = new_limits
         self.cap = cap
         self.scale = float(res.scale)

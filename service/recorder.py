@@ -1,4 +1,5 @@
-"""Recordings: every tick to a compact file of our own format (writer thread), read back, summarised, plotted.
+"""Recordings: every tick to a compact file of our own format (writer thread), read back, summarised (the
+SVG plot is in twistrate.service.recording_plot, re-exported here).
 
 File format ("trec", version 1; all little-endian):
 
@@ -28,14 +29,23 @@ Record fields (SI; base frame; twists rows (v, w) at the tool point):
 The tick thread only copies one row into a preallocated ring buffer; a writer thread appends full
 rows to the file every FLUSH_S. If the writer falls a whole ring behind, rows are dropped and
 counted (`dropped`), never waited for.
+
+A recording never overwrites a file: `open()` creates it exclusively (an existing file is refused
+with a clear message; `{time}` in the path becomes the UTC start time, e.g. `run-{time}.trec`). The
+service opens its recording only once its sockets are bound, so a service that fails to start
+touches no file. A write error (a full disk) or the size cap (`max_bytes`) stops the recording,
+never the tick: the writer thread sets `notice`, which the tick thread turns into the
+`recording_stopped` event (`take_notice`).
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import struct
 import threading
+import time
 from pathlib import Path
 from typing import Any
 
@@ -54,6 +64,18 @@ FLUSH_S = 0.1
 #: Ring buffer length, s of ticks (at least MIN_RING records).
 RING_S = 4.0
 MIN_RING = 1024
+#: `{time}` in a recording path becomes the UTC start time in this format.
+TIME_PLACEHOLDER = "{time}"
+TIME_FORMAT = "%Y%m%dT%H%M%SZ"
+
+
+def expand_path(path: str | Path, wall_s: float | None = None) -> Path:
+    """`path` with TIME_PLACEHOLDER replaced by the UTC time wall_s (default now), TIME_FORMAT."""
+    text = str(path)
+    if TIME_PLACEHOLDER in text:
+        stamp = time.strftime(TIME_FORMAT, time.gmtime(time.time() if wall_s is None else wall_s))
+        text = text.replace(TIME_PLACEHOLDER, stamp)
+    return Path(text)
 
 
 def record_dtype(n: int) -> np.dtype:
@@ -78,14 +100,24 @@ def _fields_of(dtype: np.dtype) -> list[list[Any]]:
 class Recorder:
     """Append-only recording of one arm's ticks.
 
-    path : output file (created or truncated). arm : the arm (joint names, n). tick_hz : tick rate.
-    source : "service" or "output". unavailable : field names the source cannot fill.
-    capacity : ring length in rows (default RING_S of ticks, at least MIN_RING).
+    path : output file, created exclusively (never overwritten; `{time}` becomes the UTC start
+    time). arm : the arm (joint names, n). tick_hz : tick rate. source : "service" or "output".
+    unavailable : field names the source cannot fill. capacity : ring length in rows (default
+    RING_S of ticks, at least MIN_RING). open_now : create the file now (False: at `open()`, which
+    the service calls once its sockets are bound). max_bytes : stop recording before the file
+    would grow past this size (None: no cap).
     """
 
     def __init__(self, path: str | Path, arm: Arm, tick_hz: float, source: str = "service",
-                 unavailable: tuple[str, ...] = (), capacity: int | None = None) -> None:
+                 unavailable: tuple[str, ...] = (), capacity: int | None = None, open_now: bool = True,
+                 max_bytes: int | None = None) -> None:
         self.path = Path(path)
+        self.max_bytes = max_bytes
+        self.bytes_written = 0
+        #: why the recording stopped early (write error, size cap), or None
+        self.stopped: str | None = None
+        #: set with `stopped` by the writer thread; taken once by the tick thread (take_notice)
+        self.notice: str | None = None
         self.n = arm.n
         self.dtype = record_dtype(arm.n)
         if capacity is None:
@@ -103,16 +135,42 @@ class Recorder:
             "health_states": list(HEALTH_STATES), "fields": _fields_of(self.dtype),
             "record_bytes": self.dtype.itemsize, "unavailable": list(unavailable),
         }
-        try:
-            self._file = open(self.path, "wb")  # noqa: SIM115 (closed by close())
-        except OSError as exc:
-            raise field_error(InputError, "recording path", str(self.path),
-                              f"a writable file ({exc.strerror})") from None
+        self._file: Any = None
         self._header_written = False
         self._stop = threading.Event()
         self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._writer, name="twistrate-recorder", daemon=True)
+        if open_now:
+            self.open()
+
+    @property
+    def is_open(self) -> bool:
+        return self._file is not None
+
+    def open(self) -> None:
+        """Create the file exclusively and start the writer thread (idempotent). Raises InputError
+        when the file exists or cannot be created; then nothing was written."""
+        if self._file is not None:
+            return
+        path = expand_path(self.path)
+        try:
+            self._file = open(path, "xb")  # noqa: SIM115 (closed by close())
+        except FileExistsError:
+            raise field_error(InputError, "recording path", str(path),
+                              "a file that does not exist yet (a recording never overwrites one: move it, "
+                              f"or put {TIME_PLACEHOLDER} in the name for the start time)") from None
+        except OSError as exc:
+            raise field_error(InputError, "recording path", str(path),
+                              f"a writable file ({exc.strerror})") from None
+        self.path = path
         self._thread.start()
+
+    def take_notice(self) -> str | None:
+        """Why the recording stopped, once (tick thread); None when there is nothing new."""
+        notice = self.notice
+        if notice is not None:
+            self.notice = None
+        return notice
 
     # -- tick thread ---------------------------------------------------------------------------------
 
@@ -125,6 +183,8 @@ class Recorder:
         t_ns : monotonic time of the tick, ns. wall_ns : wall clock (only the first one is kept).
         """
         w = self._w
+        if self.stopped is not None:
+            return
         if w - self._r >= self._cap:
             self.dropped += 1
             return
@@ -152,27 +212,53 @@ class Recorder:
 
     def _write_header(self) -> None:
         text = json.dumps(self._header, separators=(",", ":")).encode("utf-8")
-        self._file.write(MAGIC + struct.pack("<I", len(text)) + text)
+        data = MAGIC + struct.pack("<I", len(text)) + text
+        self._file.write(data)
+        self.bytes_written += len(data)
         self._header_written = True
+
+    def _stop_recording(self, why: str) -> None:
+        """Stop for good (writer side): keep what is written, close the file, leave a notice."""
+        self.stopped = why
+        with contextlib.suppress(OSError):
+            self._file.close()
+        self.notice = why
 
     def _flush(self) -> None:
         with self._lock:
             w = self._w
             r = self._r
-            if w == r or self._file.closed:
+            if w == r or self._file is None or self._file.closed or self.stopped is not None:
                 return
-            if not self._header_written:
-                self._write_header()
-            cap = self._cap
-            a, b = r % cap, w % cap
-            if a < b:
-                chunks = [self._ring[a:b]]
-            else:
-                chunks = [self._ring[a:], self._ring[:b]]
-            for chunk in chunks:
-                self._file.write(chunk.tobytes())
-            self._r = w
-            self._file.flush()
+            try:
+                if not self._header_written:
+                    self._write_header()
+                cap = self._cap
+                a, b = r % cap, w % cap
+                if a < b:
+                    chunks = [self._ring[a:b]]
+                else:
+                    chunks = [self._ring[a:], self._ring[:b]]
+                capped = False
+                for chunk in chunks:
+                    if self.max_bytes is not None:
+                        room = (self.max_bytes - self.bytes_written) // self.dtype.itemsize
+                        if room < len(chunk):
+                            chunk, capped = chunk[:max(0, room)], True
+                    data = chunk.tobytes()
+                    self._file.write(data)
+                    self.bytes_written += len(data)
+                    if capped:
+                        break
+                self._r = w
+                self._file.flush()
+            except OSError as exc:
+                self._stop_recording(f"{self.path}: write failed ({exc.strerror or exc}); the recording "
+                                     f"stopped after {self.bytes_written} bytes, the service goes on")
+                return
+            if capped:
+                self._stop_recording(f"{self.path}: size cap of {self.max_bytes} bytes reached; the "
+                                     "recording stopped, the service goes on ([recorder] max_mb)")
 
     def _writer(self) -> None:
         while not self._stop.wait(FLUSH_S):
@@ -181,14 +267,20 @@ class Recorder:
     def close(self) -> None:
         """Write what is left and close the file (any thread; idempotent)."""
         self._stop.set()
-        if threading.current_thread() is not self._thread:
+        if self._file is None:  # never opened: no file
+            return
+        if threading.current_thread() is not self._thread and self._thread.is_alive():
             self._thread.join(2.0)
         self._flush()
         with self._lock:
             if not self._file.closed:
-                if not self._header_written:
-                    self._write_header()
-                self._file.close()
+                try:
+                    if not self._header_written:
+                        self._write_header()
+                except OSError as exc:
+                    self.stopped = self.notice = f"{self.path}: write failed ({exc.strerror or exc})"
+                with contextlib.suppress(OSError):
+                    self._file.close()
 
     @property
     def rows(self) -> int:
@@ -225,12 +317,19 @@ def read_recording(path: str | Path) -> tuple[dict[str, Any], np.ndarray]:
     return header, records
 
 
+def limit_events(prev: np.ndarray, new: np.ndarray) -> int:
+    """The one definition of a limit event: a joint whose limit bits gain a bit it did not have the tick
+    before (one event per joint and tick). prev, new : (n,) or (ticks, n) uint8 limit bits. Used by the
+    service's `limit_events` counter and by the recording summary alike."""
+    return int(np.count_nonzero(new & ~prev))
+
+
 def _rising_edges(bits: np.ndarray) -> int:
-    """Number of (joint, tick) where a limit bit turns on."""
-    if len(bits) < 2:
-        return int(np.count_nonzero(bits))
+    """Limit events over a recording's (ticks, n) limit bits (the first row against no limits)."""
+    if len(bits) == 0:
+        return 0
     prev = np.vstack([np.zeros((1, bits.shape[1]), dtype=bits.dtype), bits[:-1]])
-    return int(np.count_nonzero(bits & ~prev))
+    return limit_events(prev, bits)
 
 
 def summarize(header: dict[str, Any], rec: np.ndarray) -> dict[str, Any]:
@@ -295,69 +394,5 @@ def format_summary(s: dict[str, Any], joints: list[str]) -> str:
     return "\n".join(lines)
 
 
-def plot_svg(header: dict[str, Any], rec: np.ndarray, out: str | Path, width: int = 900) -> Path:
-    """Write a plain SVG of a recording: manipulability, smallest singular value, scale and damping,
-    per-joint rates, and the mode as a colour band, against time. Returns the path."""
-    panels: list[tuple[str, list[tuple[str, np.ndarray]]]] = [
-        ("manipulability", [("manipulability", rec["manipulability"].astype(float))]),
-        ("smallest singular value (m)", [("sigma_min", rec["sigma_min"].astype(float))]),
-        ("scale, speed cap", [("scale", rec["scale"].astype(float)), ("cap", rec["cap"].astype(float))]),
-        ("damping (m)", [("damping", rec["damping"].astype(float))]),
-        ("joint rates (rad/s or m/s)", [(j, rec["qd"][:, i]) for i, j in enumerate(header["joints"])]),
-    ]
-    colours = ["#1f5fa8", "#c0392b", "#2e8b57", "#8e44ad", "#d35400", "#16a085", "#7f8c8d", "#b7950b"]
-    mode_colours = {"disabled": "#dddddd", "running": "#d5f5e3", "stopping": "#fdebd0", "holding": "#fcf3cf",
-                    "fault": "#f5b7b1", "shutdown": "#d6dbdf"}
-    ph, gap, left, top = 130, 30, 70, 30
-    height = top + len(panels) * (ph + gap) + 20
-    t = rec["t"] if len(rec) else np.zeros(1)
-    t0, t1 = float(t[0]), float(t[-1]) if float(t[-1]) > float(t[0]) else float(t[0]) + 1.0
-    pw = width - left - 20
-
-    def x(tv: np.ndarray) -> np.ndarray:
-        return left + (tv - t0) / (t1 - t0) * pw
-
-    parts = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
-             f'font-family="sans-serif" font-size="11">',
-             f'<text x="{left}" y="16" font-size="13">{header["arm"]}: {len(rec)} ticks, '
-             f'{t1 - t0:.2f} s ({header["source"]})</text>']
-    modes = header["modes"]
-    for k, (title, series) in enumerate(panels):
-        y0 = top + k * (ph + gap)
-        if len(rec):
-            codes = rec["mode"]
-            starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
-            ends = np.r_[starts[1:], len(codes)]
-            for a, b in zip(starts, ends, strict=True):
-                xa, xb = float(x(t[a])), float(x(t[b - 1]))
-                colour = mode_colours.get(modes[codes[a]], "#eeeeee")
-                parts.append(f'<rect x="{xa:.1f}" y="{y0}" width="{max(xb - xa, 0.5):.1f}" height="{ph}" '
-                             f'fill="{colour}"/>')
-        parts.append(f'<rect x="{left}" y="{y0}" width="{pw}" height="{ph}" fill="none" stroke="#555"/>')
-        values = np.concatenate([v[np.isfinite(v)] for _, v in series] + [np.zeros(0)])
-        lo, hi = (float(values.min()), float(values.max())) if values.size else (0.0, 1.0)
-        if hi <= lo:
-            hi = lo + 1.0
-        parts.append(f'<text x="{left}" y="{y0 - 4}">{title}</text>')
-        parts.append(f'<text x="{left - 4}" y="{y0 + 10}" text-anchor="end">{hi:.3g}</text>')
-        parts.append(f'<text x="{left - 4}" y="{y0 + ph}" text-anchor="end">{lo:.3g}</text>')
-        step = max(1, len(rec) // pw)
-        for i, (name, v) in enumerate(series):
-            vv = v[::step]
-            tt = t[::step]
-            ok = np.isfinite(vv)
-            if not ok.any():
-                continue
-            ys = y0 + ph - (vv[ok] - lo) / (hi - lo) * ph
-            pts = " ".join(f"{a:.1f},{b:.1f}" for a, b in zip(x(tt[ok]), ys, strict=True))
-            colour = colours[i % len(colours)]
-            parts.append(f'<polyline fill="none" stroke="{colour}" stroke-width="1" points="{pts}"/>')
-            parts.append(f'<text x="{left + pw - 4}" y="{y0 + 12 + 12 * i}" text-anchor="end" '
-                         f'fill="{colour}">{name}</text>')
-    yb = top + len(panels) * (ph + gap) - 8
-    parts.append(f'<text x="{left}" y="{yb}">time {t0:.2f} .. {t1:.2f} s; background: mode ('
-                 + ", ".join(f'<tspan fill="#555">{m}</tspan>' for m in mode_colours) + ")</text>")
-    parts.append("</svg>")
-    out = Path(out)
-    out.write_text("\n".join(parts), encoding="utf-8")
-    return out
+# the plot lives in its own module; re-exported where callers look for it
+from twistrate.service.recording_plot import plot_svg as plot_svg  # noqa: E402

@@ -269,7 +269,10 @@ class Service:
         bind_ns = p.clock()  # nothing can arrive before the bind
         try:
             self._open_sockets()
+            if self.recorder is not None and not self.recorder.is_open:
+                self.recorder.open()  # only once bound: a service that cannot start touches no file
         except BaseException as exc:  # reported to start()
+            self._close_sockets()
             self._start_error = exc
             self._done.set()
             self._ready.set()

@@ -12,6 +12,7 @@ use it.
 
 from __future__ import annotations
 
+import os
 import time
 
 import numpy as np
@@ -57,6 +58,8 @@ class SimDriver:
         self.commands.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
         self.commands.connect(ep["output"])
         self.joints.connect(ep["intake"])
+        #: the driver's name in every joint state (docs/protocol.md 7.2): one per process
+        self.source = f"twistrate-sim-{os.getpid()}"
         self.seq = 0
         self.received = 0
         self.refused = 0
@@ -107,7 +110,8 @@ class SimDriver:
                 # by the time that really passed (a late loop removes more, never beyond a_max dt)
                 rate = ramp_to_rest(self.sim.qd, self.arm.a_max, dt)
             self.sim.command(rate)
-            data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd)
+            data = wire.encode_joints(seq=self.seq, position=self.sim.q, velocity=self.sim.qd,
+                                      source=self.source)
             self.joints.send_multipart((wire.TOPIC_JOINTS, data))
             self.seq += 1
 

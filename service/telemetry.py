@@ -25,7 +25,8 @@ COUNTER_NAMES = ("accepted_twist", "accepted_joints", "superseded", "commands", 
                  "speculation_used", "gc_collections")
 #: Every reason an intake message can be refused for: the codec's (but `unknown_op`, a control reason)
 #: and the service's own.
-INTAKE_REASONS = tuple(r for r in (*REASONS, "not_leased", "unexpected_joints") if r != "unknown_op")
+INTAKE_REASONS = tuple(r for r in (*REASONS, "not_leased", "unexpected_joints", "second_source")
+                       if r != "unknown_op")
 #: Latency histograms (name -> what it measures), reported as NAME_median_ns / _p99_ns / _max_ns.
 HISTOGRAMS = {
     "lateness": "tick wake-up after its deadline",

@@ -105,6 +105,15 @@ def test_text_report(capsys):
     for fragment in ("arm reach7", "shoulder_pitch", "tool pose", "geometric Jacobian",
                      "configuration: home"):
         assert fragment in out
+    assert "linear" in out and "angular" in out and "translational" not in out  # as in JSON and the wire
+
+
+def test_the_table_numbers_joints_as_the_at_errors_do(capsys):
+    _, table, _ = run(capsys, "bench6")
+    row = next(line for line in table.splitlines() if " elbow " in line)
+    code, _, err = run(capsys, "bench6", "--at", "0,0,x,0,0,0")  # the third value is the elbow's
+    assert code == 2 and "--at value 3 (joint 'elbow')" in err
+    assert row.split()[0] == "3"
 
 
 BAD = [

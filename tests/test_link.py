@@ -193,6 +193,11 @@ def test_refusals_raise_control_error_with_the_code(link, peer):
     with pytest.raises(ControlError) as info:
         link.claim()
     assert info.value.code == "lease_held" and "pad" in str(info.value)
+    assert str(info.value) == "claim: lease held by 'pad'"  # the op named once, not "claim: claim: ..."
+    peer.refuse["claim"] = ("lease_held", "lease held by 'pad'")
+    with pytest.raises(ControlError) as info:
+        link.claim()
+    assert str(info.value) == "claim: lease held by 'pad'"  # and named when the message does not
 
 
 def test_timeout_then_late_reply_is_discarded(link, peer):

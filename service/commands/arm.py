@@ -226,7 +226,8 @@ def _fmt_limit(value: float | None, revolute: bool) -> str:
 
 
 def format_text(report: dict[str, Any]) -> str:
-    """Human-readable form of the report: revolute joints in degrees, prismatic in metres."""
+    """Human-readable form of the report: revolute joints in degrees, prismatic in metres; joints numbered
+    from 1, as the --at errors number its values."""
     arm = report["arm"]
     q = report["configuration"]["q"]
     lines = [f"arm {arm['name']} from {arm['source']}: {arm['joint_count']} joints", ""]
@@ -236,7 +237,7 @@ def format_text(report: dict[str, Any]) -> str:
         rev = j["kind"] == "revolute"
         conv = math.degrees if rev else float
         lines.append(
-            f"  {i:>2}  {j['name']:<16} {j['kind']:<9} {_fmt_limit(j['position_min'], rev):>9} "
+            f"  {i + 1:>2}  {j['name']:<16} {j['kind']:<9} {_fmt_limit(j['position_min'], rev):>9} "
             f"{_fmt_limit(j['position_max'], rev):>9} {conv(j['velocity_max']):>9.1f} "
             f"{conv(j['acceleration_max']):>9.1f} {conv(j['home']):>9.3f} {conv(q[i]):>9.3f}"
         )
@@ -268,8 +269,8 @@ def _format_health(report: dict[str, Any]) -> list[str]:
     return [
         f"health (task-weighted Jacobian: angular rows times L = {L:g} m):",
         "  singular values (m)   " + " ".join(f"{v:.5f}" for v in report["singular_values"]),
-        f"  manipulability        whole {m['whole']:.4g} m^{k}, translational {m['linear']:.4g} m^3, "
-        f"rotational {m['angular']:.4g}",
+        f"  manipulability        whole {m['whole']:.4g} m^{k}, linear {m['linear']:.4g} m^3, "
+        f"angular {m['angular']:.4g}",
         f"  inverse condition     {report['inverse_condition']:.4f}",
         "  weakest direction     linear [" + ", ".join(f"{round(v, 3) + 0.0:.3f}" for v in w["linear"])
         + "] m/s, angular [" + ", ".join(f"{round(v, 3) + 0.0:.3f}" for v in w["angular"]) + "] rad/s",

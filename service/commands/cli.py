@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import importlib
+import importlib.metadata
+import os
 import sys
 
 #: Package of the subcommand modules; each has main(argv) -> int.
@@ -15,6 +17,9 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "demo": ("demo", "service + simulated arm + scripted twist source, no hardware"),
     "record": ("record", "record a running service, or summarise a recording"),
     "keys": ("keys", "make CURVE key pairs for non-loopback endpoints"),
+    "status": ("status", "one look at a running service: mode, lease, health, counters, tick timing"),
+    "set": ("set", "change run-time tunables of a running service (NAME=VALUE ...)"),
+    "check": ("check", "validate a service config and its arm without starting anything"),
     "vservo": ("vservo", "close a camera loop (visual servoing); --synthetic: on a simulated cell"),
     "teleop": ("teleop", "jog the arm from a six-axis hand controller or the keyboard"),
     "bench": ("twistrate.service.bench.cli",
@@ -29,7 +34,8 @@ def module_of(command: str) -> str:
 
 
 def usage() -> str:
-    lines = ["usage: twistrate COMMAND [options]   (twistrate COMMAND --help for each)", ""]
+    lines = ["usage: twistrate COMMAND [options]   (twistrate COMMAND --help for each; twistrate --version)",
+             ""]
     lines += [f"  {name:<8} {text}" for name, (_, text) in COMMANDS.items()]
     return "\n".join(lines)
 
@@ -39,11 +45,33 @@ def main(argv: list[str] | None = None) -> int:
     if not args or args[0] in ("-h", "--help", "help"):
         print(usage())
         return 0
+    if args[0] in ("--version", "-V"):
+        print(f"twistrate {version()}")
+        return 0
     name, rest = args[0], args[1:]
     if name not in COMMANDS:
         print(f"twistrate: unknown command {name!r}; accepted: {', '.join(COMMANDS)}", file=sys.stderr)
         return 2
-    return int(importlib.import_module(module_of(name)).main(rest))
+    try:
+        code = int(importlib.import_module(module_of(name)).main(rest))
+        sys.stdout.flush()
+    except BrokenPipeError:  # the reader went away (`twistrate ... | head`): stop quietly
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # nothing left to flush at exit
+        return EXIT_BROKEN_PIPE
+    return code
+
+
+#: Exit status after the output pipe closed early: 128 + SIGPIPE, as the shell reports such a program.
+EXIT_BROKEN_PIPE = 141
+
+
+def version() -> str:
+    """The installed distribution's version (pyproject.toml)."""
+    try:
+        return importlib.metadata.version("twistrate")
+    except importlib.metadata.PackageNotFoundError:
+        return "unknown (not installed)"
 
 
 if __name__ == "__main__":

@@ -6,8 +6,10 @@ far edge, tilts to look along it (the wrist passes its aligned, near-singular po
 the camera until the wrist joints meet their limits, then backs off. The source is a client like
 any other: it claims the lease, enables motion and streams twists over the wire (clients/link.py).
 
-Output: the cautions first, then a live summary a few times per second (a refreshed block on a
-terminal, plain lines otherwise), then a short report and the recording's path.
+Output: the cautions first (once the arguments are checked, before anything starts), then a live
+panel a few times per second (drawn with rich, 80 columns, on a terminal; one short plain line per
+refresh otherwise), then a short report and the recording's path. `--seconds S` compresses (or
+stretches) every phase of the pass to S seconds.
 """
 
 from __future__ import annotations
@@ -20,13 +22,18 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.service import wire
+from twistrate.service.commands.demo_panel import PANEL_COLUMNS as PANEL_COLUMNS
+from twistrate.service.commands.demo_panel import Display, fit
 from twistrate.service.config import ServiceConfig, config_from_dict, load_config
 from twistrate.service.control import ControlThread
+from twistrate.service.motion import speed_cap_factor
 from twistrate.service.recorder import Recorder, read_recording, summarize
 from twistrate.service.runtime import Service
 from twistrate.service.tick import ARRIVAL_TARGET_EXTRA_US
@@ -46,7 +53,8 @@ DEFAULT_SECONDS = 24.0
 SOURCE_HZ = 100.0
 #: Live summary refreshes per second.
 DISPLAY_HZ = 4.0
-DEFAULT_RECORDING = "twistrate-demo.trec"
+#: The demo's recording: {time} becomes the UTC start time (a recording never overwrites a file).
+DEFAULT_RECORDING = "twistrate-demo-{time}.trec"
 
 
 @dataclass(frozen=True)
@@ -76,10 +84,28 @@ SCENARIO: tuple[Phase, ...] = (
 )
 
 
-def scripted_twist(t: float) -> tuple[str, tuple[float, float, float], tuple[float, float, float]]:
-    """(phase name, linear (3,) m/s, angular (3,) rad/s) at time t s into the scenario (base frame)."""
+def scenario(seconds: float = DEFAULT_SECONDS) -> tuple[Phase, ...]:
+    """The pass compressed (or stretched) to `seconds`: every phase's duration times
+    seconds / DEFAULT_SECONDS and its twist divided by that factor, so the tool travels the same path
+    (through the near-singular wrist and to the wrist limits) in the time given. The speed caps of the
+    configuration still apply: a very short pass is capped, and travels less far."""
+    k = seconds / DEFAULT_SECONDS
+
+    def compressed(phase: Phase) -> Phase:
+        def twist(t: float) -> tuple[tuple[float, float, float], tuple[float, float, float]]:
+            linear, angular = phase.twist(t / k)
+            return (linear[0] / k, linear[1] / k, linear[2] / k), (angular[0] / k, angular[1] / k,
+                                                                   angular[2] / k)
+        return Phase(phase.name, phase.seconds * k, twist)
+
+    return tuple(compressed(phase) for phase in SCENARIO)
+
+
+def scripted_twist(t: float, phases: tuple[Phase, ...] = SCENARIO
+                   ) -> tuple[str, tuple[float, float, float], tuple[float, float, float]]:
+    """(phase name, linear (3,) m/s, angular (3,) rad/s) at time t s into the pass (base frame)."""
     start = 0.0
-    for phase in SCENARIO:
+    for phase in phases:
         if t < start + phase.seconds:
             linear, angular = phase.twist(t - start)
             return phase.name, linear, angular
@@ -90,9 +116,11 @@ def scripted_twist(t: float) -> tuple[str, tuple[float, float, float], tuple[flo
 class ScriptedSource:
     """The demo's twist source, on its own thread, talking to the service over the wire."""
 
-    def __init__(self, endpoints: Endpoints, seconds: float) -> None:
+    def __init__(self, endpoints: Endpoints, seconds: float, tunables: Any) -> None:
         self.endpoints = endpoints
+        self.tunables = tunables
         self.seconds = seconds
+        self.phases = scenario(seconds)
         self.phase = "connecting"
         self.sent = 0
         self.error: str | None = None
@@ -112,18 +140,33 @@ class ScriptedSource:
 
     def _run(self) -> None:
         try:
-            with Link(self.endpoints, client="demo-source", topics=(), timeout_s=2.0) as link:
+            with Link(self.endpoints, client="demo-source", topics=(wire.TOPIC_COMMAND,),
+                      timeout_s=2.0) as link:
                 link.wait_ready(timeout_s=5.0)
-                link.claim(lease_ms=1000)
+                link.claim(lease_ms=3000)  # a busy machine may stall the source for a while
                 link.enable()
+                clock = PassClock(self.tunables)
                 def twist_at(t: float) -> tuple[np.ndarray, np.ndarray] | None:
                     if self._stop.is_set():
                         return None
-                    self.phase, linear, angular = scripted_twist(t)
+                    scale = None
+                    while True:  # the newest command answering a twist: the share the limits allowed
+                        try:
+                            msg = link.receive(timeout_s=0.0)
+                        except TwistrateError:
+                            break
+                        if type(msg) is wire.CommandMessage and msg.answers >= 0:
+                            scale = msg.scale
+                    s = clock.advance(t, scale)
+                    if s >= self.seconds:
+                        return None
+                    self.phase, linear, angular = scripted_twist(s, self.phases)
+                    clock.sent(linear, angular)
                     self.sent += 1
                     return linear, angular
 
-                link.stream_twists(twist_at, SOURCE_HZ, self.seconds, wait=self._stop.wait)
+                link.stream_twists(twist_at, SOURCE_HZ, self.seconds * PASS_STRETCH_MAX + 5.0,
+                                   wait=self._stop.wait)
                 self.phase = "stopping"
                 link.disable()
                 link.release()
@@ -133,56 +176,41 @@ class ScriptedSource:
             self.phase = "failed"
 
 
-class Display:
-    """Live summary lines: a refreshed block on a terminal, plain lines otherwise."""
+#: A pass held back by the speed caps and the limits may take at most this many times its length.
+PASS_STRETCH_MAX = 3.0
+#: The pass clock never runs slower than this share of real time (a pass stuck at a limit goes on).
+PASS_RATE_MIN = 0.1
 
-    def __init__(self, service: Service, source: ScriptedSource, out=sys.stdout) -> None:
-        self.service = service
-        self.source = source
-        self.out = out
-        self.tty = bool(getattr(out, "isatty", lambda: False)())
-        self._last: tuple[float, int] | None = None
-        self._rate = 0.0
-        self._lines = 0
 
-    def lines(self) -> list[str]:
-        svc = self.service
-        snap = svc.snapshot  # the last tick's state, published by the tick thread
-        ticker = svc.ticker
-        now = time.monotonic()
-        ticks = ticker.ticks
-        if self._last is None or now - self._last[0] >= 0.1:  # too short a gap keeps the previous figure
-            if self._last is not None:
-                self._rate = (ticks - self._last[1]) / (now - self._last[0])
-            self._last = (now, ticks)
-        rate = self._rate
-        names = svc.arm.joint_names
-        active = [names[i] for i in np.flatnonzero(snap.limits_active)]
-        margin = snap.limit_margin  # fractions of each joint's range (inf: unlimited)
-        near = ""
-        if margin is not None and len(margin) and np.isfinite(margin).any():
-            i = int(np.argmin(margin))
-            near = f"; nearest limit: {names[i]} at {100 * float(margin[i]):.1f} % of its range"
-        sched = "real-time" if svc.scheduling.realtime else "normal"
-        return [
-            f"t {snap.t_s:6.2f} s  phase: {self.source.phase}",
-            f"  tick {rate:7.1f} Hz (target {svc.rate_hz:g}, {sched} scheduling)  mode {snap.mode:<9} "
-            f"health {snap.health_state:<11} overruns {ticker.overruns}",
-            f"  manipulability {snap.manipulability:9.3e}  sigma_min {snap.sigma_min:6.4f} m  scale "
-            f"{snap.scale:4.2f}  speed cap {snap.cap:4.2f}  damping {snap.damping:6.4f} m",
-            f"  limits in play: {', '.join(active) if active else 'none'}{near}",
-        ]
+class PassClock:
+    """The scripted pass's own clock, s: it runs at the share of the twist the service carries out (the
+    speed-cap factor, computed here with the service's own function and tunables, times the scale of
+    the newest command), so a pass compressed by --seconds travels the whole path (into the
+    near-singular wrist, to the wrist limits) even where the caps and limits slow it down."""
 
-    def show(self) -> None:
-        lines = self.lines()
-        if self.tty:
-            if self._lines:
-                self.out.write(f"\x1b[{self._lines}F")
-            self.out.write("".join(f"\x1b[2K{line}\n" for line in lines))
-            self._lines = len(lines)
+    def __init__(self, tunables: Any) -> None:
+        self.tunables = tunables
+        self.t = 0.0
+        self.s = 0.0
+        self._share = 1.0
+        self._moving = False
+
+    def sent(self, linear: tuple[float, ...], angular: tuple[float, ...]) -> None:
+        """The twist just sent (its speed-cap factor is the share of it the service will use)."""
+        lin, ang = np.asarray(linear, float), np.asarray(angular, float)
+        self._moving = bool(lin.any() or ang.any())
+        if self._moving:
+            t = self.tunables
+            self._share = speed_cap_factor(lin, ang, np.zeros(3), t.tool_linear_max, t.angular_max)
         else:
-            self.out.write(" | ".join(s.strip() for s in lines) + "\n")
-        self.out.flush()
+            self._share = 1.0  # nothing to hold back (and a zero twist's scale says nothing)
+
+    def advance(self, t: float, scale: float | None) -> float:
+        """The pass time at wall time t s (since the start); scale : the newest command's, or None."""
+        share = self._share * (1.0 if scale is None or not self._moving else scale)
+        self.s += (t - self.t) * max(PASS_RATE_MIN, min(1.0, share))
+        self.t = t
+        return self.s
 
 
 #: Endpoints the demo falls back to when the configured ports are taken: loopback, ports picked at bind.
@@ -235,24 +263,29 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
         f"  twists sent {source.sent}, accepted {counters.get('accepted_twist', 0)}, "
         f"rejected {counters.get('rejected_total', 0)}"
         + (" (" + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items())) + ")" if rejected else ""),
-        f"  faults {counters.get('faults', 0)}, limit events {counters.get('limit_events', 0)}",
     ]
+    s: dict[str, Any] = {}
     if recording is not None and recording.exists():
         header, rec = read_recording(recording)
         s = summarize(header, rec)
+    # one figure: the recording's count when there is one (every tick to the end), else the service's
+    # counter; both count limit_events() of the same bits (service/recorder.py)
+    events = s.get("limit_events", counters.get("limit_events", 0))
+    lines.append(f"  faults {counters.get('faults', 0)}, limit events {events} (a joint meeting a limit)")
+    if s:
 
         def num(v: float | None) -> str:
             return "n/a" if v is None else f"{v:.4g}"
 
         lines.append(f"  min manipulability {num(s.get('manipulability_min'))}, min sigma_min "
-                     f"{num(s.get('sigma_min_min'))} m, min scale {num(s.get('scale_min'))}, "
-                     f"max damping {num(s.get('damping_max'))} m")
+                     f"{num(s.get('sigma_min_min'))} m, min scale {num(s.get('scale_min'))}")
+        lines.append(f"  max damping {num(s.get('damping_max'))} m (lambda)")
         lines.append("  time in health states: " + ", ".join(f"{k} {v:.2f} s"
                                                         for k, v in s.get("time_in_health_s", {}).items()))
         lines.append(f"  recording: {recording}  (summary: twistrate record --summary {recording})")
     if source.error:
         lines.append(f"  the scripted source failed: {source.error}")
-    return lines
+    return fit(lines)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -264,8 +297,6 @@ def main(argv: list[str] | None = None) -> int:
                         help=f"recording file (default ./{DEFAULT_RECORDING})")
     parser.add_argument("--no-record", action="store_true", help="do not record")
     args = parser.parse_args(argv)
-    print("\n".join(CAUTIONS), flush=True)
-    print(flush=True)
     if not 0.0 < args.seconds <= 600.0:
         print(f"twistrate demo: --seconds: got {args.seconds:g}; accepted: 0 < seconds <= 600",
               file=sys.stderr)
@@ -276,8 +307,16 @@ def main(argv: list[str] | None = None) -> int:
             print("twistrate demo: the configuration must have [simulation] enabled = true", file=sys.stderr)
             return 2
         arm = config.load_arm()
+    except TwistrateError as exc:
+        print(f"twistrate demo: {exc}", file=sys.stderr)
+        return 2
+    # the arguments are good: the cautions, before anything starts
+    print("\n".join(CAUTIONS), flush=True)
+    print(flush=True)
+    try:
         recording = None if args.no_record else Path(args.record)
         recorder = None if recording is None else Recorder(recording, arm, config.tick.rate_hz)
+        recording = None if recorder is None else recorder.path  # {time} filled in
         service, control, note = start_service(config, recorder)
     except (TwistrateError, zmq.ZMQError, OSError) as exc:
         print(f"twistrate demo: {exc}", file=sys.stderr)
@@ -286,13 +325,15 @@ def main(argv: list[str] | None = None) -> int:
     ep = service.endpoints
     print(f"arm {arm.name} ({arm.n} joints), simulated; tick {cfg.tick.rate_hz:g} Hz; control "
           f"{ep['control']} {note}".rstrip(), flush=True)
-    print(f"scripted inspection pass: {', '.join(p.name for p in SCENARIO)}; {args.seconds:g} s", flush=True)
+    print("\n".join(fit([f"scripted inspection pass: {', '.join(p.name for p in SCENARIO)}; "
+                         f"{args.seconds:g} s"])), flush=True)
     endpoints = Endpoints(ep["intake"], ep["output"], ep["control"])
-    source = ScriptedSource(endpoints, args.seconds)
+    source = ScriptedSource(endpoints, args.seconds, cfg.tunables())
     display = Display(service, source)
     source.start()
+    display.start()
     try:
-        deadline = time.monotonic() + args.seconds + 10.0
+        deadline = time.monotonic() + args.seconds * PASS_STRETCH_MAX + 10.0
         while not source.finished and time.monotonic() < deadline:
             time.sleep(1.0 / DISPLAY_HZ)
             display.show()
@@ -306,6 +347,7 @@ def main(argv: list[str] | None = None) -> int:
         print("\ninterrupted: stopping", flush=True)
         source.stop()
     finally:
+        display.stop()
         source.stop()
         counters = service.counters()
         service.shutdown("demo over")

@@ -2,6 +2,8 @@
 
     twistrate record --config FILE --out PATH [--seconds S]   record commands (+ health) until Ctrl-C
     twistrate record --summary PATH [--svg OUT]               summary of a recording, optional SVG plot
+    twistrate record --summary PATH --csv OUT                 also export it as CSV (docs/operation.md)
+    twistrate record --csv OUT PATH                           only export it as CSV
 
 Recording from the wire rebuilds each tick from the `command` message (q = target - rate * T, the
 rates, scale, mode, health state) and the newest `health` message (damping, smallest singular value,
@@ -24,9 +26,11 @@ import numpy as np
 import zmq
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.clients.probe import probe
 from twistrate.service import wire
 from twistrate.service.config import load_config
 from twistrate.service.recorder import Recorder, format_summary, plot_svg, read_recording, summarize
+from twistrate.service.recording_csv import write_csv
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import TwistrateError
 
@@ -42,6 +46,7 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
     arm = config.load_arm()
     ep = endpoints or config.endpoints.model_dump()
     period = 1.0 / config.tick.rate_hz
+    probe(Endpoints(ep["intake"], ep["output"], ep["control"]))  # no service answers: no file
     recorder = Recorder(out, arm, config.tick.rate_hz, source="output", unavailable=WIRE_UNAVAILABLE)
     damping = sigma_min = manip = math.nan
     zeros6 = np.full(6, math.nan)
@@ -82,7 +87,20 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--summary", metavar="PATH", help="summarise this recording")
     parser.add_argument("--svg", metavar="OUT", help="with --summary: also plot it to this SVG file")
     parser.add_argument("--json", action="store_true", help="with --summary: print the summary as JSON")
+    parser.add_argument("--csv", metavar="OUT", help="export the recording (--summary PATH, or PATH) as CSV")
+    parser.add_argument("recording", nargs="?", metavar="PATH", help="the recording --csv exports")
     args = parser.parse_args(argv)
+    if args.csv and not args.summary:
+        if not args.recording:
+            print("twistrate record: --csv OUT needs the recording: --csv OUT PATH", file=sys.stderr)
+            return 2
+        try:
+            header, rec = read_recording(args.recording)
+            print(f"csv: {write_csv(header, rec, args.csv)} ({len(rec)} rows)")
+        except TwistrateError as exc:
+            print(f"twistrate record: {exc}", file=sys.stderr)
+            return 2
+        return 0
     if args.summary:
         try:
             header, rec = read_recording(args.summary)
@@ -93,6 +111,12 @@ def main(argv: list[str] | None = None) -> int:
         print(json.dumps(s, indent=2) if args.json else format_summary(s, header["joints"]))
         if args.svg:
             print(f"plot: {plot_svg(header, rec, args.svg)}")
+        if args.csv:
+            try:  # on stderr: stdout stays the summary (JSON with --json)
+                print(f"csv: {write_csv(header, rec, args.csv)} ({len(rec)} rows)", file=sys.stderr)
+            except TwistrateError as exc:
+                print(f"twistrate record: {exc}", file=sys.stderr)
+                return 2
         return 0
     if not args.out:
         parser.print_usage(sys.stderr)

@@ -47,9 +47,13 @@ def setup_logging(level: str) -> logging.handlers.QueueListener:
 
 
 def make_recorder(config: ServiceConfig, arm: Arm, path: str | None) -> Recorder | None:
-    """A Recorder for `path` (or the configured [recorder] path), or None."""
+    """A Recorder for `path` (or the configured [recorder] path), or None. Its file is created only once
+    the service's sockets are bound (Service.start), exclusively: a service that cannot start, or a
+    second one on the same config, touches no file."""
     path = path or config.recorder.path
-    return Recorder(path, arm, config.tick.rate_hz) if path else None
+    if not path:
+        return None
+    return Recorder(path, arm, config.tick.rate_hz, open_now=False, max_bytes=config.recorder.max_bytes)
 
 
 async def run_control(service: Service, endpoints_file: str | None = None) -> None:
@@ -75,7 +79,9 @@ async def run_control(service: Service, endpoints_file: str | None = None) -> No
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate serve", description=__doc__.splitlines()[0])
     parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
-    parser.add_argument("--record", metavar="PATH", help="record every tick to PATH (overrides [recorder])")
+    parser.add_argument("--record", metavar="PATH",
+                        help="record every tick to PATH (overrides [recorder] path; an existing file is "
+                             "refused; {time} in PATH becomes the UTC start time)")
     parser.add_argument("--endpoints-file", metavar="FILE",
                         help="once bound, write the endpoints (JSON) to FILE for drivers and clients; with a "
                              "configured port * it names the port the operating system picked")
@@ -108,6 +114,9 @@ def _serve(config: ServiceConfig, args: argparse.Namespace) -> int:
     except (TwistrateError, zmq.ZMQError, OSError) as exc:
         log.error("cannot start: %s", exc)
         return 1
+    if recorder is not None:
+        log.info("recording every tick to %s (stops at %d MB)", recorder.path.resolve(),
+                 recorder.max_bytes // 1_000_000)
     try:
         uvloop.run(run_control(service, args.endpoints_file))
     except (zmq.ZMQError, OSError) as exc:

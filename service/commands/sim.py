@@ -7,6 +7,8 @@ import argparse
 import signal
 import sys
 
+from twistrate.clients.link import Endpoints
+from twistrate.clients.probe import PROBE_TIMEOUT_S, probe
 from twistrate.service.config import load_config
 from twistrate.service.sim_driver import SimDriver
 from twistrate.service.wire.discovery import read_endpoints
@@ -28,6 +30,20 @@ def main(argv: list[str] | None = None) -> int:
     try:
         config = load_config(args.config)
         endpoints = read_endpoints(args.endpoints_file, ENDPOINTS_WAIT_S) if args.endpoints_file else None
+    except TwistrateError as exc:
+        print(f"twistrate sim: {exc}", file=sys.stderr)
+        return 2
+    ep = endpoints or config.endpoints.model_dump()
+    try:  # a driver with nobody to drive, or a second arm for a service simulating its own, is a mistake
+        status = probe(Endpoints(ep["intake"], ep["output"], ep["control"]), PROBE_TIMEOUT_S)
+    except TwistrateError as exc:
+        print(f"twistrate sim: {exc}", file=sys.stderr)
+        return 1
+    if status.get("simulated"):
+        print(f"twistrate sim: the service on {ep['control']} simulates its arm itself and refuses outside "
+              "joint state; run it with [simulation] enabled = false to drive it from here", file=sys.stderr)
+        return 1
+    try:
         driver = SimDriver(config, rate_hz=args.rate, endpoints=endpoints)
     except TwistrateError as exc:
         print(f"twistrate sim: {exc}", file=sys.stderr)

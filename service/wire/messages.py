@@ -28,12 +28,14 @@ class TwistMessage(NamedTuple):
 
 
 class JointsMessage(NamedTuple):
-    """A decoded joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None."""
+    """A decoded joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None;
+    source : the driver's name, or None when it gave none."""
 
     seq: int
     stamp_ns: int
     position: np.ndarray
     velocity: np.ndarray | None
+    source: str | None = None
 
 
 class CommandMessage(NamedTuple):

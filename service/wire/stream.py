@@ -119,13 +119,17 @@ def decode_twist(data: bytes) -> TwistMessage:
 # =================================================================================================
 
 _JOINTS_REQUIRED = frozenset((*HEADER_KEYS, "position"))
-_JOINTS_OPTIONAL = frozenset(("velocity",))
-_JOINTS_KEYS_WITH_VELOCITY = _JOINTS_REQUIRED | _JOINTS_OPTIONAL
+_JOINTS_OPTIONAL = frozenset(("velocity", "source"))
+_JOINTS_KEYS_WITH_VELOCITY = _JOINTS_REQUIRED | {"velocity"}
+_JOINTS_KEYS_WITH_SOURCE = _JOINTS_REQUIRED | {"source"}
+_JOINTS_KEYS_WITH_BOTH = _JOINTS_REQUIRED | _JOINTS_OPTIONAL
 
 
 def encode_joints(*, seq: int, position: Sequence[float] | np.ndarray,
-                  velocity: Sequence[float] | np.ndarray | None = None, stamp_ns: int | None = None) -> bytes:
-    """Encode a measured joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None."""
+                  velocity: Sequence[float] | np.ndarray | None = None, stamp_ns: int | None = None,
+                  source: str | None = None) -> bytes:
+    """Encode a measured joint state. position : (n,) rad or m; velocity : (n,) rad/s or m/s, or None;
+    source : the driver's name (1 to MAX_NAME_CHARS characters, constant while it runs), or None."""
     m = header(KIND_JOINTS, seq, stamp_ns)
     pos = enc_floats(position, "joints.position", None, MAX_JOINT_POSITION)
     if not 1 <= len(pos) <= MAX_JOINTS:
@@ -133,6 +137,8 @@ def encode_joints(*, seq: int, position: Sequence[float] | np.ndarray,
     m["position"] = pos
     if velocity is not None:
         m["velocity"] = enc_floats(velocity, "joints.velocity", len(pos), MAX_JOINT_VELOCITY)
+    if source is not None:
+        m["source"] = enc_str(source, "joints.source", MAX_NAME_CHARS)
     return pack(m, MAX_JOINTS_BYTES, KIND_JOINTS)
 
 
@@ -141,12 +147,14 @@ def decode_joints(data: bytes, n: int) -> JointsMessage:
     m = unpack(data, MAX_JOINTS_BYTES, KIND_JOINTS, True)
     check_header(m, KIND_JOINTS)
     keys = m.keys()
-    if keys != _JOINTS_REQUIRED and keys != _JOINTS_KEYS_WITH_VELOCITY:
+    if keys != _JOINTS_REQUIRED and keys != _JOINTS_KEYS_WITH_VELOCITY and keys != _JOINTS_KEYS_WITH_SOURCE \
+            and keys != _JOINTS_KEYS_WITH_BOTH:
         raise key_error(m, KIND_JOINTS, _JOINTS_REQUIRED, _JOINTS_OPTIONAL)
     seq, stamp = seq_stamp(m, KIND_JOINTS)
     position = dec_vec(m["position"], "joints.position", n, MAX_JOINT_POSITION)
     velocity = dec_vec(m["velocity"], "joints.velocity", n, MAX_JOINT_VELOCITY) if "velocity" in m else None
-    return JointsMessage(seq, stamp, position, velocity)
+    source = dec_str(m["source"], "joints.source", MAX_NAME_CHARS) if "source" in m else None
+    return JointsMessage(seq, stamp, position, velocity, source)
 
 
 # =================================================================================================

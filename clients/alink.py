@@ -41,7 +41,7 @@ from twistrate.clients.linkbase import (
     request_frames,
 )
 from twistrate.service import wire
-from twistrate.service.wire import CommandMessage, EventMessage, HealthMessage, OutputMessage
+from twistrate.service.wire import CommandMessage, EventMessage, HealthMessage, OutputMessage, StateMessage
 from twistrate.solver.errors import ControlError, TwistrateError, WireError
 
 #: Messages an iterator may fall behind by before the oldest are dropped.
@@ -309,8 +309,8 @@ class AsyncLink:
                         self.dropped += 1
                     queue.put_nowait(message)
 
-    async def messages(self, kinds: tuple[type, ...] = (CommandMessage, HealthMessage, EventMessage)
-                       ) -> AsyncIterator[OutputMessage]:
+    async def messages(self, kinds: tuple[type, ...] = (CommandMessage, HealthMessage, EventMessage,
+                                                        StateMessage)) -> AsyncIterator[OutputMessage]:
         """Every output message of `kinds` from now on, decoded and checked, oldest first (each
         iterator has its own queue; a slow one drops its oldest beyond QUEUE_DEPTH)."""
         queue: asyncio.Queue = asyncio.Queue(QUEUE_DEPTH)

@@ -6,6 +6,7 @@ from __future__ import annotations
 import asyncio
 import time
 
+import numpy as np
 import uvloop
 from teleop_streams import Operator, StartWhenEnabled
 
@@ -119,10 +120,15 @@ def test_line_text_states_frame_scale_twist_mode_and_reasons() -> None:
 def test_a_state_message_gives_the_session_the_tool_pose() -> None:
     profile = profile_from_dict({"motion": {"point": [0.0, 0.0, 0.1]}})
     run = TeleopRun(TeleopCore(profile), FakeLink())
-    R = [0.0, -1.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0, 1.0]
-    run._state({"kind": "state", "tick": 1, "tool": {"position": [0.4, 0.0, 0.3], "rotation": R}})
+    from twistrate.service import wire
+
+    R = np.array([[0.0, -1.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 1.0]])
+    data = wire.encode_state(seq=1, stamp_ns=None, tick=1, position=np.zeros(2), rate=np.zeros(2),
+                             tool_position=[0.4, 0.0, 0.3], tool_rotation=R, origins=np.zeros((4, 3)),
+                             ellipsoid_radii=[0.5, 0.2, 0.0], ellipsoid_axes=np.eye(3))
+    run._state(wire.decode_output([wire.TOPIC_STATE, data]))  # as the link hands it over (7.6)
     assert run.session.R_base_tool is not None and run.session.R_base_tool[1, 0] == 1.0
-    run._state({"kind": "state", "tool": {"rotation": [1.0]}})  # malformed: ignored, pose kept
+    run._state(object())  # not a state message: ignored, pose kept
     assert run.session.R_base_tool[1, 0] == 1.0
 
 

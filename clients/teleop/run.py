@@ -173,12 +173,11 @@ class TeleopRun:
                 self._state(message)
 
     def _state(self, message: Any) -> None:
-        """A `state` message (planned topic): tool = {position: [3] m, rotation: [9] row-major} of
-        T_base_tool, base frame; an object with a `tool` attribute or a map with a "tool" key."""
-        tool = message.get("tool") if isinstance(message, dict) else getattr(message, "tool", None)
-        rotation = tool.get("rotation") if isinstance(tool, dict) else getattr(tool, "rotation", None)
-        if rotation is not None and len(rotation) == 9:
-            self.session.tool_pose(np.asarray(rotation, dtype=float).reshape(3, 3))
+        """A `state` message (docs/protocol.md 7.6): the tool's orientation R_base_tool (3, 3) of the tick
+        it describes, for a reference point given in the base frame."""
+        rotation = getattr(message, "tool_rotation", None)
+        if rotation is not None and np.shape(rotation) == (3, 3):
+            self.session.tool_pose(np.asarray(rotation, dtype=float))
 
     async def _status(self) -> None:
         while not self._stop.is_set():

@@ -122,9 +122,10 @@ class FakeArm:
 
     def messages(self, t: float, wall: float) -> list[tuple[str, dict[str, Any]]]:
         """The (kind, message) pairs one health period at t s would bring (wall : wall clock, s)."""
-        self._wall = wall
         if self.started is None:
             self.started = t
+            self._wall0 = wall
+        self._wall = self._wall0 + (t - self.started)  # stamps on the same clock as the ticks
         tick = int((t - self.started) * self.tick_hz)
         out: list[tuple[str, dict[str, Any]]] = []
         if self.mode == "disabled" and t - self.started > 0.2:

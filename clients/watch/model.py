@@ -9,7 +9,8 @@ caller (no clock here), and keeps:
 - mode and health state, and the list of their changes;
 - the latest joint positions and rates (from `state`, else from `command`), with the joint limits
   when the arm's description (the control op `arm`) was handed in;
-- refused input counted by reason (health.rejected), overruns, the tick rate measured from the ticks;
+- refused input counted by reason (health.rejected), overruns, the tick rate measured from the ticks
+  and stamps of the health messages over the last TICK_RATE_BASE_S;
 - the lease holder (the control op `status`'s `holder` when handed in; otherwise followed from the
   lease events);
 - the events as a list (newest last), with the model's own `gone` and `back` entries;
@@ -36,6 +37,8 @@ WINDOW_S = 30.0
 MAX_EVENTS = 60
 #: state changes kept per arm
 MAX_CHANGES = 40
+#: the tick rate is measured over about this many seconds of health stamps
+TICK_RATE_BASE_S = 1.0
 #: a tick count this far below the highest seen means a new service process (streams interleave a
 #: little: an event may carry a tick a few behind the latest command)
 RESTART_SLACK_TICKS = 50
@@ -123,7 +126,7 @@ class ArmView:
         self.restarts = 0
         self.last_rx: float | None = None
         self.received = {"health": 0, "command": 0, "event": 0, "state": 0}
-        self._last_health_tick: tuple[int, int] | None = None  # (tick, stamp_ns)
+        self._tick_base: deque[tuple[int, int]] = deque()  # (tick, stamp_ns) of recent health messages
 
     # -- descriptions handed in (control ops answer these; the wire streams do not carry them) ---------
 
@@ -186,11 +189,13 @@ class ArmView:
         self.rejected = {str(k): int(v) for k, v in (_get(msg, "rejected") or {}).items()}
         self.overruns = int(_get(msg, "overruns", 0))
         stamp = int(_get(msg, "stamp_ns", 0))
-        if self._last_health_tick is not None:
-            t0, s0 = self._last_health_tick
-            if tick > t0 and stamp > s0:
-                self.tick_hz = (tick - t0) / ((stamp - s0) * 1e-9)
-        self._last_health_tick = (tick, stamp)
+        base = self._tick_base
+        base.append((tick, stamp))
+        while len(base) > 2 and base[-1][1] - base[1][1] >= TICK_RATE_BASE_S * 1e9:
+            base.popleft()
+        t0, s0 = base[0]
+        if tick > t0 and stamp > s0:
+            self.tick_hz = (tick - t0) / ((stamp - s0) * 1e-9)
         self._set_mode(str(_get(msg, "mode")), now)
         self._set_health(health_name(str(_get(msg, "state"))), now)
         row = [self.index, now] + [self.latest[k] for k in SERIES]
@@ -269,7 +274,7 @@ class ArmView:
         if tick is not None:
             if tick + RESTART_SLACK_TICKS < self.tick:  # counts from 0 again: a new service process
                 self.restarts += 1
-                self._last_health_tick = None
+                self._tick_base.clear()
                 self._add_event(now, "restarted", f"tick {self.tick} -> {tick}", tick)
                 self.tick = tick
             else:

@@ -44,7 +44,7 @@ MODE_STYLE = {
     "shutdown": "bold magenta",
 }
 CAUTIONS = (
-    "twistrate watch - read-only: nothing here can move an arm.",
+    "twistrate watching the arms - read-only: nothing here can move an arm.",
     "Cautions: not a safety-rated function; a hardware emergency stop and an enabling device are",
     "required; do a risk assessment per the applicable standards; try in simulation and at reduced",
     "speed first; defer to local codes and licensed practice.",

@@ -87,6 +87,7 @@ def test_monitor_in_tmux_at_80_columns(tmp_path):
                 "twistrate watch - 2 arm(s), read-only"
             )  # redrawn in place, at the top
             assert out.count("╭─") == 2 and "lease fake-operator" in out
+            assert "Not a safety-rated function" in out  # the cautions on every screen
         assert screens[0] != screens[1]  # live: the values moved between the two captures
     finally:
         subprocess.run(["tmux", "kill-session", "-t", session], check=False)

@@ -43,6 +43,12 @@ MODE_STYLE = {
     "fault": "bold red reverse",
     "shutdown": "bold magenta",
 }
+#: the cautions on every screen (the monitor may run on the terminal's alternate screen)
+SCREEN_CAUTIONS = (
+    "Not a safety-rated function. A hardware emergency stop and an enabling device are",
+    "required; risk assessment per the applicable standards; simulation and reduced speed",
+    "first; defer to local codes and licensed practice.",
+)
 CAUTIONS = (
     "twistrate watching the arms - read-only: nothing here can move an arm.",
     "Cautions: not a safety-rated function; a hardware emergency stop and an enabling device are",
@@ -228,11 +234,15 @@ def render_arm(view: ArmView, now: float) -> Panel:
 
 
 def render_fleet(fleet: Fleet, now: float) -> Group:
-    """Every arm's panel, in the order they were added, under a one-line header."""
-    head = Text(f"twistrate watch - {len(fleet.arms)} arm(s), read-only; Ctrl-C quits", style="dim")
+    """Every arm's panel, in the order they were added, under the header and the cautions."""
+    head = Text(
+        f"twistrate watch - {len(fleet.arms)} arm(s), read-only: nothing here moves an arm. Ctrl-C quits.",
+        style="bold",
+    )
+    cautions = Text("\n".join(SCREEN_CAUTIONS), style="dim")
     if not fleet.arms:
-        return Group(head, Text("waiting for the first message ..."))
-    return Group(head, *(render_arm(v, now) for v in fleet.arms.values()))
+        return Group(head, cautions, Text("waiting for the first message ..."))
+    return Group(head, cautions, *(render_arm(v, now) for v in fleet.arms.values()))
 
 
 def render_text(fleet: Fleet, now: float, width: int = WIDTH) -> str:

@@ -43,7 +43,7 @@ def test_feed_follows_a_service_through_a_singularity_a_stop_and_a_restart():
         wait_for(lambda: view.arm == "reach7" and len(view.joints) == 7 and view.health == "clear")
         assert view.mode == "disabled" and view.holder is None
         link = run.link()
-        link.claim("wire-test")
+        link.claim("wire-test", lease_ms=60_000)
         link.enable()
         drive_until(link, STRETCH, lambda: view.health == "pinched")
         wait_for(lambda: view.holder == "wire-test")

@@ -150,7 +150,8 @@ class ArmView:
         self.thresholds = {"narrow_below_m": float(narrow_below_m), "pinched_below_m": float(pinched_below_m)}
 
     def set_status(self, status: Mapping[str, Any], now: float) -> None:
-        """The control op `status`'s result (holder, tick_hz, arm, mode, health)."""
+        """The control op `status`'s result (holder, tick_hz, arm, mode, health; position when neither
+        `state` nor `command` messages come)."""
         self._touch(now, None)
         self.holder = status.get("holder")
         self._holder_from_status = True
@@ -162,6 +163,12 @@ class ArmView:
             self._set_mode(str(status["mode"]), now)
         if status.get("health"):
             self._set_health(health_name(str(status["health"])), now)
+        if (
+            status.get("position") is not None
+            and self.received["state"] == 0
+            and self.received["command"] == 0
+        ):
+            self.position = _floats(status["position"])  # slow (the status rate), but better than nothing
 
     # -- the streams ------------------------------------------------------------------------------------
 

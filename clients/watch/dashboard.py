@@ -129,9 +129,15 @@ class Dashboard:
 
     async def _broadcast(self) -> None:
         period = 1.0 / self.frame_hz
+        next_t = time.monotonic()
         while not self._stop.is_set():
+            next_t += period  # an absolute schedule: the time spent sending does not slow the frame rate
+            delay = next_t - time.monotonic()
+            if delay < -period:  # fell behind (a busy machine): skip, do not burst
+                next_t = time.monotonic()
+                delay = 0.0
             with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._stop.wait(), period)
+                await asyncio.wait_for(self._stop.wait(), max(delay, 0.0))
             if self._stop.is_set():
                 break
             now = time.monotonic()
@@ -193,27 +199,64 @@ async def serve(dash: Dashboard, host: str, port: int, seconds: float | None = N
         await dash.stop()
 
 
+def parse_connect(text: str) -> tuple[str, Any]:
+    """NAME=OUTPUT,CONTROL (ZeroMQ endpoints of one service) -> (name, Endpoints)."""
+    from twistrate.clients.link import Endpoints
+    from twistrate.solver.errors import InputError, field_error
+
+    name, _, rest = text.partition("=")
+    parts = rest.split(",")
+    if not name or len(parts) != 2 or not all(p.startswith(("tcp://", "ipc://")) for p in parts):
+        raise field_error(
+            InputError,
+            "--connect",
+            text,
+            "NAME=OUTPUT,CONTROL, e.g. cell-a=tcp://127.0.0.1:47311,tcp://127.0.0.1:47312",
+        )
+    return name, Endpoints(output=parts[0], control=parts[1])
+
+
 def main(argv: list[str] | None = None) -> int:
-    """The dashboard on invented arms (no service): python -m twistrate.clients.watch.dashboard --fake a,b"""
+    """The dashboard on invented arms or on services given by endpoints:
+    python -m twistrate.clients.watch.dashboard --fake a,b | --connect NAME=OUTPUT,CONTROL ..."""
     import argparse
 
     import uvloop
 
     from twistrate.clients.watch.feed import FakeFeed
     from twistrate.clients.watch.terminal import CAUTIONS
+    from twistrate.clients.watch.wire_feed import WireFeed
+    from twistrate.solver.errors import TwistrateError
 
     parser = argparse.ArgumentParser(
         prog="python -m twistrate.clients.watch.dashboard",
-        description="the web dashboard on invented arms (no service)",
+        description="the web dashboard, on invented arms or on running services",
     )
-    parser.add_argument("--fake", default="left,right", help="comma-separated names of invented arms")
+    parser.add_argument("--fake", default="", help="comma-separated names of invented arms")
+    parser.add_argument(
+        "--connect",
+        action="append",
+        default=[],
+        metavar="NAME=OUTPUT,CONTROL",
+        help="a service's output and control endpoints (repeat for more arms)",
+    )
     parser.add_argument("--host", default="127.0.0.1", help="address to serve on (default loopback)")
     parser.add_argument("--port", type=int, default=47380, help="port (0: any free one)")
     parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
     args = parser.parse_args(argv)
     print("\n".join(CAUTIONS), flush=True)
-    fleet = Fleet()
-    dash = Dashboard(fleet, [FakeFeed([n for n in args.fake.split(",") if n])])
+    feeds: list[Any] = []
+    try:
+        for text in args.connect:
+            name, endpoints = parse_connect(text)
+            feeds.append(WireFeed(name, endpoints))
+    except TwistrateError as exc:
+        print(f"dashboard: {exc}", flush=True)
+        return 2
+    names = [n for n in args.fake.split(",") if n]
+    if names or not feeds:
+        feeds.append(FakeFeed(names or ["left", "right"]))
+    dash = Dashboard(Fleet(), feeds)
     uvloop.run(serve(dash, args.host, args.port, args.seconds))
     return 0
 

@@ -113,7 +113,9 @@ export class ArmView3D {
       ctx.strokeStyle = "#ef5a6f"; ctx.lineWidth = 3 * dpr; ctx.setLineDash([6 * dpr, 4 * dpr]);
       this.line(ctx, a, b); ctx.setLineDash([]);
       for (const end of [a, b]) { const p = this.project(end); ctx.fillStyle = "#ef5a6f"; ctx.beginPath(); ctx.arc(p[0], p[1], 4 * dpr, 0, 2 * Math.PI); ctx.fill(); }
-      const pb = this.project(b); ctx.fillText(`weakest ${fmt(e.radii[w])} m/s per rad/s`, pb[0] + 5 * dpr, pb[1]);
+      const pb = this.project(b), label = `weakest ${fmt(e.radii[w])} m/s per rad/s`;
+      const tw = ctx.measureText(label).width;
+      ctx.fillText(label, Math.max(4 * dpr, Math.min(pb[0] + 5 * dpr, W - tw - 4 * dpr)), Math.max(14 * dpr, Math.min(pb[1], H - 6 * dpr)));
     }
   }
 }

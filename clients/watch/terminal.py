@@ -45,9 +45,9 @@ MODE_STYLE = {
 }
 #: the cautions on every screen (the monitor may run on the terminal's alternate screen)
 SCREEN_CAUTIONS = (
-    "Not a safety-rated function. A hardware emergency stop and an enabling device are",
-    "required; risk assessment per the applicable standards; simulation and reduced speed",
-    "first; defer to local codes and licensed practice.",
+    "Not a safety-rated function. A hardware emergency stop and an enabling device",
+    "are required; risk assessment per the applicable standards; simulation and",
+    "reduced speed first; defer to local codes and licensed practice.",
 )
 CAUTIONS = (
     "twistrate watching the arms - read-only: nothing here can move an arm.",

@@ -25,6 +25,7 @@ import os
 import socket
 import subprocess
 import sys
+import threading
 import time
 from typing import Any
 
@@ -85,81 +86,143 @@ async def _page(url: str, stop: asyncio.Event, out: dict[str, Any]) -> None:
     out.setdefault("pages", []).append({"frames": frames, "sizes": sizes, "ages": ages, "rows": rows})
 
 
-async def _measure(url: str, pages: int, seconds: float, pid: int) -> dict[str, Any]:
-    stop = asyncio.Event()
-    out: dict[str, Any] = {"measuring": False}
-    tasks = [asyncio.create_task(_page(url, stop, out)) for _ in range(pages)]
-    await asyncio.sleep(WARMUP_S)
-    out["measuring"] = True
-    c0, own0, t0 = _cpu_s(pid), time.process_time(), time.monotonic()
-    await asyncio.sleep(seconds)
-    c1, own1, t1 = _cpu_s(pid), time.process_time(), time.monotonic()
-    out["measuring"] = False
-    stop.set()
-    await asyncio.gather(*tasks, return_exceptions=True)
-    window = t1 - t0
-    out.update(window_s=window, dashboard_cpu=(c1 - c0) / window, own_cpu=(own1 - own0) / window)
-    return out
+class DashboardLoad:
+    """The dashboard's load on the machine, as a context: fake arms publishing, the dashboard process
+    subscribed to them (and to `services`, real ones given as (name, output, control)), and pages.
+
+    measure_start() / measure_stop() bracket the measured window; figures() gives the results.
+    """
+
+    def __init__(
+        self,
+        arms: int = DEFAULT_ARMS,
+        health_hz: float = DEFAULT_HEALTH_HZ,
+        pages: int = DEFAULT_PAGES,
+        services: tuple[tuple[str, str, str], ...] = (),
+    ) -> None:
+        self.arms, self.health_hz, self.pages, self.services = arms, health_hz, pages, services
+        self.fakes: list[Any] = []
+        self.proc: subprocess.Popen | None = None
+        self.out: dict[str, Any] = {"measuring": False}
+        self._thread: threading.Thread | None = None
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._stop: asyncio.Event | None = None
+        self._t: list[tuple[float, float, float]] = []
+
+    def __enter__(self) -> DashboardLoad:
+        from twistrate.clients.watch.fake_wire import FakeService
+
+        n_fake = max(0, self.arms - len(self.services))
+        ports = _free_ports(2 * n_fake + 1)
+        connect = []
+        for name, out, ctl in self.services:
+            connect += ["--connect", f"{name}={out},{ctl}"]
+        for i in range(n_fake):
+            out, ctl = f"tcp://127.0.0.1:{ports[2 * i]}", f"tcp://127.0.0.1:{ports[2 * i + 1]}"
+            self.fakes.append(FakeService(f"arm{i + 1}", out, ctl, self.health_hz, phase=1.3 * i).start())
+            connect += ["--connect", f"arm{i + 1}={out},{ctl}"]
+        port = ports[-1]
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "twistrate.clients.watch.dashboard", *connect, "--port", str(port)],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
+        )
+        try:
+            end = time.monotonic() + 20.0
+            while True:
+                try:
+                    socket.create_connection(("127.0.0.1", port), 0.2).close()
+                    break
+                except OSError:
+                    if self.proc.poll() is not None or time.monotonic() > end:
+                        raise RuntimeError("the dashboard did not start") from None
+                    time.sleep(0.1)
+            ready = threading.Event()
+            self._thread = threading.Thread(
+                target=self._pages,
+                args=(f"http://127.0.0.1:{port}/ws", ready),
+                name="bench-pages",
+                daemon=True,
+            )
+            self._thread.start()
+            ready.wait(10.0)
+        except BaseException:
+            self.__exit__(None, None, None)
+            raise
+        return self
+
+    def _pages(self, url: str, ready: threading.Event) -> None:
+        import uvloop
+
+        async def main() -> None:
+            self._loop = asyncio.get_running_loop()
+            self._stop = asyncio.Event()
+            tasks = [asyncio.create_task(_page(url, self._stop, self.out)) for _ in range(self.pages)]
+            ready.set()
+            await asyncio.gather(*tasks, return_exceptions=True)
+
+        uvloop.run(main())
+
+    def measure_start(self) -> None:
+        assert self.proc is not None
+        self.out["measuring"] = True
+        self._t.append((_cpu_s(self.proc.pid), time.process_time(), time.monotonic()))
+
+    def measure_stop(self) -> None:
+        assert self.proc is not None
+        self._t.append((_cpu_s(self.proc.pid), time.process_time(), time.monotonic()))
+        self.out["measuring"] = False
+
+    def __exit__(self, *exc: object) -> None:
+        if self._loop is not None and self._stop is not None:
+            self._loop.call_soon_threadsafe(self._stop.set)
+        if self._thread is not None:
+            self._thread.join(10.0)
+        if self.proc is not None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(10.0)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5.0)
+        for f in self.fakes:
+            f.stop()
+
+    def figures(self) -> dict[str, Any]:
+        """The measured window's figures (after exit)."""
+        (c0, own0, t0), (c1, own1, t1) = self._t[0], self._t[-1]
+        window = t1 - t0
+        pages = self.out.get("pages", [])
+        sizes = np.concatenate([p["sizes"] for p in pages] + [np.zeros(0)])
+        ages = np.concatenate([p["ages"] for p in pages] + [np.zeros(0)])
+        rows = [v / window for p in pages[:1] for v in p["rows"].values()]
+        return {
+            "arms": self.arms,
+            "health_hz": self.health_hz,
+            "pages": self.pages,
+            "window_s": round(window, 2),
+            "dashboard_cpu_fraction": round((c1 - c0) / window, 4),
+            "frames_per_s_per_page": [round(p["frames"] / window, 2) for p in pages],
+            "frame_bytes_median": float(np.median(sizes)) if sizes.size else None,
+            "data_age_ms_median": float(np.median(ages)) if ages.size else None,
+            "data_age_ms_p99": float(np.percentile(ages, 99)) if ages.size else None,
+            "health_per_s_per_arm": [round(r, 1) for r in rows],
+            "published_health_per_s_per_arm": [
+                round(f.published_health / f.elapsed(), 1) for f in self.fakes
+            ],
+            "bench_process_cpu_fraction": round((own1 - own0) / window, 4),
+            "load_average": list(os.getloadavg()),
+        }
 
 
 def run(arms: int, health_hz: float, pages: int, seconds: float) -> dict[str, Any]:
-    """Start the publishers and the dashboard, measure, stop everything; the figures."""
-    import uvloop
-
-    from twistrate.clients.watch.fake_wire import FakeService
-
-    ports = _free_ports(2 * arms + 1)
-    services = []
-    connect = []
-    for i in range(arms):
-        out, ctl = f"tcp://127.0.0.1:{ports[2 * i]}", f"tcp://127.0.0.1:{ports[2 * i + 1]}"
-        services.append(FakeService(f"arm{i + 1}", out, ctl, health_hz, phase=1.3 * i).start())
-        connect += ["--connect", f"arm{i + 1}={out},{ctl}"]
-    port = ports[-1]
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "twistrate.clients.watch.dashboard", *connect, "--port", str(port)],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-    )
-    try:
-        end = time.monotonic() + 20.0
-        while time.monotonic() < end:
-            try:
-                socket.create_connection(("127.0.0.1", port), 0.2).close()
-                break
-            except OSError:
-                if proc.poll() is not None:
-                    raise RuntimeError(f"dashboard exited: {proc.stderr.read().decode()[-2000:]}") from None
-                time.sleep(0.1)
-        res = uvloop.run(_measure(f"http://127.0.0.1:{port}/ws", pages, seconds, proc.pid))
-    finally:
-        proc.terminate()
-        try:
-            proc.wait(10.0)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(5.0)
-        for s in services:
-            s.stop()
-    window = res["window_s"]
-    sizes = np.concatenate([p["sizes"] for p in res["pages"]] + [np.zeros(0)])
-    ages = np.concatenate([p["ages"] for p in res["pages"]] + [np.zeros(0)])
-    rows = [v / window for p in res["pages"][:1] for v in p["rows"].values()]
-    return {
-        "arms": arms,
-        "health_hz": health_hz,
-        "pages": pages,
-        "window_s": round(window, 2),
-        "dashboard_cpu_fraction": round(res["dashboard_cpu"], 4),
-        "frames_per_s_per_page": [round(p["frames"] / window, 2) for p in res["pages"]],
-        "frame_bytes_median": float(np.median(sizes)) if sizes.size else None,
-        "data_age_ms_median": float(np.median(ages)) if ages.size else None,
-        "data_age_ms_p99": float(np.percentile(ages, 99)) if ages.size else None,
-        "health_per_s_per_arm": [round(r, 1) for r in rows],
-        "published_health_per_s_per_arm": [round(s.published_health / s.elapsed(), 1) for s in services],
-        "bench_process_cpu_fraction": round(res["own_cpu"], 4),
-        "load_average": list(os.getloadavg()),
-    }
+    """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S; the figures."""
+    with DashboardLoad(arms, health_hz, pages) as load:
+        time.sleep(WARMUP_S)
+        load.measure_start()
+        time.sleep(seconds)
+        load.measure_stop()
+    return load.figures()
 
 
 def main(argv: list[str] | None = None) -> int:

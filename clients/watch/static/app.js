@@ -21,7 +21,7 @@ function card(name) {
   el.querySelector(".arm-name").textContent = name;
   document.getElementById("empty")?.remove();
   document.getElementById("arms").appendChild(el);
-  c = { el, hist: new Map(), view3d: null, last: null };
+  c = { el, hist: new Map(), view3d: null, pending: null };
   c.view3d = new ArmView3D(el.querySelector(".c3d"), (s) => text(el, "ell-scale", s));
   cards.set(name, c);
   return c;
@@ -139,9 +139,20 @@ function apply(a, full) {
   text(el, "refused", rej.length ? `${a.rejected_total} in all: ` + rej.map(([k, v]) => `${k} ${v}`).join(", ") : "none");
   joints(el, a);
   events(el, a);
-  charts(el, c, a);
   c.view3d.set(a.origins, a.ellipsoid, a.tool, a.health);
-  c.view3d.draw();
+  c.pending = a;  // the canvases are redrawn once per displayed frame, not once per message
+  if (!drawScheduled) { drawScheduled = true; requestAnimationFrame(drawAll); }
+}
+
+let drawScheduled = false;
+function drawAll() {
+  drawScheduled = false;
+  for (const c of cards.values()) {
+    if (!c.pending) continue;
+    charts(c.el, c, c.pending);
+    c.view3d.draw();
+    c.pending = null;
+  }
 }
 
 function connect(delay) {

@@ -2,10 +2,10 @@
 // Zones (y ranges) are shaded with a stripe pattern of their own angle, so they read without colour.
 
 function fit(canvas) {
+  // the drawing buffer follows the canvas's size on the page (CSS pixels times the device ratio)
   const dpr = window.devicePixelRatio || 1;
-  if (!canvas.dataset.aspect) canvas.dataset.aspect = String(canvas.height / canvas.width);
   const w = Math.max(50, Math.round(canvas.clientWidth * dpr));
-  const h = Math.round(w * Number(canvas.dataset.aspect));
+  const h = Math.max(30, Math.round(canvas.clientHeight * dpr));
   if (canvas.width !== w || canvas.height !== h) { canvas.width = w; canvas.height = h; }
   return dpr;
 }
@@ -68,16 +68,17 @@ export function drawChart(canvas, opts) {
   ctx.textAlign = "left"; ctx.textBaseline = "bottom"; ctx.fillStyle = "#e6edf3";
   ctx.fillText(opts.title + (opts.unit ? ` (${opts.unit})` : "") + (opts.log ? ", log scale" : ""), L, T - 2 * f);
   // thresholds
-  for (const t of opts.thresholds || []) {
-    if (t.y < lo || t.y > hi) continue;
+  (opts.thresholds || []).forEach((t, i) => {
+    if (t.y < lo || t.y > hi) return;
     ctx.setLineDash(t.dash.map((d) => d * f)); ctx.strokeStyle = "#e6edf3"; ctx.lineWidth = 1.2 * dpr;
     ctx.beginPath(); ctx.moveTo(L, Y(t.y)); ctx.lineTo(L + pw, Y(t.y)); ctx.stroke();
-    ctx.setLineDash([]); ctx.fillStyle = "#e6edf3"; ctx.textAlign = "right"; ctx.textBaseline = "bottom";
-    ctx.fillText(`${t.label} ${fmt(t.y)}`, L + pw - 3 * f, Y(t.y) - 1);
-  }
+    ctx.setLineDash([]); ctx.fillStyle = "#e6edf3"; ctx.textBaseline = "bottom";
+    ctx.textAlign = i % 2 ? "left" : "right";  // alternate sides: close thresholds keep readable labels
+    ctx.fillText(`${t.label} ${fmt(t.y)}`, i % 2 ? L + 3 * f : L + pw - 3 * f, Y(t.y) - 1);
+  });
   // series
-  let lx = L + pw;
-  ctx.textAlign = "right"; ctx.textBaseline = "bottom";
+  let lx = L + pw - 3 * f;
+  ctx.textAlign = "right"; ctx.textBaseline = "top";
   for (const s of opts.series.slice().reverse()) {
     ctx.strokeStyle = s.color; ctx.lineWidth = 1.8 * dpr; ctx.setLineDash((s.dash || []).map((d) => d * f));
     ctx.beginPath();
@@ -89,7 +90,7 @@ export function drawChart(canvas, opts) {
     ctx.stroke(); ctx.setLineDash([]);
     ctx.fillStyle = s.color;
     const w = ctx.measureText(s.label).width;
-    ctx.fillText(s.label, lx, T - 2 * f);
+    ctx.fillText(s.label, lx, T + 2 * f);  // the key inside the plot, top right
     lx -= w + 12 * f;
   }
 }

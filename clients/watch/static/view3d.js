@@ -50,7 +50,8 @@ export class ArmView3D {
   line(ctx, a, b) { const p = this.project(a), q = this.project(b); ctx.beginPath(); ctx.moveTo(p[0], p[1]); ctx.lineTo(q[0], q[1]); ctx.stroke(); }
 
   draw() {
-    const canvas = this.canvas, dpr = fit(canvas), ctx = canvas.getContext("2d");
+    const canvas = this.canvas, ctx = canvas.getContext("2d");
+    const dpr = fit(canvas) * Math.max(1, canvas.clientWidth / 360);  // lines and type grow with the view
     const W = canvas.width, H = canvas.height;
     ctx.clearRect(0, 0, W, H);
     canvas.dataset.yaw = this.yaw.toFixed(3); canvas.dataset.pitch = this.pitch.toFixed(3);

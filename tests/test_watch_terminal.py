@@ -47,7 +47,7 @@ def test_screen_fits_80_columns_with_a_panel_per_arm():
     assert max(len(line) for line in lines) <= WIDTH
     for name in ("left", "right", "bench"):
         assert sum(f" {name} (fake-{name})" in line for line in lines) == 1
-    assert text.count("mode RUNNING") == 3 and "lease fake-operator" in text
+    assert text.count("mode RUNNING") == 3 and "lease held by fake-operator" in text
     assert text.count("turn  [") == 3  # joint bars, one row per joint
     # the state is told in words and a mark: at 6 s of a 12 s cycle the arms are at different points
     marks = {"[ok] CLEAR", "[!] NARROW", "[!!] PINCHED"}
@@ -86,7 +86,7 @@ def test_monitor_in_tmux_at_80_columns(tmp_path):
             assert lines[0].startswith(
                 "twistrate watch - 2 arm(s), read-only"
             )  # redrawn in place, at the top
-            assert out.count("╭─") == 2 and "lease fake-operator" in out
+            assert out.count("╭─") == 2 and "lease held by fake-operator" in out
             assert "Not a safety-rated function" in out  # the cautions on every screen
         assert screens[0] != screens[1]  # live: the values moved between the two captures
     finally:

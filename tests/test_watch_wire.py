@@ -47,6 +47,8 @@ def test_feed_follows_a_service_through_a_singularity_a_stop_and_a_restart():
         link.enable()
         drive_until(link, STRETCH, lambda: view.health == "pinched")
         wait_for(lambda: view.holder == "wire-test")
+        wait_for(lambda: view.timing.get("p99") is not None)  # the counters op: tick lateness, s
+        assert 0.0 <= view.timing["median"] <= view.timing["p99"] <= view.timing["max"]
         changes = [(c["from"], c["to"]) for c in view.changes if c["what"] == "health"]
         assert ("clear", "narrow") in changes and ("narrow", "pinched") in changes
         assert view.latest["sigma_min"] < 0.015 and view.mode == "running"

@@ -2,9 +2,9 @@
 
 A FakeService binds an output PUB socket and a control ROUTER socket on loopback, publishes health,
 state and event messages of a FakeArm (clients/watch/fake.py) at the health rate, encoded by the
-protocol's own codec, and answers the read-only control ops `status` and `arm`. It has no tick and no
-intake: it stands in for the stream side of a service so that many arms cost the machine little, and
-the dashboard's own cost can be measured.
+protocol's own codec, and answers the read-only control ops `status`, `counters` and `arm`. It has
+no tick and no intake: it stands in for the stream side of a service so that many arms cost the
+machine little, and the dashboard's own cost can be measured.
 """
 
 from __future__ import annotations
@@ -113,6 +113,18 @@ class FakeService:
                 continue
             if req.op == "status":
                 reply = wire.encode_reply(seq=req.seq, op=req.op, result=self._status())
+            elif req.op == "counters":
+                reply = wire.encode_reply(
+                    seq=req.seq,
+                    op=req.op,
+                    result={
+                        "counters": {
+                            "lateness_median_ns": 20_000,
+                            "lateness_p99_ns": 60_000,
+                            "lateness_max_ns": 200_000,
+                        }
+                    },
+                )
             elif req.op == "arm":
                 reply = wire.encode_reply(seq=req.seq, op=req.op, result=self.arm.description())
             else:

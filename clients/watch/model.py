@@ -9,8 +9,9 @@ caller (no clock here), and keeps:
 - mode and health state, and the list of their changes;
 - the latest joint positions and rates (from `state`, else from `command`), with the joint limits
   when the arm's description (the control op `arm`) was handed in;
-- refused input counted by reason (health.rejected), overruns, the tick rate measured from the ticks
-  and stamps of the health messages over the last TICK_RATE_BASE_S;
+- refused input counted by reason (health.rejected), overruns, tick lateness (the `counters` op),
+  the tick rate measured from the ticks and stamps of the health messages over the last
+  TICK_RATE_BASE_S;
 - the lease holder (the control op `status`'s `holder` when handed in; otherwise followed from the
   lease events);
 - the events as a list (newest last), with the model's own `gone` and `back` entries;
@@ -118,6 +119,7 @@ class ArmView:
         self.overruns = 0
         self.tick = -1
         self.tick_hz: float | None = None
+        self.timing: dict[str, float | None] = {}  # tick lateness median, p99, max (s) from `counters`
         self.holder: str | None = None
         self._holder_from_status = False
         self.connected = False  # anything received yet
@@ -169,6 +171,13 @@ class ArmView:
             and self.received["command"] == 0
         ):
             self.position = _floats(status["position"])  # slow (the status rate), but better than nothing
+
+    def set_counters(self, counters: Mapping[str, Any]) -> None:
+        """The control op `counters`'s result: the tick lateness figures (ns) are kept, in s."""
+        self.timing = {
+            k: (float(counters[f"lateness_{k}_ns"]) * 1e-9 if f"lateness_{k}_ns" in counters else None)
+            for k in ("median", "p99", "max")
+        }
 
     # -- the streams ------------------------------------------------------------------------------------
 

@@ -184,8 +184,7 @@ def render_arm(view: ArmView, now: float) -> Panel:
     head.append(mode.upper(), style=MODE_STYLE.get(mode, "bold"))
     head.append(f" ({_since(view, 'mode', now)})   health ")
     head.append(f"[{mark}] {health.upper()}", style=hstyle)
-    head.append(f" ({_since(view, 'health', now)})   lease ")
-    head.append(view.holder or "nobody", style="bold" if view.holder else "dim")
+    head.append(f" ({_since(view, 'health', now)})")
     lines.append(head)
     lt = view.latest
     th = view.thresholds or {}
@@ -204,13 +203,16 @@ def render_arm(view: ArmView, now: float) -> Panel:
     refused = view.rejected
     total = sum(refused.values())
     by = ", ".join(f"{k} {v}" for k, v in sorted(refused.items(), key=lambda kv: -kv[1]) if v)
+    late = view.timing.get("p99")
+    late_us = _fmt(None if late is None else late * 1e6, ".0f", " us")
     lines.append(
         Text(
             f"scale {_fmt(lt.get('scale'), '.2f')}  damping {_fmt(lt.get('damping'), '.3f', ' m')}  "
-            f"tick {_fmt(view.tick_hz, '.0f', ' Hz')}  overruns {view.overruns}  refused {total}"
-            + (f": {by}" if by else "")
+            f"tick {_fmt(view.tick_hz, '.0f', ' Hz')}  late p99 {late_us}  overruns {view.overruns}"
         )
     )
+    holder = view.holder or "nobody"
+    lines.append(Text(f"lease held by {holder}   refused {total}" + (f": {by}" if by else "")))
     lines.append(_joints_table(view))
     events = list(view.events)[-EVENTS_SHOWN:]
     for e in reversed(events):

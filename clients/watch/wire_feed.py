@@ -2,11 +2,11 @@
 
 A thread per service holds a blocking client Link (the client library) subscribed to the service's
 health, event and state topics (and command, when asked), and hands what it received, in batches, to
-the asyncio loop that owns the Fleet (the model is only touched on that loop). Every STATUS_EVERY_S it
-asks the `status` op (mode, health, lease holder, tick rate) and, after each (re)connection, the `arm`
-op (joint names and limits). A service that stops simply stops sending: the model shows it gone, and
-it comes back by itself when the service does (ZeroMQ reconnects). Nothing here claims a lease or
-sends a twist: the watcher cannot move an arm.
+the asyncio loop that owns the Fleet (the model is only touched on that loop). Every STATUS_EVERY_S
+it asks the `status` op (mode, health, lease holder, tick rate) and `counters` (tick lateness) and,
+after each (re)connection, the `arm` op (joint names and limits). A service that stops simply stops
+sending: the model shows it gone, and it comes back by itself when the service does (ZeroMQ
+reconnects). Nothing here claims a lease or sends a twist: the watcher cannot move an arm.
 """
 
 from __future__ import annotations
@@ -102,6 +102,8 @@ class WireFeed:
                     with contextlib.suppress(LinkTimeoutError, TwistrateError):
                         status = link.request("status")
                         loop.call_soon_threadsafe(fleet.arms[self.name].set_status, status, time.monotonic())
+                        counters = link.request("counters")["counters"]
+                        loop.call_soon_threadsafe(fleet.arms[self.name].set_counters, counters)
                         if need_arm:
                             arm = link.request("arm")
                             loop.call_soon_threadsafe(fleet.arms[self.name].set_arm, arm)

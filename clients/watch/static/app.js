@@ -133,6 +133,7 @@ function apply(a, full) {
   text(el, "damping", unit(L.damping, "m"));
   text(el, "tick_hz", a.tick_hz ? `${a.tick_hz.toFixed(0)} Hz` : "n/a");
   text(el, "overruns", String(a.overruns));
+  text(el, "late", a.lateness_s && a.lateness_s.p99 !== null && a.lateness_s.p99 !== undefined ? `${(a.lateness_s.p99 * 1e6).toFixed(0)} \u00b5s` : "n/a");
   text(el, "holder", a.holder || "nobody");
   text(el, "singular_values", (L.singular_values || []).map(fmt).join("  ") || "n/a");
   const rej = Object.entries(a.rejected).filter(([, v]) => v > 0).sort((x, y) => y[1] - x[1]);

@@ -51,7 +51,7 @@ PANEL_HEIGHT_IN = 1.9
 DPI = 100
 
 #: health-state bands: (grey shade, hatch) per state position in the header's list
-#: (clear, narrow, pinched; older recordings call them normal, approaching, holding)
+#: (clear, narrow, pinched)
 _BAND_STYLE = (("#ffffff", ""), ("#e4e4e4", "//"), ("#b8b8b8", "xx"))
 _LINE_COLOURS = ("#1b4f8a", "#b03a2e", "#1e7b4f", "#7d3c98", "#ca6f1e", "#117a75", "#5d6d7e", "#9a7d0a")
 _EVENT_COLOUR = "#333333"

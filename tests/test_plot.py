@@ -16,7 +16,7 @@ from service_harness import make_config, running_service, stream_until
 pytest.importorskip("matplotlib")
 
 from twistrate.service import plot as P  # noqa: N812
-from twistrate.service import plot_cmd
+from twistrate.service.commands import plot as plot_cmd
 from twistrate.service.recorder import Recorder, read_recording
 from twistrate.solver.load import load_arm
 
@@ -101,7 +101,7 @@ def test_health_bands_follow_the_recorded_state(tmp_path):
     arm = load_arm("planar3")
     path = tmp_path / "bands.trec"
     rec = Recorder(path, arm, 100.0)
-    states = ["normal"] * 20 + ["approaching"] * 10 + ["holding"] * 5 + ["approaching"] * 5 + ["normal"] * 10
+    states = ["clear"] * 20 + ["narrow"] * 10 + ["pinched"] * 5 + ["narrow"] * 5 + ["clear"] * 10
     for k, s in enumerate(states):
         rec.push(
             10_000_000 * k,
@@ -124,16 +124,16 @@ def test_health_bands_follow_the_recorded_state(tmp_path):
     header, data = read_recording(path)
     fig = P.build_figure(header, data, P.JointLimits.of_arm(arm), None)
     spans = [p for p in fig.get_axes()[8].patches if p.get_hatch()]
-    # three non-clear stretches: approaching, holding, approaching; each with its hatch (not colour alone)
+    # three non-clear stretches: narrow, pinched, narrow; each with its hatch (not colour alone)
     assert [p.get_hatch() for p in spans] == ["//", "xx", "//"]
     xs = [(p.get_x(), p.get_x() + p.get_width()) for p in spans]
     assert xs[0] == pytest.approx((0.20, 0.30)) and xs[1] == pytest.approx((0.30, 0.35))
     health_events = [e.label for e in P.find_events(header, data) if e.kind == "health"]
     assert health_events == [
-        "normal -> approaching",
-        "approaching -> holding",
-        "holding -> approaching",
-        "approaching -> normal",
+        "clear -> narrow",
+        "narrow -> pinched",
+        "pinched -> narrow",
+        "narrow -> clear",
     ]
     P.save_figure(fig, tmp_path / "bands.png")
 
@@ -148,7 +148,7 @@ def test_constant_and_unrecorded_series_are_drawn_honestly(tmp_path):
             1_700_000_000_000_000_000,
             k,
             "running",
-            "normal",
+            "clear",
             np.zeros(3, np.uint8),
             arm.q_home,
             np.zeros(3),

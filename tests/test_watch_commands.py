@@ -9,7 +9,6 @@ import argparse
 import json
 import re
 import shutil
-import socket
 import subprocess
 import sys
 import time
@@ -20,12 +19,13 @@ import pytest
 aiohttp = pytest.importorskip("aiohttp")
 
 from dashboard_harness import served  # noqa: E402
-from service_harness import config_dict, free_ports, make_config, reap, running_service, wait_for  # noqa: E402
+from service_harness import config_dict, make_config, reap, running_service, twistrate, wait_for  # noqa: E402
 
 from twistrate.clients.watch.dashboard import Dashboard  # noqa: E402
 from twistrate.clients.watch.model import Fleet  # noqa: E402
-from twistrate.service import security, watch_targets  # noqa: E402
-from twistrate.service.config import load_config  # noqa: E402
+from twistrate.service import security  # noqa: E402
+from twistrate.service.commands import watch as watch_cmd  # noqa: E402
+from twistrate.service.wire.discovery import write_endpoints  # noqa: E402
 from twistrate.solver.errors import InputError  # noqa: E402
 
 pytestmark = pytest.mark.timeout(120)
@@ -48,84 +48,91 @@ def _toml(doc: dict) -> str:
 
 def _args(*argv: str) -> argparse.Namespace:
     parser = argparse.ArgumentParser()
-    watch_targets.add_arguments(parser)
+    watch_cmd.add_target_arguments(parser)
     return parser.parse_args(list(argv))
 
 
-def test_targets_from_configs_and_endpoints(tmp_path):
+def _on(ep, **sections) -> dict:
+    """A config document on the endpoints a running service bound (a watcher connects to them)."""
+    return config_dict(
+        endpoints={"intake": ep.intake, "output": ep.output, "control": ep.control}, **sections
+    )
+
+
+def test_targets_from_configs_endpoint_files_and_endpoints(tmp_path):
+    fixed = {
+        "intake": "tcp://127.0.0.1:47901",
+        "output": "tcp://127.0.0.1:47902",
+        "control": "tcp://127.0.0.1:47903",
+    }
     path = tmp_path / "cell-a.toml"
-    path.write_text(_toml(config_dict()))
-    feeds = watch_targets.feeds_from_args(
+    path.write_text(_toml(config_dict(endpoints=fixed)))
+    files = write_endpoints(tmp_path / "cell-c.json", {**fixed, "control": "tcp://127.0.0.1:47913"})
+    feeds = watch_cmd.feeds_from_args(
         _args(
             "--config",
             str(path),
             "--config",
             f"{path}=again",
+            "--endpoints",
+            str(files),
             "--connect",
             "far=tcp://cell-b:1,tcp://cell-b:2",
         )
     )
-    assert [f.name for f in feeds] == ["cell-a", "again", "far"]
-    cfg = load_config(path)
-    assert feeds[0].endpoints.output == cfg.endpoints.output and feeds[0].thresholds is not None
-    assert feeds[2].endpoints.control == "tcp://cell-b:2" and feeds[2].curve is None
+    assert [f.name for f in feeds] == ["cell-a", "again", "cell-c", "far"]
+    assert feeds[0].endpoints.output == fixed["output"] and feeds[0].thresholds == (0.06, 0.015)
+    assert feeds[2].endpoints.control == "tcp://127.0.0.1:47913" and feeds[2].thresholds is None
+    assert feeds[3].endpoints.control == "tcp://cell-b:2" and feeds[3].curve is None
     with pytest.raises(InputError, match="--connect"):
-        watch_targets.feeds_from_args(_args("--connect", "far=cell-b:1"))
+        watch_cmd.feeds_from_args(_args("--connect", "far=cell-b:1"))
     with pytest.raises(InputError, match="unique name"):
-        watch_targets.feeds_from_args(_args("--config", str(path), "--config", str(path)))
+        watch_cmd.feeds_from_args(_args("--config", str(path), "--config", str(path)))
+    star = tmp_path / "star.toml"
+    star.write_text(_toml(config_dict()))  # ports picked by the operating system: not knowable from the file
+    with pytest.raises(InputError, match="--endpoints FILE"):
+        watch_cmd.feeds_from_args(_args("--config", str(star)))
 
 
 def test_curve_service_is_watched_with_the_clients_keys(tmp_path):
     _, server_secret = security.write_keypair(tmp_path, "service")
     _, watcher_secret = security.write_keypair(tmp_path / "clients", "watcher")
-    doc = config_dict(
-        security={"server_secret_key": str(server_secret), "client_public_keys": [str(tmp_path / "clients")]}
-    )
-    path = tmp_path / "secure.toml"
-    path.write_text(_toml(doc))
-    with pytest.raises(InputError, match="--client-key"):
-        watch_targets.feeds_from_args(_args("--config", str(path)))
-    (feed,) = watch_targets.feeds_from_args(_args("--config", str(path), "--client-key", str(watcher_secret)))
-    assert (
-        feed.curve is not None and feed.curve.server_public == security.load_secret_keypair(server_secret)[0]
-    )
-    fleet = Fleet()
-    with running_service(load_config(path)), served(Dashboard(fleet, [feed])):
-        view = fleet.arm("secure")
-        wait_for(lambda: view.received["health"] > 10 and view.arm == "reach7")
-    # a watcher without the keys hears nothing
-    (plain,) = watch_targets.feeds_from_args(
-        _args("--connect", f"x={doc['endpoints']['output']},{doc['endpoints']['control']}")
-    )
-    fleet = Fleet()
-    with running_service(load_config(path)), served(Dashboard(fleet, [plain])):
-        time.sleep(1.0)
-        assert fleet.arm("x").received["health"] == 0 and not fleet.arm("x").connected
-
-
-def _twistrate_module(module: str, *args: str) -> subprocess.Popen:
-    return subprocess.Popen(
-        [sys.executable, "-m", module, *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
-    )
+    sec = {"server_secret_key": str(server_secret), "client_public_keys": [str(tmp_path / "clients")]}
+    with running_service(make_config(security=sec)) as run:
+        path = tmp_path / "secure.toml"
+        path.write_text(_toml(_on(run.endpoints, security=sec)))
+        with pytest.raises(InputError, match="--client-key"):
+            watch_cmd.feeds_from_args(_args("--config", str(path)))
+        (feed,) = watch_cmd.feeds_from_args(_args("--config", str(path), "--client-key", str(watcher_secret)))
+        assert feed.curve is not None
+        assert feed.curve.server_public == security.load_secret_keypair(server_secret)[0]
+        fleet = Fleet()
+        with served(Dashboard(fleet, [feed])):
+            view = fleet.arm("secure")
+            wait_for(lambda: view.received["health"] > 10 and view.arm == "reach7")
+        # a watcher without the keys hears nothing
+        (plain,) = watch_cmd.feeds_from_args(
+            _args("--connect", f"x={run.endpoints.output},{run.endpoints.control}")
+        )
+        fleet = Fleet()
+        with served(Dashboard(fleet, [plain])):
+            time.sleep(1.0)
+            assert fleet.arm("x").received["health"] == 0 and not fleet.arm("x").connected
 
 
 def test_dashboard_command_serves_a_running_service(tmp_path):
-    path = tmp_path / "cell-a.toml"
-    path.write_text(_toml(config_dict()))
-    (port,) = free_ports(1)
-    with running_service(load_config(path)):
-        proc = _twistrate_module(
-            "twistrate.service.dashboard_cmd", "--config", str(path), "--port", str(port), "--seconds", "30"
-        )
+    with running_service(make_config()) as run:
+        path = tmp_path / "cell-a.toml"
+        path.write_text(_toml(_on(run.endpoints)))
+        proc = twistrate("dashboard", "--config", str(path), "--port", "0", "--seconds", "30")
         try:
-            end = time.monotonic() + 20
-            while time.monotonic() < end:
-                try:
-                    socket.create_connection(("127.0.0.1", port), 0.2).close()
+            port = None
+            for line in proc.stdout:  # the cautions, then where it serves
+                m = re.search(r"dashboard on http://127\.0\.0\.1:(\d+)/", line)
+                if m:
+                    port = int(m.group(1))
                     break
-                except OSError:
-                    assert proc.poll() is None, proc.communicate()
-                    time.sleep(0.1)
+            assert port is not None, proc.communicate()
 
             async def fetch():
                 async with aiohttp.ClientSession() as s:
@@ -155,22 +162,13 @@ def test_dashboard_command_serves_a_running_service(tmp_path):
 
 @pytest.mark.skipif(shutil.which("tmux") is None, reason="tmux not installed (Debian package tmux)")
 def test_watch_command_in_tmux_against_a_running_service(tmp_path):
-    cfg = make_config()
-    path = tmp_path / "bench-cell.toml"
-    path.write_text(
-        _toml(
-            config_dict(
-                endpoints={
-                    "intake": cfg.endpoints.intake,
-                    "output": cfg.endpoints.output,
-                    "control": cfg.endpoints.control,
-                }
-            )
-        )
-    )
     session = f"twr-watch-{uuid.uuid4().hex[:8]}"
-    cmd = f"{sys.executable} -m twistrate.service.watch_cmd --config {path} --seconds 20 --screen"
-    with running_service(load_config(path)):
+    with running_service(make_config()) as run:
+        path = tmp_path / "bench-cell.toml"
+        path.write_text(_toml(_on(run.endpoints)))
+        cmd = (
+            f"{sys.executable} -m twistrate.service.commands.cli watch --config {path} --seconds 20 --screen"
+        )
         subprocess.run(["tmux", "new-session", "-d", "-s", session, "-x", "80", "-y", "40", cmd], check=True)
         try:
             out = ""

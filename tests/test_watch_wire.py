@@ -12,7 +12,7 @@ import pytest
 pytest.importorskip("aiohttp")
 
 from dashboard_harness import served
-from service_harness import endpoints_of, make_config, running_service, wait_for
+from service_harness import make_config, running_service, wait_for
 
 from twistrate.clients.watch.dashboard import Dashboard
 from twistrate.clients.watch.model import Fleet
@@ -34,29 +34,34 @@ def drive_until(link, twist, predicate, limit_s: float = 10.0) -> None:
     raise AssertionError(f"not reached within {limit_s} s")
 
 
+def config_on(ep):
+    """A service configuration on the given (already bound once) endpoints: a restart on the same ports."""
+    return make_config(endpoints={"intake": ep.intake, "output": ep.output, "control": ep.control})
+
+
 def test_feed_follows_a_service_through_a_singularity_a_stop_and_a_restart():
-    cfg = make_config()
     fleet = Fleet(gone_after_s=1.0)
-    feed = WireFeed("cell-a", endpoints_of(cfg), thresholds=(0.06, 0.015))
-    with running_service(cfg) as run, served(Dashboard(fleet, [feed])):
-        view = fleet.arm("cell-a")
-        wait_for(lambda: view.arm == "reach7" and len(view.joints) == 7 and view.health == "clear")
-        assert view.mode == "disabled" and view.holder is None
-        link = run.link()
-        link.claim("wire-test", lease_ms=60_000)
-        link.enable()
-        drive_until(link, STRETCH, lambda: view.health == "pinched")
-        wait_for(lambda: view.holder == "wire-test")
-        wait_for(lambda: view.timing.get("p99") is not None)  # the counters op: tick lateness, s
-        assert 0.0 <= view.timing["median"] <= view.timing["p99"] <= view.timing["max"]
-        changes = [(c["from"], c["to"]) for c in view.changes if c["what"] == "health"]
-        assert ("clear", "narrow") in changes and ("narrow", "pinched") in changes
-        assert view.latest["sigma_min"] < 0.015 and view.mode == "running"
-        assert any(e["event"] == "lease_claimed" for e in view.events)
-    # the service stopped (the dashboard too): a new dashboard sees it gone, then back
+    with running_service(make_config()) as run:
+        feed = WireFeed("cell-a", run.endpoints, thresholds=(0.06, 0.015))
+        with served(Dashboard(fleet, [feed])):
+            view = fleet.arm("cell-a")
+            wait_for(lambda: view.arm == "reach7" and len(view.joints) == 7 and view.health == "clear")
+            assert view.mode == "disabled" and view.holder is None
+            link = run.link()
+            link.claim("wire-test", lease_ms=60_000)
+            link.enable()
+            drive_until(link, STRETCH, lambda: view.health == "pinched")
+            wait_for(lambda: view.holder == "wire-test")
+            wait_for(lambda: view.timing.get("p99") is not None)  # the counters op: tick lateness, s
+            assert 0.0 <= view.timing["median"] <= view.timing["p99"] <= view.timing["max"]
+            changes = [(c["from"], c["to"]) for c in view.changes if c["what"] == "health"]
+            assert ("clear", "narrow") in changes and ("narrow", "pinched") in changes
+            assert view.latest["sigma_min"] < 0.015 and view.mode == "running"
+            assert any(e["event"] == "lease_claimed" for e in view.events)
+    # the same service address: a new dashboard sees the service, then gone when it stops, then back
+    cfg = config_on(run.endpoints)
     fleet = Fleet(gone_after_s=1.0)
-    feed = WireFeed("cell-a", endpoints_of(cfg))
-    with served(Dashboard(fleet, [feed])):
+    with served(Dashboard(fleet, [WireFeed("cell-a", run.endpoints)])):
         view = fleet.arm("cell-a")
         with running_service(cfg):
             wait_for(lambda: view.connected and view.received["health"] > 30)  # 0.6 s: ticks well past 0

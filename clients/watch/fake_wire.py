@@ -18,7 +18,7 @@ import numpy as np
 import zmq
 
 from twistrate.clients.watch.fake import FakeArm
-from twistrate.service import codec as wire
+from twistrate.service import wire
 from twistrate.solver.errors import WireError
 
 #: the state topic and kind (planned protocol addition; see docs/dashboard.md)
@@ -141,9 +141,7 @@ class FakeService:
             now = time.monotonic()
             for kind, msg in self.arm.messages(now - t0, time.time()):
                 if kind == "health":
-                    args = {k: msg[k] for k in _HEALTH_ARGS}
-                    args["state"] = wire.HEALTH_STATES[_FAKE_STATES.index(args["state"])]
-                    data = wire.encode_health(**args)
+                    data = wire.encode_health(**{k: msg[k] for k in _HEALTH_ARGS})
                     self._pub.send_multipart([wire.TOPIC_HEALTH, data])
                     self.published_health += 1
                 elif kind == "event":
@@ -167,8 +165,6 @@ class FakeService:
         self._router.close()
 
 
-#: the fake arm's health state names, in the protocol's order
-_FAKE_STATES = ("clear", "narrow", "pinched")
 _HEALTH_ARGS = (
     "seq",
     "stamp_ns",

@@ -43,9 +43,8 @@ TICK_RATE_BASE_S = 1.0
 #: a tick count this far below the highest seen means a new service process (streams interleave a
 #: little: an event may carry a tick a few behind the latest command)
 RESTART_SLACK_TICKS = 50
-#: health state names and the names older services still send
+#: health state names (docs/protocol.md section 10)
 HEALTH_STATES = ("clear", "narrow", "pinched")
-_OLD_HEALTH_NAMES = {"normal": "clear", "approaching": "narrow", "holding": "pinched"}
 #: history series, in the order of each history row after its index and time
 SERIES = (
     "manipulability",
@@ -56,11 +55,6 @@ SERIES = (
     "damping",
 )
 _QUOTED = re.compile(r"'([^']*)'|\"([^\"]*)\"")
-
-
-def health_name(name: str) -> str:
-    """The health state's current name (older services say normal, approaching, holding)."""
-    return _OLD_HEALTH_NAMES.get(name, name)
 
 
 def _get(msg: Any, name: str, default: Any = None) -> Any:
@@ -164,7 +158,7 @@ class ArmView:
         if status.get("mode"):
             self._set_mode(str(status["mode"]), now)
         if status.get("health"):
-            self._set_health(health_name(str(status["health"])), now)
+            self._set_health(str(status["health"]), now)
         if (
             status.get("position") is not None
             and self.received["state"] == 0
@@ -213,7 +207,7 @@ class ArmView:
         if tick > t0 and stamp > s0:
             self.tick_hz = (tick - t0) / ((stamp - s0) * 1e-9)
         self._set_mode(str(_get(msg, "mode")), now)
-        self._set_health(health_name(str(_get(msg, "state"))), now)
+        self._set_health(str(_get(msg, "state")), now)
         row = [self.index, now] + [self.latest[k] for k in SERIES]
         self.index += 1
         self.history.append(row)
@@ -225,7 +219,7 @@ class ArmView:
         self._touch(now, int(_get(msg, "tick")))
         self.received["command"] += 1
         self._set_mode(str(_get(msg, "mode")), now)
-        self._set_health(health_name(str(_get(msg, "health"))), now)
+        self._set_health(str(_get(msg, "health")), now)
         if self.received["state"] == 0:  # `state` carries the positions the tick used; else estimate
             self.rate = _floats(_get(msg, "rate"))
             target = _floats(_get(msg, "target"))

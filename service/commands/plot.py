@@ -24,9 +24,7 @@ def _thresholds(config: Any) -> Any:
     from twistrate.service.plot import Thresholds
 
     h = config.health_thresholds()
-    narrow = getattr(h, "narrow_below_m", None) or h.approaching_below  # names before issue 7
-    pinched = getattr(h, "pinched_below_m", None) or h.holding_below
-    return Thresholds(float(narrow), float(pinched))
+    return Thresholds(float(h.narrow_below), float(h.pinched_below))
 
 
 def _limits(args: argparse.Namespace, header: dict[str, Any], config: Any) -> tuple[Any, str]:
@@ -70,8 +68,8 @@ def main(argv: list[str] | None = None) -> int:
             file=sys.stderr,
         )
         return 2
+    from twistrate.service.commands.demo import CAUTIONS
     from twistrate.service.config import load_config
-    from twistrate.service.demo import CAUTIONS
     from twistrate.service.plot import build_figure, save_figure
     from twistrate.service.recorder import read_recording
 

@@ -215,7 +215,7 @@ class DashboardLoad:
         }
 
 
-def run(arms: int, health_hz: float, pages: int, seconds: float) -> dict[str, Any]:
+def measure(arms: int, health_hz: float, pages: int, seconds: float) -> dict[str, Any]:
     """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S; the figures."""
     with DashboardLoad(arms, health_hz, pages) as load:
         time.sleep(WARMUP_S)
@@ -225,7 +225,7 @@ def run(arms: int, health_hz: float, pages: int, seconds: float) -> dict[str, An
     return load.figures()
 
 
-def main(argv: list[str] | None = None) -> int:
+def run(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=__doc__.splitlines()[0])
     parser.add_argument("--arms", type=int, default=DEFAULT_ARMS)
     parser.add_argument("--health-hz", type=float, default=DEFAULT_HEALTH_HZ)
@@ -233,7 +233,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS)
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
     args = parser.parse_args(argv)
-    res = run(args.arms, args.health_hz, args.pages, args.seconds)
+    res = measure(args.arms, args.health_hz, args.pages, args.seconds)
     fps = res["frames_per_s_per_page"]
     print(
         f"dashboard with {res['arms']} arms at {res['health_hz']:g} health/s and {res['pages']} pages, "
@@ -263,4 +263,4 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    raise SystemExit(run())

@@ -1,10 +1,19 @@
-"""The services a watcher (`twistrate dashboard`, `twistrate watch`) follows, from the command line.
+"""`twistrate watch`: the arms in a terminal (rich), a panel per arm, 80 columns, redrawn in place.
 
-Two ways to name a service, mixed freely and repeated for more arms:
+    twistrate watch                                      the local service (default endpoints)
+    twistrate watch --config cell-a.toml --config cell-b.toml=bench
+    twistrate watch --connect far=tcp://cell-b:47311,tcp://cell-b:47312 --screen
+
+Read-only: nothing here can move an arm. Ctrl-C quits. Needs the `watch` extra.
+
+Three ways to name a service, mixed freely and repeated for more arms (the page or screen shows
+them in that order):
 
     --config FILE[=NAME]                       a service configuration: its output and control
                                                endpoints, health thresholds and, when it uses CURVE,
                                                its public key (NAME.key beside its NAME.key_secret)
+    --endpoints FILE[=NAME]                    the endpoints file of a running service (`twistrate serve
+                                               --endpoints-file FILE`)
     --connect NAME=OUTPUT,CONTROL[,KEYFILE]    endpoints of a service on this machine or another one;
                                                KEYFILE: the service's public key file when it uses CURVE
 
@@ -15,24 +24,35 @@ service's allow-list must hold its public key). Keys are handed to the client li
 from __future__ import annotations
 
 import argparse
+import contextlib
+import sys
 from pathlib import Path
 from typing import Any
 
 from twistrate.clients.link import CurveKeys, Endpoints
 from twistrate.clients.watch.wire_feed import WireFeed
-from twistrate.solver.errors import InputError, field_error
+from twistrate.service.config import load_config
+from twistrate.service.wire.discovery import read_endpoints
+from twistrate.solver.errors import InputError, TwistrateError, field_error
 
 #: a bind address that means "every interface": a watcher on this machine connects to loopback
 _ANY = ("tcp://0.0.0.0:", "tcp://*:")
 
 
-def add_arguments(parser: argparse.ArgumentParser) -> None:
+def add_target_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--config",
         action="append",
         default=[],
         metavar="FILE[=NAME]",
         help="a service configuration to follow (repeat for more arms)",
+    )
+    parser.add_argument(
+        "--endpoints",
+        action="append",
+        default=[],
+        metavar="FILE[=NAME]",
+        help="the endpoints file of a running service (serve --endpoints-file; repeat for more arms)",
     )
     parser.add_argument(
         "--connect",
@@ -51,7 +71,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
 
 
-def _connectable(endpoint: str) -> str:
+def _connectable(endpoint: str, where: str) -> str:
+    """A configured bind endpoint as a watcher on this machine connects to it."""
+    if endpoint.endswith(":*"):
+        raise field_error(
+            InputError,
+            where,
+            endpoint,
+            "a fixed port (this configuration lets the operating "
+            "system pick it: give --endpoints FILE, from `twistrate serve --endpoints-file`)",
+        )
     for prefix in _ANY:
         if endpoint.startswith(prefix):
             return "tcp://127.0.0.1:" + endpoint[len(prefix) :]
@@ -73,17 +102,13 @@ def _curve(server_key: str | None, client_key: str | None, who: str) -> CurveKey
 
 def _thresholds(config: Any) -> tuple[float, float]:
     h = config.health_thresholds()
-    narrow = getattr(h, "narrow_below_m", None)
-    pinched = getattr(h, "pinched_below_m", None)
-    if narrow is None:  # the names before the health states were renamed
-        narrow, pinched = h.approaching_below, h.holding_below
-    return float(narrow), float(pinched)
+    return float(h.narrow_below), float(h.pinched_below)
 
 
 def feeds_from_args(args: argparse.Namespace) -> list[WireFeed]:
-    """One WireFeed per --config and --connect, with unique names. Raises InputError / ConfigError."""
-    from twistrate.service.config import load_config
+    """One WireFeed per --config, --endpoints and --connect, with unique names.
 
+    Raises InputError / ConfigError naming the option and the value."""
     topics = (b"health", b"event", b"state") + ((b"command",) if args.commands else ())
     feeds: list[WireFeed] = []
     for text in args.config:
@@ -95,10 +120,25 @@ def feeds_from_args(args: argparse.Namespace) -> list[WireFeed]:
         feeds.append(
             WireFeed(
                 name,
-                Endpoints(_connectable(ep.intake), _connectable(ep.output), _connectable(ep.control)),
+                Endpoints(
+                    _connectable(ep.intake, f"{path}: endpoints.intake"),
+                    _connectable(ep.output, f"{path}: endpoints.output"),
+                    _connectable(ep.control, f"{path}: endpoints.control"),
+                ),
                 _curve(server_key, args.client_key, path),
                 topics,
                 _thresholds(config),
+            )
+        )
+    for text in args.endpoints:
+        path, _, name = text.partition("=")
+        ep = read_endpoints(path)
+        feeds.append(
+            WireFeed(
+                name or Path(path).stem,
+                Endpoints(ep["intake"], ep["output"], ep["control"]),
+                _curve(None, args.client_key, path),
+                topics,
             )
         )
     for text in args.connect:
@@ -128,3 +168,35 @@ def feeds_from_args(args: argparse.Namespace) -> list[WireFeed]:
     if not feeds:  # the service of the packaged configuration, on its default loopback endpoints
         feeds.append(WireFeed("local", Endpoints(), None, topics, _thresholds(load_config(None))))
     return feeds
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="twistrate watch", description=__doc__.splitlines()[0])
+    add_target_arguments(parser)
+    parser.add_argument("--screen", action="store_true", help="draw on the terminal's alternate screen")
+    parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    args = parser.parse_args(argv)
+    try:
+        import rich  # noqa: F401
+        import uvloop
+    except ImportError:
+        print(
+            "twistrate watch: rich is missing; install the watch extra: pip install -e '.[watch]'",
+            file=sys.stderr,
+        )
+        return 2
+    from twistrate.clients.watch.model import Fleet
+    from twistrate.clients.watch.monitor import run_monitor
+
+    try:
+        feeds = feeds_from_args(args)
+    except TwistrateError as exc:
+        print(f"twistrate watch: {exc}", file=sys.stderr)
+        return 2
+    with contextlib.suppress(KeyboardInterrupt):
+        uvloop.run(run_monitor(Fleet(), feeds, args.seconds, args.screen))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -22,6 +22,7 @@ import argparse
 import asyncio
 import json
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -215,12 +216,19 @@ class DashboardLoad:
         }
 
 
-def measure(arms: int, health_hz: float, pages: int, seconds: float) -> dict[str, Any]:
-    """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S; the figures."""
-    with DashboardLoad(arms, health_hz, pages) as load:
+def measure(arms: int, health_hz: float, pages: int, seconds: float | None,
+            services: tuple[tuple[str, str, str], ...] = ()) -> dict[str, Any]:
+    """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S (None: until
+    SIGINT or SIGTERM; "measuring" is printed when the window opens); the figures."""
+    done = threading.Event()
+    if seconds is None:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            signal.signal(sig, lambda *_: done.set())
+    with DashboardLoad(arms, health_hz, pages, services) as load:
         time.sleep(WARMUP_S)
         load.measure_start()
-        time.sleep(seconds)
+        print("measuring", flush=True)
+        done.wait(seconds)
         load.measure_stop()
     return load.figures()
 
@@ -232,8 +240,18 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--pages", type=int, default=DEFAULT_PAGES)
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS)
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
+    parser.add_argument("--attach", action="append", default=[], metavar="NAME=OUTPUT,CONTROL",
+                        help="a running service the dashboard also watches (counts among --arms)")
+    parser.add_argument("--until-signal", action="store_true",
+                        help="measure from the end of the warm-up until SIGINT / SIGTERM (for bench service)")
     args = parser.parse_args(argv)
-    res = measure(args.arms, args.health_hz, args.pages, args.seconds)
+    services = []
+    for text in args.attach:
+        name, _, rest = text.partition("=")
+        out, _, ctl = rest.partition(",")
+        services.append((name, out, ctl))
+    res = measure(args.arms, args.health_hz, args.pages, None if args.until_signal else args.seconds,
+                  tuple(services))
     fps = res["frames_per_s_per_page"]
     print(
         f"dashboard with {res['arms']} arms at {res['health_hz']:g} health/s and {res['pages']} pages, "

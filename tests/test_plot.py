@@ -186,3 +186,18 @@ def test_plot_command_writes_png_and_svg(recording, tmp_path, capsys):
     assert plot_cmd.main([str(recording), "--out", str(out), "--arm", "planar3"]) == 2
     assert "accepted: an arm with the recording's joints" in capsys.readouterr().err
     assert plot_cmd.main([str(tmp_path / "missing.trec")]) == 2
+
+
+def test_demo_report_points_to_its_plot(tmp_path):
+    from service_harness import config_dict, twistrate
+    from test_watch_commands import _toml
+
+    path = tmp_path / "demo.toml"
+    path.write_text(_toml(config_dict(simulation={"enabled": True})))
+    recording = tmp_path / "demo.trec"
+    proc = twistrate("demo", "--seconds", "2", "--config", str(path), "--record", str(recording))
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err
+    assert f"plot: {recording.with_suffix('.png')}" in out
+    w, _h = _png_size(recording.with_suffix(".png").read_bytes())
+    assert w == round(P.FIG_WIDTH_IN * P.DPI)

@@ -52,6 +52,26 @@ def _limits(args: argparse.Namespace, header: dict[str, Any], config: Any) -> tu
     return JointLimits.of_arm(arm), f"the packaged arm {header['arm']!r}"
 
 
+def figure_of(recording: str | Path, out: str | Path, svg: bool = False, config_path: str | None = None,
+              arm: str | None = None) -> tuple[dict[str, Any], int, str]:
+    """Write the figure of `recording` to `out` (PNG; and an SVG beside it when svg). config_path : the
+    service configuration for the thresholds (and the arm); arm : an arm for the joint limits.
+    Returns (header, records drawn, where the joint limits came from). Raises TwistrateError, OSError."""
+    from twistrate.service.config import load_config
+    from twistrate.service.plot import build_figure, save_figure
+    from twistrate.service.recorder import read_recording
+
+    header, rec = read_recording(recording)
+    config = load_config(config_path)
+    limits, origin = _limits(argparse.Namespace(arm=arm, config=config_path), header, config)
+    fig = build_figure(header, rec, limits, _thresholds(config))
+    out = Path(out)
+    if svg:
+        fig.savefig(out.with_suffix(".svg"), format="svg")
+    save_figure(fig, out, "png")
+    return header, len(rec), origin
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate plot", description=__doc__.splitlines()[0])
     parser.add_argument("recording", help="a recording (.trec) from `serve --record`, `record` or the demo")
@@ -63,36 +83,23 @@ def main(argv: list[str] | None = None) -> int:
     try:
         import matplotlib  # noqa: F401
     except ImportError:
-        print(
-            "twistrate plot: matplotlib is missing; install the plot extra: pip install -e '.[plot]'",
-            file=sys.stderr,
-        )
+        print("twistrate plot: matplotlib is missing; install the plot extra: pip install -e '.[plot]'",
+              file=sys.stderr)
         return 2
     from twistrate.service.commands.demo import CAUTIONS
-    from twistrate.service.config import load_config
-    from twistrate.service.plot import build_figure, save_figure
-    from twistrate.service.recorder import read_recording
 
     print("\n".join(CAUTIONS), flush=True)
+    out = Path(args.out) if args.out else Path(args.recording).with_suffix(".png")
     try:
-        header, rec = read_recording(args.recording)
-        config = load_config(args.config)
-        limits, origin = _limits(args, header, config)
-        fig = build_figure(header, rec, limits, _thresholds(config))
-        out = Path(args.out) if args.out else Path(args.recording).with_suffix(".png")
-        if args.svg:
-            fig.savefig(out.with_suffix(".svg"), format="svg")
-        save_figure(fig, out, "png")
+        header, n, origin = figure_of(args.recording, out, args.svg, args.config, args.arm)
     except TwistrateError as exc:
         print(f"twistrate plot: {exc}", file=sys.stderr)
         return 2
     except OSError as exc:
         print(f"twistrate plot: output: {exc}", file=sys.stderr)
         return 2
-    print(
-        f"{len(rec)} ticks of {header['arm']} (joint limits: {origin}) -> {out}"
-        + (f" and {out.with_suffix('.svg')}" if args.svg else "")
-    )
+    print(f"{n} ticks of {header['arm']} (joint limits: {origin}) -> {out}"
+          + (f" and {out.with_suffix('.svg')}" if args.svg else ""))
     return 0
 
 

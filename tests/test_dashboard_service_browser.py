@@ -70,6 +70,11 @@ def test_dashboard_against_a_running_service(tmp_path):
             f"() => document.querySelector('{CARD} [data-field=\"holder\"]').textContent === 'browser-test'",
             timeout=WAIT_MS,
         )
+        # the 3-D view draws the arm from the service's state messages, with its ellipsoid
+        page.wait_for_function(
+            f"() => document.querySelector('{CARD} canvas.c3d').dataset.drawn === 'arm+ellipsoid'",
+            timeout=WAIT_MS,
+        )
         page.screenshot(path=str(shots / "pinched.png"), full_page=True)
         # the service stops: gone, then back by itself when it runs again on the same address
         service.close()

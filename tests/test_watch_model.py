@@ -158,3 +158,29 @@ def test_fake_arm_ellipsoid_is_the_svd_of_its_jacobian_and_crosses_the_threshold
         np.testing.assert_allclose(state["origins"][-1], chain(q)[0][-1])
         seen.add(health["state"])
     assert seen == {"clear", "narrow", "pinched"}
+
+
+def test_decoded_state_message_is_kept_in_the_wire_layout():
+    # a rotation about z by 90 degrees and an ellipsoid whose principal axes are its columns
+    R = np.array([[0.0, -1.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 1.0]])
+    origins = np.array([[0, 0, 0], [0, 0, 0.1], [0.2, 0, 0.3], [0.3, 0.1, 0.3]], dtype=float)
+    msg = wire.decode_state(
+        wire.encode_state(
+            seq=1,
+            stamp_ns=1,
+            tick=9,
+            position=np.array([0.1, 0.2]),
+            rate=np.array([0.0, 0.5]),
+            tool_position=origins[-1],
+            tool_rotation=R,
+            origins=origins,
+            ellipsoid_radii=np.array([0.3, 0.2, 0.1]),
+            ellipsoid_axes=R,
+        )
+    )
+    view = ArmView("a")
+    view.on_state(msg, 0.0)
+    assert view.position == [0.1, 0.2] and view.rate == [0.0, 0.5]
+    assert view.origins == origins.tolist() and view.tool["position"] == origins[-1].tolist()
+    assert view.tool["rotation"] == R.reshape(-1).tolist()  # row-major, as on the wire
+    assert view.ellipsoid == {"radii": [0.3, 0.2, 0.1], "axes": R.reshape(-1).tolist()}

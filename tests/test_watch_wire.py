@@ -58,6 +58,13 @@ def test_feed_follows_a_service_through_a_singularity_a_stop_and_a_restart():
             assert ("clear", "narrow") in changes and ("narrow", "pinched") in changes
             assert view.latest["sigma_min"] < 0.015 and view.mode == "running"
             assert any(e["event"] == "lease_claimed" for e in view.events)
+            # the state messages: the arm's polyline (base, 7 joints, tool) and its ellipsoid, the tool's
+            # position the polyline's last point
+            wait_for(lambda: view.received["state"] > 10)
+            assert len(view.origins) == 7 + 2 and all(len(p) == 3 for p in view.origins)
+            assert view.tool["position"] == pytest.approx(view.origins[-1])
+            assert len(view.ellipsoid["radii"]) == 3 and len(view.ellipsoid["axes"]) == 9
+            assert len(view.position) == 7 and len(view.rate) == 7
     # the same service address: a new dashboard sees the service, then gone when it stops, then back
     cfg = config_on(run.endpoints)
     fleet = Fleet(gone_after_s=1.0)

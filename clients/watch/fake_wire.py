@@ -13,33 +13,12 @@ import threading
 import time
 from typing import Any
 
-import msgpack
 import numpy as np
 import zmq
 
 from twistrate.clients.watch.fake import FakeArm
 from twistrate.service import wire
 from twistrate.solver.errors import WireError
-
-#: the state topic and kind (planned protocol addition; see docs/dashboard.md)
-TOPIC_STATE = b"state"
-
-
-def encode_state(msg: dict[str, Any]) -> bytes:
-    """A `state` message map (header, tick, position, rate, tool, origins, ellipsoid) as msgpack."""
-
-    def plain(v: Any) -> Any:
-        if isinstance(v, np.ndarray):
-            return v.tolist()
-        if isinstance(v, dict):
-            return {k: plain(x) for k, x in v.items()}
-        if isinstance(v, (list, tuple)):
-            return [plain(x) for x in v]
-        if isinstance(v, np.generic):
-            return v.item()
-        return v
-
-    return msgpack.packb(plain(msg), use_bin_type=True)
 
 
 class FakeService:
@@ -154,7 +133,19 @@ class FakeService:
                     )
                     self._pub.send_multipart([wire.TOPIC_EVENT, data])
                 elif kind == "state":
-                    self._pub.send_multipart([TOPIC_STATE, encode_state(msg)])
+                    data = wire.encode_state(
+                        seq=msg["seq"],
+                        stamp_ns=msg["stamp_ns"],
+                        tick=msg["tick"],
+                        position=msg["position"],
+                        rate=msg["rate"],
+                        tool_position=np.asarray(msg["tool"]["position"]),
+                        tool_rotation=np.asarray(msg["tool"]["rotation"]),
+                        origins=np.asarray(msg["origins"]),
+                        ellipsoid_radii=np.asarray(msg["ellipsoid"]["radii"]),
+                        ellipsoid_axes=np.asarray(msg["ellipsoid"]["axes"]),
+                    )
+                    self._pub.send_multipart([wire.TOPIC_STATE, data])
                 else:
                     continue
                 self.published += 1

@@ -74,6 +74,15 @@ def _floats(v: Any) -> list[float] | None:
     return out
 
 
+def _flat(v: Any) -> list[float | None] | None:
+    """_floats of an array of any shape, row-major (a (3, 3) matrix gives its 9 entries row by row)."""
+    if v is not None and hasattr(v, "reshape"):
+        v = v.reshape(-1)
+    elif v is not None and v and isinstance(v[0], (list, tuple)):
+        v = [x for row in v for x in row]
+    return _floats(v)
+
+
 def _num(v: Any) -> float | None:
     if v is None:
         return None
@@ -242,24 +251,27 @@ class ArmView:
             self._set_mode(str(mode), now)
 
     def on_state(self, msg: Any, now: float) -> None:
-        """A state message: tick, position, rate, tool {position, rotation}, origins,
-        ellipsoid {radii, axes}."""
+        """A state message (StateMessage fields: tick, position, rate, tool_position (3,), tool_rotation
+        (3, 3), origins (n + 2, 3), ellipsoid_radii (3,), ellipsoid_axes (3, 3) with the principal axes as
+        columns; all base frame, m), or a plain map of the wire's layout (tool {position, rotation},
+        ellipsoid {radii, axes}, matrices row-major). Kept as the wire's layout."""
         self._touch(now, int(_get(msg, "tick")))
         self.received["state"] += 1
         self.position = _floats(_get(msg, "position"))
         self.rate = _floats(_get(msg, "rate"))
         tool = _get(msg, "tool")
+        if tool is None and _get(msg, "tool_position") is not None:
+            tool = {"position": _get(msg, "tool_position"), "rotation": _get(msg, "tool_rotation")}
         if tool is not None:
-            self.tool = {
-                "position": _floats(_get(tool, "position")),
-                "rotation": _floats(_get(tool, "rotation")),
-            }
+            self.tool = {"position": _flat(_get(tool, "position")), "rotation": _flat(_get(tool, "rotation"))}
         origins = _get(msg, "origins")
         if origins is not None:
             self.origins = [_floats(p) for p in origins]
         ell = _get(msg, "ellipsoid")
+        if ell is None and _get(msg, "ellipsoid_radii") is not None:
+            ell = {"radii": _get(msg, "ellipsoid_radii"), "axes": _get(msg, "ellipsoid_axes")}
         if ell is not None:
-            self.ellipsoid = {"radii": _floats(_get(ell, "radii")), "axes": _floats(_get(ell, "axes"))}
+            self.ellipsoid = {"radii": _flat(_get(ell, "radii")), "axes": _flat(_get(ell, "axes"))}
 
     def check(self, now: float) -> bool:
         """Mark the arm gone when nothing arrived for gone_after_s. True when it just went."""

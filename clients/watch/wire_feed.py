@@ -1,12 +1,13 @@
 """A feed from one running service over the wire: its output streams and its read-only control ops.
 
-A thread per service holds a blocking client Link (the client library) subscribed to the service's
-health, event and state topics (and command, when asked), and hands what it received, in batches, to
-the asyncio loop that owns the Fleet (the model is only touched on that loop). Every STATUS_EVERY_S
-it asks the `status` op (mode, health, lease holder, tick rate) and `counters` (tick lateness) and,
-after each (re)connection, the `arm` op (joint names and limits). A service that stops simply stops
-sending: the model shows it gone, and it comes back by itself when the service does (ZeroMQ
-reconnects). Nothing here claims a lease or sends a twist: the watcher cannot move an arm.
+Per service, one thread holds a blocking client Link (the client library) subscribed to the
+service's health, event and state topics (and command, when asked), and hands what it received, in
+batches, to the asyncio loop that owns the Fleet (the model is only touched on that loop); a second
+thread with its own Link asks the read-only control ops. Every STATUS_EVERY_S it asks the `status`
+op (mode, health, lease holder, tick rate) and `counters` (tick lateness) and, after each
+(re)connection, the `arm` op (joint names and limits). A service that stops simply stops sending:
+the model shows it gone, and it comes back by itself when the service does (ZeroMQ reconnects).
+Nothing here claims a lease or sends a twist: the watcher cannot move an arm.
 """
 
 from __future__ import annotations
@@ -23,8 +24,8 @@ from twistrate.solver.errors import TwistrateError
 
 #: status op every this many seconds, s
 STATUS_EVERY_S = 1.0
-#: control reply timeout (a gone service must not hold the stream up for long), s
-CONTROL_TIMEOUT_S = 0.3
+#: control reply timeout, s (the control ops run on their own thread: a slow reply holds no stream up)
+CONTROL_TIMEOUT_S = 1.0
 #: longest wait for the first message of a batch, s
 RECEIVE_WAIT_S = 0.05
 #: most messages handed over in one batch
@@ -70,47 +71,57 @@ class WireFeed:
         view = fleet.arm(self.name)
         if self.thresholds is not None:
             view.set_thresholds(*self.thresholds)
-        thread = threading.Thread(
-            target=self._pump, args=(loop, fleet), name=f"watch-{self.name}", daemon=True
-        )
-        thread.start()
+        threads = [
+            threading.Thread(
+                target=fn, args=(loop, fleet), name=f"watch-{self.name}-{fn.__name__}", daemon=True
+            )
+            for fn in (self._streams, self._control)
+        ]
+        for t in threads:
+            t.start()
         try:
             await stop.wait()
         finally:
             self._stop.set()
-            await loop.run_in_executor(None, thread.join, 5.0)
+            for t in threads:
+                await loop.run_in_executor(None, t.join, 5.0)
 
-    def _pump(self, loop: asyncio.AbstractEventLoop, fleet: Fleet) -> None:
-        with Link(
+    def _link(self, topics: tuple[bytes, ...]) -> Link:
+        return Link(
             self.endpoints,
             self.curve,
             timeout_s=CONTROL_TIMEOUT_S,
             client=f"watch-{self.name}",
-            topics=self.topics,
+            topics=topics,
             auto_renew=False,
-        ) as link:
-            next_status = 0.0
-            need_arm = True
-            restarts = 0
+        )
+
+    def _streams(self, loop: asyncio.AbstractEventLoop, fleet: Fleet) -> None:
+        """The output streams, in batches (a thread of its own: a slow control reply never holds them)."""
+        with self._link(self.topics) as link:
             while not self._stop.is_set():
-                now = time.monotonic()
-                if now >= next_status:
-                    next_status = now + STATUS_EVERY_S
-                    view = fleet.arms[self.name]
-                    if view.restarts != restarts:  # a new service process: its arm may differ
-                        restarts, need_arm = view.restarts, True
-                    with contextlib.suppress(LinkTimeoutError, TwistrateError):
-                        status = link.request("status")
-                        loop.call_soon_threadsafe(fleet.arms[self.name].set_status, status, time.monotonic())
-                        counters = link.request("counters")["counters"]
-                        loop.call_soon_threadsafe(fleet.arms[self.name].set_counters, counters)
-                        if need_arm:
-                            arm = link.request("arm")
-                            loop.call_soon_threadsafe(fleet.arms[self.name].set_arm, arm)
-                            need_arm = False
                 batch = self._receive_batch(link)
                 if batch:
                     loop.call_soon_threadsafe(self._apply, fleet, batch)
+
+    def _control(self, loop: asyncio.AbstractEventLoop, fleet: Fleet) -> None:
+        """The read-only ops every STATUS_EVERY_S: status and counters; arm after each (re)connection."""
+        with self._link(()) as link:
+            need_arm = True
+            restarts = 0
+            wait = 0.0  # ask at once, then every STATUS_EVERY_S
+            while not self._stop.wait(wait):
+                wait = STATUS_EVERY_S
+                view = fleet.arms[self.name]
+                if view.restarts != restarts:  # a new service process: its arm may differ
+                    restarts, need_arm = view.restarts, True
+                with contextlib.suppress(LinkTimeoutError, TwistrateError):
+                    status = link.request("status")
+                    loop.call_soon_threadsafe(view.set_status, status, time.monotonic())
+                    if need_arm:
+                        loop.call_soon_threadsafe(view.set_arm, link.request("arm"))
+                        need_arm = False
+                    loop.call_soon_threadsafe(view.set_counters, link.request("counters")["counters"])
 
     def _receive_batch(self, link: Link) -> list[tuple[str, Any, float]]:
         batch: list[tuple[str, Any, float]] = []

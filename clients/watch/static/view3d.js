@@ -58,8 +58,10 @@ export class ArmView3D {
     const s = this.state;
     ctx.font = `${12 * dpr}px system-ui, sans-serif`;
     if (!s || !s.origins || s.origins.some((p) => !p || p.some((v) => v === null))) {
-      ctx.fillStyle = "#93a4b5"; ctx.fillText("no joint state yet", 10 * dpr, 20 * dpr); return;
+      ctx.fillStyle = "#93a4b5"; ctx.fillText("no joint state yet", 10 * dpr, 20 * dpr);
+      canvas.dataset.drawn = "none"; return;
     }
+    canvas.dataset.drawn = s.ellipsoid ? "arm+ellipsoid" : "arm";
     const reach = Math.max(this.reach, 0.1);
     this.k = Math.min(W, H) * 0.42 / reach * this.zoom;
     this.cx = W / 2; this.cy = H / 2;

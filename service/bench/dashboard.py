@@ -227,7 +227,8 @@ def measure(arms: int, health_hz: float, pages: int, seconds: float | None,
     with DashboardLoad(arms, health_hz, pages, services) as load:
         time.sleep(WARMUP_S)
         load.measure_start()
-        print("measuring", flush=True)
+        if seconds is None:
+            print("measuring", flush=True)  # bench service waits for this line
         done.wait(seconds)
         load.measure_stop()
     return load.figures()

@@ -234,6 +234,29 @@ def measure(arms: int, health_hz: float, pages: int, seconds: float | None,
     return load.figures()
 
 
+def format_figures(res: dict[str, Any]) -> str:
+    """The figures as text (n/a for what the window did not see)."""
+
+    def num(v: Any, spec: str) -> str:
+        return "n/a" if v is None else format(v, spec)
+
+    def span(values: list[float]) -> str:
+        return f"{min(values):.1f} to {max(values):.1f}" if values else "n/a"
+
+    return "\n".join([
+        f"dashboard with {res['arms']} arms at {res['health_hz']:g} health/s and {res['pages']} pages, "
+        f"{res['window_s']} s:",
+        f"  dashboard CPU {100 * res['dashboard_cpu_fraction']:.1f} % of one core",
+        f"  frames per page {span(res['frames_per_s_per_page'])} /s, {num(res['frame_bytes_median'], '.0f')} "
+        "bytes (median)",
+        f"  data age on arrival: median {num(res['data_age_ms_median'], '.1f')} ms, "
+        f"p99 {num(res['data_age_ms_p99'], '.1f')} ms",
+        f"  health reaching the dashboard per arm: {span(res['health_per_s_per_arm'])} /s",
+        f"  context: this process (publishers, pages) {100 * res['bench_process_cpu_fraction']:.1f} % of one "
+        f"core; load average {res['load_average'][0]:.2f}",
+    ])
+
+
 def run(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=__doc__.splitlines()[0])
     parser.add_argument("--arms", type=int, default=DEFAULT_ARMS)
@@ -253,31 +276,10 @@ def run(argv: list[str] | None = None) -> int:
         services.append((name, out, ctl))
     res = measure(args.arms, args.health_hz, args.pages, None if args.until_signal else args.seconds,
                   tuple(services))
-    fps = res["frames_per_s_per_page"]
-    print(
-        f"dashboard with {res['arms']} arms at {res['health_hz']:g} health/s and {res['pages']} pages, "
-        f"{res['window_s']} s:"
-    )
-    print(f"  dashboard CPU {100 * res['dashboard_cpu_fraction']:.1f} % of one core")
-    print(
-        f"  frames per page {min(fps):.1f} to {max(fps):.1f} /s, "
-        f"{res['frame_bytes_median']:.0f} bytes (median)"
-    )
-    print(
-        f"  data age on arrival: median {res['data_age_ms_median']:.1f} ms, "
-        f"p99 {res['data_age_ms_p99']:.1f} ms"
-    )
-    print(
-        f"  health reaching the dashboard per arm: {min(res['health_per_s_per_arm']):.1f} to "
-        f"{max(res['health_per_s_per_arm']):.1f} /s"
-    )
-    print(
-        f"  context: this process (publishers, pages) {100 * res['bench_process_cpu_fraction']:.1f} % of one "
-        f"core; load average {res['load_average'][0]:.2f}"
-    )
-    if args.json:
+    if args.json:  # first: a reader waiting for the figures gets them even if printing fails
         with open(args.json, "w") as f:
             json.dump(res, f, indent=2)
+    print(format_figures(res))
     return 0
 
 

@@ -50,14 +50,14 @@ def test_dashboard_live_states_gone_and_back(tmp_path):
 
         # live: the smallest singular value shown changes, and frames keep coming
         sigma = page.locator(f'{_card("left")} [data-field="sigma_min"]')
+        frames0 = int(page.evaluate("document.body.dataset.frames"))  # read first: a frame may come between
         first = sigma.text_content()
-        frames0 = int(page.evaluate("document.body.dataset.frames"))
         page.wait_for_function(
             f"""() => document.querySelector('{_card("left")} [data-field="sigma_min"]')
                                    .textContent !== {first!r}""",
             timeout=WAIT_MS,
         )
-        assert int(page.evaluate("document.body.dataset.frames")) > frames0
+        page.wait_for_function(f"() => Number(document.body.dataset.frames) > {frames0}", timeout=WAIT_MS)
         assert page.locator(f"{_card('left')} .jt tbody tr").count() == 4  # a row per joint
 
         # a state change: the arm reaches pinched (badge says so, with its own glyph), then clear again

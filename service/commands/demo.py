@@ -356,7 +356,25 @@ def main(argv: list[str] | None = None) -> int:
         service.close()
     for line in report(service, source, recording, counters):
         print(line)
+    if recording is not None and recording.exists():
+        print(f"  plot: {plot_recording(recording, args.config)}", flush=True)
     return 0 if source.error is None else 1
+
+
+def plot_recording(recording: Path, config_path: str | None) -> str:
+    """Draw the recording beside it (RECORDING.png) when the plot extra is installed; what to say."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        return f"install the plot extra (pip install -e '.[plot]'), then: twistrate plot {recording}"
+    from twistrate.service.commands.plot import figure_of
+
+    out = recording.with_suffix(".png")
+    try:
+        figure_of(recording, out, config_path=config_path)
+    except (TwistrateError, OSError) as exc:
+        return f"not drawn ({exc}); try: twistrate plot {recording}"
+    return f"{out}  (twistrate plot {recording} --svg for an SVG too)"
 
 
 if __name__ == "__main__":

@@ -1,0 +1,178 @@
+// The dashboard page: one WebSocket (frames in docs/dashboard.md), one card per arm, redrawn per frame.
+// Read-only: the page never sends anything that could move an arm (it sends nothing at all).
+import { drawChart, fmt } from "/static/chart.js";
+import { ArmView3D } from "/static/view3d.js";
+
+const cards = new Map();  // name -> {el, hist: {index: row}, view3d, last}
+const WORDS = { clear: "clear", narrow: "narrow", pinched: "pinched" };
+let serverTime = 0, receivedAt = 0, frames = 0;
+
+function q(el, field) { return el.querySelector(`[data-field="${field}"]`); }
+function text(el, field, v) { const n = q(el, field); if (n && n.textContent !== v) n.textContent = v; }
+function unit(v, u, spec) { return v === null || v === undefined ? "n/a" : `${spec ? v.toFixed(spec) : fmt(v)} ${u}`.trim(); }
+function wallOf(t) { return new Date(Date.now() - (serverTime - t) * 1000 - (performance.now() - receivedAt)); }
+function hhmmss(d) { return d.toTimeString().slice(0, 8); }
+
+function card(name) {
+  let c = cards.get(name);
+  if (c) return c;
+  const el = document.getElementById("arm-card").content.firstElementChild.cloneNode(true);
+  el.dataset.arm = name;
+  el.querySelector(".arm-name").textContent = name;
+  document.getElementById("empty")?.remove();
+  document.getElementById("arms").appendChild(el);
+  c = { el, hist: new Map(), view3d: null, pending: null };
+  c.view3d = new ArmView3D(el.querySelector(".c3d"), (s) => text(el, "ell-scale", s));
+  cards.set(name, c);
+  return c;
+}
+
+function meter(frac, centred, label) {
+  const m = document.createElement("div");
+  m.className = "meter";
+  if (frac === null || frac === undefined || !isFinite(frac)) { m.innerHTML = '<span class="val">n/a</span>'; return m; }
+  const f = document.createElement("span"); f.className = "fill";
+  const k = document.createElement("span"); k.className = "mark";
+  if (centred) {
+    const a = Math.min(Math.abs(frac), 1) * 50;
+    f.style.left = frac >= 0 ? "50%" : `${50 - a}%`; f.style.width = `${a}%`;
+    k.style.left = `calc(${50 + Math.max(-1, Math.min(1, frac)) * 50}% - 0.12em)`;
+    if (Math.abs(frac) >= 0.98) m.classList.add("at"); else if (Math.abs(frac) >= 0.8) m.classList.add("near");
+  } else {
+    const p = Math.max(0, Math.min(1, frac));
+    k.style.left = `calc(${p * 100}% - 0.12em)`;
+    const margin = Math.min(frac, 1 - frac);
+    if (margin <= 0.02) m.classList.add("at"); else if (margin <= 0.1) m.classList.add("near");
+  }
+  const v = document.createElement("span"); v.className = "val"; v.textContent = label;
+  m.append(f, k, v);
+  return m;
+}
+
+function joints(el, a) {
+  const body = el.querySelector(".jt tbody");
+  const n = (a.position || a.joints || []).length;
+  while (body.rows.length > n) body.deleteRow(-1);
+  while (body.rows.length < n) { const r = body.insertRow(); r.insertCell(); r.insertCell(); r.insertCell(); }
+  for (let i = 0; i < n; i++) {
+    const j = a.joints[i] || {}, r = body.rows[i];
+    const pos = a.position ? a.position[i] : null, rate = a.rate ? a.rate[i] : null;
+    const lo = j.position_min, hi = j.position_max, vmax = j.velocity_max;
+    const frac = pos !== null && lo !== null && hi !== null && lo !== undefined && hi > lo ? (pos - lo) / (hi - lo) : null;
+    const rfrac = rate !== null && vmax ? rate / vmax : null;
+    r.cells[0].textContent = j.name || `joint ${i + 1}`;
+    r.cells[1].replaceChildren(meter(frac, false, pos === null ? "n/a" : pos.toFixed(3)));
+    r.cells[2].replaceChildren(meter(rfrac, true, rate === null ? "n/a" : rate.toFixed(3)));
+    r.dataset.joint = j.name || String(i);
+  }
+}
+
+function events(el, a) {
+  const ol = el.querySelector("ol.ev");
+  const key = a.events.length ? `${a.events.length}:${a.events[a.events.length - 1].t}` : "0";
+  if (ol.dataset.key === key) return;
+  ol.dataset.key = key;
+  ol.replaceChildren(...a.events.slice().reverse().map((e) => {
+    const li = document.createElement("li");
+    li.dataset.event = e.event;
+    li.innerHTML = '<span class="when"></span><span class="name"></span><span class="detail"></span>';
+    li.children[0].textContent = hhmmss(wallOf(e.t));
+    li.children[1].textContent = e.event;
+    li.children[2].textContent = e.detail;
+    return li;
+  }));
+  const ch = el.querySelector("ol.changes");
+  ch.replaceChildren(...a.changes.slice(-8).reverse().map((c) => {
+    const li = document.createElement("li");
+    li.textContent = `${hhmmss(wallOf(c.t))} ${c.what}: ${c.from} \u2192 ${c.to}`;
+    return li;
+  }));
+}
+
+function charts(el, c, a) {
+  const cols = a.series, rows = [...c.hist.values()];
+  const col = (name) => 2 + cols.indexOf(name);
+  const pts = (name) => rows.map((r) => [r[1] - serverTime, r[col(name)]]);
+  const th = a.thresholds;
+  const zones = th ? [
+    { from: -1, to: th.pinched_below_m, color: "#ef5a6f", angle: 1 },
+    { from: th.pinched_below_m, to: th.narrow_below_m, color: "#e9a23b", angle: -1 }] : [];
+  const thresholds = th ? [{ y: th.narrow_below_m, label: "narrow below", dash: [6, 4] },
+                           { y: th.pinched_below_m, label: "pinched below", dash: [2, 3] }] : [];
+  drawChart(el.querySelector(".chart-sigma"), { window_s: a.window_s, title: "smallest singular value", unit: "m",
+    series: [{ label: "smallest", color: "#7cc4ff", points: pts("sigma_min") }], thresholds, zones, yMin: 0 });
+  drawChart(el.querySelector(".chart-manip"), { window_s: a.window_s, title: "manipulability", log: true,
+    series: [{ label: "whole", color: "#e6edf3", points: pts("manipulability") },
+             { label: "linear", color: "#b48ef0", points: pts("manipulability_linear"), dash: [5, 3] },
+             { label: "angular", color: "#7fd1c7", points: pts("manipulability_angular"), dash: [1, 3] }] });
+  drawChart(el.querySelector(".chart-scale"), { window_s: a.window_s, title: "scale (0 to 1) and damping", unit: "",
+    series: [{ label: "scale", color: "#35b89a", points: pts("scale") },
+             { label: "damping m", color: "#e9a23b", points: pts("damping"), dash: [5, 3] }], yMin: 0 });
+}
+
+function apply(a, full) {
+  const c = card(a.name), el = c.el, L = a.latest || {};
+  if (full) c.hist.clear();
+  for (const r of a.history) c.hist.set(r[0], r);
+  const oldest = serverTime - a.window_s;
+  for (const [k, r] of c.hist) { if (r[1] < oldest) c.hist.delete(k); else break; }
+  el.dataset.gone = String(a.gone);
+  el.dataset.connected = String(a.connected);
+  el.dataset.health = a.health || "";
+  el.dataset.mode = a.mode || "";
+  el.querySelector(".arm-model").textContent = a.arm ? `(${a.arm})` : "";
+  const hb = q(el, "health");
+  hb.dataset.state = a.health || "";
+  hb.querySelector(".word").textContent = a.health ? WORDS[a.health] || a.health : "unknown";
+  const mb = q(el, "mode"); mb.dataset.mode = a.mode || ""; mb.textContent = a.mode || "unknown";
+  text(el, "age", a.age_s === null ? "?" : a.age_s.toFixed(1));
+  text(el, "sigma_min", unit(L.sigma_min, "m"));
+  text(el, "manipulability", unit(L.manipulability, ""));
+  text(el, "manip_la", `${fmt(L.manipulability_linear)} / ${fmt(L.manipulability_angular)}`);
+  text(el, "scale", unit(L.scale, "", 2));
+  text(el, "damping", unit(L.damping, "m"));
+  text(el, "tick_hz", a.tick_hz ? `${a.tick_hz.toFixed(0)} Hz` : "n/a");
+  text(el, "overruns", String(a.overruns));
+  text(el, "late", a.lateness_s && a.lateness_s.p99 !== null && a.lateness_s.p99 !== undefined ? `${(a.lateness_s.p99 * 1e6).toFixed(0)} \u00b5s` : "n/a");
+  text(el, "holder", a.holder || "nobody");
+  text(el, "singular_values", (L.singular_values || []).map(fmt).join("  ") || "n/a");
+  const rej = Object.entries(a.rejected).filter(([, v]) => v > 0).sort((x, y) => y[1] - x[1]);
+  text(el, "refused", rej.length ? `${a.rejected_total} in all: ` + rej.map(([k, v]) => `${k} ${v}`).join(", ") : "none");
+  joints(el, a);
+  events(el, a);
+  c.view3d.set(a.origins, a.ellipsoid, a.tool, a.health);
+  c.pending = a;  // the canvases are redrawn once per displayed frame, not once per message
+  if (!drawScheduled) { drawScheduled = true; requestAnimationFrame(drawAll); }
+}
+
+let drawScheduled = false;
+function drawAll() {
+  drawScheduled = false;
+  for (const c of cards.values()) {
+    if (!c.pending) continue;
+    charts(c.el, c, c.pending);
+    c.view3d.draw();
+    c.pending = null;
+  }
+}
+
+function connect(delay) {
+  const link = document.getElementById("link"), lt = document.getElementById("link-text");
+  const ws = new WebSocket(`${location.protocol === "https:" ? "wss" : "ws"}://${location.host}/ws`);
+  ws.onopen = () => { link.dataset.link = "live"; lt.textContent = "live"; delay = 500; };
+  ws.onmessage = (m) => {
+    const f = JSON.parse(m.data);
+    if (f.schema !== "twistrate-dashboard/1") return;
+    serverTime = f.server_time; receivedAt = performance.now(); frames += 1;
+    document.body.dataset.frames = String(frames);
+    for (const a of f.arms) apply(a, f.type === "full");
+  };
+  ws.onclose = () => {
+    link.dataset.link = "lost"; lt.textContent = "connection to the dashboard lost; retrying";
+    setTimeout(() => connect(Math.min(delay * 2, 5000)), delay);
+  };
+}
+
+document.getElementById("size").addEventListener("click", () => document.body.classList.toggle("wall"));
+if (new URLSearchParams(location.search).has("wall")) document.body.classList.add("wall");
+connect(500);

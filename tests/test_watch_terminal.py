@@ -1,0 +1,93 @@
+"""The terminal monitor: rendered at 80 columns from a fake feed every line fits, each arm has its panel,
+the state is written in words and marks (not colour alone), a gone arm says GONE; and the real program
+in a terminal multiplexer (tmux, capture-pane) draws the same at 80 columns, in place."""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import sys
+import time
+import uuid
+
+import pytest
+
+pytest.importorskip("rich")
+
+from twistrate.clients.watch.fake import FakeArm
+from twistrate.clients.watch.model import Fleet
+from twistrate.clients.watch.terminal import WIDTH, render_text
+
+pytestmark = pytest.mark.timeout(60)
+
+
+def _fleet_at(t_end: float, names=("left", "right"), silent_after: dict | None = None) -> Fleet:
+    """A fleet fed by fake arms at 50 Hz on a simulated clock up to t_end s."""
+    fleet = Fleet(gone_after_s=1.0)
+    arms = {n: FakeArm(n, phase=2.5 * i, period_s=12.0) for i, n in enumerate(names)}
+    for n, a in arms.items():
+        fleet.arm(n).set_arm(a.description())
+        fleet.arm(n).set_thresholds(0.06, 0.02)
+    t = 0.0
+    while t <= t_end:
+        for n, a in arms.items():
+            if silent_after and n in silent_after and t > silent_after[n]:
+                continue
+            for kind, msg in a.messages(t, 1.7e9 + t):
+                fleet.feed(n, kind, msg, t)
+        fleet.check(t)
+        t += 0.02
+    return fleet
+
+
+def test_screen_fits_80_columns_with_a_panel_per_arm():
+    fleet = _fleet_at(6.0, names=("left", "right", "bench"))
+    text = render_text(fleet, 6.0)
+    lines = text.splitlines()
+    assert max(len(line) for line in lines) <= WIDTH
+    for name in ("left", "right", "bench"):
+        assert sum(f" {name} (fake-{name})" in line for line in lines) == 1
+    assert text.count("mode RUNNING") == 3 and "lease held by fake-operator" in text
+    assert text.count("turn  [") == 3  # joint bars, one row per joint
+    # the state is told in words and a mark: at 6 s of a 12 s cycle the arms are at different points
+    marks = {"[ok] CLEAR", "[!] NARROW", "[!!] PINCHED"}
+    assert sum(text.count(m) for m in marks) == 3
+
+
+def test_gone_arm_is_marked_gone_and_its_event_listed():
+    fleet = _fleet_at(4.0, silent_after={"right": 2.0})
+    text = render_text(fleet, 4.0)
+    right = text[text.index(" right (") :]
+    left = text[text.index(" left (") : text.index(" right (")]
+    assert "GONE - nothing for 2s" in right and "GONE" not in left
+    assert "gone nothing received for 1.0 s" in right
+
+
+@pytest.mark.skipif(shutil.which("tmux") is None, reason="tmux not installed (Debian package tmux)")
+def test_monitor_in_tmux_at_80_columns(tmp_path):
+    session = f"twr-watch-{uuid.uuid4().hex[:8]}"
+    cmd = f"{sys.executable} -m twistrate.clients.watch.monitor --fake left,right --seconds 15 --screen"
+    subprocess.run(["tmux", "new-session", "-d", "-s", session, "-x", "80", "-y", "45", cmd], check=True)
+    try:
+        screens = []
+        end = time.monotonic() + 10.0
+        while time.monotonic() < end and len(screens) < 2:
+            time.sleep(1.0)
+            out = subprocess.run(
+                ["tmux", "capture-pane", "-p", "-t", session], capture_output=True, text=True, check=True
+            ).stdout
+            if " right (fake-right)" in out and "joint position in range" in out:
+                screens.append(out)
+        (tmp_path / "tmux-screen.txt").write_text("\n\n".join(screens))
+        assert len(screens) == 2, screens
+        for out in screens:
+            lines = out.splitlines()
+            assert max(len(line) for line in lines) <= 80
+            assert lines[0].startswith(
+                "twistrate watch - 2 arm(s), read-only"
+            )  # redrawn in place, at the top
+            assert out.count("╭─") == 2 and "lease held by fake-operator" in out
+            assert "Not a safety-rated function" in out  # the cautions on every screen
+        assert screens[0] != screens[1]  # live: the values moved between the two captures
+    finally:
+        subprocess.run(["tmux", "kill-session", "-t", session], check=False)

@@ -29,6 +29,7 @@ from twistrate.service.config_sections import (
     ArmSection,
     EndpointsSection,
     HealthSection,
+    KeepoutSection,
     LeaseSection,
     LoggingSection,
     RecorderSection,
@@ -49,6 +50,8 @@ from twistrate.solver.validation import describe_all
 if TYPE_CHECKING:
     from twistrate.service.tunables import Tunables
     from twistrate.solver.arm import Arm
+    from twistrate.solver.keepout import KeepOut
+    from twistrate.solver.zones import KeepOutConfig
 
 #: Packaged service configurations; DEFAULT_CONFIG is what `load_config(None)` reads.
 CONFIG_PACKAGE = "twistrate.configs.service"
@@ -73,6 +76,7 @@ class ServiceConfig(_Section):
     recorder: RecorderSection = Field(default_factory=RecorderSection)
     logging: LoggingSection = Field(default_factory=LoggingSection)
     sockets: SocketsSection = Field(default_factory=SocketsSection)
+    keepout: KeepoutSection | None = None
 
     @model_validator(mode="after")
     def _cross_checks(self) -> ServiceConfig:
@@ -112,6 +116,20 @@ class ServiceConfig(_Section):
             return load_arm(self.arm.file, self.arm.base_link, self.arm.tool_link, self.arm.acceleration)
         except (InputError, ModelError) as exc:
             raise ConfigError(f"arm.file = {self.arm.file!r}: {exc}") from None
+
+    def keepout_config(self) -> KeepOutConfig | None:
+        """The validated `[keepout]` section (twistrate.solver.zones.parse_keepout), or None without one."""
+        from twistrate.solver.zones import parse_keepout
+
+        return None if self.keepout is None else parse_keepout(dict(self.keepout))
+
+    def keepout_pass(self, arm: Arm) -> KeepOut | None:
+        """The keep-out pass for `arm` (docs/keepout.md), or None without a `[keepout]` section. Raises
+        ConfigError for a bad section or link names in `touching` the arm does not have."""
+        from twistrate.solver.keepout import KeepOut
+
+        cfg = self.keepout_config()
+        return None if cfg is None else KeepOut(arm, cfg)
 
     def solver_options(self, arm: Arm) -> SolverOptions:
         """SolverOptions for `arm`: checks the per-joint lists against its n and converts degrees."""
@@ -168,6 +186,7 @@ def config_from_dict(data: Mapping[str, Any], base_dir: str | Path = ".",
         _check_arm_source(config.arm.file)
         check_endpoints({f"endpoints.{k}": v for k, v in config.endpoints.model_dump().items()},
                         curve=config.security.curve)
+        config.keepout_config()
         if config.security.curve:
             config.security.server_keys()
             config.security.allowed_clients()

@@ -54,6 +54,10 @@ class Tunable:
 
 TUNABLE = Tunable()
 
+#: The optional `[keepout]` table, kept as parsed: its loader, twistrate.solver.zones.parse_keepout,
+#: validates it (strict; every error names keepout.<key>) when the config is loaded (docs/keepout.md).
+KeepoutSection = dict[str, Any]
+
 # --- bounded value types, shared by the config sections and the tunables ---------------------------
 Damping = Literal[DAMPING_POLICIES]  # the protocol's list (wire.constants); the solver's copy is tested equal
 DampingMax = Annotated[float, Field(ge=0.0, le=1.0)]

@@ -89,6 +89,8 @@ class Pipeline:
         if self.sim is not None:
             self.intake.q = self.sim.q
         self._base_options = config.solver_options(arm)
+        #: the keep-out pass of the config's [keepout] section (built once; one tick loop's object) or None
+        self.keepout = config.keepout_pass(arm)
         self.install_tunables(config.tunables())
         self.reports = HealthReporter(self)
         # tick state
@@ -280,7 +282,7 @@ class Pipeline:
         t0 = self.clock()
         frames, J = self.kinematics(q)
         res, _ = resolve_from_kinematics(self.arm, q, qd_prev, desired, self.period_s, self.options, frames,
-                                         J)
+                                         J, self.keepout)
         self.telemetry.hist["solve"].add(self.clock() - t0)
         return res, cap
 

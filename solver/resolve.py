@@ -52,6 +52,7 @@ from twistrate.solver.arm import Arm
 from twistrate.solver.damping import resting_joint_damping, task_coefficients
 from twistrate.solver.errors import InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
+from twistrate.solver.keepout import KeepOut
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
 from twistrate.solver.limits import (
     LIMIT_ACCELERATION,
@@ -64,8 +65,14 @@ from twistrate.solver.limits import (
 )
 from twistrate.solver.options import SolverOptions
 from twistrate.solver.plan import Plan, plan_of
-from twistrate.solver.scaling import TRACK_DAMPING_MIN, bounded_damped_rates, max_scale
+from twistrate.solver.scaling import (
+    TRACK_DAMPING_MIN,
+    bounded_damped_rates,
+    bounded_damped_rates_rows,
+    max_scale,
+)
 from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
+from twistrate.solver.twist import twist_base
 
 __all__ = [
     "LIMIT_ACCELERATION",
@@ -181,31 +188,6 @@ class Resolution:
 #: finite, so a huge finite input never overflows them (no warning); nan and inf still propagate.
 _SQUARE_SAFE = 2.0 ** -540
 
-def _twist_base(twist: DesiredTwist, T_base_tool: np.ndarray) -> np.ndarray:
-    """(6,) desired twist in the base frame at the tool point, rows (v, w), m/s and rad/s."""
-    x = np.empty(6)
-    frame = twist.frame
-    point = twist.point
-    if frame == "base":
-        x[:3] = twist.linear
-        x[3:] = twist.angular
-    elif frame == "tool":
-        R = T_base_tool[:3, :3]
-        x[:3] = R @ twist.linear
-        x[3:] = R @ twist.angular
-        point = R @ point
-    else:
-        raise field_error(InputError, "twist.frame", frame, "'base' or 'tool'")
-    if point[0] or point[1] or point[2]:  # nan is truthy, so a nan point propagates into x
-        # v_tool = v_ref + w x (p_tool - p_ref) = v_ref + r x w, r = p_ref - p_tool = point.
-        r0, r1, r2 = point.tolist()
-        w0, w1, w2 = x[3:].tolist()
-        x[0] += r1 * w2 - r2 * w1
-        x[1] += r2 * w0 - r0 * w2
-        x[2] += r0 * w1 - r1 * w0
-    return x
-
-
 def _raise_non_finite(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
     """Raise InputError naming the first non-finite (or overflowing) input field."""
     for name, value in (("q", q), ("qd_prev", qd_prev), ("twist.linear", twist.linear),
@@ -224,15 +206,18 @@ def resolve(
     twist: DesiredTwist,
     period: float,
     options: SolverOptions,
+    keepout: KeepOut | None = None,
 ) -> Resolution:
     """One tick: joint rates for `twist` at configuration q.
 
     q : (n,) measured joint positions (rad or m). qd_prev : (n,) rates commanded last tick.
-    period : tick period T in s (acceleration bounds are per tick).
+    period : tick period T in s (acceleration bounds are per tick). keepout : the arm's keep-out
+    pass (`twistrate.solver.keepout.KeepOut`, one tick loop's object) or None; its velocity-damper
+    rows A q_dot >= b join the rate bounds of the scaling problem (with enforce_limits only).
     Raises InputError naming the field for non-finite q, qd_prev or twist (or a bad period),
     ConfigError for options that do not fit the arm (checked once per options instance).
     """
-    return resolve_counted(arm, q, qd_prev, twist, period, options)[0]
+    return resolve_counted(arm, q, qd_prev, twist, period, options, keepout)[0]
 
 
 def resolve_counted(
@@ -242,6 +227,7 @@ def resolve_counted(
     twist: DesiredTwist,
     period: float,
     options: SolverOptions,
+    keepout: KeepOut | None = None,
 ) -> tuple[Resolution, int]:
     """`resolve`, plus the number of saturation passes of the tick (0: no bound was hit).
 
@@ -250,7 +236,7 @@ def resolve_counted(
     plan = plan_of(arm, options, period)
     _check_states(q, qd_prev, twist)
     frames = forward(arm, q)
-    return _rates(plan, q, qd_prev, twist, options, frames, geometric_jacobian(arm, frames))
+    return _rates(plan, q, qd_prev, twist, options, frames, geometric_jacobian(arm, frames), keepout)
 
 
 def resolve_from_kinematics(
@@ -262,6 +248,7 @@ def resolve_from_kinematics(
     options: SolverOptions,
     frames: Frames,
     J: np.ndarray,
+    keepout: KeepOut | None = None,
 ) -> tuple[Resolution, int]:
     """`resolve_counted` with forward kinematics and the Jacobian at q supplied by the caller.
 
@@ -271,7 +258,7 @@ def resolve_from_kinematics(
     """
     plan = plan_of(arm, options, period)
     _check_states(q, qd_prev, twist)
-    return _rates(plan, q, qd_prev, twist, options, frames, J)
+    return _rates(plan, q, qd_prev, twist, options, frames, J, keepout)
 
 
 def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
@@ -292,9 +279,10 @@ def _rates(
     options: SolverOptions,
     frames: Frames,
     J: np.ndarray,
+    keepout: KeepOut | None = None,
 ) -> tuple[Resolution, int]:
-    """Steps 2-6 of the module docstring, from forward kinematics and J at q."""
-    x = _twist_base(twist, frames.T_base_tool)
+    """Steps 2-6 of the module docstring, from forward kinematics and J at q (and the keep-out rows)."""
+    x = twist_base(twist, frames.T_base_tool)
     xs = x * _SQUARE_SAFE
     if not math.isfinite(xs.dot(xs)) and not np.isfinite(x).all():  # as in _check_states
         _raise_non_finite(q, qd_prev, twist)
@@ -327,13 +315,18 @@ def _rates(
     iterations = 0
     tracking = False
     bplan = plan.bounds
-    if bplan is not None and within_bounds(bplan, q, qd_prev, qd):
+    rows = None
+    if keepout is not None and bplan is not None:
+        R, r, _ = keepout.rows(frames, q, J)
+        rows = (R, r) if r.shape[0] else None
+    if bplan is not None and within_bounds(bplan, q, qd_prev, qd) and (
+            rows is None or bool((rows[0].dot(qd) >= rows[1]).all())):
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
             qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
                                                              x * plan.task_scale, plan, q, qd_prev,
-                                                             options)
+                                                             options, rows)
         else:
             bits = np.zeros(n, dtype=np.uint8)
         ok = np.isfinite(qd)
@@ -378,6 +371,7 @@ def _enforce(
     q: np.ndarray,
     qd_prev: np.ndarray,
     options: SolverOptions,
+    rows: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[np.ndarray, float, np.ndarray, int, bool, float]:
     """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking,
     damping): damping is lam, or the larger damping of the joints the limits leave free
@@ -390,6 +384,8 @@ def _enforce(
     The largest scale of the damped twist comes from `twistrate.solver.scaling.max_scale` on the
     null-space parametrisation y = s y_task + Vh[rank:]^T z (exact for every rank, so rank < 6 needs
     no special treatment). Passes: 1 for the scaling solve, 2 when tracking followed.
+    rows : keep-out rows (R (p, n), r (p,)), R q_dot >= r, or None; they join the scaling LP and the
+    bounded least squares (then also for a zero twist, instead of braking along the previous rate).
     """
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
@@ -397,6 +393,8 @@ def _enforce(
     if y0 is None and rank < n:  # the objectives act only through the null space
         y0 = _objective_rates(plan, q, J, U, s, Vh)
     lo_y, hi_y = (bounds.lo, bounds.hi) if d is None else (bounds.lo / d, bounds.hi / d)
+    if rows is not None and d is not None:  # R q_dot = (R D) y
+        rows = (rows[0] * d, rows[1])
     tracking = False
     if rank == 0:  # no task direction at all: only the objectives move the arm, clipped
         y: np.ndarray | None = np.minimum(np.maximum(np.zeros(n) if y0 is None else y0, lo_y), hi_y)
@@ -407,16 +405,18 @@ def _enforce(
         z_pref = None if y0 is None or rank == n else Vn.dot(y0)
         a = coef.dot(Vh[:rank])
         a, lam = resting_joint_damping(A, a, x_w, lam, bounds.speed, plan.bounds.AT_n, options)
-        found = max_scale(a, Vn.T, lo_y, hi_y, z_pref)
+        found = max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows)
         passes = 1
         if found is not None:
             scale, y = found
         else:
             scale, y, passes = 0.0, None, 2
-            if x_w.any():  # track: the bounded damped least-squares rates (twistrate.solver.scaling)
+            if x_w.any() or rows is not None:  # track: the bounded damped least-squares rates
                 tracking = True
                 y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
-                y = bounded_damped_rates(A, x_w, lo_y, hi_y, max(lam, TRACK_DAMPING_MIN), y_ref)
+                mu = max(lam, TRACK_DAMPING_MIN)
+                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, y_ref) if rows is None
+                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
     else:

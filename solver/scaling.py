@@ -71,31 +71,53 @@ ACTIVE_MAX_PER_ROW = 4
 #: Smallest damping mu of the bounded least squares (m): keeps the problem strictly convex when
 #: the tick's damping factor is 0; its effect on a well-conditioned fit is of order (mu / s_min)^2.
 TRACK_DAMPING_MIN = 1e-3
+#: Slack (m/s) of the extra inequality rows R y >= r inside the LP (rounding, like BOUND_TOL).
+ROW_TOL = 1e-12
 
 
 def max_scale(
-    a: np.ndarray, N: np.ndarray, lo: np.ndarray, hi: np.ndarray, z_pref: np.ndarray | None
+    a: np.ndarray, N: np.ndarray, lo: np.ndarray, hi: np.ndarray, z_pref: np.ndarray | None,
+    rows: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[float, np.ndarray] | None:
     """Largest s in [0, 1] with y = s a + N z inside [lo, hi] (module docstring), and that y.
 
     a : (n,) task rates of the whole damped twist, weighted joint coordinates. N : (n, k)
     orthonormal basis of the null space of A (k >= 0). lo, hi : (n,) rate bounds, lo <= hi.
     z_pref : (k,) preferred null-space coordinates (N^T y_0 of the objectives) or None (zeros).
+    rows : optional extra inequality rows (R (p, n), r (p,)) with R y >= r in the same weighted
+        coordinates (the keep-out velocity dampers, `twistrate.solver.keepout`: Faverjon &
+        Tournassoud 1987, ICRA; Kanoun, Lamiraux & Wieber 2011, IEEE T-RO 27(4)). They join every
+        path: the ratio test (k = 0), the elimination (k = 1, as one-sided "joints" whose upper
+        bound is implied by the rate bounds) and the active-set LP (k >= 2).
     Returns (s, y (n,)) or None when no s in [0, 1] is feasible. y may exceed the bounds by
     BOUND_TOL (the caller clips).
     """
     k = N.shape[1]
     lo_t = lo - BOUND_TOL
     hi_t = hi + BOUND_TOL
+    if rows is not None:
+        R, r = rows
+        r_t = r - ROW_TOL
     if k == 0:
-        found = _scale_range(np.concatenate((hi_t, -lo_t)), np.concatenate((a, -a)))
+        h, f = np.concatenate((hi_t, -lo_t)), np.concatenate((a, -a))
+        if rows is not None:  # R (s a) >= r  <=>  s (-R a) <= -r
+            h, f = np.concatenate((h, -r_t)), np.concatenate((f, -R.dot(a)))
+        found = _scale_range(h, f)
         if found is None:
             return None
         s = found[1]
         return s, s * a
     if k == 1:
-        return _max_scale_one(a, N[:, 0], lo_t, hi_t, 0.0 if z_pref is None else float(z_pref[0]))
-    return _max_scale_general(a, N, lo_t, hi_t, np.zeros(k) if z_pref is None else z_pref)
+        zp = 0.0 if z_pref is None else float(z_pref[0])
+        if rows is None:
+            return _max_scale_one(a, N[:, 0], lo_t, hi_t, zp)
+        n = a.shape[0]
+        cap = np.abs(R).dot(np.maximum(np.abs(lo_t), np.abs(hi_t))) + 1.0  # R y <= cap for any bounded y
+        found = _max_scale_one(np.concatenate((a, R.dot(a))), np.concatenate((N[:, 0], R.dot(N[:, 0]))),
+                               np.concatenate((lo_t, r_t)), np.concatenate((hi_t, cap)), zp)
+        return None if found is None else (found[0], found[1][:n])
+    return _max_scale_general(a, N, lo_t, hi_t, np.zeros(k) if z_pref is None else z_pref,
+                              None if rows is None else (R, r_t))
 
 
 def _scale_range(h: np.ndarray, f: np.ndarray) -> tuple[float, float] | None:
@@ -159,14 +181,21 @@ def _max_scale_one(
 
 
 def _max_scale_general(
-    a: np.ndarray, N: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: np.ndarray
+    a: np.ndarray, N: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: np.ndarray,
+    rows: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[float, np.ndarray] | None:
-    """k >= 2: phase 1 (least largest violation), phase 2 (max s), then the least-distance QP in z."""
-    n, k = N.shape
+    """k >= 2: phase 1 (least largest violation), phase 2 (max s), then the least-distance QP in z.
+    rows : optional (R (p, n), r (p,)), R y >= r, as rows -R M w <= -r beside the rate bounds."""
+    k = N.shape[1]
     d = 1 + k
     M = np.concatenate((a[:, None], N), axis=1)  # y = M w, w = (s, z)
-    G = np.concatenate((M, -M, np.eye(1, d), -np.eye(1, d)))  # M w <= hi, -M w <= -lo, s <= 1, -s <= 0
-    h = np.concatenate((hi_t, -lo_t, [1.0, 0.0]))
+    if rows is None:
+        G = np.concatenate((M, -M, np.eye(1, d), -np.eye(1, d)))  # M w <= hi, -M w <= -lo, 0 <= s <= 1
+        h = np.concatenate((hi_t, -lo_t, [1.0, 0.0]))
+    else:
+        G = np.concatenate((M, -M, -rows[0].dot(M), np.eye(1, d), -np.eye(1, d)))
+        h = np.concatenate((hi_t, -lo_t, -rows[1], [1.0, 0.0]))
+    p = G.shape[0] - 2  # the rows of y (bounds and dampers), before the two on s
     # phase 1 in (w, t): G w - t <= h, -t <= 0; start w = (0, z_pref), t = the largest violation
     w0 = np.concatenate(([0.0], z_pref))
     t0 = max(0.0, float((G @ w0 - h).max()))
@@ -181,8 +210,8 @@ def _max_scale_general(
     w = active_set(G, slack, w1[:-1], c=np.eye(1, d)[0])
     s = min(1.0, max(0.0, float(w[0])))
     # secondary: z nearest z_pref with s fixed (G_z z <= h - s G_s)
-    Gz = G[: 2 * n, 1:]
-    hz = slack[: 2 * n] - s * G[: 2 * n, 0]
+    Gz = G[:p, 1:]
+    hz = slack[:p] - s * G[:p, 0]
     z = active_set(Gz, hz, w[1:], target=z_pref)
     return s, s * a + N @ z
 
@@ -307,6 +336,43 @@ def bounded_damped_rates(
         H_F = H[free]
         y[free] = _spd_solve(H_F[:, free], q[free] - H_F[:, held] @ y[held])
     return np.minimum(np.maximum(y, lo), hi)
+
+
+def bounded_damped_rates_rows(
+    A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
+    rows: tuple[np.ndarray, np.ndarray],
+) -> np.ndarray:
+    """`bounded_damped_rates` with extra rows R y >= r (R (p, n), r (p,), e.g. keep-out dampers), (n,).
+
+    Phase 1 (an LP in (y, t), the active-set method from the rows-free answer clipped into the
+    bounds): the least largest row violation t* within the bounds (0 when the rows can be met; > 0
+    only for an overlap no motion can relieve within the bounds, e.g. a zero row with r > 0).
+    Then the least-distance QP in u = L^T y (H = A^T A + mu^2 I = L L^T, Cholesky; so the damped
+    fit |A y - x_w|^2 + mu^2 |y - y_ref|^2 is |u - L^-1 q|^2 up to a constant) over the bounds and
+    the rows relaxed by t*: the rates nearest the asked twist that keep every damper row the
+    bounds allow (Nocedal & Wright 2006, section 16.5; the same `active_set`).
+    """
+    R, r = rows
+    n = A.shape[1]
+    y0 = bounded_damped_rates(A, x_w, lo, hi, mu, y_ref)
+    eye = np.eye(n)
+    G = np.concatenate((eye, -eye, -R))
+    h = np.concatenate((hi, -lo, -r))
+    p = r.shape[0]
+    t0 = max(0.0, float((r - R.dot(y0)).max()))
+    if t0 > 0.0:  # phase 1: minimise t subject to the bounds and R y + t >= r, t >= 0
+        t_col = np.concatenate((np.zeros(2 * n), -np.ones(p)))[:, None]
+        G1 = np.concatenate((np.concatenate((G, t_col), axis=1), -np.eye(1, n + 1, n)))
+        w1 = active_set(G1, np.concatenate((h, [0.0])), np.concatenate((y0, [t0])), c=-np.eye(1, n + 1, n)[0])
+        y0, t = np.minimum(np.maximum(w1[:n], lo), hi), max(0.0, float(w1[n]))
+        h[2 * n:] += max(t, float((r - R.dot(y0)).max())) + ROW_TOL
+    H = A.T @ A
+    H[np.diag_indices(n)] += mu * mu
+    Lc = np.linalg.cholesky(H)  # H = Lc Lc^T, regular (mu > 0)
+    Li_T = np.linalg.inv(Lc).T  # y = Li_T u
+    target = Li_T.T.dot(A.T.dot(x_w) + (mu * mu) * y_ref)  # L^-1 q
+    u = active_set(G.dot(Li_T), h, Lc.T.dot(y0), target=target)
+    return np.minimum(np.maximum(Li_T.dot(u), lo), hi)
 
 
 def _spd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:

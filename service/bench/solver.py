@@ -44,6 +44,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.service.bench.compiled import pinocchio_model
+from twistrate.service.bench.keepout_tick import keepout_figures, print_keepout
 from twistrate.service.bench.saturation_report import format_saturation, saturation_section
 from twistrate.service.bench.straightforward import check_plain, plain_model, straightforward_tick
 from twistrate.solver.arm import Arm
@@ -138,6 +139,8 @@ def run(argv: list[str]) -> int:
     if not ns.no_saturation:
         report["saturation"] = saturation_section()
         print(format_saturation(report["saturation"]) + "\n")
+    report["keepout"] = keepout_figures(ns.ticks)
+    print_keepout(report["keepout"])
     report["load_average_end"] = _load_average()
     print(f"load average at end: {_fmt_load(report['load_average_end'])}")
     if ns.json:

@@ -128,7 +128,9 @@ def _toml(value: object) -> str:
         return "[" + ", ".join(_toml(v) for v in value) + "]"
     if isinstance(value, (int, float)):
         return repr(value)
-    raise ConfigError(f"service config: {value!r}; accepted: numbers, strings, booleans, arrays")
+    if isinstance(value, dict):  # an inline table, e.g. each zone of [keepout] (an array of tables)
+        return "{" + ", ".join(f"{k} = {_toml(v)}" for k, v in value.items()) + "}"
+    raise ConfigError(f"service config: {value!r}; accepted: numbers, strings, booleans, arrays, tables")
 
 
 def _blackout(text: str) -> tuple[float, float]:

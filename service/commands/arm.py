@@ -79,22 +79,30 @@ def _join_at(argv: list[str]) -> list[str]:
     return out
 
 
-def parse_configuration(arm: Arm, text: str, degrees: bool) -> np.ndarray:
-    """q : (n,) rad / m from the --at text; raises InputError naming --at, the joint and the value."""
+def _per_joint(arm: Arm, text: str, option: str, degrees: bool) -> np.ndarray:
+    """(n,) finite values from a comma-separated option text, revolute ones converted from degrees when
+    `degrees`; InputError names the option, the joint (numbered from 1) and the value."""
     items = [s.strip() for s in text.split(",")]
     if len(items) != arm.n:
-        raise field_error(InputError, "--at", text, f"{arm.n} comma-separated values, one per joint "
+        raise field_error(InputError, option, text, f"{arm.n} comma-separated values, one per joint "
                           f"({', '.join(arm.joint_names)})")
-    q = np.empty(arm.n)
+    out = np.empty(arm.n)
     for i, (item, joint) in enumerate(zip(items, arm.joints, strict=True)):
         try:
             value = float(item)
         except ValueError:
             value = math.nan
         if not math.isfinite(value):
-            raise field_error(InputError, f"--at value {i + 1} (joint {joint.name!r})", item,
+            raise field_error(InputError, f"{option} value {i + 1} (joint {joint.name!r})", item,
                               "a finite number")
-        q[i] = math.radians(value) if degrees and arm.revolute[i] else value
+        out[i] = math.radians(value) if degrees and arm.revolute[i] else value
+    return out
+
+
+def parse_configuration(arm: Arm, text: str, degrees: bool) -> np.ndarray:
+    """q : (n,) rad / m from the --at text; raises InputError naming --at, the joint and the value."""
+    q = _per_joint(arm, text, "--at", degrees)
+    for i, (item, joint) in enumerate(zip(text.split(","), arm.joints, strict=True)):
         if not joint.position_min <= q[i] <= joint.position_max:
             lo, hi = joint.position_min, joint.position_max
             unit = "m"
@@ -102,28 +110,14 @@ def parse_configuration(arm: Arm, text: str, degrees: bool) -> np.ndarray:
                 lo, hi, unit = math.degrees(lo), math.degrees(hi), "deg"
             elif arm.revolute[i]:
                 unit = "rad"
-            raise field_error(InputError, f"--at value {i + 1} (joint {joint.name!r})", item,
+            raise field_error(InputError, f"--at value {i + 1} (joint {joint.name!r})", item.strip(),
                               f"within the joint's limits [{lo:.6g}, {hi:.6g}] {unit}")
     return q
 
 
 def parse_rates(arm: Arm, text: str, degrees: bool) -> np.ndarray:
     """qd : (n,) rad/s / m/s from the --rate text; InputError names --rate, the joint and the value."""
-    items = [s.strip() for s in text.split(",")]
-    if len(items) != arm.n:
-        raise field_error(InputError, "--rate", text, f"{arm.n} comma-separated values, one per joint "
-                          f"({', '.join(arm.joint_names)})")
-    qd = np.empty(arm.n)
-    for i, (item, joint) in enumerate(zip(items, arm.joints, strict=True)):
-        try:
-            value = float(item)
-        except ValueError:
-            value = math.nan
-        if not math.isfinite(value):
-            raise field_error(InputError, f"--rate value {i + 1} (joint {joint.name!r})", item,
-                              "a finite number")
-        qd[i] = math.radians(value) if degrees and arm.revolute[i] else value
-    return qd
+    return _per_joint(arm, text, "--rate", degrees)
 
 
 def _finite_or_none(x: float) -> float | None:

@@ -39,19 +39,14 @@ from twistrate.clients.vservo.feed import FeatureInput
 from twistrate.clients.vservo.runner import Outcome, Runner
 from twistrate.clients.vservo.synthetic_feed import SyntheticPipeline
 from twistrate.service import wire
+from twistrate.service.commands.demo import CAUTIONS as DEMO_CAUTIONS
 from twistrate.service.config import ServiceConfig, config_from_dict
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import ConfigError, TwistrateError
 
-CAUTIONS = (
-    "CAUTIONS",
-    "  - twistrate is not a safety-rated function.",
-    "  - A hardware emergency stop and an enabling device are required.",
-    "  - Do a risk assessment per the applicable standards (e.g. ISO 10218-1/-2, ISO 12100).",
-    "  - Try in simulation and at reduced speed first.",
-    "  - Defer to local codes and licensed practice.",
-    "  - A camera loop moves the arm towards whatever the camera reports: keep the cell clear.",
-)
+#: The project's cautions (the demo's list) and this program's own.
+CAUTIONS = (*DEMO_CAUTIONS,
+            "  - A camera loop moves the arm towards whatever the camera reports: keep the cell clear.")
 #: Default run time limit, s.
 DEFAULT_SECONDS = 30.0
 

@@ -116,7 +116,8 @@ class LatencyHistogram:
         self.total_ns = 0
 
     def percentile_us(self, p: float) -> float:
-        """Upper edge (µs) of the bin holding the p-th percentile (0 < p <= 100); 0 when empty."""
+        """Upper edge (µs) of the bin holding the p-th percentile (0 < p <= 100), never above the max;
+        0 when empty."""
         counts = self.counts.copy()
         total = int(counts.sum())
         if total == 0:
@@ -125,7 +126,7 @@ class LatencyHistogram:
         i = int(np.searchsorted(np.cumsum(counts), rank))
         if i >= self._last:
             return self.max_ns / 1000.0
-        return min((i + 1) * HIST_BIN_NS, max(self.max_ns, HIST_BIN_NS)) / 1000.0
+        return min((i + 1) * HIST_BIN_NS, self.max_ns) / 1000.0
 
     def summary(self) -> dict[str, float]:
         """{count, median_us, p99_us, max_us, mean_us}."""

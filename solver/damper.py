@@ -27,6 +27,11 @@ from twistrate.solver.jacobians import offset_point_jacobian
 from twistrate.solver.kinematics import LEVI_CIVITA
 from twistrate.solver.zones import KeepOutConfig
 
+#: A damper row A q_dot >= b counts as active (met with equality) at the rates when
+#: A q_dot - b <= this times (1 + |b|), m/s: the LP's row slack (scaling.ROW_TOL) plus the final clip's
+#: rounding.
+ROW_ACTIVE_TOL = 1e-9
+
 
 @dataclass(frozen=True, eq=False)
 class Contacts:

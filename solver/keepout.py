@@ -116,6 +116,15 @@ class KeepOut:
         pairs += [(i, z) for i in range(km) for z in range(nb)]
         names += [(seg_names[i], zones.box_names[z]) for i in range(km) for z in range(nb)]
         self.pair_names: tuple[tuple[str, str], ...] = tuple(names)
+        # (link of a, link or zone of b, whether b is a zone) per pair, for reports
+        body_names = arm.body_names
+        seg_link = [body_names[caps[k].body] for k in order] + list(zones.segment_names)
+        zone_from = km + len(fixed)
+        links = [(seg_link[i], seg_link[j], j >= zone_from) for i, j in pairs[: self._seg_end]]
+        links += [(seg_link[i], zones.half_space_names[z], True) for i in range(km) for z in range(nh)]
+        links += [(seg_link[i], zones.box_names[z], True) for i in range(km) for z in range(nb)]
+        #: (link name of side a, link name or zone name of side b, b is a zone) per pair
+        self.pair_links: tuple[tuple[str, str, bool], ...] = tuple(links)
         self._ia = np.array([p[0] for p in pairs], dtype=int)
         self._ib = np.array([p[1] for p in pairs], dtype=int)
         lever = levers[self._ia]
@@ -219,6 +228,37 @@ class KeepOut:
         its nearer end point); for reports and tests. Leaves the early-out state alone."""
         idx = np.arange(self.pair_count)
         return self._exact(self.place(frames), idx, nearest_end=True)[1]
+
+    def nearest(self, frames: Frames, q: np.ndarray) -> tuple[float, int] | None:
+        """(d, pair) of the nearest pair at q: its exact signed distance d (m; a half-space pair at its
+        nearer end point) and its index into `pair_names`; None when the pass has no pair.
+
+        frames : forward kinematics at q (n,). Exact, not a bound: the pairs are computed exactly in
+        the order of their lower bounds (`lower_bounds`) until no pair left can be nearer than the
+        nearest found, a few pairs when the early-out state is recent. Those exact distances update the
+        early-out state (as `contacts` would: results never depend on it).
+        """
+        count = self.pair_count
+        if not count:
+            return None
+        lb = self.lower_bounds(q)
+        left = np.ones(count, dtype=bool)
+        best, best_pair = math.inf, -1
+        S = self.place(frames)
+        d_i = self.config.influence_m
+        while True:
+            cand = np.flatnonzero(left & (lb < best))
+            if not len(cand):
+                return best, best_pair
+            cand = np.sort(cand[np.argsort(lb[cand], kind="stable")[:SCALAR_PAIRS_MAX]])
+            d_pair, _ = self._exact_few(S, cand)
+            left[cand] = False
+            self._q0[cand] = q
+            self._slack[cand] = d_pair
+            self._slack[cand] -= d_i + EARLY_OUT_MARGIN_M
+            k = int(np.argmin(d_pair))
+            if d_pair[k] < best:
+                best, best_pair = float(d_pair[k]), int(cand[k])
 
     def lower_bounds(self, q: np.ndarray) -> np.ndarray:
         """(P,) a lower bound of every pair's distance at q from the cached exact ones, m (exact for

@@ -49,6 +49,7 @@ from typing import Literal
 import numpy as np
 
 from twistrate.solver.arm import Arm
+from twistrate.solver.damper import ROW_ACTIVE_TOL, Contacts
 from twistrate.solver.damping import resting_joint_damping, task_coefficients
 from twistrate.solver.errors import InputError, field_error
 from twistrate.solver.jacobians import manipulability_gradient_geometric
@@ -135,6 +136,9 @@ class Resolution:
         twist_achieved is the nearest twist the bounds allow, in nearly the asked direction.
     twist_error (property) : (6,) twist_achieved - twist_desired, base frame, tool point, (v, w),
         m/s and rad/s: what the tick fell short of, from scaling, damping or tracking together.
+    contacts : this tick's keep-out contacts (`twistrate.solver.damper.Contacts`, one per damper row),
+        or None without a keep-out pass. rows_active : (r,) bool, the damper rows met with equality
+        at qd (`damper.ROW_ACTIVE_TOL`), or None when the tick had no damper row.
     """
 
     qd: np.ndarray
@@ -148,6 +152,8 @@ class Resolution:
     singular_values: np.ndarray
     U: np.ndarray
     tracking: bool
+    contacts: Contacts | None
+    rows_active: np.ndarray | None
 
     def __init__(
         self,
@@ -162,6 +168,8 @@ class Resolution:
         singular_values: np.ndarray,
         U: np.ndarray,
         tracking: bool = False,
+        contacts: Contacts | None = None,
+        rows_active: np.ndarray | None = None,
     ) -> None:
         # Frozen: fill __dict__ directly, once per tick (cheaper than ten object.__setattr__ calls).
         fields = self.__dict__
@@ -176,6 +184,8 @@ class Resolution:
         fields["singular_values"] = singular_values
         fields["U"] = U
         fields["tracking"] = tracking
+        fields["contacts"] = contacts
+        fields["rows_active"] = rows_active
 
     @property
     def twist_error(self) -> np.ndarray:
@@ -315,9 +325,9 @@ def _rates(
     iterations = 0
     tracking = False
     bplan = plan.bounds
-    rows = None
+    rows = contacts = None
     if keepout is not None and bplan is not None:
-        R, r, _ = keepout.rows(frames, q, J)
+        R, r, contacts = keepout.rows(frames, q, J)
         rows = (R, r) if r.shape[0] else None
     if bplan is not None and within_bounds(bplan, q, qd_prev, qd) and (
             rows is None or bool((rows[0].dot(qd) >= rows[1]).all())):
@@ -336,7 +346,9 @@ def _rates(
     # Positional, in field order (qd, twist_desired, twist_achieved, scale, damping, limits_active,
     # frames, J, singular_values, U): keyword passing costs about 0.5 us per tick.
     U_k = U if k == U.shape[1] else U[:, :k]
-    return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k, tracking), iterations
+    active = None if rows is None else rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
+    return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k, tracking, contacts,
+                      active), iterations
 
 
 def _objective_rates(

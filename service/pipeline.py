@@ -32,6 +32,7 @@ from twistrate.service import wire
 from twistrate.service.config import ServiceConfig
 from twistrate.service.intake import DRAIN_BUDGET_NS, Intake, Poll
 from twistrate.service.joint_source import JointSourceGuard
+from twistrate.service.keepout_watch import KeepoutWatch
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.recorder import limit_events
 from twistrate.service.reports import HealthReporter
@@ -91,6 +92,7 @@ class Pipeline:
         self._base_options = config.solver_options(arm)
         #: the keep-out pass of the config's [keepout] section (built once; one tick loop's object) or None
         self.keepout = config.keepout_pass(arm)
+        self.keepout_watch = KeepoutWatch(self)
         self.install_tunables(config.tunables())
         self.reports = HealthReporter(self)
         # tick state
@@ -241,6 +243,7 @@ class Pipeline:
                 self.limits_active = np.zeros(self.n, dtype=np.uint8)
             self.last_resolution = None
             self.intake.twist_unanswered = False
+            self.keepout_watch.step(None)
         for fut, result in replies:  # replies that report a mode report the one this tick runs in
             if type(result) is dict and "mode" in result:
                 result["mode"] = mode
@@ -338,6 +341,7 @@ class Pipeline:
         self.scale = float(res.scale)
         self.damping = float(res.damping)
         self.last_resolution = res
+        self.keepout_watch.step(res)
         sv = res.singular_values
         self.sigma_min = float(sv[-1])
         self.manipulability = float(np.prod(sv))

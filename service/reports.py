@@ -64,6 +64,7 @@ class HealthReporter:
             "weakest_linear": h.weakest_linear,
             "weakest_angular": h.weakest_angular,
             "limit_margin": h.limit_margin,
+            **p.keepout_watch.health(q),
         }}
 
     def _motion(self, q: np.ndarray, res: Any) -> dict[str, Any]:

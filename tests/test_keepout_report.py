@@ -5,6 +5,8 @@ against the linear program solved by scipy (its dual values tell which constrain
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
@@ -188,3 +190,37 @@ def test_joint_limit_limits_the_scale_without_keepout_rows():
     assert res.scale == pytest.approx(s_lp, abs=1e-7)
     assert np.abs(joint_duals).max() > 1e-9  # a joint bound binds in the LP
     assert res.limits_active[lim.joint] != 0  # and the joint named rests on one
+
+
+def test_the_documented_health_example_keepout_pair_is_the_nearest_by_coal():
+    """docs/protocol.md 7.4's example (reach7 at home, the demo's [keepout]): the pair it names is the nearest
+    of every pair by the oracle distances (coal, half-space closed form), to the four digits shown."""
+    import json
+    from pathlib import Path
+
+    from twistrate.service.config import load_config
+    text = (Path(__file__).resolve().parents[1] / "docs" / "protocol.md").read_text()
+    doc = json.loads(text.split("### 7.4")[1].split("### 7.5")[0].split("```")[1])["keepout"]
+    config = load_config()
+    arm = config.load_arm()
+    ko = config.keepout_pass(arm)
+    q = arm.q_home
+    fr = forward(arm, q)
+    caps = {c.name: c for c in arm.geometry.capsules}
+    hs = config.keepout_config().zones
+    best = (math.inf, None)
+    for (cap_a, other), links in zip(ko.pair_names, ko.pair_links, strict=True):
+        a0, a1 = capsule_base(arm, fr, caps[cap_a])
+        if other in caps:
+            b0, b1 = capsule_base(arm, fr, caps[other])
+            d = coal_capsule_distance(a0, a1, caps[cap_a].radius, b0, b1, caps[other].radius)
+        else:  # the demo's zones are half-spaces: n^T p - c at the nearer end, minus the radius
+            z = hs.half_space_names.index(other)
+            n, c = hs.half_space_normal[z], hs.half_space_offset[z]
+            d = min(n @ a0, n @ a1) - c - caps[cap_a].radius
+        best = min(best, (d, links), key=lambda t: t[0])
+    assert doc["other_kind"] == "link"
+    assert (doc["link"], doc["other"]) == best[1][:2]
+    assert doc["nearest_m"] == pytest.approx(best[0], abs=5e-5)
+    d, _ = ko.nearest(fr, q)
+    assert d == pytest.approx(best[0], abs=1e-9)

@@ -46,6 +46,18 @@ MODE_HOLDING = "holding"
 MODE_FAULT = "fault"
 MODE_SHUTDOWN = "shutdown"
 MODES: tuple[str, ...] = (MODE_DISABLED, MODE_RUNNING, MODE_STOPPING, MODE_HOLDING, MODE_FAULT, MODE_SHUTDOWN)
+#: what limited the task scale this tick (health.limiting.by): nothing, a joint bound, a keep-out damper
+#: (the solver's copy, twistrate.solver.limiting.LIMITERS, must equal it)
+LIMITERS: tuple[str, ...] = ("none", "joint", "keepout")
+#: the kind of joint bound that limited it (health.limiting.bound; twistrate.solver.limiting.BOUND_KINDS)
+BOUND_KINDS: tuple[str, ...] = ("position", "velocity", "acceleration")
+#: what the nearest keep-out pair's second member is (health.keepout.other_kind): a zone of the
+#: service config, or another link of the arm (self-collision)
+KEEPOUT_OTHER_KINDS: tuple[str, ...] = ("zone", "link")
+#: the keep-out events (docs/protocol.md section 10): a damper started / stopped limiting the scale
+EVENT_KEEPOUT_LIMITING = "keepout_limiting"
+EVENT_KEEPOUT_RELEASED = "keepout_released"
+KEEPOUT_EVENTS: tuple[str, ...] = (EVENT_KEEPOUT_LIMITING, EVENT_KEEPOUT_RELEASED)
 #: damping policies a `set` of the `damping` tunable may name (the solver's own list must equal it)
 DAMPING_POLICIES: tuple[str, ...] = ("none", "constant", "manipulability", "singular_value", "selective")
 
@@ -118,6 +130,9 @@ MIN_CHARACTERISTIC_LENGTH_M = 1e-3
 #: |each component| of the weakest direction's angular part, rad/s per unit weighted twist: a component
 #: of the unit weighted vector divided by L, so at most 1 / MIN_CHARACTERISTIC_LENGTH_M (plus rounding)
 MAX_WEAKEST_ANGULAR = MAX_DIRECTION / MIN_CHARACTERISTIC_LENGTH_M
+#: |health.keepout.nearest_m|, m: a signed distance between the arm and a zone of its cell (negative:
+#: overlap); the bound only refuses absurd values
+MAX_KEEPOUT_DISTANCE_M = 1e6
 #: joint-limit margin as a fraction of the joint's range (twistrate.solver.health.limit_margins):
 #: min(q - q_min, q_max - q) / (q_max - q_min) is at most 1/2 (mid-range; plus rounding) and negative
 #: beyond a limit; the lower bound only refuses absurd values. nil on the wire for an unlimited joint.

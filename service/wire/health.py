@@ -28,12 +28,16 @@ from twistrate.service.wire.checks import (
     wire_fail,
 )
 from twistrate.service.wire.constants import (
+    BOUND_KINDS,
     HEALTH_STATES,
+    KEEPOUT_OTHER_KINDS,
     KIND_HEALTH,
+    LIMITERS,
     MAX_ANGULAR_RADPS,
     MAX_DIRECTION,
     MAX_HEALTH_BYTES,
     MAX_JOINTS,
+    MAX_KEEPOUT_DISTANCE_M,
     MAX_MAP_ENTRIES,
     MAX_MARGIN_FRACTION,
     MAX_MEASURE,
@@ -43,17 +47,21 @@ from twistrate.service.wire.constants import (
     MODES,
     SEQ_MAX,
 )
-from twistrate.service.wire.messages import HealthMessage
+from twistrate.service.wire.messages import HealthMessage, KeepoutNearest, Limiting
 
 _HEALTH_KEYS = frozenset((*HEADER_KEYS, "tick", "manipulability", "singular_values", "inverse_condition",
                           "weakest", "damping", "scale", "limit_margin", "state", "mode", "rejected",
-                          "overruns", "tracking", "twist", "foresight"))
+                          "overruns", "tracking", "twist", "foresight", "keepout", "limiting"))
 _TWIST_KEYS = frozenset(("achieved", "error"))
 _FORESIGHT_KEYS = frozenset(("sigma_min_rate_m_s", "time_to_pinched_s", "time_to_limit_s",
                              "first_limit_joint", "time_to_first_limit_s"))
 #: field-name prefix of the foresight map
 _F = "health.foresight"
 _MANIP_KEYS = frozenset(("whole", "linear", "angular"))
+_KEEPOUT_KEYS = frozenset(KeepoutNearest._fields)
+_LIMITING_KEYS = frozenset(Limiting._fields)
+#: the limiting map when nothing limited the scale
+NOT_LIMITED = Limiting("none")
 _WEAKEST_KEYS = frozenset(("linear", "angular"))
 
 
@@ -65,9 +73,12 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
                   twist_achieved: np.ndarray | None = None, twist_error: np.ndarray | None = None,
                   sigma_min_rate_m_s: float | None = None, time_to_pinched_s: float | None = None,
                   time_to_limit_s: np.ndarray | None = None, first_limit_joint: int | None = None,
-                  time_to_first_limit_s: float | None = None) -> bytes:
+                  time_to_first_limit_s: float | None = None, keepout: tuple | None = None,
+                  limiting: tuple = NOT_LIMITED) -> bytes:
     """Encode a health report (fields as HealthMessage). limit_margin and time_to_limit_s entries may be
-    +inf (sent as nil); twist_achieved / twist_error None (not running) and the foresight Nones are nil."""
+    +inf (sent as nil); twist_achieved / twist_error None (not running) and the foresight Nones are nil.
+    keepout : (nearest_m, link, other, other_kind) as KeepoutNearest, or None (nil: no keep-out);
+    limiting : (by, joint, bound, link, other) as Limiting."""
     m = header(KIND_HEALTH, seq, stamp_ns)
     m["tick"] = enc_int(tick, "health.tick", 0, SEQ_MAX)
     m["manipulability"] = {
@@ -128,7 +139,66 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
         enc_int(first_limit_joint, f"{_F}.first_limit_joint", 0, len(wire_margins) - 1),
         "time_to_first_limit_s": _enc_optional(time_to_first_limit_s, f"{_F}.time_to_first_limit_s", 0.0),
     }
+    m["keepout"] = None if keepout is None else _enc_keepout(keepout)
+    m["limiting"] = _enc_limiting(limiting, len(wire_margins))
     return pack(m, MAX_HEALTH_BYTES, KIND_HEALTH)
+
+
+def _enc_keepout(k: tuple) -> dict:
+    nearest_m, link, other, other_kind = k
+    return {"nearest_m": enc_num(nearest_m, "health.keepout.nearest_m", -MAX_KEEPOUT_DISTANCE_M,
+                                 MAX_KEEPOUT_DISTANCE_M),
+            "link": enc_str(link, "health.keepout.link", MAX_NAME_CHARS),
+            "other": enc_str(other, "health.keepout.other", MAX_NAME_CHARS),
+            "other_kind": enc_str(other_kind, "health.keepout.other_kind", MAX_NAME_CHARS,
+                                  KEEPOUT_OTHER_KINDS)}
+
+
+def _enc_limiting(k: tuple, n: int) -> dict:
+    by, joint, bound, link, other = k
+    by = enc_str(by, "health.limiting.by", MAX_NAME_CHARS, LIMITERS)
+    out = {"by": by, "joint": None, "bound": None, "link": None, "other": None}
+    if by == "joint":
+        out["joint"] = enc_int(joint, "health.limiting.joint", 0, n - 1)
+        out["bound"] = enc_str(bound, "health.limiting.bound", MAX_NAME_CHARS, BOUND_KINDS)
+    elif by == "keepout":
+        out["link"] = enc_str(link, "health.limiting.link", MAX_NAME_CHARS)
+        out["other"] = enc_str(other, "health.limiting.other", MAX_NAME_CHARS)
+    if (by != "joint" and (joint is not None or bound is not None)) or \
+            (by != "keepout" and (link is not None or other is not None)):
+        raise input_fail("health.limiting", tuple(k), "joint and bound only with by 'joint', link and other "
+                         "only with by 'keepout'")
+    return out
+
+
+def _dec_keepout(v: object) -> KeepoutNearest | None:
+    if v is None:
+        return None
+    k = submap(v, "health.keepout", _KEEPOUT_KEYS)
+    return KeepoutNearest(
+        dec_num(k["nearest_m"], "health.keepout.nearest_m", -MAX_KEEPOUT_DISTANCE_M, MAX_KEEPOUT_DISTANCE_M),
+        dec_str(k["link"], "health.keepout.link", MAX_NAME_CHARS),
+        dec_str(k["other"], "health.keepout.other", MAX_NAME_CHARS),
+        dec_str(k["other_kind"], "health.keepout.other_kind", MAX_NAME_CHARS, KEEPOUT_OTHER_KINDS))
+
+
+def _dec_limiting(v: object, n: int) -> Limiting:
+    k = submap(v, "health.limiting", _LIMITING_KEYS)
+    by = dec_str(k["by"], "health.limiting.by", MAX_NAME_CHARS, LIMITERS)
+    joint = bound = link = other = None
+    if by == "joint":
+        joint = dec_int(k["joint"], "health.limiting.joint", 0, n - 1)
+        bound = dec_str(k["bound"], "health.limiting.bound", MAX_NAME_CHARS, BOUND_KINDS)
+    elif by == "keepout":
+        link = dec_str(k["link"], "health.limiting.link", MAX_NAME_CHARS)
+        other = dec_str(k["other"], "health.limiting.other", MAX_NAME_CHARS)
+    for name in ("joint", "bound") if by != "joint" else ():
+        if k[name] is not None:
+            raise wire_fail("bad_value", f"health.limiting.{name}", k[name], f"nil when by is {by!r}")
+    for name in ("link", "other") if by != "keepout" else ():
+        if k[name] is not None:
+            raise wire_fail("bad_value", f"health.limiting.{name}", k[name], f"nil when by is {by!r}")
+    return Limiting(by, joint, bound, link, other)
 
 
 def _enc_twist(x: np.ndarray, name: str) -> dict[str, list[float]]:
@@ -216,4 +286,5 @@ def decode_health(data: bytes, n: int | None = None) -> HealthMessage:
     to_first = _dec_optional(fs["time_to_first_limit_s"], f"{_F}.time_to_first_limit_s", 0.0)
     return HealthMessage(seq, stamp, tick, whole, lin, ang, sv, inv, wl, wa, damping, scale, margin, state,
                          mode, rejected, overruns, tracking, achieved, error, rate, to_pinched, limit_times,
-                         first, to_first)
+                         first, to_first, _dec_keepout(m["keepout"]),
+                         _dec_limiting(m["limiting"], len(margin)))

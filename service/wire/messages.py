@@ -87,6 +87,8 @@ class HealthMessage(NamedTuple):
     time_to_limit_s : (n,) per joint, time until its commanded rate reaches the position limit it moves
         toward, s; +inf never (nil on the wire). first_limit_joint / time_to_first_limit_s : the joint
         (0-based) that gets there first and when, or None.
+    keepout : the nearest keep-out pair (KeepoutNearest), or None when the service has no keep-out.
+    limiting : the constraint that limited the scale (Limiting); None only for a message built without it.
     """
 
     seq: int
@@ -114,6 +116,37 @@ class HealthMessage(NamedTuple):
     time_to_limit_s: np.ndarray
     first_limit_joint: int | None
     time_to_first_limit_s: float | None
+    keepout: KeepoutNearest | None = None
+    limiting: Limiting | None = None
+
+
+class KeepoutNearest(NamedTuple):
+    """health.keepout: the nearest keep-out pair at the tick's joint state.
+
+    nearest_m : signed distance between the two surfaces, m (negative: they overlap).
+    link : the arm's link of the pair (a joint name, or "root"); other : the zone's name or the other link's
+    name; other_kind : "zone" or "link".
+    """
+
+    nearest_m: float
+    link: str
+    other: str
+    other_kind: str
+
+
+class Limiting(NamedTuple):
+    """health.limiting: the constraint that limited this tick's scale.
+
+    by : "none", "joint" or "keepout". joint (0-based index) and bound ("position", "velocity" or
+    "acceleration") when by is "joint", else None. link and other (as in KeepoutNearest) when by is
+    "keepout", else None.
+    """
+
+    by: str
+    joint: int | None = None
+    bound: str | None = None
+    link: str | None = None
+    other: str | None = None
 
 
 class EventMessage(NamedTuple):

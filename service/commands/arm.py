@@ -1,12 +1,14 @@
 """`twistrate arm`: load an arm file and report its joints, limits, tool pose, Jacobian and health.
 
-    twistrate arm FILE [--base LINK] [--tool LINK] [--at Q1,Q2,...] [--deg] [--length M] [--json]
+    twistrate arm FILE [--base LINK] [--tool LINK] [--at Q1,Q2,...] [--deg] [--length M]
+                       [--config SERVICE.toml] [--json]
 
 FILE is a .toml or .urdf path, or the short name of a packaged example arm (e.g. bench6). The
 configuration is the arm's home posture unless --at gives one value per joint (rad or m; with
 --deg, revolute values are degrees). --json prints one JSON object whose schema is documented in
 docs/arm-format.md ("twistrate arm --json"). Bad input exits with code 2 and a message naming the
-option; nothing is printed to stdout then.
+option; nothing is printed to stdout then. With --config, the distances from the arm's link capsules to
+the zones of that service config's [keepout] section and between its link pairs (docs/keepout.md).
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from twistrate.service.commands.arm_keepout import format_keepout, keepout_fields, load_keepout
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import InputError, ModelError, TwistrateError, field_error
 from twistrate.solver.foresight import foresight, task_joint_weight
@@ -62,6 +65,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--length", metavar="M", type=str, default=None,
                    help="characteristic length (m) weighting angular against linear rows in the health "
                         f"measures (default {SolverOptions().characteristic_length})")
+    p.add_argument("--config", metavar="SERVICE.toml",
+                   help="a service config: report the distances to the zones of its [keepout] section and "
+                        "between the link pairs that may collide, nearest first")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
     return p
 
@@ -136,12 +142,14 @@ def parse_length(text: str) -> float:
 
 
 def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: list[str],
-                 options: SolverOptions | None = None, rate: np.ndarray | None = None) -> dict[str, Any]:
+                 options: SolverOptions | None = None, rate: np.ndarray | None = None,
+                 keepout: tuple[Any, str] | None = None) -> dict[str, Any]:
     """The report as a JSON-ready dict (SI units; layout documented in docs/arm-format.md).
 
     q : (n,) joint positions, rad / m. q_source : "home" or "--at".
     options : solver options whose characteristic length and joint weights the health measures
         use (defaults when None). rate : (n,) joint rates, rad/s / m/s, for the foresight, or None.
+    keepout : (KeepOut pass, the config's path) for the `keepout` object, or None.
     """
     options = SolverOptions() if options is None else options
     frames = forward(arm, q)
@@ -170,6 +178,8 @@ def build_report(arm: Arm, q: np.ndarray, q_source: str, source: str, notes: lis
     report.update(_health_fields(arm, q, J, options))
     if rate is not None:
         report["foresight"] = _foresight_fields(arm, q, rate, J, options)
+    if keepout is not None:
+        report["keepout"] = keepout_fields(keepout[0], frames, keepout[1])
     report["notes"] = notes
     return report
 
@@ -245,6 +255,8 @@ def format_text(report: dict[str, Any]) -> str:
         lines.append(f"  {label}  " + " ".join(_num(v) for v in row))
     lines.append("")
     lines += _format_health(report)
+    if "keepout" in report:
+        lines += ["", *format_keepout(report["keepout"])]
     if report["notes"]:
         lines += ["", "notes:"] + [f"  {note}" for note in report["notes"]]
     return "\n".join(lines)
@@ -306,13 +318,14 @@ def main(argv: list[str] | None = None) -> int:
         else:
             q, q_source = parse_configuration(arm, args.at, args.deg), "--at"
         rate = None if args.rate is None else parse_rates(arm, args.rate, args.deg)
+        keepout = None if args.config is None else (load_keepout(arm, args.config), args.config)
     except TwistrateError as exc:  # InputError, ModelError, or any other error of ours
         hint = ""
         if isinstance(exc, ModelError) and ("tool_link" in str(exc) or "base_link" in str(exc)):
             hint = "\n(choose the URDF chain with --base LINK and --tool LINK)"
         print(f"twistrate arm: {exc}{hint}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    report = build_report(arm, q, q_source, label, notes, options, rate)
+    report = build_report(arm, q, q_source, label, notes, options, rate, keepout)
     text = json.dumps(report, indent=1, allow_nan=False) if args.json else format_text(report)
     try:
         print(text)

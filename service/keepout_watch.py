@@ -39,6 +39,10 @@ class KeepoutWatch:
         #: a keep-out damper limited the scale within the hold (between the two events)
         self.engaged = False
         self._clear_ticks = 0
+        #: how many times a damper started to limit the scale (keepout_limiting events)
+        self.engagements = 0
+        #: the nearest pair any health report found: (distance m, link, other), or None
+        self.closest: tuple[float, str, str] | None = None
 
     def step(self, res: Resolution | None) -> None:
         """Book one tick: res its resolution, or None when it did not solve (not running)."""
@@ -50,6 +54,7 @@ class KeepoutWatch:
             self._clear_ticks = 0
             if not self.engaged:
                 self.engaged = True
+                self.engagements += 1
                 link, other, _ = self.links[lim.pair]
                 self.p.emit_event("keepout_limiting", f"{link} - {other} at {lim.distance:.4f} m limits the "
                                                       f"scale to {res.scale:.3f}")
@@ -77,6 +82,8 @@ class KeepoutWatch:
             return {"keepout": None, "limiting": wire_lim}
         d, pair = found
         link, other, zone = self.links[pair]
+        if self.closest is None or d < self.closest[0]:
+            self.closest = (d, link, other)
         bound = wire.MAX_KEEPOUT_DISTANCE_M
         return {"keepout": wire.KeepoutNearest(min(bound, max(-bound, d)), link, other,
                                                "zone" if zone else "link"),

@@ -1,9 +1,11 @@
 """`twistrate demo`: the service with its built-in simulated arm and a scripted twist source; no hardware.
 
 The scenario (invented for this demo): an inspection pass over a curved panel with the 7-joint
-example arm (reach7). The camera tool approaches the panel, sweeps along its curve, reaches to its
-far edge, tilts to look along it (the wrist passes its aligned, near-singular posture) and rolls
-the camera until the wrist joints meet their limits, then backs off. The source is a client like
+example arm (reach7). The camera tool approaches the panel, is pressed on down toward the bench top
+below it (a keep-out zone of the demo config: the tool stops short of it, at the security distance),
+slides along the bench and lifts off, sweeps along the panel's curve, reaches to its far edge, tilts
+to look along it (the wrist passes its aligned, near-singular posture) and rolls the camera until the
+wrist joints meet their limits, then backs off. The source is a client like
 any other: it claims the lease, enables motion and streams twists over the wire (clients/link.py).
 
 Output: the cautions first (once the arguments are checked, before anything starts), then a live
@@ -48,7 +50,7 @@ CAUTIONS = (
     "  - Defer to local codes and licensed practice.",
 )
 #: Default run time, s (the whole scenario).
-DEFAULT_SECONDS = 24.0
+DEFAULT_SECONDS = 25.8
 #: Twists per second the scripted source sends.
 SOURCE_HZ = 100.0
 #: Live summary refreshes per second.
@@ -65,6 +67,9 @@ class Phase:
     name: str
     seconds: float
     twist: Callable[[float], tuple[tuple[float, float, float], tuple[float, float, float]]]
+    #: the pass clock follows the share of the twist carried out (PassClock); False: it runs in real
+    #: time, for a segment whose point is that the arm stops short
+    paced: bool = True
 
 
 def _sweep(t: float) -> tuple[tuple[float, float, float], tuple[float, float, float]]:
@@ -73,14 +78,42 @@ def _sweep(t: float) -> tuple[tuple[float, float, float], tuple[float, float, fl
     return (-0.03 * math.sin(s), 0.11 * math.sin(s), 0.0), (0.0, 0.0, 0.25 * math.sin(s))
 
 
+#: The inspection phases run at this factor of their first speeds (so the keep-out segment fits in about
+#: the same total time): each phase's duration divided by it, its twist multiplied.
+_PACE = 1.2
+
+
+def _paced(name: str, seconds: float, linear: tuple[float, float, float],
+           angular: tuple[float, float, float]) -> Phase:
+    lin = (linear[0] * _PACE, linear[1] * _PACE, linear[2] * _PACE)
+    ang = (angular[0] * _PACE, angular[1] * _PACE, angular[2] * _PACE)
+    return Phase(name, seconds / _PACE, lambda t: (lin, ang))
+
+
+def _sweep_paced(t: float) -> tuple[tuple[float, float, float], tuple[float, float, float]]:
+    lin, ang = _sweep(t * _PACE)
+    return tuple(v * _PACE for v in lin), tuple(v * _PACE for v in ang)  # type: ignore[return-value]
+
+
+_STILL = (0.0, 0.0, 0.0)
+#: the keep-out segment: pressed 0.48 m down from where the approach ends, with the tool's capsule about
+#: 0.34 m above the bench top, so it stops short at d_s (0.31 m down) and rests there for about a second;
+#: then 0.12 m along the bench, and back up those 0.31 m and back along
+_PRESS = Phase("press toward the bench", 3.4, lambda t: ((0.0, 0.0, -0.14), _STILL), paced=False)
+_SLIDE = Phase("slide along the bench", 1.2, lambda t: ((0.0, 0.1, 0.0), _STILL))
+_LIFT = Phase("lift off the bench", 1.2, lambda t: ((0.0, -0.1, 0.26), _STILL))
+
 SCENARIO: tuple[Phase, ...] = (
-    Phase("approach the panel", 3.0, lambda t: ((0.0, 0.0, -0.05), (0.0, 0.0, 0.0))),
-    Phase("sweep along its curve", 7.0, _sweep),
-    Phase("reach to the far edge", 1.5, lambda t: ((0.12, 0.0, 0.0), (0.0, 0.0, 0.0))),
-    Phase("tilt to look along it", 4.0, lambda t: ((0.0, 0.0, 0.0), (0.0, -0.3, 0.0))),
-    Phase("roll the camera", 4.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.8))),
-    Phase("back off", 3.5, lambda t: ((-0.05, 0.0, 0.05), (0.0, 0.35, -0.8))),
-    Phase("hold still", 0.5, lambda t: ((0.0, 0.0, 0.0), (0.0, 0.0, 0.0))),
+    _paced("approach the panel", 3.0, (0.0, 0.0, -0.05), _STILL),
+    _PRESS,
+    _SLIDE,
+    _LIFT,
+    Phase("sweep along its curve", 7.0 / _PACE, _sweep_paced),
+    _paced("reach to the far edge", 1.5, (0.12, 0.0, 0.0), _STILL),
+    _paced("tilt to look along it", 4.0, _STILL, (0.0, -0.3, 0.0)),
+    _paced("roll the camera", 4.5, _STILL, (0.0, 0.0, 0.8)),
+    _paced("back off", 3.5, (-0.05, 0.0, 0.05), (0.0, 0.35, -0.8)),
+    _paced("hold still", 0.5, _STILL, _STILL),
 )
 
 
@@ -96,9 +129,19 @@ def scenario(seconds: float = DEFAULT_SECONDS) -> tuple[Phase, ...]:
             linear, angular = phase.twist(t / k)
             return (linear[0] / k, linear[1] / k, linear[2] / k), (angular[0] / k, angular[1] / k,
                                                                    angular[2] / k)
-        return Phase(phase.name, phase.seconds * k, twist)
+        return Phase(phase.name, phase.seconds * k, twist, phase.paced)
 
     return tuple(compressed(phase) for phase in SCENARIO)
+
+
+def phase_paced(t: float, phases: tuple[Phase, ...] = SCENARIO) -> bool:
+    """Whether the pass clock follows the service's share at pass time t s (Phase.paced)."""
+    start = 0.0
+    for phase in phases:
+        if t < start + phase.seconds:
+            return phase.paced
+        start += phase.seconds
+    return True
 
 
 def scripted_twist(t: float, phases: tuple[Phase, ...] = SCENARIO
@@ -157,7 +200,7 @@ class ScriptedSource:
                             break
                         if type(msg) is wire.CommandMessage and msg.answers >= 0:
                             scale = msg.scale
-                    s = clock.advance(t, scale)
+                    s = clock.advance(t, scale, phase_paced(clock.s, self.phases))
                     if s >= self.seconds:
                         return None
                     self.phase, linear, angular = scripted_twist(s, self.phases)
@@ -205,9 +248,10 @@ class PassClock:
         else:
             self._share = 1.0  # nothing to hold back (and a zero twist's scale says nothing)
 
-    def advance(self, t: float, scale: float | None) -> float:
-        """The pass time at wall time t s (since the start); scale : the newest command's, or None."""
-        share = self._share * (1.0 if scale is None or not self._moving else scale)
+    def advance(self, t: float, scale: float | None, paced: bool = True) -> float:
+        """The pass time at wall time t s (since the start); scale : the newest command's, or None;
+        paced False: real time (a segment meant to be stopped short, Phase.paced)."""
+        share = self._share * (1.0 if scale is None or not self._moving or not paced else scale)
         self.s += (t - self.t) * max(PASS_RATE_MIN, min(1.0, share))
         self.t = t
         return self.s
@@ -283,6 +327,13 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
         lines.append("  time in health states: " + ", ".join(f"{k} {v:.2f} s"
                                                         for k, v in s.get("time_in_health_s", {}).items()))
         lines.append(f"  recording: {recording}  (summary: twistrate record --summary {recording})")
+    watch = service.pipeline.keepout_watch
+    if service.pipeline.keepout is not None:
+        closest = watch.closest
+        near = "n/a" if closest is None else f"{closest[0]:.4f} m ({closest[1]} to {closest[2]})"
+        d_s = service.pipeline.keepout.config.security_m
+        lines.append(f"  keep-out: a damper limited the scale {watch.engagements} time(s); closest approach "
+                     f"{near} in the health reports; security distance {d_s:g} m")
     if source.error:
         lines.append(f"  the scripted source failed: {source.error}")
     return fit(lines)

@@ -85,14 +85,16 @@ class Display:
             "damping": f"{snap.damping:.4f} m (lambda)",
             "limits": ", ".join(active) if active else "none in play",
             "nearest limit": nearest,
+            **keepout_fields(svc),
         }
 
     def line(self) -> str:
         """One short plain line (not a terminal)."""
         f = self.fields()
         scale = f["scale"].split(" ")[0]
+        keep = " KEEP-OUT" if f.get("limited by", "").startswith("KEEP-OUT") else ""
         return (f"t {f['time'].strip()} {f['mode']} {f['health']} sigma_min {f['sigma_min'].split()[0]} m "
-                f"scale {scale} limits {f['limits'].replace('none in play', '-')}")[:PANEL_COLUMNS]
+                f"scale {scale}{keep} limits {f['limits'].replace('none in play', '-')}")[:PANEL_COLUMNS]
 
     def panel(self) -> Any:
         from rich.panel import Panel
@@ -111,6 +113,24 @@ class Display:
         else:
             self.out.write(self.line() + "\n")
             self.out.flush()
+
+
+def keepout_fields(svc: Service) -> dict[str, str]:
+    """The panel's keep-out rows from the last health report (a map the tick thread replaces whole, never
+    changes): the nearest pair and what limited the scale; none without a [keepout] section."""
+    last = svc.pipeline.reports.last
+    near, lim = last.get("keepout"), last.get("limiting")
+    if svc.pipeline.keepout is None:
+        return {}
+    names = svc.arm.joint_names
+    out = {"keep-out": "-" if near is None else f"{near.nearest_m:.3f} m, {near.link} to {near.other}"}
+    if lim is None or lim.by == "none":
+        out["limited by"] = "nothing (full twist)"
+    elif lim.by == "keepout":
+        out["limited by"] = f"KEEP-OUT {lim.link} to {lim.other}"
+    else:
+        out["limited by"] = f"joint {names[lim.joint]}, {lim.bound} bound"
+    return out
 
 
 def fit(lines: list[str], width: int = PANEL_COLUMNS) -> list[str]:

@@ -28,7 +28,6 @@ direction perpendicular to both segments, else any perpendicular of the capsule'
 
 from __future__ import annotations
 
-import itertools
 import math
 from dataclasses import dataclass
 
@@ -349,35 +348,67 @@ def capsule_box_one(a0: list[float], a1: list[float], ra: float, center: list[fl
     is the minimum over the segment (the same argument as `capsule_box`, without the inside part).
     """
     (r00, r01, r02), (r10, r11, r12), (r20, r21, r22) = R_base_box
-    px, py, pz = a0[0] - center[0], a0[1] - center[1], a0[2] - center[2]
-    vx, vy, vz = a1[0] - a0[0], a1[1] - a0[1], a1[2] - a0[2]
-    a = (r00 * px + r10 * py + r20 * pz, r01 * px + r11 * py + r21 * pz, r02 * px + r12 * py + r22 * pz)
-    u = (r00 * vx + r10 * vy + r20 * vz, r01 * vx + r11 * vy + r21 * vz, r02 * vx + r12 * vy + r22 * vz)
-    ax, ay, az = a
-    ux, uy, uz = u
+    a0x, a0y, a0z = a0
+    cx, cy, cz = center
+    px, py, pz = a0x - cx, a0y - cy, a0z - cz
+    vx, vy, vz = a1[0] - a0x, a1[1] - a0y, a1[2] - a0z
+    # segment in box coordinates: a + t u, t in [0, 1] (written out per axis: the same float operations
+    # as a loop over the axes, without its per-iteration overhead)
+    ax, ay, az = (r00 * px + r10 * py + r20 * pz, r01 * px + r11 * py + r21 * pz,
+                  r02 * px + r12 * py + r22 * pz)
+    ux, uy, uz = (r00 * vx + r10 * vy + r20 * vz, r01 * vx + r11 * vy + r21 * vz,
+                  r02 * vx + r12 * vy + r22 * vz)
     hx, hy, hz = half
     ts = [0.0, 1.0]
-    for ai, ui, hi in ((ax, ux, hx), (ay, uy, hy), (az, uz, hz)):
-        if ui != 0.0:
-            t = (hi - ai) / ui
-            if 0.0 < t < 1.0:
-                ts.append(t)
-            t = (-hi - ai) / ui
-            if 0.0 < t < 1.0:
-                ts.append(t)
+    if ux != 0.0:
+        t = (hx - ax) / ux
+        if 0.0 < t < 1.0:
+            ts.append(t)
+        t = (-hx - ax) / ux
+        if 0.0 < t < 1.0:
+            ts.append(t)
+    if uy != 0.0:
+        t = (hy - ay) / uy
+        if 0.0 < t < 1.0:
+            ts.append(t)
+        t = (-hy - ay) / uy
+        if 0.0 < t < 1.0:
+            ts.append(t)
+    if uz != 0.0:
+        t = (hz - az) / uz
+        if 0.0 < t < 1.0:
+            ts.append(t)
+        t = (-hz - az) / uz
+        if 0.0 < t < 1.0:
+            ts.append(t)
     ts.sort()
+    uxx, uyy, uzz = ux * ux, uy * uy, uz * uz
     best_f, best_t = math.inf, 0.0
-    for lo, hi in itertools.pairwise(ts):
+    lo = ts[0]
+    for hi in ts[1:]:
         mid = 0.5 * (lo + hi)
         num = den = 0.0
-        for ai, ui, hh in ((ax, ux, hx), (ay, uy, hy), (az, uz, hz)):
-            x = ai + ui * mid
-            if x > hh:
-                num += ui * (ai - hh)
-                den += ui * ui
-            elif x < -hh:
-                num += ui * (ai + hh)
-                den += ui * ui
+        x = ax + ux * mid
+        if x > hx:
+            num += ux * (ax - hx)
+            den += uxx
+        elif x < -hx:
+            num += ux * (ax + hx)
+            den += uxx
+        x = ay + uy * mid
+        if x > hy:
+            num += uy * (ay - hy)
+            den += uyy
+        elif x < -hy:
+            num += uy * (ay + hy)
+            den += uyy
+        x = az + uz * mid
+        if x > hz:
+            num += uz * (az - hz)
+            den += uzz
+        elif x < -hz:
+            num += uz * (az + hz)
+            den += uzz
         t = min(max(-num / den, lo), hi) if den > DEGENERATE_SQ_M2 else lo
         ex = ax + ux * t
         ey = ay + uy * t
@@ -388,15 +419,16 @@ def capsule_box_one(a0: list[float], a1: list[float], ra: float, center: list[fl
         f = ex * ex + ey * ey + ez * ez
         if f < best_f:
             best_f, best_t = f, t
+        lo = hi
     if best_f < TOUCH_M * TOUCH_M:
         return None
-    x = [a[i] + u[i] * best_t for i in range(3)]
-    y = [min(max(x[i], -half[i]), half[i]) for i in range(3)]
+    xx, xy, xz = ax + ux * best_t, ay + uy * best_t, az + uz * best_t
+    yx, yy, yz = min(max(xx, -hx), hx), min(max(xy, -hy), hy), min(max(xz, -hz), hz)
     length = math.sqrt(best_f)
-    n = [(x[i] - y[i]) / length for i in range(3)]
-    rows = R_base_box
-    normal = [rows[k][0] * n[0] + rows[k][1] * n[1] + rows[k][2] * n[2] for k in range(3)]
-    point_b = [center[k] + rows[k][0] * y[0] + rows[k][1] * y[1] + rows[k][2] * y[2] for k in range(3)]
-    on_segment = [a0[k] + (a1[k] - a0[k]) * best_t for k in range(3)]
-    point_a = [on_segment[k] - normal[k] * ra for k in range(3)]
+    nx, ny, nz = (xx - yx) / length, (xy - yy) / length, (xz - yz) / length
+    normal = [r00 * nx + r01 * ny + r02 * nz, r10 * nx + r11 * ny + r12 * nz, r20 * nx + r21 * ny + r22 * nz]
+    point_b = [cx + r00 * yx + r01 * yy + r02 * yz, cy + r10 * yx + r11 * yy + r12 * yz,
+               cz + r20 * yx + r21 * yy + r22 * yz]
+    point_a = [a0x + (a1[0] - a0x) * best_t - normal[0] * ra, a0y + (a1[1] - a0y) * best_t - normal[1] * ra,
+               a0z + (a1[2] - a0z) * best_t - normal[2] * ra]
     return length - ra, point_a, point_b, normal

@@ -198,7 +198,7 @@ class KeepOut:
         G = np.array(W) @ J
         G *= self.masks[bodies]
         A = G[0::2] - G[1::2] if both else G
-        return A, np.array(b), _contacts_of(found)
+        return A, np.array(b), _LazyContacts(found)
 
     def _update(self, frames: Frames, q: np.ndarray) -> Contacts | list[tuple]:
         """The early-out, the exact pass over the stale pairs and the cache update; returns the
@@ -212,8 +212,7 @@ class KeepOut:
         if len(stale) <= SCALAR_PAIRS_MAX:
             d_pair, rows = self._exact_few(self.place(frames), stale)
             self._q0[stale] = q
-            self._slack[stale] = d_pair
-            self._slack[stale] -= d_i + EARLY_OUT_MARGIN_M
+            self._slack[stale] = np.array(d_pair) - (d_i + EARLY_OUT_MARGIN_M)  # the same float64 ops
             return [row for row in rows if row[1] < d_i]
         d_arr, out = self._exact(self.place(frames), stale, nearest_end=False)
         self._q0[stale] = q
@@ -345,6 +344,22 @@ class KeepOut:
         if len(parts) == 1:
             return d_pair, Contacts(*parts[0])
         return d_pair, Contacts(*(np.concatenate(x) for x in zip(*parts, strict=True)))
+
+
+class _LazyContacts(Contacts):
+    """`_contacts_of(rows)`, its arrays built on first access: the tick reads its contacts only when a
+    damper row limits the scale (`twistrate.solver.limiting`), so most ticks never pay for them."""
+
+    def __init__(self, rows: list[tuple]) -> None:  # (no dataclass __init__: the fields come later)
+        object.__setattr__(self, "_rows", rows)
+
+    def __getattr__(self, name: str) -> np.ndarray:  # only for attributes not set yet
+        if name not in Contacts.__dataclass_fields__:
+            raise AttributeError(name)
+        built = _contacts_of(self.__dict__["_rows"])
+        for field_name in Contacts.__dataclass_fields__:
+            object.__setattr__(self, field_name, getattr(built, field_name))
+        return getattr(built, name)
 
 
 def _contacts_of(rows: list[tuple]) -> Contacts:

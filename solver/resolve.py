@@ -136,9 +136,8 @@ class Resolution:
         twist_achieved is the nearest twist the bounds allow, in nearly the asked direction.
     twist_error (property) : (6,) twist_achieved - twist_desired, base frame, tool point, (v, w),
         m/s and rad/s: what the tick fell short of, from scaling, damping or tracking together.
-    contacts : this tick's keep-out contacts (`twistrate.solver.damper.Contacts`, one per damper row),
-        or None without a keep-out pass. rows_active : (r,) bool, the damper rows met with equality
-        at qd (`damper.ROW_ACTIVE_TOL`), or None when the tick had no damper row.
+    contacts : this tick's keep-out contacts (`damper.Contacts`, one per damper row) or None. rows_active :
+        (r,) bool, rows met with equality at qd (`damper.ROW_ACTIVE_TOL`); None: no row, or free rates.
     """
 
     qd: np.ndarray
@@ -325,7 +324,7 @@ def _rates(
     iterations = 0
     tracking = False
     bplan = plan.bounds
-    rows = contacts = None
+    rows = contacts = active = None
     if keepout is not None and bplan is not None:
         R, r, contacts = keepout.rows(frames, q, J)
         rows = (R, r) if r.shape[0] else None
@@ -342,11 +341,12 @@ def _rates(
         ok = np.isfinite(qd)
         if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
             qd, scale, bits = _finite_fallback(plan, q, qd_prev)
+        if rows is not None:  # which damper rows the (limited) rates meet with equality
+            active = rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
     k = s.shape[0]
     # Positional, in field order (qd, twist_desired, twist_achieved, scale, damping, limits_active,
     # frames, J, singular_values, U): keyword passing costs about 0.5 us per tick.
     U_k = U if k == U.shape[1] else U[:, :k]
-    active = None if rows is None else rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
     return Resolution(qd, x, J.dot(qd), scale, lam, bits, frames, J, s, U_k, tracking, contacts,
                       active), iterations
 

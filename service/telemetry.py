@@ -121,6 +121,7 @@ class Telemetry:
             out[f"{name}_max_ns"] = int(s["max_us"] * 1000)
         if recorder is not None:
             out["recorder_dropped"] = int(recorder.dropped)
+            out["recorder_stopped"] = int(recorder.stopped is not None)  # write error or size cap
         return out
 
 

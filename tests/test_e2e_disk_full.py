@@ -93,7 +93,6 @@ def test_a_full_disk_stops_the_recording_not_the_service_and_what_was_written_st
                     link.send_twist([0.03, 0.0, 0.0], [0.0, 0.0, 0.1])
                     with contextlib.suppress(TimeoutError):
                         commands.append(link.receive_command(timeout_s=1.0))
-                assert commands[0].tick >= t0 - 5
                 assert all(b.tick == a.tick + 1 for a, b in itertools.pairwise(commands))
                 status = link.status()
                 assert status["mode"] == "running" and status["tick"] > t0
@@ -107,6 +106,7 @@ def test_a_full_disk_stops_the_recording_not_the_service_and_what_was_written_st
         print(f"recording stopped by the full disk after {len(records)} records ({size} bytes on a "
               f"{TMPFS_SIZE} tmpfs): {stopped.detail}")
         assert len(records) > 100 and size <= 192 * 1024
+        assert f"stopped after {size} bytes" in stopped.detail  # what reached the disk, as stat() has it
         ticks = records["tick"].astype(np.int64)
         assert np.all(np.diff(ticks) == 1)  # every tick up to the stop, none torn or lost
         assert np.isfinite(records["q"]).all() and header["n"] == 7

@@ -53,6 +53,12 @@ CLOCK_SLACK_S = 1e-4
 #: The test driver sends a joint state every this many s (plus its own scheduling).
 DRIVER_PERIOD_S = 0.002
 HOUR_NS = 3600 * 10**9
+#: The joint-state timeout of these tests, s: 100 ms, so that a driver process of normal priority beside
+#: the suite's load still keeps the joint state fresh while it runs (50 ms, the default, is for drivers
+#: with a real-time loop).
+JOINTS_TIMEOUT_S = 0.100
+#: Every streaming loop gives up after this long, s (a loaded machine starts processes slowly).
+LIMIT_S = 30.0
 FAST = ([0.25, 0.0, -0.1], [0.0, 0.3, 0.2])
 CONFIG = """[arm]
 file = "reach7"
@@ -66,17 +72,17 @@ control = "tcp://127.0.0.1:*"
 enabled = false
 lag_s = 0.0
 [watchdog]
-joints_timeout_ms = 50.0
+joints_timeout_ms = 100.0
 [logging]
 level = "warning"
 """
 
 
 def _ramp(cs):
-    """The commands of a stop: the last one answering a twist .. the first all-zero one after it."""
-    first = next(i for i, c in enumerate(cs) if c.answers == -1 and i > 0 and cs[i - 1].answers >= 0)
-    last = next(i for i in range(first, len(cs)) if not cs[i].rate.any())
-    return cs[first - 1:last + 1]
+    """The commands of the stop: the last one answering a twist .. the first all-zero one after it."""
+    first = max(i for i, c in enumerate(cs) if c.answers >= 0)
+    last = next(i for i in range(first + 1, len(cs)) if not cs[i].rate.any())
+    return cs[first:last + 1]
 
 
 def _check_ramp(ramp, a_max):
@@ -173,7 +179,7 @@ def test_a_repeated_position_is_frozen_only_while_motion_is_commanded_for_the_wh
 # -- end to end -------------------------------------------------------------------------------------------
 
 def test_sigkill_of_the_driver_mid_motion_stops_the_arm_within_the_joint_state_bound(tmp_path):
-    """Bound: rest commanded within joints_timeout (50 ms) + max_i |qd0_i| / a_max_i + one period
+    """Bound: rest commanded within joints_timeout (100 ms) + max_i |qd0_i| / a_max_i + one period
     (2 ms) + ALLOWANCE_S of the SIGKILL."""
     path = tmp_path / "service.toml"
     path.write_text(CONFIG)
@@ -189,7 +195,8 @@ def test_sigkill_of_the_driver_mid_motion_stops_the_arm_within_the_joint_state_b
             link.claim("test", lease_ms=60_000)
             link.enable()
             stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 50 and
-                         np.abs(cs[-1].rate).max() > 0.05)
+                         np.abs(cs[-1].rate).max() > 0.05, limit_s=LIMIT_S)
+            link.drain()  # what is queued came before the kill
             t_kill = time.time_ns()
             os.kill(sim.pid, signal.SIGKILL)
             # the twist source goes on: only the joint state is stale
@@ -199,7 +206,7 @@ def test_sigkill_of_the_driver_mid_motion_stops_the_arm_within_the_joint_state_b
         ramp = _ramp(cs)
         stop_s = _check_ramp(ramp, a_max)
         elapsed = (ramp[-1].stamp_ns - t_kill) / 1e9
-        bound = 0.050 + stop_s + 1.0 / 500 + ALLOWANCE_S
+        bound = JOINTS_TIMEOUT_S + stop_s + 1.0 / 500 + ALLOWANCE_S
         print(f"rest commanded {elapsed * 1e3:.1f} ms after the driver's SIGKILL, bound {bound * 1e3:.1f} ms")
         assert elapsed <= bound
         assert ramp[1].mode == "stopping" and status["mode"] in ("stopping", "holding")
@@ -209,7 +216,8 @@ def test_sigkill_of_the_driver_mid_motion_stops_the_arm_within_the_joint_state_b
 
 
 def _driver_service():
-    return running_service(make_config(simulation={"enabled": False}, watchdog={"joints_timeout_ms": 50.0}))
+    return running_service(make_config(simulation={"enabled": False},
+                                       watchdog={"joints_timeout_ms": 1000 * JOINTS_TIMEOUT_S}))
 
 
 def test_a_driver_clock_behind_ahead_or_jumping_changes_nothing():
@@ -229,18 +237,21 @@ def test_a_driver_clock_behind_ahead_or_jumping_changes_nothing():
             link.claim("test", lease_ms=60_000)
             link.enable()
             cs = stream_until(link, *FAST, lambda cs: sum(c.mode == "running" and c.answers >= 0 for c in cs)
-                              > 50 and np.abs(cs[-1].rate).max() > 0.05)
+                              > 50 and np.abs(cs[-1].rate).max() > 0.05, limit_s=LIMIT_S)
             assert len({tuple(c.target) for c in cs[-20:]}) > 1  # the driver's positions move
         finally:
             driver.close()
         t_silent = time.time_ns()
+        link.drain()  # what is queued came before the driver fell silent
         cs = stream_until(link, *FAST, lambda cs: any(c.answers == -1 for c in cs) and not cs[-1].rate.any()
                           and cs[-1].answers == -1)
         ramp = _ramp(cs)
         stop_s = _check_ramp(ramp, arm.a_max)
         elapsed = (ramp[-1].stamp_ns - t_silent) / 1e9
-        print(f"rest commanded {elapsed * 1e3:.1f} ms after the driver with a wrong clock fell silent")
-        assert elapsed <= 0.050 + stop_s + run.service.period_s + ALLOWANCE_S
+        bound = JOINTS_TIMEOUT_S + stop_s + run.service.period_s + ALLOWANCE_S
+        print(f"rest commanded {elapsed * 1e3:.1f} ms after the driver with a wrong clock fell silent, "
+              f"bound {bound * 1e3:.1f} ms")
+        assert elapsed <= bound
         c = link.counters()
         assert c["rejected_total"] == 0 and c["faults"] == 0 and c["accepted_joints"] > 50
 
@@ -265,7 +276,7 @@ def test_a_driver_repeating_one_state_is_fine_at_rest_and_faults_when_frozen_in_
             # before streaming (the link would take them for a restarted service, clients/linkbase.py)
             link.drain()
             stream_until(link, *FAST, lambda cs: sum(c.answers >= 0 for c in cs) > 50 and
-                         np.abs(cs[-1].rate).max() > 0.05)
+                         np.abs(cs[-1].rate).max() > 0.05, limit_s=LIMIT_S)
             driver.frozen = True
             t_freeze = time.time_ns()
             cs = stream_until(link, *FAST, lambda cs: any(c.mode == "fault" for c in cs) and
@@ -277,7 +288,7 @@ def test_a_driver_repeating_one_state_is_fine_at_rest_and_faults_when_frozen_in_
             ramp = cs[first - 1:last + 1]
             stop_s = _check_ramp(ramp, arm.a_max)
             elapsed = (ramp[-1].stamp_ns - t_freeze) / 1e9
-            bound = 0.050 + DRIVER_PERIOD_S + stop_s + period + ALLOWANCE_S
+            bound = JOINTS_TIMEOUT_S + DRIVER_PERIOD_S + stop_s + period + ALLOWANCE_S
             print(f"frozen driver: rest commanded {elapsed * 1e3:.1f} ms after the freeze, bound "
                   f"{bound * 1e3:.1f} ms; {status['fault']}")
             assert elapsed <= bound
@@ -329,7 +340,9 @@ def test_a_twist_source_clock_jumping_changes_nothing():
         ramp = _ramp(everything)
         stop_s = _check_ramp(ramp, run.service.arm.a_max)
         elapsed = (ramp[-1].stamp_ns - t_answered) / 1e9
-        print(f"rest commanded {elapsed * 1e3:.1f} ms after the last twist (clock jumping) was answered")
-        assert elapsed <= 0.100 + stop_s + run.service.period_s + ALLOWANCE_S
+        bound = 0.100 + stop_s + run.service.period_s + ALLOWANCE_S
+        print(f"rest commanded {elapsed * 1e3:.1f} ms after the last twist (clock jumping) was answered, "
+              f"bound {bound * 1e3:.1f} ms")
+        assert elapsed <= bound
         c = link.counters()
         assert c["rejected_total"] == 0 and c["faults"] == 0

@@ -191,14 +191,18 @@ class Intake:
     # -- one joint-state source (service/joint_source.py) ---------------------------------------------
 
     def _frozen(self, q: np.ndarray, now: int) -> None:
-        """Fault when the driver keeps repeating one position while motion is commanded (the state is
-        used: it is the newest measurement; in fault the check restarts from it)."""
+        """A driver repeating one position while motion is commanded: the state is taken (it is the newest
+        measurement) but the joint state is fresh only from its last change, so it goes stale and the
+        service stops the arm as for a silent driver (counted `joints_frozen`, logged at a bounded rate).
+        In fault the check restarts from each state."""
         if self.state.mode in (st.FAULT, st.SHUTDOWN):
             self.guard.restart_frozen(q, now)
             return
         reason = self.guard.frozen(q, now, self.commanded())
         if reason is not None:
-            self.fault(reason)
+            self.q_rx_ns = self.guard.changed_ns
+            self.telemetry.counts["joints_frozen"] += 1
+            self.rlog.warning("joints_frozen", now, reason)
 
     def _second_source(self, msg: wire.JointsMessage, now: int) -> bool:
         """True (and a fault) when msg cannot come from the driver that sent the previous state. In

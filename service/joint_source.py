@@ -15,8 +15,10 @@ A frozen driver (docs/protocol.md 7.2): one that keeps sending the same position
 the service commands motion (a stuck encoder reading, a driver re-sending its last buffer, a blocked
 arm). `frozen()` integrates the commanded rates over the receive times since the position last changed;
 once that commanded motion exceeds FROZEN_MOTION_RAD / FROZEN_MOTION_M for some joint and no change came
-for longer than `frozen_after_ns` (the joint-state timeout), the state is frozen and the intake faults
-the service. At rest (rates zero) a repeated state is what a live driver sends, and never counts.
+for longer than `frozen_after_ns` (the joint-state timeout), the state is frozen: the intake takes it but
+lets the joint state go stale from the last change (`changed_ns`), so the service stops the arm as for a
+silent driver. At rest (rates zero) a repeated state is what a live driver sends: it never counts, and
+it starts the check afresh (motion may resume once the arm is at rest).
 """
 
 from __future__ import annotations
@@ -61,6 +63,11 @@ class JointSourceGuard:
         self._f_changed_ns = 0
         self._f_moved = np.zeros(len(self.names))
 
+    @property
+    def changed_ns(self) -> int:
+        """Receive time of the last state whose position changed (or that restarted the check), ns."""
+        return self._f_changed_ns
+
     def restart_frozen(self, q: np.ndarray, rx_ns: int) -> None:
         """Take (q, rx_ns) as a fresh change (the first state, or in fault)."""
         self._f_q, self._f_rx_ns, self._f_changed_ns = q, rx_ns, rx_ns
@@ -70,7 +77,7 @@ class JointSourceGuard:
         """None while q (n,) rad or m, received at rx_ns (monotonic ns), is a live measurement; else the
         fault reason. qd (n,) : the rates commanded since the previous state, rad/s or m/s."""
         prev = self._f_q
-        if self.frozen_after_ns is None or prev is None or not (q == prev).all():
+        if self.frozen_after_ns is None or prev is None or not (q == prev).all() or not qd.any():
             self.restart_frozen(q, rx_ns)
             return None
         dt = max(0, rx_ns - self._f_rx_ns) * 1e-9

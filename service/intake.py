@@ -64,7 +64,8 @@ class Intake:
 
     def __init__(self, n: int, simulated: bool, state: ServiceState, telemetry: Telemetry,
                  rlog: RateLimitedLog, clock: Callable[[], int], fault: Callable[[str], None],
-                 guard: JointSourceGuard | None = None) -> None:
+                 guard: JointSourceGuard | None = None,
+                 commanded: Callable[[], np.ndarray] | None = None) -> None:
         self.n = n
         self.simulated = simulated
         self.state = state
@@ -86,6 +87,8 @@ class Intake:
         self.empty_ns = 0
         #: the one-source check of joint state (service/joint_source.py), or None
         self.guard = guard
+        #: the rates commanded last, (n,) rad/s or m/s (the guard's frozen-state check), or None
+        self.commanded = commanded
 
     def reject(self, reason: str, now: int, text: str) -> None:
         self.telemetry.reject(reason)
@@ -181,9 +184,25 @@ class Intake:
             counts["superseded"] += k
             self.q = msg.position
             self.q_rx_ns = now
+            if self.commanded is not None and self.guard is not None:
+                self._frozen(msg.position, now)
             return
 
     # -- one joint-state source (service/joint_source.py) ---------------------------------------------
+
+    def _frozen(self, q: np.ndarray, now: int) -> None:
+        """A driver repeating one position while motion is commanded: the state is taken (it is the newest
+        measurement) but the joint state is fresh only from its last change, so it goes stale and the
+        service stops the arm as for a silent driver (counted `joints_frozen`, logged at a bounded rate).
+        In fault the check restarts from each state."""
+        if self.state.mode in (st.FAULT, st.SHUTDOWN):
+            self.guard.restart_frozen(q, now)
+            return
+        reason = self.guard.frozen(q, now, self.commanded())
+        if reason is not None:
+            self.q_rx_ns = self.guard.changed_ns
+            self.telemetry.counts["joints_frozen"] += 1
+            self.rlog.warning("joints_frozen", now, reason)
 
     def _second_source(self, msg: wire.JointsMessage, now: int) -> bool:
         """True (and a fault) when msg cannot come from the driver that sent the previous state. In

@@ -84,9 +84,10 @@ class Pipeline:
         posture = config.initial_posture(arm)
         self.sim = SimArm.from_arm(arm, config.simulation.lag_s, None if posture is None else
                                    np.array(posture)) if config.simulation.enabled else None
-        guard = None if self.sim is not None else JointSourceGuard(arm.joint_names, arm.v_max, arm.revolute)
+        guard = None if self.sim is not None else JointSourceGuard(arm.joint_names, arm.v_max, arm.revolute,
+                                                                   self.joints_timeout_ns)
         self.intake = Intake(self.n, self.sim is not None, self.state, self.telemetry, self.rlog, clock,
-                             self.fault, guard)
+                             self.fault, guard, commanded=lambda: self.qd)
         if self.sim is not None:
             self.intake.q = self.sim.q
         self._base_options = config.solver_options(arm)

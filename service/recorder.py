@@ -43,6 +43,7 @@ from __future__ import annotations
 import contextlib
 import json
 import math
+import os
 import struct
 import threading
 import time
@@ -254,11 +255,19 @@ class Recorder:
                 self._file.flush()
             except OSError as exc:
                 self._stop_recording(f"{self.path}: write failed ({exc.strerror or exc}); the recording "
-                                     f"stopped after {self.bytes_written} bytes, the service goes on")
+                                     f"stopped after {self._on_disk()} bytes, the service goes on")
                 return
             if capped:
                 self._stop_recording(f"{self.path}: size cap of {self.max_bytes} bytes reached; the "
                                      "recording stopped, the service goes on ([recorder] max_mb)")
+
+    def _on_disk(self) -> int:
+        """The file's size as the file system has it, bytes (after a failed write the buffered writer may
+        hold more than reached the disk; bytes_written counts what was handed to it)."""
+        try:
+            return os.fstat(self._file.fileno()).st_size
+        except (OSError, ValueError, AttributeError):
+            return self.bytes_written
 
     def _writer(self) -> None:
         while not self._stop.wait(FLUSH_S):

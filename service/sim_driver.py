@@ -27,6 +27,8 @@ from twistrate.solver.errors import WireError
 
 #: No command for this long and the simulated drive ramps to rest on its own, s.
 COMMAND_TIMEOUT_S = 0.1
+#: At most this many queued commands are taken per loop; only the newest decodable one is used.
+MAX_TAKE = 1000
 
 
 class SimDriver:
@@ -89,8 +91,13 @@ class SimDriver:
         while not self.stopped and (end is None or clock() < end):
             got = False
             if poller.poll(idle_ms):
-                while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
-                    frames = sock.recv_multipart()
+                # take what is queued (at most MAX_TAKE), decode the newest first: a loop that fell
+                # behind catches up at once instead of decoding a backlog it can never finish
+                taken = []
+                while len(taken) < MAX_TAKE and sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+                    taken.append(sock.recv_multipart())
+                self.received += len(taken)
+                for frames in reversed(taken):
                     try:
                         msg = wire.decode_output(frames, n)
                     except WireError:
@@ -99,7 +106,7 @@ class SimDriver:
                     if type(msg) is wire.CommandMessage:
                         rate = msg.rate
                         got = True
-                        self.received += 1
+                        break
             now = clock()
             dt = (now - last_step) * 1e-9
             self.sim.step(dt)  # the motion since the last step, at the old rates

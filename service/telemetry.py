@@ -20,9 +20,9 @@ from twistrate.service.wire import REASONS
 from twistrate.solver.arm import Arm
 
 #: Counters every service has from the start (docs/operation.md "Counters").
-COUNTER_NAMES = ("accepted_twist", "accepted_joints", "superseded", "commands", "health_messages",
-                 "state_messages", "events", "faults", "limit_events", "publish_failed", "solver_errors",
-                 "speculation_used", "gc_collections")
+COUNTER_NAMES = ("accepted_twist", "accepted_joints", "superseded", "joints_frozen", "commands",
+                 "health_messages", "state_messages", "events", "faults", "limit_events", "publish_failed",
+                 "solver_errors", "speculation_used", "gc_collections")
 #: Every reason an intake message can be refused for: the codec's (but `unknown_op`, a control reason)
 #: and the service's own.
 INTAKE_REASONS = tuple(r for r in (*REASONS, "not_leased", "unexpected_joints", "second_source")
@@ -121,6 +121,7 @@ class Telemetry:
             out[f"{name}_max_ns"] = int(s["max_us"] * 1000)
         if recorder is not None:
             out["recorder_dropped"] = int(recorder.dropped)
+            out["recorder_stopped"] = int(recorder.stopped is not None)  # write error or size cap
         return out
 
 

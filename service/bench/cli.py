@@ -13,6 +13,7 @@ BENCHMARKS: dict[str, tuple[str, str]] = {
     "keepout": ("twistrate.service.bench.keepout", "cost of the keep-out pass against the free tick"),
     "vservo": ("twistrate.service.bench.vservo", "camera loop: features message to the command answering it"),
     "teleop": ("twistrate.service.bench.teleop", "device event to command published through teleop"),
+    "soak": ("twistrate.service.bench.soak", "long run at the tick rate: memory growth, overruns, counters"),
     "dashboard": ("twistrate.service.bench.dashboard", "the dashboard's CPU with many arms and pages"),
 }
 

@@ -32,11 +32,13 @@ from twistrate.service.pipeline import Pipeline
 from twistrate.service.state import E_SHUTDOWN
 from twistrate.service.telemetry import Snapshot, arm_description
 from twistrate.service.tick import (
+    TICK_THREAD_OS_NAME,
     Scheduling,
     Ticker,
     guard_runaway,
     hold_cpu_wake_latency,
     make_realtime,
+    name_thread,
     probe_realtime,
     release_cpu_wake_latency,
     rt_throttling,
@@ -291,6 +293,7 @@ class Service:
             self._done.set()
             self._ready.set()
             return
+        name_thread(TICK_THREAD_OS_NAME)
         set_timer_slack(1_000)
         self.scheduling = sched = make_realtime(self.realtime_priority)
         if sched.realtime:

@@ -63,8 +63,11 @@ SPIN_MAX_NS = 400_000
 #: Histogram resolution and range: 1 µs bins up to 50 ms; larger values land in the last bin.
 HIST_BIN_NS = 1_000
 HIST_BINS = 50_000
-#: prctl option number of PR_SET_TIMERSLACK (linux/prctl.h).
+#: prctl option numbers of PR_SET_TIMERSLACK and PR_SET_NAME (linux/prctl.h).
 PR_SET_TIMERSLACK = 29
+PR_SET_NAME = 15
+#: The tick thread's operating-system name (`twistrate bench service` reports its CPU by this name).
+TICK_THREAD_OS_NAME = "twistrate-tick"
 #: Every Ticker.wait() sleeps at least this long, ns, late or not: a tick whose work overruns still
 #: gives its core up once per period (5 % of a 1 kHz period).
 MIN_SLEEP_NS = 50_000
@@ -242,6 +245,16 @@ class Ticker:
         if self._n_over % SPIN_WINDOW == 0:
             q = int(np.percentile(self._overshoot, SPIN_QUANTILE))
             self.spin_ns = min(SPIN_MAX_NS, max(SPIN_MIN_NS, q + SPIN_PAD_NS))
+
+
+def name_thread(name: str) -> bool:
+    """Give the calling thread its operating-system name (Linux prctl PR_SET_NAME, at most 15 bytes
+    kept), seen in /proc/PID/task/TID/comm and by process monitors; True when applied."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(PR_SET_NAME, ctypes.c_char_p(name.encode()[:15]), 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
 
 
 def set_timer_slack(ns: int = 1_000) -> bool:

@@ -52,14 +52,16 @@ DEFAULT_SPIN_NS = 150_000
 #: Adaptive spin margin (Ticker(adaptive=True)): every SPIN_WINDOW wake-ups the margin becomes the
 #: SPIN_QUANTILE of the last SPIN_WINDOW sleep overshoots at most SPIN_MAX_NS plus SPIN_PAD_NS, within
 #: [SPIN_MIN_NS, SPIN_MAX_NS]. A tight margin saves CPU (the spin is busy waiting); a wake-up later than
-#: the margin shows as lateness. Measured here (bare loop at 500 Hz with 300 µs of work, 6 s, load 4):
-#: the 99.5th percentile plus 20 µs (at least 40 µs) sat at the 400 µs maximum, held there by a few
-#: stalls, and waiting took 14 % of a core (lateness p99 9 µs); the 99th percentile of the overshoots up
-#: to the maximum plus 10 µs (at least 30 µs) gave a margin of 54 µs, 4.6 % (p99 49 µs).
+#: the margin shows as lateness. Measured here (bare loop at 500 Hz with 300 us of work, 6 s): counting
+#: every overshoot and only the wake-up before the spin, the margin sat at its 400 us maximum (held there
+#: by a few stalls; once the prepare ended inside it, nothing fed the window) and waiting took 14 % of a
+#: core; with stalls left out and both wake-ups counted, 5.1-5.5 % (margin ~80 us, lateness p99 2-12 us).
+#: The 99th percentile plus 10 us (at least 30 us) gave 3.7-3.9 % but p99 13-21 us: not taken, lateness
+#: first.
 SPIN_WINDOW = 256
-SPIN_QUANTILE = 99.0
-SPIN_PAD_NS = 10_000
-SPIN_MIN_NS = 30_000
+SPIN_QUANTILE = 99.5
+SPIN_PAD_NS = 20_000
+SPIN_MIN_NS = 40_000
 SPIN_MAX_NS = 400_000
 #: Histogram resolution and range: 1 µs bins up to 50 ms; larger values land in the last bin.
 HIST_BIN_NS = 1_000

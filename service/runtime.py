@@ -32,11 +32,13 @@ from twistrate.service.pipeline import Pipeline
 from twistrate.service.state import E_SHUTDOWN
 from twistrate.service.telemetry import Snapshot, arm_description
 from twistrate.service.tick import (
+    TICK_THREAD_OS_NAME,
     Scheduling,
     Ticker,
     guard_runaway,
     hold_cpu_wake_latency,
     make_realtime,
+    name_thread,
     probe_realtime,
     release_cpu_wake_latency,
     rt_throttling,
@@ -247,13 +249,27 @@ class Service:
             output.close(0)
             raise
         self._sockets = (intake, output)
-        events, pollin, recv = zmq.EVENTS, zmq.POLLIN, intake.recv_multipart
+        # Frame by frame rather than recv_multipart/send_multipart, whose per-call checks cost more than
+        # the transfer here (measured: a [topic, map] publish after a 1 ms sleep, median 22 us with
+        # send_multipart, 12 us with two send calls).
+        events, pollin, more = zmq.EVENTS, zmq.POLLIN, zmq.RCVMORE
+        getsockopt, recv = intake.getsockopt, intake.recv
 
         def poll() -> list[bytes] | None:
-            return recv() if intake.getsockopt(events) & pollin else None
+            if not getsockopt(events) & pollin:
+                return None
+            frames = [recv()]
+            while getsockopt(more):
+                frames.append(recv())
+            return frames
 
-        send = output.send_multipart
-        self.pipeline.bind(poll, lambda topic, data: send((topic, data)))
+        send, sndmore = output.send, zmq.SNDMORE
+
+        def publish(topic: bytes, data: bytes) -> None:
+            send(topic, sndmore)
+            send(data)
+
+        self.pipeline.bind(poll, publish)
 
     def _close_sockets(self) -> None:
         if self._sockets is not None:
@@ -277,6 +293,7 @@ class Service:
             self._done.set()
             self._ready.set()
             return
+        name_thread(TICK_THREAD_OS_NAME)
         set_timer_slack(1_000)
         self.scheduling = sched = make_realtime(self.realtime_priority)
         if sched.realtime:

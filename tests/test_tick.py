@@ -18,6 +18,7 @@ from twistrate.service.tick import (
     CPU_LATENCY_FILE,
     DEFAULT_RT_PRIORITY,
     MIN_SLEEP_NS,
+    SPIN_MAX_NS,
     SPIN_MIN_NS,
     SPIN_PAD_NS,
     SPIN_WINDOW,
@@ -118,6 +119,37 @@ def test_adaptive_spin_follows_the_sleep_overshoot():
         clk.t += 100_000
     assert tk.spin_ns == SPIN_MIN_NS
     assert tk.overruns == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
+
+
+def test_stalls_beyond_the_maximum_margin_do_not_hold_the_spin_margin_up():
+    """A few wake-ups later than SPIN_MAX_NS (stalls no margin absorbs) are left out of the quantile: the
+    margin follows the ordinary overshoot, not the stalls."""
+    clk = FakeClock(read_cost=100, oversleep=30_000)
+    tk = Ticker(1_000_000, spin_ns=300_000, clock=clk, sleep=clk.sleep, adaptive=True)
+    tk.start()
+    for k in range(2 * SPIN_WINDOW):
+        clk.oversleep = 2 * SPIN_MAX_NS if k % 50 == 0 else 30_000  # 2 % stalls: above the 99th percentile
+        tk.wait()
+        clk.t += 100_000
+    assert tk.spin_ns == pytest.approx(30_000 + SPIN_PAD_NS, abs=200)
+
+
+def test_the_margin_adapts_from_the_wake_up_before_the_prepare_too():
+    """A prepare that ends inside the spin margin leaves no second sleep: the wake-up before the prepare
+    still feeds the margin, so a large one comes down."""
+    clk = FakeClock(read_cost=100, oversleep=20_000)
+    tk = Ticker(1_000_000, spin_ns=SPIN_MAX_NS, clock=clk, sleep=clk.sleep, adaptive=True)
+    tk.start()
+
+    def prepare(deadline):
+        clk.t = deadline - 100_000  # the work ends 100 us before the deadline: inside a 400 us margin
+
+    tk.wait(prepare, prepare_ns=500_000)
+    assert len(clk.sleeps) == 1  # only the sleep before the prepare
+    for _ in range(SPIN_WINDOW):
+        tk.wait(prepare, prepare_ns=500_000)
+        clk.t += 100_000
+    assert tk.spin_ns == pytest.approx(max(SPIN_MIN_NS, 20_000 + SPIN_PAD_NS), abs=300)
 
 
 def test_work_ending_exactly_on_deadline_is_an_overrun():

@@ -50,13 +50,7 @@ from __future__ import annotations
 
 import numpy as np
 
-try:  # the LAPACK gufuncs behind numpy.linalg.solve / inv (private, hence the fallback; see svd.py)
-    from numpy.linalg import _umath_linalg as _gufuncs
-
-    _solve1 = _gufuncs.solve1
-    _inv = _gufuncs.inv
-except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
-    _solve1 = _inv = None
+from twistrate.solver.bounded import bounded_damped_rates
 
 #: Slack (weighted rad/s) of the rate bounds inside the LP (rounding; the caller clips into them).
 BOUND_TOL = 1e-12
@@ -271,73 +265,6 @@ def active_set(
     return w
 
 
-def bounded_damped_rates(
-    A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
-) -> np.ndarray:
-    """argmin |A y - x_w|^2 + mu^2 |y - y_ref|^2 over lo <= y <= hi (module docstring), (n,).
-
-    A : (m, n) weighted Jacobian; x_w : (m,) asked twist, task-weighted (m/s); lo, hi : (n,) bounds;
-    mu : damping (m), > 0; y_ref : (n,) the null-space objective rates (zeros for none).
-    Active-set method for bound-constrained least squares (Stark & Parker 1995) on the regular
-    normal matrix H = A^T A + mu^2 I, through its inverse P: with the joints B held at values v_B the
-    minimiser is y* + P[:, B] lam, lam = P_BB^-1 (v_B - y*_B), y* = P q the unconstrained one, and
-    lam is the gradient at the held joints (H P = I), i.e. their multipliers. Start: y* clipped into
-    the bounds (the clipped joints held); each pass steps toward the minimiser of the held set and
-    holds the first joint that meets a bound, or, at that minimiser, releases every held joint whose
-    multiplier points inward (all at once: fewer passes; each step still descends and stays inside
-    the bounds, and the pass cap bounds the rare degenerate zig-zag).
-    """
-    n = A.shape[1]
-    H = A.T @ A
-    H[np.diag_indices(n)] += mu * mu
-    q = A.T @ x_w
-    q += (mu * mu) * y_ref
-    y_star = _spd_solve(H, q)
-    y = np.minimum(np.maximum(y_star, lo), hi)
-    held = np.flatnonzero(y != y_star)
-    if held.size == 0:
-        return y
-    P = _spd_inv(H)
-    pinned = lo >= hi
-    tol = ACTIVE_RTOL * (1.0 + float(np.abs(q).max()))
-    inf = np.full(n, np.inf)
-    for _ in range(ACTIVE_MAX_PER_ROW * 2 * n + 2):
-        if held.size:
-            P_B = P[:, held]
-            gap = y[held] - y_star[held]
-            lam = _spd_solve(P_B[held], gap) if held.size > 1 else gap / P_B[held[0]]
-            target = y_star + P_B @ lam
-            target[held] = y[held]
-        else:
-            lam = target = y_star
-        step = target - y
-        room = np.where(step > 0.0, hi - y, np.where(step < 0.0, lo - y, inf))
-        room /= np.where(step != 0.0, step, 1.0)
-        room[held] = np.inf
-        j = int(room.argmin())
-        if room[j] < 1.0:
-            y += max(0.0, float(room[j])) * step
-            y[j] = hi[j] if step[j] > 0.0 else lo[j]
-            held = np.append(held, j)
-            continue
-        y = target
-        if held.size == 0:
-            break
-        # multiplier lam_i = dF/dy_i of a held joint: at lo it must be >= 0, at hi <= 0. Every held
-        # joint with the wrong sign is released at once (the step that follows keeps feasibility)
-        viol = np.where(y[held] >= hi[held], lam, -lam)
-        release = (viol > tol) & ~pinned[held]
-        if not release.any():
-            break
-        held = held[~release]
-    free = np.ones(n, dtype=bool)
-    free[held] = False
-    if free.any():  # polish: the free joints' normal equations solved directly (accuracy of P)
-        H_F = H[free]
-        y[free] = _spd_solve(H_F[:, free], q[free] - H_F[:, held] @ y[held])
-    return np.minimum(np.maximum(y, lo), hi)
-
-
 def bounded_damped_rates_rows(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
     rows: tuple[np.ndarray, np.ndarray],
@@ -373,17 +300,3 @@ def bounded_damped_rates_rows(
     target = Li_T.T.dot(A.T.dot(x_w) + (mu * mu) * y_ref)  # L^-1 q
     u = active_set(G.dot(Li_T), h, Lc.T.dot(y0), target=target)
     return np.minimum(np.maximum(Li_T.dot(u), lo), hi)
-
-
-def _spd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """M^-1 b for a small symmetric positive definite M (regular by construction: mu > 0)."""
-    if _solve1 is not None:
-        return _solve1(M, b, signature="dd->d")
-    return np.linalg.solve(M, b)  # pragma: no cover
-
-
-def _spd_inv(M: np.ndarray) -> np.ndarray:
-    """M^-1 for a small symmetric positive definite M."""
-    if _inv is not None:
-        return _inv(M, signature="d->d")
-    return np.linalg.inv(M)  # pragma: no cover

@@ -12,8 +12,8 @@ each tick the change from the previous tick's shaped twist is scaled by one fact
 |dv| <= linear_accel_max T and |dw| <= angular_accel_max T (one factor keeps the direction of the
 change, like the speed caps keep the direction of the twist). Rules:
 
-* the previous shaped twist is the last resolution's `twist_desired` while running, else the twist the
-  arm makes (J q_dot_prev), so a resumed twist ramps from the motion the arm is in;
+* the previous shaped twist is the last resolution's `twist_desired` while running, else (and after a
+  stop) the twist the arm makes (J q_dot_prev), so a resumed twist ramps from the motion the arm is in;
 * a zero asked twist (a stop) is not ramped: the solver brakes along the previous rate as hard as the
   joints allow, never slower than before;
 * the shaped twist goes through the speed caps again, so a cap lowered this tick (reduced speed) holds
@@ -74,7 +74,9 @@ class TwistRamp:
         if not (desired.linear.any() or desired.angular.any()):
             return desired
         x = twist_base(desired, frames.T_base_tool)
-        x_prev = last.twist_desired if last is not None else J.dot(qd_prev)
+        x_prev = last.twist_desired if last is not None else None
+        if x_prev is None or not x_prev.any():  # from rest or after a stop (not ramped): the arm's twist
+            x_prev = J.dot(qd_prev)
         T = self.period
         x = ramp_step(x, x_prev, self.linear_accel_max * T, self.angular_accel_max * T)
         cap = speed_cap_factor(x[:3], x[3:], _ZERO3, linear_max, angular_max)

@@ -39,7 +39,8 @@ def format_saturation(section: dict[str, Any]) -> str:
     lines = ["saturated tick (closed loop at 500 Hz; shares of the running ticks; 'ramp': the demo config's "
              f"ramp of the asked twist{ramp_text}):",
              "  run                  scale 0  after a step  below half   stalled  peak accel / limit  "
-             "sign changes (max) / asked turns"]
+             "sign changes (max) / asked turns",
+             "  (targets: scale 0 < 0.5 %; peak accel / limit <= 1; sign changes <= asked turns)"]
     for name, r in section["runs"].items():
         lines.append(f"  {name:<19} {_pct(r['scale_zero_fraction'])} "
                      f"{_pct(r['scale_zero_after_step_fraction'])}     {_pct(r['below_half_fraction'])}  "

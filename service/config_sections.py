@@ -185,18 +185,25 @@ class SpeedSection(_Section):
     """Tool speed caps. linear_max : m/s (reference point and tool point); angular_max : rad/s, or
     angular_max_deg_s in degrees per second (one of the two). reduced_speed : start in reduced-speed
     mode. reduced_linear_max : tool-point cap in reduced-speed mode, m/s, at most 0.25
-    (ISO 10218-1:2011, 5.6 reduced speed)."""
+    (ISO 10218-1:2011, 5.6 reduced speed). linear_accel_max (m/s^2), angular_accel_max (rad/s^2) : the
+    ramp on the asked twist's rate of change before the solve (`twistrate.service.shaping`), both or
+    neither (default: off)."""
 
     linear_max: Annotated[LinearMax, TUNABLE] = 0.5
     angular_max: Annotated[AngularMax | None, Tunable("angular_max_rad_s", AngularMax)] = None
     angular_max_deg_s: Annotated[float, Field(gt=0.0, le=1145.0)] | None = None
     reduced_speed: Annotated[bool, TUNABLE] = False
     reduced_linear_max: Annotated[ReducedMax, TUNABLE] = REDUCED_SPEED_MAX
+    #: the ramp of the asked twist (service/shaping.py), m/s^2 and rad/s^2: both or neither (off)
+    linear_accel_max: Annotated[float, Field(gt=0.0, le=100.0)] | None = None
+    angular_accel_max: Annotated[float, Field(gt=0.0, le=1000.0)] | None = None
 
     @model_validator(mode="after")
     def _one_angular(self) -> SpeedSection:
         if self.angular_max is not None and self.angular_max_deg_s is not None:
             raise ValueError("give angular_max (rad/s) or angular_max_deg_s, not both")
+        if (self.linear_accel_max is None) != (self.angular_accel_max is None):
+            raise ValueError("give both linear_accel_max (m/s^2) and angular_accel_max (rad/s^2), or neither")
         return self
 
     @property

@@ -38,6 +38,7 @@ from twistrate.service.keepout_watch import KeepoutWatch
 from twistrate.service.motion import ramp_to_rest, speed_cap_factor
 from twistrate.service.recorder import limit_events
 from twistrate.service.reports import HealthReporter
+from twistrate.service.shaping import ramped, twist_ramp
 from twistrate.service.simarm import SimArm
 from twistrate.service.telemetry import RateLimitedLog, Snapshot, Telemetry
 from twistrate.service.tick import Ticker
@@ -104,6 +105,7 @@ class Pipeline:
         #: the keep-out pass of the config's [keepout] section (built once; one tick loop's object) or None
         self.keepout = config.keepout_pass(arm)
         self.keepout_watch = KeepoutWatch(self)
+        self.ramp = twist_ramp(config.speed, self.period_s)  # the asked twist's ramp, or None (off)
         self.install_tunables(config.tunables())
         self.reports = HealthReporter(self)
         # tick state
@@ -311,6 +313,7 @@ class Pipeline:
             desired = DesiredTwist(desired.linear * cap, desired.angular * cap, desired.frame, desired.point)
         t0 = self.clock()
         frames, J = self.kinematics(q)
+        desired = ramped(self.ramp, desired, frames, J, qd_prev, self.last_resolution, t)
         res, _ = resolve_from_kinematics(self.arm, q, qd_prev, desired, self.period_s, self.options, frames,
                                          J, self.keepout)
         self.telemetry.hist["solve"].add(self.clock() - t0)

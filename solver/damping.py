@@ -33,7 +33,7 @@ import math
 import numpy as np
 
 from twistrate.solver.options import SolverOptions
-from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, singular_values, svd_full
+from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 
 #: Smallest attenuation factor used when converting selective damping to an equivalent l (keeps
 #: the reported damping finite; gamma_max > 0 is required by `twistrate.solver.resolve`).
@@ -175,18 +175,22 @@ def resting_joint_damping(
     if options.damping not in _DAMPING_BY_SIZE:
         return a, lam  # the other policies never damp more for smaller singular values
     n = a.shape[0]
-    reach = AT  # speed and A T in joint units; a has the signs of the joint rates
-    resting = ((a < 0.0) & (speed[:n] <= reach)) | ((a > 0.0) & (speed[n:] <= reach))
-    if not resting.any() or resting.all():
+    # Python floats: the test is a handful of comparisons per joint (cheaper than numpy calls on n values)
+    a_l, sp, reach = a.tolist(), speed.tolist(), AT.tolist()  # speed and A T in joint units
+    keep = [i for i in range(n) if not ((a_l[i] < 0.0 and sp[i] <= reach[i])
+                                        or (a_l[i] > 0.0 and sp[n + i] <= reach[i]))]
+    if len(keep) in (0, n):
         return a, lam
-    keep = ~resting
     A_e = A[:, keep]
-    lam_e = damping_factor(singular_values(A_e), options)
+    # One full SVD (its singular values decide; most resting ticks need its vectors too)
+    U_e, s_e, Vh_e = svd_full(A_e)
+    lam_e = damping_factor(s_e, options)
     if lam_e <= lam:
         return a, lam
-    U_e, s_e, Vh_e = svd_full(A_e)
     r = numerical_rank(s_e, max(RANK_RTOL * float(s_e[0]), RANK_ATOL)) if s_e.size else 0
-    coef = (x_w @ U_e[:, :r]) * (s_e[:r] / (s_e[:r] ** 2 + lam_e * lam_e))
+    s_r = s_e if r == s_e.size else s_e[:r]
+    coef = x_w.dot(U_e[:, :r]) if r < U_e.shape[1] else x_w.dot(U_e)
+    coef *= s_r / (s_r * s_r + lam_e * lam_e)
     out = np.zeros(n)
-    out[keep] = coef @ Vh_e[:r]
+    out[keep] = coef.dot(Vh_e[:r])
     return out, lam_e

@@ -220,17 +220,24 @@ def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray) -> np.ndar
     the position/velocity bit of the side it could not meet.
     """
     n = qd.shape[0]
-    tol = SOURCE_RTOL * (1.0 + np.abs(qd))
-    low_p, high_p = -bounds.speed[:n], bounds.speed[n:]
-    vel_lo, vel_hi = bounds.velocity_bound[:n], bounds.velocity_bound[n:]
-    bits = np.zeros(n, dtype=np.uint8)
-    on_low = (qd <= low_p + tol) & mask
-    on_high = (qd >= high_p - tol) & mask
-    bits[on_low] |= np.where(vel_lo[on_low], LIMIT_VELOCITY, LIMIT_POSITION).astype(np.uint8)
-    bits[on_high] |= np.where(vel_hi[on_high], LIMIT_VELOCITY, LIMIT_POSITION).astype(np.uint8)
-    on_acc = ((np.abs(qd - bounds.acc_lo) <= tol) | (np.abs(qd - bounds.acc_hi) <= tol)) & mask
-    bits[on_acc] |= LIMIT_ACCELERATION
-    return bits
+    # Python floats: a few comparisons per joint (cheaper than two dozen numpy calls on n values)
+    q_l, sp, vb = qd.tolist(), bounds.speed.tolist(), bounds.velocity_bound.tolist()
+    acc_lo, acc_hi, on = bounds.acc_lo.tolist(), bounds.acc_hi.tolist(), mask.tolist()
+    bits = [0] * n
+    for i in range(n):
+        if not on[i]:
+            continue
+        v = q_l[i]
+        tol = SOURCE_RTOL * (1.0 + abs(v))
+        b = 0
+        if v <= -sp[i] + tol:
+            b |= LIMIT_VELOCITY if vb[i] else LIMIT_POSITION
+        if v >= sp[n + i] - tol:
+            b |= LIMIT_VELOCITY if vb[n + i] else LIMIT_POSITION
+        if abs(v - acc_lo[i]) <= tol or abs(v - acc_hi[i]) <= tol:
+            b |= LIMIT_ACCELERATION
+        bits[i] = b
+    return np.array(bits, dtype=np.uint8)
 
 
 def _scaling(

@@ -108,7 +108,8 @@ def test_the_saturation_section_prints_every_run_and_the_cost():
 
     section = saturation_section(("bench6",), push_s=0.6, demo_s=2.0, cost_ticks=100)
     text = format_saturation(section)
-    assert set(section["runs"]) == {"bench6 jog", "bench6 steps", "demo pass"}
+    assert set(section["runs"]) == {"bench6 jog", "bench6 steps", "bench6 steps, ramp", "demo pass, no ramp",
+                                    "demo pass"}
     for name, run in section["runs"].items():
         assert name in text
         assert 0.0 <= run["scale_zero_fraction"] <= 1.0 and run["peak_acceleration_ratio"] <= 1.0 + 1e-9

@@ -24,7 +24,9 @@ Figures (`motion_figures`), over the running ticks (asked twist nonzero):
   it had at its last counted turn;
 * `peak_acceleration_ratio`: max over ticks and joints of |q_dot_k - q_dot_(k-1)| / (a_max T) (<= 1
   means within the acceleration limit on every tick); `peak_velocity_ratio` likewise |q_dot| / v_max;
-* `twist_error_max_m_s`, `twist_error_mean_m_s`: task-weighted norm of achieved - asked.
+* `twist_error_max_m_s`, `twist_error_mean_m_s`: task-weighted norm of achieved - asked (the solved,
+  i.e. ramped, twist); `ramp_error_mean_m_s`: that of the ramped twist - the operator's (the ramp's lag).
+Steps and direction changes are counted on the operator's twist (before the ramp).
 
 `tick_cost` times the free and the saturated 7-joint tick in one process (median, p99, ratio).
 """
@@ -39,6 +41,7 @@ from typing import Any
 import numpy as np
 
 from twistrate.service.motion import speed_cap_factor
+from twistrate.service.shaping import TwistRamp
 from twistrate.service.simarm import SimArm
 from twistrate.solver.arm import Arm
 from twistrate.solver.kinematics import forward, geometric_jacobian
@@ -58,6 +61,8 @@ DEMO_LINEAR_MAX = 0.5
 DEMO_ANGULAR_MAX = math.radians(60.0)
 #: The demo config's simulated lag, s ([simulation] lag_s).
 DEMO_LAG_S = 0.02
+#: The demo config's ramp of the asked twist ([speed] linear_accel_max m/s^2, angular_accel_max rad/s^2).
+DEMO_RAMP = TwistRamp(0.5, 1.5, 0.002)
 #: Sign dead band, share of each joint's velocity limit.
 SIGN_DEADBAND = 1e-3
 #: A turn of the asked twist by more than this from its last counted direction counts as a change.
@@ -77,20 +82,24 @@ Twist = tuple[np.ndarray, np.ndarray]
 
 def run_closed_loop(arm: Arm, options: SolverOptions, twist_at: Callable[[float], Twist], seconds: float,
                     q0: np.ndarray, lag_s: float = 0.0, linear_max: float = math.inf,
-                    angular_max: float = math.inf) -> dict[str, np.ndarray]:
+                    angular_max: float = math.inf, ramp: TwistRamp | None = None) -> dict[str, np.ndarray]:
     """Run resolve in closed loop for `seconds` and record every tick.
 
     twist_at : t (s) -> (linear (3,) m/s, angular (3,) rad/s), base frame, tool point. q0 : (n,) start.
     lag_s : first-order lag of the simulated arm (0: q += q_dot T exactly). linear_max, angular_max : the
-    service's tool speed caps applied to the twist first. Returns arrays per tick: asked (N, 6),
-    achieved (N, 6), qd (N, n), scale (N,), tracking (N,) bool, damping (N,), sigma_min (N,).
+    service's tool speed caps applied to the twist first. ramp : the service's ramp of the asked twist
+    (`twistrate.service.shaping`, as the pipeline calls it) or None. Returns arrays per tick: asked
+    (N, 6) the solved twist (ramped), asked_raw (N, 6) the capped twist before the ramp, achieved
+    (N, 6), qd (N, n), scale (N,), tracking (N,) bool, damping (N,), sigma_min (N,).
     """
     n = arm.n
     ticks = round(seconds / PERIOD_S)
     sim = SimArm.from_arm(arm, lag_s=lag_s, q0=q0) if lag_s > 0.0 else None
     q = np.array(q0, dtype=float)
     qd = np.zeros(n)
-    out = {"asked": np.zeros((ticks, 6)), "achieved": np.zeros((ticks, 6)), "qd": np.zeros((ticks, n)),
+    last = None
+    out = {"asked": np.zeros((ticks, 6)), "asked_raw": np.zeros((ticks, 6)),
+           "achieved": np.zeros((ticks, 6)), "qd": np.zeros((ticks, n)),
            "scale": np.zeros(ticks), "tracking": np.zeros(ticks, dtype=bool), "damping": np.zeros(ticks),
            "sigma_min": np.zeros(ticks)}
     for k in range(ticks):
@@ -98,7 +107,12 @@ def run_closed_loop(arm: Arm, options: SolverOptions, twist_at: Callable[[float]
         linear, angular = np.asarray(linear, dtype=float), np.asarray(angular, dtype=float)
         cap = speed_cap_factor(linear, angular, np.zeros(3), linear_max, angular_max)
         tw = DesiredTwist(linear * cap, angular * cap)
+        out["asked_raw"][k, :3], out["asked_raw"][k, 3:] = tw.linear, tw.angular
+        if ramp is not None:
+            frames = forward(arm, q)
+            tw = ramp.shape(tw, frames, geometric_jacobian(arm, frames), qd, last, linear_max, angular_max)
         r = resolve(arm, q, qd, tw, PERIOD_S, options)
+        last = r
         out["asked"][k] = r.twist_desired
         out["achieved"][k] = r.twist_achieved
         out["qd"][k] = r.qd
@@ -146,13 +160,15 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
     L = characteristic_length
     weight = np.array([1.0, 1.0, 1.0, L, L, L])
     asked, achieved, qd, scale = run["asked"], run["achieved"], run["qd"], run["scale"]
+    raw = run.get("asked_raw", asked)  # the operator's (capped) twist, before any ramp
     running = np.abs(asked).max(axis=1) > 0.0
     count = max(1, int(running.sum()))
     zero = running & (scale == 0.0)
     asked_w = np.linalg.norm(asked * weight, axis=1)
     err = np.linalg.norm((achieved - asked) * weight, axis=1)
     stalled = running & (np.linalg.norm(achieved * weight, axis=1) < STALL_SHARE * asked_w)
-    jumps = np.linalg.norm(np.diff(asked * weight, axis=0, prepend=0.0), axis=1) > STEP_JUMP_M_S
+    jumps = np.linalg.norm(np.diff(raw * weight, axis=0, prepend=0.0), axis=1) > STEP_JUMP_M_S
+    ramp_err = np.linalg.norm((asked - raw) * weight, axis=1)
     after_step = np.zeros(scale.shape[0], dtype=bool)
     window = round(STEP_WINDOW_S / PERIOD_S)
     for k in np.flatnonzero(jumps):
@@ -170,24 +186,27 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
         "below_half_fraction": float((running & (scale < 0.5)).sum()) / count,
         "stalled_fraction": float(stalled.sum()) / count,
         "sign_changes": [_sign_changes(qd[:, j], SIGN_DEADBAND * float(arm.v_max[j])) for j in range(arm.n)],
-        "asked_direction_changes": _direction_changes(asked, weight),
+        "asked_direction_changes": _direction_changes(raw, weight),
         "peak_acceleration_ratio": float(acc_ratio.max()) if acc_ratio.size else 0.0,
         "peak_velocity_ratio": float((np.abs(qd) / arm.v_max).max()) if qd.size else 0.0,
         "twist_error_max_m_s": float(err[running].max()) if running.any() else 0.0,
         "twist_error_mean_m_s": float(err[running].mean()) if running.any() else 0.0,
+        "ramp_error_mean_m_s": float(ramp_err[running].mean()) if running.any() else 0.0,
     }
 
 
 def push_through_wrist(name: str, options: SolverOptions | None = None, seconds: float = 4.0,
-                       speed: float = 0.3, ramp_s: float = 0.25, lag_s: float = 0.0) -> dict[str, Any]:
+                       speed: float = 0.3, ramp_s: float = 0.25, lag_s: float = 0.0,
+                       ramp: TwistRamp | None = None) -> dict[str, Any]:
     """Scripted push through the wrist singularity of example arm `name` (bench6 or reach7).
 
     From home with the wrist joint at +WRIST_START rad, the base-frame twist that the wrist joint alone
     would make at `speed` rad/s toward 0 is asked for seconds / 2, then its opposite (one reversal), so
     the tool passes the aligned wrist posture twice. Like a jog command, each half ramps its magnitude
     in and out over `ramp_s` (a half-cosine); ramp_s = 0 asks for steps (start and reversal at full
-    speed, which no rate within one tick of acceleration can follow). Returns `motion_figures` plus the
-    run's settings.
+    speed, which no rate within one tick of acceleration can follow); `ramp` then applies the service's
+    ramp of the asked twist (`twistrate.service.shaping`). Returns `motion_figures` plus the run's
+    settings.
     """
     arm = load_arm(name)
     options = DEMO_OPTIONS if options is None else options
@@ -207,7 +226,7 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
             f = 0.5 * (1.0 - math.cos(math.pi * max(edge, 0.0) / ramp_s))
         return sign * f * linear, sign * f * angular
 
-    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s)
+    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s, ramp=ramp)
     figures = motion_figures(arm, run, options.characteristic_length)
     figures.update({"run": f"push through the wrist singularity ({name}, joint {j})", "seconds": seconds,
                     "ramp_s": ramp_s, "lag_s": lag_s, "sigma_min_lowest_m": float(run["sigma_min"].min())})
@@ -215,11 +234,13 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
 
 
 def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: SolverOptions | None = None,
-                seconds: float = 24.0, lag_s: float = DEMO_LAG_S, reference: bool = True) -> dict[str, Any]:
+                seconds: float = 24.0, lag_s: float = DEMO_LAG_S, reference: bool = True,
+                ramp: TwistRamp | None = DEMO_RAMP) -> dict[str, Any]:
     """The demo's scripted pass on reach7 at solver level (module docstring).
 
     scripted : the demo command's `scripted_twist`, t (s) -> (phase name, linear (3,) m/s, angular (3,)
-    rad/s), base frame (passed in: the service core does not import the commands). With `reference`,
+    rad/s), base frame (passed in: the service core does not import the commands). ramp : the asked
+    twist's ramp (default the demo config's, `DEMO_RAMP`; None: off). With `reference`,
     the sign changes of the same pass without hard limits are reported too (`free_sign_changes`): the
     zero crossings the kinematics itself asks for."""
     arm = load_arm("reach7")
@@ -230,12 +251,13 @@ def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: Solv
         return np.asarray(linear, dtype=float), np.asarray(angular, dtype=float)
 
     q0 = np.array(arm.q_home, dtype=float)
-    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s, DEMO_LINEAR_MAX, DEMO_ANGULAR_MAX)
+    caps = (DEMO_LINEAR_MAX, DEMO_ANGULAR_MAX)
+    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s, *caps, ramp=ramp)
     figures = motion_figures(arm, run, options.characteristic_length)
     figures.update({"run": "demo pass (reach7)", "seconds": seconds, "lag_s": lag_s})
     if reference:
         free = SolverOptions(**{**_fields(options), "enforce_limits": False})
-        ref = run_closed_loop(arm, free, twist_at, seconds, q0, lag_s, DEMO_LINEAR_MAX, DEMO_ANGULAR_MAX)
+        ref = run_closed_loop(arm, free, twist_at, seconds, q0, lag_s, *caps, ramp=ramp)
         figures["free_sign_changes"] = motion_figures(arm, ref, options.characteristic_length)["sign_changes"]
     return figures
 

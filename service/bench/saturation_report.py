@@ -6,7 +6,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from twistrate.service.bench.saturation import demo_replay, push_through_wrist, tick_cost
+from twistrate.service.bench.saturation import DEMO_RAMP, demo_replay, push_through_wrist, tick_cost
 from twistrate.service.commands.demo import scripted_twist
 
 #: Targets of the saturated tick (the 7-joint arm; ratios and shares, measured in one run).
@@ -22,8 +22,11 @@ def saturation_section(arms: tuple[str, ...] = ("bench6", "reach7"), push_s: flo
     for name in arms:
         runs[f"{name} jog"] = push_through_wrist(name, seconds=push_s, ramp_s=0.25)
         runs[f"{name} steps"] = push_through_wrist(name, seconds=push_s, ramp_s=0.0)
+        runs[f"{name} steps, ramp"] = push_through_wrist(name, seconds=push_s, ramp_s=0.0, ramp=DEMO_RAMP)
+    runs["demo pass, no ramp"] = demo_replay(scripted_twist, seconds=demo_s, ramp=None, reference=False)
     runs["demo pass"] = demo_replay(scripted_twist, seconds=demo_s)
-    return {"runs": runs, "cost": tick_cost("reach7", ticks=cost_ticks), "targets": TARGETS}
+    return {"runs": runs, "cost": tick_cost("reach7", ticks=cost_ticks), "targets": TARGETS,
+            "ramp": (DEMO_RAMP.linear_accel_max, DEMO_RAMP.angular_accel_max)}
 
 
 def _pct(x: float | None) -> str:
@@ -31,15 +34,24 @@ def _pct(x: float | None) -> str:
 
 
 def format_saturation(section: dict[str, Any]) -> str:
-    lines = ["saturated tick (closed loop at 500 Hz; shares of the running ticks):",
-             "  run             scale 0  after a step  below half   stalled  peak accel / limit  "
-             "sign changes (max) / asked turns"]
+    ramp = section.get("ramp")
+    ramp_text = "" if ramp is None else f", {ramp[0]:g} m/s^2 and {ramp[1]:g} rad/s^2"
+    lines = ["saturated tick (closed loop at 500 Hz; shares of the running ticks; 'ramp': the demo config's "
+             f"ramp of the asked twist{ramp_text}):",
+             "  run                  scale 0  after a step  below half   stalled  peak accel / limit  "
+             "sign changes (max) / asked turns",
+             "  (targets: scale 0 < 0.5 %; peak accel / limit <= 1; sign changes <= asked turns)"]
     for name, r in section["runs"].items():
-        lines.append(f"  {name:<14} {_pct(r['scale_zero_fraction'])} "
+        lines.append(f"  {name:<19} {_pct(r['scale_zero_fraction'])} "
                      f"{_pct(r['scale_zero_after_step_fraction'])}     {_pct(r['below_half_fraction'])}  "
                      f"{_pct(r['stalled_fraction'])}  "
                      f"{r['peak_acceleration_ratio']:8.3f}           {max(r['sign_changes'])} / "
                      f"{r['asked_direction_changes']}")
+    for name, r in section["runs"].items():
+        if "free_sign_changes" in r:
+            lines.append(f"  {name}: sign changes per joint {r['sign_changes']}, the same pass without hard "
+                         f"limits {r['free_sign_changes']} (the kinematics' own zero crossings); the ramp's "
+                         f"lag behind the asked twist: mean {r['ramp_error_mean_m_s']:.4f} m/s (weighted)")
     c = section["cost"]
     lines.append(f"  cost ({c['arm']}): free tick median {c['free_median_us']:.1f} us, saturated median "
                  f"{c['saturated_median_us']:.1f} us = {c['saturated_to_free']:.2f}x the free tick "

@@ -39,7 +39,9 @@ def _health(tick, sigma, state="clear", mode="running", rejected=None, overruns=
 
 
 def _event(tick, name, detail="", mode="running"):
-    return wire.decode_event(wire.encode_event(seq=tick, tick=tick, event=name, detail=detail, mode=mode))
+    return wire.decode_event(
+        wire.encode_event(seq=tick, tick=tick, event=name, detail=detail, mode=mode, instance=7)
+    )
 
 
 def test_health_messages_fill_history_and_state_changes():

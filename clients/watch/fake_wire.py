@@ -70,6 +70,7 @@ class FakeService:
             "health": self.arm.health,
             "tick": self.arm.seq,
             "tick_hz": self.arm.tick_hz,
+            "health_hz": self.health_hz,
             "arm": f"fake-{self.name}",
             "n": 4,
             "holder": "fake-operator",

@@ -19,8 +19,6 @@ import numpy as np
 
 #: invented link lengths, m: base height, upper arm, forearm, hand
 LINKS_M = (0.30, 0.28, 0.22, 0.10)
-#: central-difference step for J_v, rad
-FD_STEP_RAD = 1e-6
 #: invented limits: position (rad), rate (rad/s)
 POSITION_LIMIT_RAD = (2.9, 2.0, 2.6, 2.0)
 RATE_LIMIT_RADPS = (1.5, 1.5, 2.0, 2.5)
@@ -59,13 +57,16 @@ def chain(q: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
     return pts, R
 
 
-def jacobian_linear(q: np.ndarray) -> np.ndarray:
-    """J_v : (3, 4) translational Jacobian of the tool origin, base frame, m per rad (central differences)."""
-    J = np.zeros((3, len(q)))
-    for i in range(len(q)):
-        dq = np.zeros(len(q))
-        dq[i] = FD_STEP_RAD
-        J[:, i] = (chain(q + dq)[0][-1] - chain(q - dq)[0][-1]) / (2 * FD_STEP_RAD)
+def jacobian_linear(q: np.ndarray, origins: list[np.ndarray] | None = None) -> np.ndarray:
+    """J_v : (3, 4) translational Jacobian of the tool origin, base frame, m per rad: column i is
+    z_i x (p_tool - p_i), the waist about the base z axis and the three pitch joints about the turned
+    y axis (Orin and Schrader 1984, "Efficient computation of the Jacobian for robot manipulators").
+    origins : chain(q)'s points when already at hand."""
+    pts = chain(q)[0] if origins is None else origins
+    d = (pts[-1] - np.array(pts[1:5])).T  # (3, 4): from each joint's origin to the tool
+    c, s = math.cos(q[0]), math.sin(q[0])
+    J = np.array([[0.0, 0.0, c], [0.0, 0.0, s], [-c, -s, 0.0]]) @ d  # [y]x d, y = (-s, c, 0)
+    J[:, 0] = (-d[1, 0], d[0, 0], 0.0)  # the waist: (0, 0, 1) x d
     return J
 
 
@@ -178,7 +179,7 @@ class FakeArm:
             self.mode = "running"
         q, qd = self.q_at(t)
         pts, R = chain(q)
-        Jv = jacobian_linear(q)
+        Jv = jacobian_linear(q, pts)
         U, sv, _ = np.linalg.svd(Jv)
         sigma_min = float(sv[-1])
         state = (

@@ -138,3 +138,9 @@ def test_foresight_is_shown_as_the_health_message_gives_it_and_follows_it():
 def test_foresight_words_for_never_and_unknown():
     assert secs(None) == "-" and secs(float("inf")) == "-"
     assert (secs(3.21), secs(42.4), secs(1234.0)) == ("3.2s", "42s", ">999s")
+
+
+def test_foresight_before_any_health_message_says_so():
+    fleet = Fleet()
+    fleet.arm("quiet").set_status({"mode": "disabled", "holder": None}, 0.0)
+    assert "at these rates: n/a (no health message yet)" in render_text(fleet, 0.5)

@@ -73,6 +73,8 @@ def foresight_line(view: ArmView) -> Text:
     """Where the current rates lead (the health message's foresight): the time to the pinched threshold
     and the first joint to reach a position limit, in words."""
     lt = view.latest
+    if "tick" not in lt:
+        return Text("at these rates: n/a (no health message yet)", style="dim")
     t = Text("at these rates: pinched ")
     to_pinched = lt.get("time_to_pinched_s")
     if to_pinched is None:

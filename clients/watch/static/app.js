@@ -19,6 +19,7 @@ function ahead(el, a) {
   const L = a.latest || {};
   const tp = L.time_to_pinched_s, fj = L.first_limit_joint, tf = L.time_to_first_limit_s;
   const p = q(el, "to_pinched"), f = q(el, "first_limit");
+  if (L.tick === undefined) { text(el, "to_pinched", "n/a"); text(el, "first_limit", "n/a"); return; }  // no health yet
   text(el, "to_pinched", tp === null || tp === undefined ? "not ahead" : tp <= 0 ? "now (pinched)" : `in ${secs(tp)}`);
   p.dataset.soon = String(tp !== null && tp !== undefined && tp < SOON_S);
   const name = fj === null || fj === undefined ? null : ((a.joints[fj] || {}).name || `joint ${fj + 1}`);

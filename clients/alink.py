@@ -5,7 +5,8 @@ form adds: several coroutines may wait on requests at once (replies are matched 
 task); the lease is renewed by a task of its own, so a slow renewal never delays a twist (`send_twist`
 is a plain, non-blocking call that never waits for the service); output messages are fanned out to
 any number of iterators (`commands()`, `health()`, `events()`); a restarted service is noticed
-(`on_restart`) and the lease it no longer knows is dropped, never re-enabled.
+(`on_restart`) from its instance id (in `status` and in every event; a tick counter that goes back
+makes the link ask `status` at once) and the lease it no longer knows is dropped, never re-enabled.
 
     async with AsyncLink(client="pad") as link:
         await link.wait_ready()
@@ -19,6 +20,7 @@ any number of iterators (`commands()`, `health()`, `events()`); a restarted serv
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import time
 from collections.abc import AsyncIterator, Callable, Mapping, Sequence
 from typing import Any
@@ -77,7 +79,7 @@ class AsyncLink:
         self.lease_ms: int | None = None
         self.lease_lost: TwistrateError | None = None  # why the last lease was lost, if it was
         self.renewed_at = 0.0
-        self.restart = RestartWatch()
+        self.restart = RestartWatch(trust_ticks=False)  # the id decides; a tick drop asks status
         self._seq = {wire.KIND_TWIST: 0, wire.KIND_REQUEST: 0}
         self._own_context = context is None
         self._ctx = context or zmq.asyncio.Context()
@@ -169,6 +171,8 @@ class AsyncLink:
                                    f"within {timeout:g} s") from None
         finally:
             self._pending.pop(seq, None)
+        if op == "status" and reply.ok:
+            self._saw_instance(reply.result["instance"])  # checked by the codec: an int >= 1
         if "tick" in reply.result and isinstance(reply.result["tick"], int):
             self._saw_tick(reply.result["tick"])
         return reply_result(reply, op)
@@ -282,16 +286,28 @@ class AsyncLink:
 
     def _saw_tick(self, tick: int) -> None:
         if self.restart.see(tick):
-            if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
-                self.lease_lost = ControlError("no_lease", f"the service restarted (tick {tick} after "
-                                               f"{self.restart.highest_before}); a restarted service is "
-                                               "disabled and holds no lease")
-            self.lease = self.lease_ms = None  # the new instance knows no lease of ours
-            task = self._tasks.get("renew")
-            if task is not None:
-                task.cancel()
-            if self.on_restart is not None:
-                self.on_restart()
+            self._restarted()
+        elif self.restart.suspect and not self._closed:
+            self._task("confirm", self._confirm)  # the counter went back: let the instance id decide
+
+    def _saw_instance(self, instance: int) -> None:
+        if self.restart.see_instance(instance):
+            self._restarted()
+
+    async def _confirm(self) -> None:
+        with contextlib.suppress(TwistrateError):  # no reply: the next tick drop asks again
+            await self.status()
+
+    def _restarted(self) -> None:
+        if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
+            self.lease_lost = ControlError("no_lease", f"the service restarted ({self.restart.describe()}); "
+                                           "a restarted service is disabled and holds no lease")
+        self.lease = self.lease_ms = None  # the new instance knows no lease of ours
+        task = self._tasks.get("renew")
+        if task is not None:
+            task.cancel()
+        if self.on_restart is not None:
+            self.on_restart()
 
     async def _read_output(self) -> None:
         while True:
@@ -301,6 +317,8 @@ class AsyncLink:
             except WireError:
                 self.malformed += 1
                 continue
+            if isinstance(message, EventMessage):
+                self._saw_instance(message.instance)
             self._saw_tick(message.tick)
             for kinds, queue in self._queues:
                 if isinstance(message, kinds):

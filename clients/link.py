@@ -150,6 +150,7 @@ class Link:
         reply = self._await_reply(seq, op, self.timeout_s if timeout_s is None else timeout_s)
         result = reply_result(reply, op)
         if op == "status" and isinstance(result.get("tick"), int):
+            self._saw_instance(result["instance"])  # checked by the codec (docs/protocol.md section 6)
             self._saw_tick(result["tick"])
         return result
 
@@ -230,16 +231,22 @@ class Link:
             self.lease_lost = ControlError(reply.error_code or "no_lease", f"renew: {reply.error_message}")
             self.lease = self.lease_ms = None
 
+    def _saw_instance(self, instance: int) -> None:
+        if self.restart.see_instance(instance):
+            self._restarted()
+
     def _saw_tick(self, tick: int) -> None:
         if self.restart.see(tick):
-            if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
-                self.lease_lost = ControlError("no_lease", f"the service restarted (tick {tick} after "
-                                               f"{self.restart.highest_before}); a restarted service is "
-                                               "disabled and holds no lease")
-            self.lease = self.lease_ms = None
-            self._renewing = None
-            if self.on_restart is not None:
-                self.on_restart()
+            self._restarted()
+
+    def _restarted(self) -> None:
+        if self.lease is not None or self.lease_lost is not None:  # the restart explains the loss
+            self.lease_lost = ControlError("no_lease", f"the service restarted ({self.restart.describe()}); "
+                                           "a restarted service is disabled and holds no lease")
+        self.lease = self.lease_ms = None
+        self._renewing = None
+        if self.on_restart is not None:
+            self.on_restart()
 
     def release(self) -> None:
         """Give the lease up (motion is disabled by the service)."""
@@ -331,6 +338,8 @@ class Link:
         if not self._output.poll(max(0, int(timeout * 1000)), zmq.POLLIN):
             raise LinkTimeoutError(f"no message from {self.endpoints.output} within {timeout:g} s")
         message = wire.decode_output(self._output.recv_multipart(), self.n)
+        if isinstance(message, wire.EventMessage):
+            self._saw_instance(message.instance)
         self._saw_tick(message.tick)
         return message
 

@@ -127,23 +127,60 @@ RESTART_MARGIN_TICKS = 100
 
 
 class RestartWatch:
-    """Notices a restarted service from what it publishes: a new service starts its tick counter at
-    zero, so a tick more than RESTART_MARGIN_TICKS below the highest seen (from commands, health,
-    events or status) means a new instance. `see(tick)` returns True once per restart. A restarted
-    service is disabled and holds no lease (docs/protocol.md sections 9 and 10): the client must
-    claim again, and only the operator may enable."""
+    """Notices a restarted service. The authority is the instance id (docs/protocol.md section 6: a
+    random id per service process, in the `status` result and in every event): `see_instance(id)`
+    returns True once per new id. The tick counter is the fast hint: a new service starts it at zero,
+    so a tick more than RESTART_MARGIN_TICKS below the highest seen (from commands, health, events or
+    status) `see(tick)` reports as a restart while no id is known, or, once one is, when
+    `trust_ticks` (the blocking Link, which has no task to ask with); otherwise it sets `suspect`, and
+    the caller asks `status` to let the id decide. A restarted service is disabled and holds no lease
+    (sections 9 and 10): the client must claim again, and only the operator may enable.
 
-    def __init__(self) -> None:
+    by : what noticed the last restart ("instance" or "tick"); instance : the id known (None: not yet;
+    after a restart noticed from the ticks, the next id is learned without a second notice)."""
+
+    def __init__(self, trust_ticks: bool = True) -> None:
+        self.trust_ticks = trust_ticks
         self.highest: int | None = None
         self.highest_before: int | None = None  # the highest tick of the instance before the restart
         self.restarts = 0
+        self.instance: int | None = None
+        self.instance_before: int | None = None
+        self.by: str | None = None
+        self.suspect = False
 
     def see(self, tick: int) -> bool:
-        restarted = self.highest is not None and tick + RESTART_MARGIN_TICKS < self.highest
-        if restarted:
-            self.restarts += 1
-            self.highest_before = self.highest
+        dropped = self.highest is not None and tick + RESTART_MARGIN_TICKS < self.highest
+        if dropped and (self.instance is None or self.trust_ticks):
+            self._restarted("tick")
+            self.instance_before, self.instance = self.instance, None  # the new id: learned, not news
+            self.highest = tick
+            return True
+        if dropped:
+            self.suspect = True  # the id decides (ask status)
             self.highest = tick
         elif self.highest is None or tick > self.highest:
             self.highest = tick
-        return restarted
+        return False
+
+    def see_instance(self, instance: int) -> bool:
+        """The instance id of a status result or an event; True when it is a new instance's."""
+        self.suspect = False
+        old, self.instance = self.instance, instance
+        if old is None or old == instance:
+            return False
+        self._restarted("instance")
+        self.instance_before = old
+        self.highest = None  # the new instance's ticks start afresh
+        return True
+
+    def _restarted(self, by: str) -> None:
+        self.restarts += 1
+        self.by = by
+        self.highest_before = self.highest
+
+    def describe(self) -> str:
+        """The last restart in words (for the lease-lost message)."""
+        if self.by == "instance" and self.instance_before is not None and self.instance is not None:
+            return f"instance id {self.instance_before:016x} -> {self.instance:016x}"
+        return f"tick counter back below {self.highest_before}"

@@ -5,6 +5,7 @@ pipeline's publish function."""
 from __future__ import annotations
 
 import logging
+import secrets
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
@@ -29,6 +30,8 @@ class HealthReporter:
 
     def __init__(self, pipeline: Pipeline) -> None:
         self.p = pipeline
+        #: this instance's id and start time (docs/protocol.md section 6): in status and every event
+        self.instance, self.started_ns = 1 + secrets.randbelow(wire.INSTANCE_MAX), pipeline.wall_clock()
         #: the last health measures published (encode_health's keyword arguments)
         self.last: dict[str, Any] = {}
         self._q: np.ndarray | None = None
@@ -136,7 +139,7 @@ class HealthReporter:
         for name, detail in events:
             seq = tel.out_seq["event"]
             data = wire.encode_event(seq=seq, tick=p.tick, event=name, detail=detail, mode=p.mode,
-                                     stamp_ns=wall)
+                                     instance=self.instance, stamp_ns=wall)
             p.publish(wire.TOPIC_EVENT, data)
             tel.out_seq["event"] = seq + 1
             tel.counts["events"] += 1

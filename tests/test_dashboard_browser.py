@@ -1,10 +1,13 @@
 """The dashboard in a real browser (Debian's chromium, headless, driven by Playwright), fed by the fake
 feed: the page loads with no console error and fetches nothing but its own server's assets; values
-update live; a change of health state shows (in words and a glyph, not colour alone); an arm that goes
-quiet shows as gone and comes back by itself; the page sends nothing (read-only). Screenshots of each
-state are saved under the test's tmp dir."""
+update live; the foresight (time to pinched, the first joint to reach a limit, each joint's time to
+its limit) shows and counts down; a change of health state shows (in words and a glyph, not colour
+alone); an arm that goes quiet shows as gone and comes back by itself; the page sends nothing
+(read-only). Screenshots of each state are saved under the test's tmp dir."""
 
 from __future__ import annotations
+
+import re
 
 import pytest
 
@@ -60,6 +63,23 @@ def test_dashboard_live_states_gone_and_back(tmp_path):
         page.wait_for_function(f"() => Number(document.body.dataset.frames) > {frames0}", timeout=WAIT_MS)
         assert page.locator(f"{_card('left')} .jt tbody tr").count() == 4  # a row per joint
 
+        # foresight (the health message's): time to pinched along the current rates, counting down as
+        # the arm nears the threshold; the first joint to reach a limit by name; per joint its time
+        ahead = f'{_card("left")} [data-field="to_pinched"]'
+        page.wait_for_function(
+            f"""() => /^in [0-9.]+ s$/.test(document.querySelector('{ahead}').textContent)""", timeout=WAIT_MS
+        )
+        before = page.locator(ahead).text_content()
+        page.wait_for_function(
+            f"""() => document.querySelector('{ahead}').textContent !== {before!r}""", timeout=WAIT_MS
+        )
+        first = page.locator(f'{_card("left")} [data-field="first_limit"]').text_content()
+        assert re.fullmatch(r"(turn|lift|bend|nod) in ([0-9.]+ s|> 999 s|now)", first), first
+        times = page.locator(f"{_card('left')} .jt td.tlim").all_text_contents()
+        assert len(times) == 4 and all(re.fullmatch(r"never|now|[0-9.]+ s|> 999 s", t) for t in times), times
+        marked = page.locator(f'{_card("left")} .jt tr:has(td.tlim[data-first="true"])').all()
+        assert len(marked) <= 1  # at most the one joint the message names (a frame later it may differ)
+
         # a state change: the arm reaches pinched (badge says so, with its own glyph), then clear again
         page.wait_for_function(
             f"""() => document.querySelector('{_card("left")}').dataset.health === 'pinched'""",
@@ -68,6 +88,11 @@ def test_dashboard_live_states_gone_and_back(tmp_path):
         badge = page.locator(f'{_card("left")} [data-field="health"]')
         assert badge.locator(".word").text_content() == "pinched"
         assert badge.get_attribute("data-state") == "pinched"
+        page.wait_for_function(  # pinched: the foresight says so, marked as soon (not colour alone)
+            f"""() => document.querySelector('{ahead}').textContent === 'now (pinched)'
+                      && document.querySelector('{ahead}').dataset.soon === 'true'""",
+            timeout=WAIT_MS,
+        )
         page.screenshot(path=str(shots / "pinched.png"), full_page=True)
         page.wait_for_function(
             f"""() => document.querySelector('{_card("left")}').dataset.health === 'clear'""", timeout=WAIT_MS

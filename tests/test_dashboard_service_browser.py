@@ -1,11 +1,13 @@
 """The dashboard in a real browser (headless Debian chromium, Playwright) against a running service and its
 simulated arm: the page loads with no console error, values update live, a drive towards a singularity
-changes the state shown, a stopped service shows as gone and returns by itself; a screenshot of each
-state is saved under the test's tmp dir."""
+changes the state shown and the service's foresight counts down on the page, a stopped service shows as
+gone and returns by itself (noticed through its instance id); a screenshot of each state is saved under
+the test's tmp dir."""
 
 from __future__ import annotations
 
 import contextlib
+import re
 
 import pytest
 
@@ -56,6 +58,12 @@ def test_dashboard_against_a_running_service(tmp_path):
         )
         page.screenshot(path=str(shots / "at-rest.png"), full_page=True)
         sigma = page.locator(f'{CARD} [data-field="sigma_min"]').text_content()
+        # the foresight fields as the page shows them, sampled every 50 ms through the drives below
+        page.evaluate(
+            f"""() => {{ window.ahead = []; window.sampling = setInterval(() => window.ahead.push([
+                document.querySelector('{CARD} [data-field="to_pinched"]').textContent,
+                document.querySelector('{CARD} [data-field="first_limit"]').textContent]), 50); }}"""
+        )
         link = run.link()
         link.claim("browser-test", lease_ms=60_000)  # the page waits between drives
         link.enable()
@@ -65,6 +73,14 @@ def test_dashboard_against_a_running_service(tmp_path):
         page.screenshot(path=str(shots / "narrow.png"), full_page=True)
         drive_until(link, STRETCH, lambda: view.health == "pinched")
         _attr_is(page, "health", "pinched")
+        # stretching toward the singularity, the page showed the service's foresight: a time to pinched
+        # that changed as the arm moved, and a joint of the arm as the first to reach a limit
+        ahead = page.evaluate("() => { clearInterval(window.sampling); return window.ahead; }")
+        counting = {p for p, _ in ahead if re.fullmatch(r"in ([0-9.]+ s|> 999 s)", p)}
+        assert len(counting) >= 2, ahead
+        names = {j["name"] for j in view.joints}
+        named = [f.split(" in ")[0] for _, f in ahead if " in " in f]
+        assert named and set(named) <= names, (named, names)
         assert page.locator(f'{CARD} [data-field="health"] .word').text_content() == "pinched"
         page.wait_for_function(
             f"() => document.querySelector('{CARD} [data-field=\"holder\"]').textContent === 'browser-test'",
@@ -85,6 +101,9 @@ def test_dashboard_against_a_running_service(tmp_path):
             _attr_is(page, "mode", "disabled")
             wait_for(lambda: view.restarts == 1)
             page.wait_for_selector(f'{CARD} ol.ev li[data-event="restarted"]', timeout=WAIT_MS)
+            # noticed through the instance id (docs/protocol.md section 6), both ids listed
+            detail = page.locator(f'{CARD} ol.ev li[data-event="restarted"] .detail').first.text_content()
+            assert re.fullmatch(r"instance [0-9a-f]{16} -> [0-9a-f]{16}", detail), detail
             page.screenshot(path=str(shots / "back.png"), full_page=True)
     assert problems == [], problems
     for name in ("at-rest", "narrow", "pinched", "gone", "back"):

@@ -73,7 +73,8 @@ class Peer:
                     "arm": "reach7",
                     "n": N, "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                     "reduced_speed": False, "position": [0.0] * N, "twist_age_ms": None,
-                    "joints_age_ms": None, "realtime": False}
+                    "joints_age_ms": None, "realtime": False,
+                    "instance": 7, "started_ns": 1_700_000_000_000_000_000}
         return {}
 
     def _answer(self, frames: list[bytes]) -> None:
@@ -261,7 +262,7 @@ def test_receive_decodes_and_filters_by_kind(peer):
     with Link(peer.endpoints, timeout_s=0.5, n=N) as lk:
         cmd = wire.encode_command(seq=1, stamp_ns=1, tick=1, rate=np.full(N, 0.1), target=np.zeros(N),
                                    answers=4, scale=1.0, mode="running", health="clear")
-        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
+        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running", instance=7)
 
         def publish_until_received():
             # PUB/SUB start-up: keep publishing until the subscription has reached the peer
@@ -292,7 +293,7 @@ def test_receive_decodes_and_filters_by_kind(peer):
 
 def test_receive_kind_gives_up_although_other_kinds_keep_coming(peer):
     with Link(peer.endpoints, timeout_s=0.5, n=N) as lk:
-        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running")
+        ev = wire.encode_event(seq=0, tick=1, event="running", detail="", mode="running", instance=7)
         stop = threading.Event()
 
         def flood():

@@ -39,7 +39,9 @@ def _health(tick, sigma, state="clear", mode="running", rejected=None, overruns=
 
 
 def _event(tick, name, detail="", mode="running"):
-    return wire.decode_event(wire.encode_event(seq=tick, tick=tick, event=name, detail=detail, mode=mode))
+    return wire.decode_event(
+        wire.encode_event(seq=tick, tick=tick, event=name, detail=detail, mode=mode, instance=7)
+    )
 
 
 def test_health_messages_fill_history_and_state_changes():
@@ -142,13 +144,11 @@ def test_fake_arm_ellipsoid_is_the_svd_of_its_jacobian_and_crosses_the_threshold
         state, health = msgs["state"], msgs["health"]
         q = np.asarray(state["position"])
         Jv = jacobian_linear(q)
-        # the geometric Jacobian of revolute joints, column i = z_i x (p_tool - p_i) (Orin & Schrader
-        # 1984, "Efficient computation of the Jacobian for robot manipulators"): waist about base z,
-        # the three pitch joints about the turned y axis
-        pts = np.asarray(state["origins"])
-        y = np.array([-np.sin(q[0]), np.cos(q[0]), 0.0])
-        axes_z = [np.array([0.0, 0.0, 1.0]), y, y, y]
-        J_ref = np.column_stack([np.cross(axes_z[i], pts[-1] - pts[1 + i]) for i in range(4)])
+        # the geometric Jacobian from the joint axes against central differences of the tool position
+        # (an independent derivation; step 1e-6 rad, error O(h^2))
+        h = 1e-6
+        J_ref = np.column_stack([(chain(q + h * e)[0][-1] - chain(q - h * e)[0][-1]) / (2 * h)
+                                 for e in np.eye(4)])
         np.testing.assert_allclose(Jv, J_ref, atol=1e-7)
         radii = np.asarray(state["ellipsoid"]["radii"])
         axes = np.asarray(state["ellipsoid"]["axes"]).reshape(3, 3)

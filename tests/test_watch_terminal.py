@@ -16,7 +16,7 @@ pytest.importorskip("rich")
 
 from twistrate.clients.watch.fake import FakeArm
 from twistrate.clients.watch.model import Fleet
-from twistrate.clients.watch.terminal import WIDTH, render_text
+from twistrate.clients.watch.terminal import WIDTH, render_text, secs
 
 pytestmark = pytest.mark.timeout(60)
 
@@ -88,6 +88,59 @@ def test_monitor_in_tmux_at_80_columns(tmp_path):
             )  # redrawn in place, at the top
             assert out.count("╭─") == 2 and "lease held by fake-operator" in out
             assert "Not a safety-rated function" in out  # the cautions on every screen
+            # the foresight: a line per arm (the second panel may run past the pane's foot)
+            assert "at these rates: pinched " in out
         assert screens[0] != screens[1]  # live: the values moved between the two captures
+        ahead = [next(line for line in out.splitlines() if "at these rates" in line) for out in screens]
+        assert ahead[0] != ahead[1], ahead  # and the foresight of the first arm with them
     finally:
         subprocess.run(["tmux", "kill-session", "-t", session], check=False)
+
+
+def _ahead(text: str, name: str) -> tuple[str, list[str]]:
+    """The foresight line and the joint rows' last column ("lim in") of arm `name`'s panel."""
+    panel = text[text.index(f" {name} (") :].split("╰")[0]
+    lines = panel.splitlines()
+    line = next(x for x in lines if "at these rates:" in x)
+    rows = [x.strip(" │").split()[-1] for x in lines if x.strip(" │").split()[:1] and
+            x.strip(" │").split()[0] in ("turn", "lift", "bend", "nod")]
+    return line, rows
+
+
+def test_foresight_is_shown_as_the_health_message_gives_it_and_follows_it():
+    """The line says what the newest health message's foresight says (time to pinched, the first joint
+    to reach a limit and when), each joint row its time to the limit; both change as the arm moves."""
+    seen = []
+    for t_end in (1.5, 3.0, 4.4, 6.0):
+        fleet = _fleet_at(t_end, names=("left",))
+        view = fleet.arms["left"]
+        lt = view.latest
+        line, rows = _ahead(render_text(fleet, t_end), "left")
+        to_pinched = lt["time_to_pinched_s"]
+        if to_pinched is None:
+            assert "pinched not ahead" in line
+        elif to_pinched == 0.0:
+            assert "pinched now" in line
+        else:
+            assert f"pinched in {secs(to_pinched)}" in line
+        first = lt["first_limit_joint"]
+        assert first is not None  # the scripted arm always moves some joint toward a limit
+        assert f"first limit {view.joints[first]['name']} in {secs(lt['time_to_first_limit_s'])}" in line
+        assert rows == [secs(x) for x in lt["time_to_limit_s"]]
+        # the first joint is the one with the smallest time (the message's own claim, shown unchanged)
+        assert min(x for x in lt["time_to_limit_s"] if x is not None) == lt["time_to_first_limit_s"]
+        seen.append((line, rows))
+    assert len({line for line, _ in seen}) == len(seen), seen  # it follows the arm
+    states = {line.split("pinched ")[1].split()[0] for line, _ in seen}
+    assert {"in", "now"} <= states, seen  # approaching the threshold, then there
+
+
+def test_foresight_words_for_never_and_unknown():
+    assert secs(None) == "-" and secs(float("inf")) == "-"
+    assert (secs(3.21), secs(42.4), secs(1234.0)) == ("3.2s", "42s", ">999s")
+
+
+def test_foresight_before_any_health_message_says_so():
+    fleet = Fleet()
+    fleet.arm("quiet").set_status({"mode": "disabled", "holder": None}, 0.0)
+    assert "at these rates: n/a (no health message yet)" in render_text(fleet, 0.5)

@@ -126,9 +126,9 @@ def test_health_round_trip_with_unlimited_joint():
 
 def test_event_round_trip_and_detail_truncation():
     msg = wire.decode_event(wire.encode_event(seq=2, tick=40, event="stale_input", detail="twist old",
-                                                mode="stopping", stamp_ns=1))
-    assert msg == wire.EventMessage(2, 1, 40, "stale_input", "twist old", "stopping")
-    data = wire.encode_event(seq=0, tick=0, event="fault", detail="é" * 5000, mode="fault")
+                                                mode="stopping", instance=7, stamp_ns=1))
+    assert msg == wire.EventMessage(2, 1, 40, "stale_input", "twist old", "stopping", 7)
+    data = wire.encode_event(seq=0, tick=0, event="fault", detail="é" * 5000, mode="fault", instance=7)
     long = wire.decode_event(data)
     assert long.detail == "é" * wire.MAX_TEXT_CHARS
 
@@ -156,7 +156,7 @@ RESULT_EXAMPLES = {
                "arm": "reach7", "n": 2,
                "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                "reduced_speed": False, "position": [0.0, 1.0], "twist_age_ms": 1.5, "joints_age_ms": None,
-               "realtime": True},
+               "realtime": True, "instance": 2**64 - 1, "started_ns": 1_700_000_000_000_000_000},
     "arm": {"name": "x", "n": 1, "joints": [{"name": "j", "kind": "revolute", "position_min": None,
                                              "position_max": 1.0, "velocity_max": 2.0,
                                              "acceleration_max": 5.0}], "home": [0.0]},
@@ -216,7 +216,7 @@ def test_decode_output_dispatches_by_topic():
     assert isinstance(wire.decode_output([b"command", cmd]), wire.CommandMessage)
     assert isinstance(wire.decode_output([b"health", wire.encode_health(**_health_kwargs())], N),
                       wire.HealthMessage)
-    ev = wire.encode_event(seq=0, tick=0, event="running", detail="", mode="running")
+    ev = wire.encode_event(seq=0, tick=0, event="running", detail="", mode="running", instance=7)
     assert isinstance(wire.decode_output([b"event", ev]), wire.EventMessage)
 
 

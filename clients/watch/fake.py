@@ -12,14 +12,13 @@ differences, its SVD for the ellipsoid); they are demo data, not the service's s
 from __future__ import annotations
 
 import math
+import secrets
 from typing import Any
 
 import numpy as np
 
 #: invented link lengths, m: base height, upper arm, forearm, hand
 LINKS_M = (0.30, 0.28, 0.22, 0.10)
-#: central-difference step for J_v, rad
-FD_STEP_RAD = 1e-6
 #: invented limits: position (rad), rate (rad/s)
 POSITION_LIMIT_RAD = (2.9, 2.0, 2.6, 2.0)
 RATE_LIMIT_RADPS = (1.5, 1.5, 2.0, 2.5)
@@ -58,13 +57,16 @@ def chain(q: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
     return pts, R
 
 
-def jacobian_linear(q: np.ndarray) -> np.ndarray:
-    """J_v : (3, 4) translational Jacobian of the tool origin, base frame, m per rad (central differences)."""
-    J = np.zeros((3, len(q)))
-    for i in range(len(q)):
-        dq = np.zeros(len(q))
-        dq[i] = FD_STEP_RAD
-        J[:, i] = (chain(q + dq)[0][-1] - chain(q - dq)[0][-1]) / (2 * FD_STEP_RAD)
+def jacobian_linear(q: np.ndarray, origins: list[np.ndarray] | None = None) -> np.ndarray:
+    """J_v : (3, 4) translational Jacobian of the tool origin, base frame, m per rad: column i is
+    z_i x (p_tool - p_i), the waist about the base z axis and the three pitch joints about the turned
+    y axis (Orin and Schrader 1984, "Efficient computation of the Jacobian for robot manipulators").
+    origins : chain(q)'s points when already at hand."""
+    pts = chain(q)[0] if origins is None else origins
+    d = (pts[-1] - np.array(pts[1:5])).T  # (3, 4): from each joint's origin to the tool
+    c, s = math.cos(q[0]), math.sin(q[0])
+    J = np.array([[0.0, 0.0, c], [0.0, 0.0, s], [-c, -s, 0.0]]) @ d  # [y]x d, y = (-s, c, 0)
+    J[:, 0] = (-d[1, 0], d[0, 0], 0.0)  # the waist: (0, 0, 1) x d
     return J
 
 
@@ -81,6 +83,9 @@ class FakeArm:
         self.mode = "disabled"
         self.started: float | None = None
         self.rejected = {"not_leased": 0, "bad_type": 0}
+        #: the instance id of this "service process" (docs/protocol.md section 6): new per FakeArm
+        self.instance = 1 + secrets.randbelow(2**64 - 1)
+        self._sigma_before: tuple[float, float] | None = None  # (t, smallest singular value)
 
     def description(self) -> dict[str, Any]:
         """What the control op `arm` answers for it."""
@@ -118,7 +123,32 @@ class FakeArm:
 
     def _header(self, kind: str, tick: int) -> dict[str, Any]:
         self.seq += 1
-        return {"proto": 1, "kind": kind, "seq": self.seq, "stamp_ns": int(self._wall * 1e9), "tick": tick}
+        head = {"proto": 1, "kind": kind, "seq": self.seq, "stamp_ns": int(self._wall * 1e9), "tick": tick}
+        if kind == "event":
+            head["instance"] = self.instance
+        return head
+
+    def foresight(self, t: float, q: np.ndarray, rate: np.ndarray, sigma_min: float) -> dict[str, Any]:
+        """The health message's foresight fields at t s (docs/protocol.md 7.4), from the script: the rate
+        of the smallest singular value by a backward difference over the previous message, the time to
+        the pinched threshold at that rate (first order), and per joint the time until `rate` (4,) rad/s
+        reaches the position limit it moves toward (inf: never)."""
+        before, self._sigma_before = self._sigma_before, (t, sigma_min)
+        d_sigma = None if before is None or t <= before[0] else (sigma_min - before[1]) / (t - before[0])
+        if sigma_min <= PINCHED_BELOW_M:
+            to_pinched: float | None = 0.0
+        elif d_sigma is not None and d_sigma < 0.0:
+            to_pinched = (sigma_min - PINCHED_BELOW_M) / -d_sigma
+        else:
+            to_pinched = None
+        lim = np.asarray(POSITION_LIMIT_RAD)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            times = np.where(rate > 0, (lim - q) / rate, np.where(rate < 0, (q + lim) / -rate, np.inf))
+        times = np.where(np.isfinite(times), np.maximum(times, 0.0), np.inf)
+        first = int(np.argmin(times)) if np.isfinite(times).any() else None
+        return {"sigma_min_rate_m_s": d_sigma, "time_to_pinched_s": to_pinched, "time_to_limit_s": times,
+                "first_limit_joint": first,
+                "time_to_first_limit_s": None if first is None else float(times[first])}
 
     def messages(self, t: float, wall: float) -> list[tuple[str, dict[str, Any]]]:
         """The (kind, message) pairs one health period at t s would bring (wall : wall clock, s)."""
@@ -149,7 +179,7 @@ class FakeArm:
             self.mode = "running"
         q, qd = self.q_at(t)
         pts, R = chain(q)
-        Jv = jacobian_linear(q)
+        Jv = jacobian_linear(q, pts)
         U, sv, _ = np.linalg.svd(Jv)
         sigma_min = float(sv[-1])
         state = (
@@ -194,6 +224,7 @@ class FakeArm:
                     "mode": self.mode,
                     "rejected": dict(self.rejected),
                     "overruns": int(t // 7),
+                    **self.foresight(t, q, qd * scale, sigma_min),
                 },
             )
         )

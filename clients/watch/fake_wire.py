@@ -46,6 +46,7 @@ class FakeService:
         self.published = 0
         self.published_health = 0
         self._t0 = time.monotonic()
+        self.started_ns = time.time_ns()
         self._t1: float | None = None
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, name=f"fake-{name}", daemon=True)
@@ -69,6 +70,7 @@ class FakeService:
             "health": self.arm.health,
             "tick": self.arm.seq,
             "tick_hz": self.arm.tick_hz,
+            "health_hz": self.health_hz,
             "arm": f"fake-{self.name}",
             "n": 4,
             "holder": "fake-operator",
@@ -80,6 +82,8 @@ class FakeService:
             "twist_age_ms": None,
             "joints_age_ms": None,
             "realtime": False,
+            "instance": self.arm.instance,
+            "started_ns": self.started_ns,
         }
 
     def _answer(self) -> None:
@@ -130,6 +134,7 @@ class FakeService:
                         event=msg["event"],
                         detail=msg["detail"],
                         mode=msg["mode"],
+                        instance=msg["instance"],
                     )
                     self._pub.send_multipart([wire.TOPIC_EVENT, data])
                 elif kind == "state":
@@ -174,4 +179,9 @@ _HEALTH_ARGS = (
     "mode",
     "rejected",
     "overruns",
+    "sigma_min_rate_m_s",
+    "time_to_pinched_s",
+    "time_to_limit_s",
+    "first_limit_joint",
+    "time_to_first_limit_s",
 )

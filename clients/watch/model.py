@@ -15,8 +15,11 @@ caller (no clock here), and keeps:
 - the lease holder (the control op `status`'s `holder` when handed in; otherwise followed from the
   lease events);
 - the events as a list (newest last), with the model's own `gone` and `back` entries;
+- the foresight of the newest health message: the time to the pinched threshold along the current
+  rates and, per joint, the time to its position limit, with the joint that gets there first;
 - gone / back: an arm is gone when nothing arrived for `gone_after_s`, and back with the next message;
-  a tick count that goes backwards marks a restarted service.
+- restarts: a new instance id (status and event, docs/protocol.md section 6) marks a restarted service;
+  a tick count that goes backwards only does so while no id is known (with an id it waits for one).
 
 `snapshot(since)` gives everything as plain JSON-able data (the dashboard's WebSocket schema,
 docs/dashboard.md); `since` is the last history index the reader already has.
@@ -83,6 +86,10 @@ def _flat(v: Any) -> list[float | None] | None:
     return _floats(v)
 
 
+def _int(v: Any) -> int | None:
+    return None if v is None else int(v)
+
+
 def _num(v: Any) -> float | None:
     if v is None:
         return None
@@ -129,6 +136,7 @@ class ArmView:
         self.gone = False
         self.gone_count = 0
         self.restarts = 0
+        self.instance: int | None = None  # the service instance id (status, events), None until known
         self.last_rx: float | None = None
         self.received = {"health": 0, "command": 0, "event": 0, "state": 0}
         self._tick_base: deque[tuple[int, int]] = deque()  # (tick, stamp_ns) of recent health messages
@@ -158,6 +166,7 @@ class ArmView:
         """The control op `status`'s result (holder, tick_hz, arm, mode, health; position when neither
         `state` nor `command` messages come)."""
         self._touch(now, None)
+        self._see_instance(status.get("instance"), now, status.get("tick"))
         self.holder = status.get("holder")
         self._holder_from_status = True
         if status.get("tick_hz"):
@@ -204,6 +213,12 @@ class ArmView:
             "damping": _num(_get(msg, "damping")),
             "scale": _num(_get(msg, "scale")),
             "limit_margin": _floats(_get(msg, "limit_margin")),
+            # foresight (docs/protocol.md 7.4): None where the service sends nil (never, undefined)
+            "sigma_min_rate_m_s": _num(_get(msg, "sigma_min_rate_m_s")),
+            "time_to_pinched_s": _num(_get(msg, "time_to_pinched_s")),
+            "time_to_limit_s": _floats(_get(msg, "time_to_limit_s")),
+            "first_limit_joint": _int(_get(msg, "first_limit_joint")),
+            "time_to_first_limit_s": _num(_get(msg, "time_to_first_limit_s")),
         }
         self.rejected = {str(k): int(v) for k, v in (_get(msg, "rejected") or {}).items()}
         self.overruns = int(_get(msg, "overruns", 0))
@@ -237,6 +252,7 @@ class ArmView:
     def on_event(self, msg: Any, now: float) -> None:
         """An event message (EventMessage fields)."""
         tick = int(_get(msg, "tick"))
+        self._see_instance(_get(msg, "instance"), now, tick)
         self._touch(now, tick)
         self.received["event"] += 1
         name, detail = str(_get(msg, "event")), str(_get(msg, "detail", ""))
@@ -294,15 +310,29 @@ class ArmView:
             self.gone = False
             self._add_event(now, "back", f"receiving again after {now - (self.last_rx or now):.1f} s", tick)
         if tick is not None:
-            if tick + RESTART_SLACK_TICKS < self.tick:  # counts from 0 again: a new service process
-                self.restarts += 1
+            if tick + RESTART_SLACK_TICKS < self.tick:  # counts from 0 again: a new service process?
                 self._tick_base.clear()
-                self._add_event(now, "restarted", f"tick {self.tick} -> {tick}", tick)
+                if self.instance is None:  # no id to go by: the counter decides
+                    self.restarts += 1
+                    self._add_event(now, "restarted", f"tick {self.tick} -> {tick}", tick)
+                # else a hint only: the next status or event's instance id decides
                 self.tick = tick
             else:
                 self.tick = max(self.tick, tick)
         self.connected = True
         self.last_rx = now
+
+    def _see_instance(self, instance: Any, now: float, tick: int | None = None) -> None:
+        """The instance id of a status result or an event: a new one is a restarted service."""
+        if not isinstance(instance, int) or isinstance(instance, bool) or instance <= 0:
+            return
+        old = self.instance
+        self.instance = instance
+        if old is not None and instance != old:
+            self.restarts += 1
+            self._tick_base.clear()
+            self.tick = -1 if tick is None else tick
+            self._add_event(now, "restarted", f"instance {old:016x} -> {instance:016x}", tick)
 
     def _add_event(self, now: float, name: str, detail: str, tick: int | None) -> None:
         self.events.append({"t": now, "event": name, "detail": detail, "tick": tick})
@@ -361,6 +391,7 @@ class ArmView:
             "events": list(self.events),
             "changes": list(self.changes),
             "restarts": self.restarts,
+            "instance": None if self.instance is None else f"{self.instance:016x}",
             "gone_count": self.gone_count,
         }
 

@@ -6,8 +6,9 @@ their marks (clear `ok`, narrow `!`, pinched `!!`) and how long each has held; m
 linear, angular) and the smallest singular value against the thresholds, with a strip of the last
 seconds of the smallest singular value (each character one time bucket; `:` marks below narrow,
 `#` below pinched); the singular values; scale, damping, the measured tick rate and overruns; refused
-input by reason; the lease holder; each joint's position within its range and its rate against its
-limit as bars; the newest events.
+input by reason; the lease holder; the foresight along the current rates (time to the pinched
+threshold, the joint that reaches its position limit first and when); each joint's position within
+its range and its rate against its limit as bars, with its time to that limit; the newest events.
 """
 
 from __future__ import annotations
@@ -59,6 +60,38 @@ CAUTIONS = (
 
 def _fmt(v: float | None, spec: str = ".3g", unit: str = "") -> str:
     return "n/a" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:{spec}}{unit}"
+
+
+def secs(v: float | None) -> str:
+    """A time ahead in at most 5 characters: `3.2s`, `42s`, `>999s`; `-` for never or unknown."""
+    if v is None or not math.isfinite(v):
+        return "-"
+    return f"{v:.1f}s" if v < 9.95 else f"{v:.0f}s" if v < 999.5 else ">999s"
+
+
+def foresight_line(view: ArmView) -> Text:
+    """Where the current rates lead (the health message's foresight): the time to the pinched threshold
+    and the first joint to reach a position limit, in words."""
+    lt = view.latest
+    if "tick" not in lt:
+        return Text("at these rates: n/a (no health message yet)", style="dim")
+    t = Text("at these rates: pinched ")
+    to_pinched = lt.get("time_to_pinched_s")
+    if to_pinched is None:
+        t.append("not ahead", style="dim")
+    elif to_pinched <= 0.0:
+        t.append("now", style="bold red")
+    else:
+        t.append(f"in {secs(to_pinched)}", style="bold yellow" if to_pinched < 2.0 else "")
+    t.append("   first limit ")
+    first = lt.get("first_limit_joint")
+    if first is None:
+        t.append("none ahead", style="dim")
+    else:
+        name = view.joints[first]["name"] if first < len(view.joints) else f"j{first + 1}"
+        when = lt.get("time_to_first_limit_s")
+        t.append(f"{name} in {secs(when)}", style="bold yellow" if when is not None and when < 2.0 else "")
+    return t
 
 
 def _since(view: ArmView, what: str, now: float) -> str:
@@ -135,7 +168,7 @@ def _bar(frac: float | None, centred: bool = False, chars: int = BAR_CHARS) -> T
 
 def _joints_table(view: ArmView) -> Table:
     table = Table.grid(padding=(0, 1))
-    for _ in range(5):
+    for _ in range(6):
         table.add_column(no_wrap=True)
     table.add_row(
         Text("joint", style="dim"),
@@ -143,7 +176,9 @@ def _joints_table(view: ArmView) -> Table:
         Text("value", style="dim"),
         Text("rate against limit", style="dim"),
         Text("rate", style="dim"),
+        Text("lim in", style="dim"),
     )
+    to_limit = view.latest.get("time_to_limit_s") or []
     n = len(view.position or view.joints or [])
     for i in range(n):
         j = view.joints[i] if i < len(view.joints) else {}
@@ -160,6 +195,7 @@ def _joints_table(view: ArmView) -> Table:
             Text(f"{_fmt(q, '+.2f'):>6}"),
             _bar(rfrac, centred=True),
             Text(f"{_fmt(qd, '+.2f'):>6}"),
+            Text(f"{secs(to_limit[i] if i < len(to_limit) else None):>5}"),
         )
     return table
 
@@ -213,6 +249,7 @@ def render_arm(view: ArmView, now: float) -> Panel:
     )
     holder = view.holder or "nobody"
     lines.append(Text(f"lease held by {holder}   refused {total}" + (f": {by}" if by else "")))
+    lines.append(foresight_line(view))
     lines.append(_joints_table(view))
     events = list(view.events)[-EVENTS_SHOWN:]
     for e in reversed(events):

@@ -219,15 +219,24 @@ class DashboardLoad:
         }
 
 
+def until_stdin_closes(seconds: float) -> None:
+    """Wait until this process's standard input reaches its end (the parent closed it), at most
+    `seconds`."""
+    reader = threading.Thread(target=sys.stdin.read, name="bench-stdin", daemon=True)
+    reader.start()
+    reader.join(seconds)
+
+
 def measure(arms: int, health_hz: float, pages: int, seconds: float,
-            services: tuple[tuple[str, str, str], ...] = ()) -> dict[str, Any]:
+            services: tuple[tuple[str, str, str], ...] = (), until: Any = time.sleep) -> dict[str, Any]:
     """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S ("measuring"
-    is printed when the window opens: bench service --with-dashboard waits for it); the figures."""
+    is printed when the window opens: bench service --with-dashboard waits for it); the figures.
+    until(seconds) : how the window is waited out (time.sleep, or until_stdin_closes)."""
     with DashboardLoad(arms, health_hz, pages, services) as load:
         time.sleep(WARMUP_S)
         load.measure_start()
         print("measuring", flush=True)
-        time.sleep(seconds)
+        until(seconds)
         load.measure_stop()
     return load.figures()
 
@@ -264,13 +273,17 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
     parser.add_argument("--attach", action="append", default=[], metavar="NAME=OUTPUT,CONTROL",
                         help="a running service the dashboard also watches (counts among --arms)")
+    parser.add_argument("--until-stdin-closes", action="store_true",
+                        help="end the window when standard input closes (at most --seconds; used by "
+                             "`twistrate bench service --with-dashboard`)")
     args = parser.parse_args(argv)
     services = []
     for text in args.attach:
         name, _, rest = text.partition("=")
         out, _, ctl = rest.partition(",")
         services.append((name, out, ctl))
-    res = measure(args.arms, args.health_hz, args.pages, args.seconds, tuple(services))
+    res = measure(args.arms, args.health_hz, args.pages, args.seconds, tuple(services),
+                  until_stdin_closes if args.until_stdin_closes else time.sleep)
     if args.json:  # first: a reader waiting for the figures gets them even if printing fails
         with open(args.json, "w") as f:
             json.dump(res, f, indent=2)

@@ -54,6 +54,8 @@ from typing import Any
 import numpy as np
 
 from twistrate.clients.link import Endpoints, Link
+from twistrate.service.bench.service_dashboard import add_option as add_dashboard_option
+from twistrate.service.bench.service_dashboard import run_pairs
 from twistrate.service.tick import (
     ARRIVAL_TARGET_EXTRA_US,
     DEFAULT_RT_PRIORITY,
@@ -186,10 +188,13 @@ def _stop(proc: subprocess.Popen, timeout_s: float = 10.0) -> str:
 
 
 def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
-               flood: bool = False) -> dict[str, Any]:
+               flood: bool = False, beside: Any = None) -> dict[str, Any]:
     """Run serve + sim + source at `rate_hz` for WARMUP_S + seconds; return the figures.
     rt_priority : the service's --rt-priority (None: its configured default).
-    flood : also run an intake flood (service/bench/flood.py) through the measured window."""
+    flood : also run an intake flood (service/bench/flood.py) through the measured window.
+    beside : None, or a function of the service's Endpoints giving a context manager that runs from
+    the service's binding to its stop (service/bench/service_dashboard.py: the dashboard attached)."""
+    attached = contextlib.ExitStack()
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "bench.toml"
         path.write_text(CONFIG_TEXT.format(rate_hz=rate_hz))
@@ -203,6 +208,8 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
         flooder = flood_sent = None
         try:
             ep = Endpoints(**read_endpoints(ep_file, SERVE_START_S))
+            if beside is not None:
+                attached.enter_context(beside(ep))
             procs.append(_spawn(["twistrate.service.commands.cli", "sim", "--config", str(path),
                                  "--endpoints-file", ep_file]))
             with Link(ep, client="bench-watch", topics=(b"command",), timeout_s=5.0) as link:
@@ -247,6 +254,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
                     with contextlib.suppress(subprocess.TimeoutExpired, ValueError):
                         flood_sent = int(flooder.communicate(timeout=10.0)[0].split()[-1])
         finally:
+            attached.close()
             errors = [_stop(p) for p in reversed(procs) if p is not flooder or flooder.returncode is None]
     floor = None if flood else measure_floor(rate_hz, seconds, rt_priority)
     ticks = c1["ticks"] - c0["ticks"]
@@ -387,6 +395,7 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--flood", action="store_true",
                         help="run each rate twice: without, then with an intake flood (a local process "
                              "sending refused twists as fast as it can)")
+    add_dashboard_option(parser)
     parser.add_argument("--source", nargs=4, metavar=("INTAKE", "OUTPUT", "CONTROL", "SECONDS"),
                         help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -403,6 +412,8 @@ def run(argv: list[str] | None = None) -> int:
         print(f"twistrate bench service: --seconds: got {args.seconds:g}; accepted: 1 to 3600",
               file=sys.stderr)
         return 2
+    if args.with_dashboard:
+        return run_pairs(rates, args.seconds, args.rt_priority, args.json)
     results = []
     for rate in rates:
         for flood in (False, True) if args.flood else (False,):

@@ -149,6 +149,10 @@ MAX_MAP_ENTRIES = 128
 #: counters are unsigned 64-bit; stamps are signed 64-bit nanoseconds
 SEQ_MAX = 2**64 - 1
 STAMP_MAX = 2**63 - 1
+#: the service instance id (status.instance, event.instance): random at each start, never 0 (a client
+#: may use 0 for "not known yet")
+INSTANCE_MIN = 1
+INSTANCE_MAX = 2**64 - 1
 
 # --- control ops: argument and result fields --------------------------------------------------
 
@@ -176,7 +180,7 @@ REPLY_RESULTS: dict[str, frozenset[str]] = {
     "status": frozenset(("mode", "health", "tick", "tick_hz", "health_hz", "arm", "n", "holder",
                          "lease_remaining_ms",
                          "fault", "simulated", "reduced_speed", "position", "twist_age_ms", "joints_age_ms",
-                         "realtime")),
+                         "realtime", "instance", "started_ns")),
     "arm": frozenset(("name", "n", "joints", "home")),
     "counters": frozenset(("counters",)),
     "set": frozenset(("params",)),

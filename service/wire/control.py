@@ -33,6 +33,8 @@ from twistrate.service.wire.constants import (
     E_BAD_REQUEST,
     E_UNKNOWN_OP,
     ERROR_CODES,
+    INSTANCE_MAX,
+    INSTANCE_MIN,
     KIND_REPLY,
     KIND_REQUEST,
     LEASE_MS_MAX,
@@ -155,6 +157,16 @@ def peek_request(data: bytes) -> tuple[int, str]:
     return (seq if type(seq) is int and 0 <= seq <= SEQ_MAX else -1), (op if op in OPS else "")
 
 
+#: the status result's fields the codec checks itself: the instance id and the start time (section 6)
+_STATUS_IDENTITY = (("instance", INSTANCE_MIN, INSTANCE_MAX), ("started_ns", 0, STAMP_MAX))
+
+
+def _status_identity(result: dict[str, Any], check: Any) -> None:
+    """Check the status result's `instance` and `started_ns` with check (enc_int or dec_int)."""
+    for key, lo, hi in _STATUS_IDENTITY:
+        result[key] = check(result[key], f"reply(status).result.{key}", lo, hi)
+
+
 _REPLY_OK_KEYS = frozenset((*HEADER_KEYS, "op", "ok", "result"))
 _REPLY_ERR_KEYS = frozenset((*HEADER_KEYS, "op", "ok", "error"))
 _ERROR_KEYS = frozenset(("code", "message"))
@@ -185,6 +197,8 @@ def encode_reply(*, seq: int, op: str, result: Mapping[str, Any] | None = None,
             raise input_fail(f"reply({op}).result", sorted(result),
                              f"exactly the fields {sorted(REPLY_RESULTS[op])}")
         m["result"] = enc_plain(result, f"reply({op}).result")
+        if op == "status":
+            _status_identity(m["result"], enc_int)
     return pack(m, MAX_CONTROL_BYTES, KIND_REPLY)
 
 
@@ -211,5 +225,7 @@ def decode_reply(data: bytes) -> ReplyMessage:
     op = dec_str(m["op"], "reply.op", MAX_NAME_CHARS, OPS)
     result = submap(m["result"], f"reply({op}).result", REPLY_RESULTS[op])
     dec_plain(result, f"reply({op}).result")
+    if op == "status":
+        _status_identity(result, dec_int)
     return ReplyMessage(seq, stamp, op, True, result, None, None)
 

@@ -150,7 +150,9 @@ class Limiting(NamedTuple):
 
 
 class EventMessage(NamedTuple):
-    """A decoded event: a state change or fault. event : name; detail : human-readable text."""
+    """A decoded event: a state change or fault. event : name; detail : human-readable text;
+    instance : the id of the service instance that sent it (random at each start; a new id means the
+    service restarted)."""
 
     seq: int
     stamp_ns: int
@@ -158,6 +160,7 @@ class EventMessage(NamedTuple):
     event: str
     detail: str
     mode: str
+    instance: int
 
 
 class StateMessage(NamedTuple):

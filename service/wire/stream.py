@@ -35,6 +35,8 @@ from twistrate.service.wire.checks import (
 )
 from twistrate.service.wire.constants import (
     HEALTH_STATES,
+    INSTANCE_MAX,
+    INSTANCE_MIN,
     KIND_COMMAND,
     KIND_EVENT,
     KIND_JOINTS,
@@ -220,13 +222,14 @@ def decode_command(data: bytes, n: int | None = None) -> CommandMessage:
 # event (out, topic b"event")
 # =================================================================================================
 
-_EVENT_KEYS = frozenset((*HEADER_KEYS, "tick", "event", "detail", "mode"))
+_EVENT_KEYS = frozenset((*HEADER_KEYS, "tick", "event", "detail", "mode", "instance"))
 
 
-def encode_event(*, seq: int, tick: int, event: str, detail: str, mode: str,
+def encode_event(*, seq: int, tick: int, event: str, detail: str, mode: str, instance: int,
                  stamp_ns: int | None = None) -> bytes:
     """Encode an event. event : a name of at most 64 characters (see docs/protocol.md "Events");
-    detail : human-readable text, truncated to MAX_TEXT_CHARS."""
+    detail : human-readable text, truncated to MAX_TEXT_CHARS; instance : the service's instance id
+    (INSTANCE_MIN ... INSTANCE_MAX, random at its start; docs/protocol.md section 6)."""
     m = header(KIND_EVENT, seq, stamp_ns)
     m["tick"] = enc_int(tick, "event.tick", 0, SEQ_MAX)
     m["event"] = enc_str(event, "event.event", MAX_NAME_CHARS)
@@ -234,6 +237,7 @@ def encode_event(*, seq: int, tick: int, event: str, detail: str, mode: str,
         raise input_fail("event.detail", detail, "a string")
     m["detail"] = detail[:MAX_TEXT_CHARS]
     m["mode"] = enc_str(mode, "event.mode", MAX_NAME_CHARS, MODES)
+    m["instance"] = enc_int(instance, "event.instance", INSTANCE_MIN, INSTANCE_MAX)
     return pack(m, MAX_EVENT_BYTES, KIND_EVENT)
 
 
@@ -244,7 +248,8 @@ def decode_event(data: bytes) -> EventMessage:
     event = dec_str(m["event"], "event.event", MAX_NAME_CHARS)
     detail = dec_str(m["detail"], "event.detail", MAX_TEXT_CHARS, allow_empty=True)
     mode = dec_str(m["mode"], "event.mode", MAX_NAME_CHARS, MODES)
-    return EventMessage(seq, stamp, tick, event, detail, mode)
+    instance = dec_int(m["instance"], "event.instance", INSTANCE_MIN, INSTANCE_MAX)
+    return EventMessage(seq, stamp, tick, event, detail, mode, instance)
 
 
 # =================================================================================================

@@ -12,6 +12,20 @@ function text(el, field, v) { const n = q(el, field); if (n && n.textContent !==
 function unit(v, u, spec) { return v === null || v === undefined ? "n/a" : `${spec ? v.toFixed(spec) : fmt(v)} ${u}`.trim(); }
 function wallOf(t) { return new Date(Date.now() - (serverTime - t) * 1000 - (performance.now() - receivedAt)); }
 function hhmmss(d) { return d.toTimeString().slice(0, 8); }
+// foresight (the health message's): a time ahead in words; under SOON_S it is marked (a frame, not colour alone)
+const SOON_S = 2.0;
+function secs(v) { return v === null || v === undefined ? "never" : v <= 0 ? "now" : v < 9.95 ? `${v.toFixed(1)} s` : v < 999.5 ? `${v.toFixed(0)} s` : "> 999 s"; }
+function ahead(el, a) {
+  const L = a.latest || {};
+  const tp = L.time_to_pinched_s, fj = L.first_limit_joint, tf = L.time_to_first_limit_s;
+  const p = q(el, "to_pinched"), f = q(el, "first_limit");
+  if (L.tick === undefined) { text(el, "to_pinched", "n/a"); text(el, "first_limit", "n/a"); return; }  // no health yet
+  text(el, "to_pinched", tp === null || tp === undefined ? "not ahead" : tp <= 0 ? "now (pinched)" : `in ${secs(tp)}`);
+  p.dataset.soon = String(tp !== null && tp !== undefined && tp < SOON_S);
+  const name = fj === null || fj === undefined ? null : ((a.joints[fj] || {}).name || `joint ${fj + 1}`);
+  text(el, "first_limit", name === null ? "none ahead" : `${name} in ${secs(tf)}`);
+  f.dataset.soon = String(name !== null && tf !== null && tf < SOON_S);
+}
 
 function card(name) {
   let c = cards.get(name);
@@ -53,7 +67,8 @@ function joints(el, a) {
   const body = el.querySelector(".jt tbody");
   const n = (a.position || a.joints || []).length;
   while (body.rows.length > n) body.deleteRow(-1);
-  while (body.rows.length < n) { const r = body.insertRow(); r.insertCell(); r.insertCell(); r.insertCell(); }
+  while (body.rows.length < n) { const r = body.insertRow(); for (let k = 0; k < 4; k++) r.insertCell(); r.cells[3].className = "tlim"; }
+  const L = a.latest || {}, tl = L.time_to_limit_s || [];
   for (let i = 0; i < n; i++) {
     const j = a.joints[i] || {}, r = body.rows[i];
     const pos = a.position ? a.position[i] : null, rate = a.rate ? a.rate[i] : null;
@@ -63,6 +78,10 @@ function joints(el, a) {
     r.cells[0].textContent = j.name || `joint ${i + 1}`;
     r.cells[1].replaceChildren(meter(frac, false, pos === null ? "n/a" : pos.toFixed(3)));
     r.cells[2].replaceChildren(meter(rfrac, true, rate === null ? "n/a" : rate.toFixed(3)));
+    const t = i < tl.length ? tl[i] : null;
+    r.cells[3].textContent = secs(t);
+    r.cells[3].dataset.soon = String(t !== null && t < SOON_S);
+    r.cells[3].dataset.first = String(L.first_limit_joint === i);
     r.dataset.joint = j.name || String(i);
   }
 }
@@ -138,6 +157,7 @@ function apply(a, full) {
   text(el, "singular_values", (L.singular_values || []).map(fmt).join("  ") || "n/a");
   const rej = Object.entries(a.rejected).filter(([, v]) => v > 0).sort((x, y) => y[1] - x[1]);
   text(el, "refused", rej.length ? `${a.rejected_total} in all: ` + rej.map(([k, v]) => `${k} ${v}`).join(", ") : "none");
+  ahead(el, a);
   joints(el, a);
   events(el, a);
   c.view3d.set(a.origins, a.ellipsoid, a.tool, a.health);

@@ -109,3 +109,47 @@ def test_status_line_shows_error_twist_and_service() -> None:
     for part in ("tracking", "5 pts", "12.50 px", "(0.0500)", "+0.010", "-0.020", "(tool)", "running/clear",
                  "frames 42", "refused 3"):
         assert part in line, part
+
+
+def test_the_loop_collects_garbage_only_after_a_twist_and_restores_the_collector() -> None:
+    # The runner turns automatic collection off for its loop and collects right after a twist went out
+    # (runner.GC_YOUNG_EVERY); the process's collector is as it was once the run ends (common practice
+    # for a latency-bound Python loop, as the service's tick does).
+    import gc
+
+    from twistrate.clients.link import LinkTimeoutError
+    from twistrate.clients.vservo.runner import GC_YOUNG_EVERY, Runner
+
+    class Link:
+        def __init__(self) -> None:
+            self.automatic: list[bool] = []
+
+        def wait_ready(self, timeout_s: float) -> None: ...
+        def claim(self, client: str, lease_ms: int) -> str: return "token"
+        def enable(self) -> str: return "running"
+        def disable(self) -> str: return "idle"
+        def release(self) -> None: ...
+
+        def receive(self, timeout_s: float) -> None:
+            raise LinkTimeoutError("none")
+
+        def send_twist(self, linear, angular, frame="base", point=None) -> int:
+            self.automatic.append(gc.isenabled())
+            return len(self.automatic)
+
+    class Feed:
+        received, refused = 0, {}
+
+        def newest(self, timeout_s: float) -> None:
+            return None  # no frame: the runner sends `waiting` zero twists at its own rate
+
+    doc = _doc()
+    doc["run"]["rate_hz"] = 1000.0
+    link = Link()
+    collections = gc.get_stats()[0]["collections"]
+    assert gc.isenabled()
+    outcome = Runner(vc.config_from_dict(doc), link, Feed(), out=None).run(0.2)  # type: ignore[arg-type]
+    assert outcome.reason == "time" and outcome.twists > 2 * GC_YOUNG_EVERY
+    assert not any(link.automatic[:outcome.twists])  # automatic collection off in the loop
+    assert gc.get_stats()[0]["collections"] >= collections + outcome.twists // GC_YOUNG_EVERY
+    assert gc.isenabled() and gc.get_freeze_count() == 0

@@ -31,12 +31,14 @@ class DepthChoice(StrEnum):
     MEAN = "mean"
 
 
-def point_matrix(xy: np.ndarray, Z: np.ndarray) -> np.ndarray:
+def point_matrix(xy: np.ndarray, Z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
     """(2N, 6) stacked interaction matrix, rows (x_1, y_1, x_2, y_2, ...), columns (v, w) of the camera
-    twist in the camera frame; xy (N, 2) normalised coordinates, Z (N,) depths (m, > 0)."""
+    twist in the camera frame; xy (N, 2) normalised coordinates, Z (N,) depths (m, > 0). out: a (2N, 6)
+    buffer to fill and return instead of a new array (a hot loop reuses one); the entries that are
+    always zero (column 1 of the x rows, column 0 of the y rows) must be zero in it already."""
     x, y = xy[:, 0], xy[:, 1]
     inv_z = 1.0 / np.asarray(Z, dtype=float)
-    L = np.zeros((2 * len(x), 6))
+    L = np.zeros((2 * len(x), 6)) if out is None else out
     Lx, Ly = L[0::2], L[1::2]
     Lx[:, 0] = -inv_z
     Lx[:, 2] = x * inv_z

@@ -184,3 +184,15 @@ def test_packaged_post_config_describes_the_plate_cell() -> None:
     np.testing.assert_allclose(goal.depths, view.depths, atol=1e-4)
     ids, _, _ = cell.view(tool_pose(arm, arm.q_home))  # the synthetic run starts at home: all dots seen
     assert len(ids) == 5
+
+
+def test_the_demos_closing_pointer_is_a_command_vservo_takes() -> None:
+    # The demo's closing screen names the camera loop's command; it must parse as `twistrate vservo`
+    # arguments (a renamed option would break the pointer, not the demo).
+    from twistrate.service.commands import demo
+    from twistrate.service.commands import vservo as command
+
+    words = demo.CAMERA_LOOP_COMMAND.split()
+    assert words[:2] == ["twistrate", "vservo"]
+    assert command.parser().parse_args(words[2:]).synthetic
+    assert len(f"  next, a camera loop on the simulated arm: {demo.CAMERA_LOOP_COMMAND}") <= 80

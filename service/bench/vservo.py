@@ -143,7 +143,8 @@ class _Run:
         endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features]
         limit = ["--seconds", str(seconds + CLIENT_START_S + WARMUP_S + 30.0)]
         if kind == "relay":
-            proc = _spawn([*endpoints, *limit], self.err, "twistrate.service.bench.vservo_relay")
+            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ)], self.err,
+                          "twistrate.service.bench.vservo_relay")
         else:
             proc = _spawn(["vservo", "--config", self.paths["vservo.toml"], *endpoints, "--track", *limit],
                           self.err)

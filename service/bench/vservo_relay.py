@@ -3,8 +3,9 @@
 It stands where vservo stands and does the least a camera client can do: the same features socket (a
 SUB bound with vservo's options, twistrate.clients.vservo.feed), the same client library to the
 service (twistrate.clients.link: claim, enable, auto-renewed lease), the same waiting pattern (a poll
-with a timeout of at most 50 ms, as vservo's loop), and for every message it receives it sends one
-fixed twist (zero, tool frame, at the camera point) at once: no decoding, no law. The benchmark's
+with a timeout of at most 50 ms, the queue drained, a keep-alive twist when no message came, as
+vservo's loop), and for every message it receives it sends one fixed twist (zero, tool frame, at the
+camera point) at once: no decoding, no law. The benchmark's
 figures for vservo minus the relay's are vservo's own cost; the relay's are the machine's floor
 (two loopback hops, two wake-ups of Python processes, the tick wait).
 
@@ -34,8 +35,11 @@ ANGULAR = (0.0, 0.0, 0.0)
 POINT = (0.04, 0.0, 0.02)
 
 
-def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: threading.Event) -> int:
-    """Relay until `seconds` or `stop`; returns the number of twists sent."""
+def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: threading.Event,
+          keepalive_hz: float = 5.0) -> int:
+    """Relay until `seconds` or `stop`; returns the number of twists sent. Like vservo, it also sends
+    its twist `keepalive_hz` times per second while no message arrives (the lease is renewed from the
+    twists it sends); the benchmark's frames come faster, so every twist then answers a frame."""
     ctx = zmq.Context()
     sock = ctx.socket(zmq.SUB)
     sock.setsockopt(zmq.LINGER, 0)
@@ -51,14 +55,22 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
             link.enable()
             write_features_file(features_file, sock.getsockopt_string(zmq.LAST_ENDPOINT))
             end = time.monotonic() + seconds
+            next_send = time.monotonic()
             try:
                 while not stop.is_set() and time.monotonic() < end:
-                    if not sock.poll(int(POLL_S * 1000), zmq.POLLIN):
+                    now = time.monotonic()
+                    if sock.poll(int(min(max(0.0, next_send - now), POLL_S) * 1000), zmq.POLLIN):
+                        while True:  # drain, as vservo's feed does; one twist for the newest
+                            try:
+                                sock.recv_multipart(zmq.NOBLOCK)
+                            except zmq.Again:
+                                break
+                    elif time.monotonic() < next_send:
                         continue
-                    while sock.poll(0, zmq.POLLIN):
-                        sock.recv_multipart()
-                        link.send_twist(LINEAR, ANGULAR, "tool", POINT)
-                        sent += 1
+                    # a message arrived, or the keep-alive is due (renews the lease, as vservo's does)
+                    link.send_twist(LINEAR, ANGULAR, "tool", POINT)
+                    sent += 1
+                    next_send = time.monotonic() + 1.0 / keepalive_hz
             finally:
                 link.send_twist(LINEAR, ANGULAR)
                 link.disable()
@@ -74,12 +86,13 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--endpoints-file", required=True, help="the service's endpoints file")
     parser.add_argument("--features-file", required=True, help="where to write the bound features socket")
     parser.add_argument("--seconds", type=float, default=120.0, help="stop after this long, s")
+    parser.add_argument("--keepalive-hz", type=float, default=5.0, help="twists per second without messages")
     args = parser.parse_args(argv)
     stop = threading.Event()
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, lambda *_: stop.set())
     relay(Endpoints(**read_endpoints(args.endpoints_file, SERVE_START_S)), args.features_file, args.seconds,
-          stop)
+          stop, args.keepalive_hz)
     return 0
 
 

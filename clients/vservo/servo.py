@@ -25,7 +25,7 @@ from twistrate.clients.vservo.features import (
     gate_state,
     match,
 )
-from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate, point_matrix
+from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, MeanMatrix, estimate, point_matrix
 from twistrate.solver.errors import ConfigError, field_error
 
 #: The discrete-time loop e_{k+1} = (1 - lambda T) e_k is stable for 0 < lambda T < 2; we refuse gains
@@ -126,7 +126,7 @@ class Servo:
             self._pixels_star = np.asarray(goal.pixels, dtype=float)
             self._every = np.arange(K)
             self._inv_f = 1.0 / self._f
-            self._L_buffer = np.zeros((2 * K, 6))
+            self._L_mean = MeanMatrix(self._L_star)
 
     def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
         """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
@@ -176,10 +176,7 @@ class Servo:
         error_norm = math.sqrt(e @ e)
         xy = (matched.pixels - self._c) * self._inv_f
         if full and s.depth is DepthChoice.MEAN:  # the usual case, in place: (L_e + L_e*) / 2
-            Z = goal.depths if matched.depths is None else matched.depths
-            L_hat = point_matrix(xy, Z, self._L_buffer)
-            L_hat += self._L_star
-            L_hat *= 0.5
+            L_hat = self._L_mean(xy, goal.depths if matched.depths is None else matched.depths)
         else:
             L_star = self._L_star if full else self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
             L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k], L_star)

@@ -41,6 +41,8 @@ class FeatureInput:
         self._sock.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_FEATURES)
         self._sock.bind(endpoint)
         self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
+        self._poller = zmq.Poller()  # made once: Socket.poll builds a new one per call
+        self._poller.register(self._sock, zmq.POLLIN)
 
     def newest(self, timeout_s: float) -> tuple[wire.FeaturesMessage, float] | None:
         """Wait up to timeout_s for a message; then take every queued one and return the newest good one
@@ -48,7 +50,7 @@ class FeatureInput:
         refusal is counted); the queue is drained with non-blocking receives, not a poll per message (a
         poll costs more than the receive)."""
         sock = self._sock
-        if not sock.poll(max(0, int(timeout_s * 1000)), zmq.POLLIN):
+        if not self._poller.poll(max(0, int(timeout_s * 1000))):
             return None
         best = None
         while True:

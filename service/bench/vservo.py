@@ -34,6 +34,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import signal
 import subprocess
 import sys
@@ -164,6 +165,7 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     """One run at service tick rate `rate_hz`: `rounds` rounds, each the relay then vservo for
     seconds / rounds s after its warm-up."""
     per_round = seconds / rounds
+    load_before = os.getloadavg()[0]
     samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
                                                   "unanswered": [0]} for kind in CLIENTS}
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
@@ -195,7 +197,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
         finally:
             run.close()
     result: dict[str, Any] = {"rate_hz": rate_hz, "seconds": seconds, "rounds": rounds, "frame_hz": FRAME_HZ,
-                              "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS}
+                              "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS,
+                              "load_average_1min": [load_before, os.getloadavg()[0]]}
     for kind in CLIENTS:
         s = samples[kind]
         result[kind] = {"frames": s["frames"][0], "unanswered": s["unanswered"][0],
@@ -297,7 +300,7 @@ def format_result(r: dict[str, Any]) -> str:
     return "\n".join([
         f"vservo at service tick {r['rate_hz']:g} Hz, frames {r['frame_hz']:g} Hz on average (gaps "
         f"+-{r['frame_jitter'] * 100:g} %, random tick phase), {r['rounds']} rounds, {r['seconds']:g} s "
-        "each client",
+        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}",
         *_lines("relay (reference: same sockets, fixed twist, no law)", r["relay"]),
         *_lines("vservo", r["vservo"]),
         f"  vservo minus relay (vservo's own cost): median {d['median_ms']:+.3f} ms, "

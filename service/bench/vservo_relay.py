@@ -4,8 +4,8 @@ It stands where vservo stands and does the least a camera client can do: the sam
 SUB bound with vservo's options, twistrate.clients.vservo.feed), the same client library to the
 service (twistrate.clients.link: claim, enable, auto-renewed lease), the same waiting pattern (a poll
 with a timeout of at most 50 ms, the queue drained, a keep-alive twist when no message came, as
-vservo's loop), and for every message it receives it sends one fixed twist (zero, tool frame, at the
-camera point) at once: no decoding, no law. The benchmark's
+vservo's loop), and for every message it receives it sends one fixed twist (1 mm/s, its sign
+alternating, tool frame, at the camera point) at once: no decoding, no law. The benchmark's
 figures for vservo minus the relay's are vservo's own cost; the relay's are the machine's floor
 (two loopback hops, two wake-ups of Python processes, the tick wait).
 
@@ -29,8 +29,10 @@ from twistrate.service.wire.discovery import read_endpoints
 
 #: The longest single wait, s: vservo's loop waits at most this long per poll too (runner.Runner._loop).
 POLL_S = 0.05
-#: The fixed twist: zero, tool frame, at a point 4 cm off the tool origin (like the panel camera's).
-LINEAR = (0.0, 0.0, 0.0)
+#: The fixed twist: 1 mm/s along the tool's x axis, its sign alternating from one twist to the next (so
+#: the arm dithers by tens of micrometres and stays put), tool frame, at a point 4 cm off the tool origin
+#: (like the panel camera's). Not zero: the service then solves a moving twist, as for vservo's.
+SPEED = 0.001
 ANGULAR = (0.0, 0.0, 0.0)
 POINT = (0.04, 0.0, 0.02)
 
@@ -68,11 +70,12 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
                     elif time.monotonic() < next_send:
                         continue
                     # a message arrived, or the keep-alive is due (renews the lease, as vservo's does)
-                    link.send_twist(LINEAR, ANGULAR, "tool", POINT)
+                    sign = 1.0 if sent % 2 == 0 else -1.0
+                    link.send_twist((sign * SPEED, 0.0, 0.0), ANGULAR, "tool", POINT)
                     sent += 1
                     next_send = time.monotonic() + 1.0 / keepalive_hz
             finally:
-                link.send_twist(LINEAR, ANGULAR)
+                link.send_twist((0.0, 0.0, 0.0), ANGULAR)
                 link.disable()
                 link.release()
     finally:

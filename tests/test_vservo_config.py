@@ -109,3 +109,90 @@ def test_status_line_shows_error_twist_and_service() -> None:
     for part in ("tracking", "5 pts", "12.50 px", "(0.0500)", "+0.010", "-0.020", "(tool)", "running/clear",
                  "frames 42", "refused 3"):
         assert part in line, part
+
+
+def test_the_loop_collects_garbage_only_after_a_twist_and_restores_the_collector() -> None:
+    # The runner turns automatic collection off for its loop and collects right after a twist went out
+    # (runner.GC_YOUNG_EVERY); the process's collector is as it was once the run ends (common practice
+    # for a latency-bound Python loop, as the service's tick does).
+    import gc
+
+    from twistrate.clients.link import LinkTimeoutError
+    from twistrate.clients.vservo.runner import GC_YOUNG_EVERY, Runner
+
+    class Link:
+        def __init__(self) -> None:
+            self.automatic: list[bool] = []
+
+        def wait_ready(self, timeout_s: float) -> None: ...
+        def claim(self, client: str, lease_ms: int) -> str: return "token"
+        def enable(self) -> str: return "running"
+        def disable(self) -> str: return "idle"
+        def release(self) -> None: ...
+
+        def receive(self, timeout_s: float) -> None:
+            raise LinkTimeoutError("none")
+
+        def send_twist(self, linear, angular, frame="base", point=None) -> int:
+            self.automatic.append(gc.isenabled())
+            return len(self.automatic)
+
+    class Feed:
+        received, refused = 0, {}
+
+        def newest(self, timeout_s: float) -> None:
+            return None  # no frame: the runner sends `waiting` zero twists at its own rate
+
+    doc = _doc()
+    doc["run"]["rate_hz"] = 1000.0
+    link = Link()
+    collections = sum(g["collections"] for g in gc.get_stats())  # explicit collections count too
+    assert gc.isenabled()
+    outcome = Runner(vc.config_from_dict(doc), link, Feed(), out=None).run(0.2)  # type: ignore[arg-type]
+    assert outcome.reason == "time" and outcome.twists > 2 * GC_YOUNG_EVERY
+    assert not any(link.automatic[:outcome.twists])  # automatic collection off in the loop
+    assert sum(g["collections"] for g in gc.get_stats()) >= collections + outcome.twists // GC_YOUNG_EVERY
+    assert gc.isenabled() and gc.get_freeze_count() == 0
+
+
+#: The goal posture of configs/vservo/post.toml: joint offsets from the example arm's home, rad.
+POST_GOAL_OFFSETS = [0.1, 0.05, 0.0, -0.1, 0.0, 0.1, 0.3]
+
+
+def test_packaged_post_config_describes_the_plate_cell() -> None:
+    # Eye-to-hand: the camera's pose in the base frame from xyz_m and fixed-axis rpy_deg, against scipy
+    # (extrinsic "xyz" Euler angles are fixed-axis roll, pitch, yaw: R = Rz(yaw) Ry(pitch) Rx(roll));
+    # its optical axis 24 degrees below the horizontal, as the file says; the goal is the view of the
+    # plate cell's dots from the stated posture (projected here, written with 3 and 4 decimals).
+    from scipy.spatial.transform import Rotation
+
+    from twistrate.solver.kinematics import tool_pose
+    from twistrate.solver.load import load_arm
+
+    config = vc.load_config("post")
+    assert vc.packaged_names() == ["panel", "post"] and config.mount.on == "cell"
+    T_base_cam = vc.mount(config).T
+    R = Rotation.from_euler("xyz", config.mount.rpy_deg, degrees=True).as_matrix()
+    np.testing.assert_allclose(T_base_cam[:3, :3], R, atol=1e-12)
+    assert np.degrees(np.arcsin(-T_base_cam[2, 2])) == pytest.approx(24.0, abs=1e-9)
+    arm = load_arm("reach7")
+    cell = synthetic.plate_cell(vc.intrinsics(config), T_base_cam)
+    view = cell.goal(tool_pose(arm, arm.q_home + np.array(POST_GOAL_OFFSETS)))
+    goal = vc.goal(config)
+    np.testing.assert_array_equal(goal.ids, view.ids)
+    np.testing.assert_allclose(goal.pixels, view.pixels, atol=1e-3)
+    np.testing.assert_allclose(goal.depths, view.depths, atol=1e-4)
+    ids, _, _ = cell.view(tool_pose(arm, arm.q_home))  # the synthetic run starts at home: all dots seen
+    assert len(ids) == 5
+
+
+def test_the_demos_closing_pointer_is_a_command_vservo_takes() -> None:
+    # The demo's closing screen names the camera loop's command; it must parse as `twistrate vservo`
+    # arguments (a renamed option would break the pointer, not the demo).
+    from twistrate.service.commands import demo
+    from twistrate.service.commands import vservo as command
+
+    words = demo.CAMERA_LOOP_COMMAND.split()
+    assert words[:2] == ["twistrate", "vservo"]
+    assert command.parser().parse_args(words[2:]).synthetic
+    assert len(f"  next, a camera loop on the simulated arm: {demo.CAMERA_LOOP_COMMAND}") <= 80

@@ -264,3 +264,48 @@ def test_a_partial_view_uses_the_matching_rows_of_the_goal(depth: DepthChoice) -
     expected = laws.saturate(laws.ibvs_twist(L_hat, e, GAIN), 0.1, 1.0)
     assert step.points == 4
     np.testing.assert_allclose(step.twist, expected, atol=1e-12)
+
+
+@pytest.mark.parametrize("depth", list(DepthChoice))
+@pytest.mark.parametrize("with_depths", [True, False])
+def test_a_frame_in_the_goals_order_gives_the_law_of_the_paper(depth: DepthChoice, with_depths: bool) -> None:
+    # The servo answers a frame holding exactly the goal's ids in order without matching (its fast path);
+    # the same points shuffled go through the general match. Both must be the paper's law,
+    # v_c = -lambda L_hat^+ e (Chaumette and Hutchinson 2006, eq. (5), L_hat by eq. (11) at the chosen
+    # depth), computed here directly from interaction.estimate and laws.ibvs_twist.
+    from twistrate.clients.vservo.interaction import estimate
+
+    cell, T_star, goal = _panel()
+    settings = _settings(cell, depth)
+    ids, pixels, depths = cell.view(offset(T_star, *STARTS[0]))
+    assert list(ids) == list(goal.ids) and ids.dtype == np.int64
+    xy, xy_star = cell.intrinsics.normalised(pixels), cell.intrinsics.normalised(goal.pixels)
+    e = (xy - xy_star).ravel()
+    L_hat = estimate(depth, xy, depths if with_depths else None, xy_star, goal.depths)
+    expected = laws.saturate(laws.ibvs_twist(L_hat, e, GAIN), 0.1, 1.0)
+    px = np.linalg.norm(pixels - goal.pixels, axis=1)
+    shuffle = np.array([3, 0, 4, 1, 2])
+    z = depths if with_depths else None
+    for frame in (PointFrame(ids, pixels, z, 0.0),
+                  PointFrame(ids[shuffle], pixels[shuffle], None if z is None else z[shuffle], 0.0)):
+        step = vs.Servo(settings, goal).step(frame, 0.0, 0.0)
+        assert step.state.value == "tracking" and step.points == 5
+        np.testing.assert_allclose(step.twist, expected, rtol=1e-12, atol=1e-15)
+        assert step.error_px_mean == pytest.approx(px.mean(), rel=1e-12)
+        assert step.error_px_max == pytest.approx(px.max(), rel=1e-12)
+        assert step.error_norm == pytest.approx(np.linalg.norm(e), rel=1e-12)
+
+
+def test_a_frame_in_order_with_a_bad_point_drops_that_point() -> None:
+    # In the goal's order but one pixel not finite, or one depth not positive: the general match drops
+    # that point (features.match), and the law runs on the other four.
+    cell, T_star, goal = _panel()
+    ids, pixels, depths = cell.view(offset(T_star, *STARTS[0]))
+    servo = vs.Servo(_settings(cell), goal)
+    bad_pixel = pixels.copy()
+    bad_pixel[1, 0] = np.nan
+    assert servo.step(PointFrame(ids, bad_pixel, depths, 0.0), 0.0, 0.0).points == 4
+    bad_depth = depths.copy()
+    bad_depth[2] = 0.0
+    assert servo.step(PointFrame(ids, pixels, bad_depth, 0.0), 0.0, 0.0).points == 4
+    assert servo.step(PointFrame(ids, pixels, depths, 0.0), 0.0, 0.0).points == 5

@@ -158,17 +158,27 @@ def config_from_dict(data: dict[str, Any], source: str = "config") -> VservoConf
         raise ConfigError(f"{source}: " + "\n  ".join(lines)) from None
 
 
+def packaged_names() -> list[str]:
+    """The packaged vservo configurations by name (configs/vservo/NAME.toml): panel, post, ..."""
+    return sorted(f.name[:-5] for f in resources.files(CONFIG_PACKAGE).iterdir() if f.name.endswith(".toml"))
+
+
 def load_config(path: str | Path | None = None) -> VservoConfig:
-    """Read and validate a vservo TOML file (None: the packaged example)."""
+    """Read and validate a vservo TOML file (None: the packaged example). A bare name that is no file,
+    such as `post`, is the packaged configuration of that name (configs/vservo/post.toml)."""
+    name = None if path is None else str(path)
+    if name is not None and not Path(name).exists() and name in packaged_names():
+        path = None
     if path is None:
-        text = resources.files(CONFIG_PACKAGE).joinpath(DEFAULT_CONFIG).read_text()
-        source = f"packaged {DEFAULT_CONFIG}"
+        file = DEFAULT_CONFIG if name is None else f"{name}.toml"
+        text = resources.files(CONFIG_PACKAGE).joinpath(file).read_text()
+        source = f"packaged {file}"
     else:
         try:
             text = Path(path).read_text()
         except OSError as exc:
-            raise ConfigError(f"vservo config {path}: cannot read ({exc.strerror}); accepted: a TOML file"
-                              ) from None
+            raise ConfigError(f"vservo config {path}: cannot read ({exc.strerror}); accepted: a TOML file "
+                              f"or a packaged name ({', '.join(packaged_names())})") from None
         source = str(path)
     try:
         data = tomllib.loads(text)

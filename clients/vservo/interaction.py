@@ -71,3 +71,40 @@ def estimate(choice: DepthChoice, xy: np.ndarray, Z: np.ndarray | None,
     if choice is DepthChoice.DESIRED:
         return L_star
     return 0.5 * (point_matrix(xy, Z_now) + L_star)
+
+
+# Eq. (11) as a linear map of the monomials of one point, m = (x, y, 1/Z, x/Z, y/Z, x y, x^2, y^2, 1):
+# the 12 entries of its two rows (the x row's 6 columns, then the y row's) are m @ _MONOMIALS, so the
+# stacked (2N, 6) matrix of N points is (M @ _MONOMIALS).reshape(2N, 6) with M the (N, 9) monomials.
+_X, _Y, _IZ, _XIZ, _YIZ, _XY, _XX, _YY, _ONE = range(9)
+_MONOMIALS = np.zeros((9, 12))
+for _row, _col, _coef in ((_IZ, 0, -1.0), (_XIZ, 2, 1.0), (_XY, 3, 1.0), (_ONE, 4, -1.0), (_XX, 4, -1.0),
+                          (_Y, 5, 1.0), (_IZ, 7, -1.0), (_YIZ, 8, 1.0), (_ONE, 9, 1.0), (_YY, 9, 1.0),
+                          (_XY, 10, -1.0), (_X, 11, -1.0)):
+    _MONOMIALS[_row, _col] = _coef
+
+
+class MeanMatrix:
+    """L_hat = (L_e + L_e*) / 2 for N points with the desired matrix L_star (2N, 6) fixed (the `mean`
+    choice of a full view), in a few array operations: the monomials of the current points go into a
+    buffer made once and one product gives every entry of eq. (11) (point_matrix is the reference)."""
+
+    def __init__(self, L_star: np.ndarray) -> None:
+        n = L_star.shape[0] // 2
+        self._monomials = np.zeros((n, 9))
+        self._monomials[:, _ONE] = 1.0
+        self._half_map = 0.5 * _MONOMIALS
+        self._half_star = 0.5 * L_star
+
+    def __call__(self, xy: np.ndarray, Z: np.ndarray) -> np.ndarray:
+        """(2N, 6) L_hat of the current points xy (N, 2) normalised at depths Z (N,) m (> 0)."""
+        m = self._monomials
+        m[:, _X:_Y + 1] = xy
+        inv_z = m[:, _IZ]
+        np.divide(1.0, Z, out=inv_z)
+        np.multiply(xy, inv_z[:, None], out=m[:, _XIZ:_YIZ + 1])
+        np.multiply(xy[:, 0], xy[:, 1], out=m[:, _XY])
+        np.multiply(xy, xy, out=m[:, _XX:_YY + 1])
+        L = (m @ self._half_map).reshape(-1, 6)
+        L += self._half_star
+        return L

@@ -27,7 +27,9 @@ def ibvs_twist(L_hat: np.ndarray, e: np.ndarray, gain: float) -> np.ndarray:
     rows (x_1, y_1, ...); gain lambda (1/s) > 0.
     """
     U, sigma, Vt = np.linalg.svd(L_hat, full_matrices=False)
-    keep = sigma > PINV_RCOND * sigma[0]
+    if sigma[-1] > PINV_RCOND * sigma[0]:  # full rank, the usual case: nothing to drop
+        return (-gain) * (Vt.T @ ((U.T @ e) / sigma))
+    keep = sigma > PINV_RCOND * sigma[0]  # degenerate point set: drop the null directions
     return -gain * (Vt[keep].T @ ((U[:, keep].T @ e) / sigma[keep]))
 
 

@@ -10,6 +10,7 @@ and release.
 
 from __future__ import annotations
 
+import gc
 import sys
 import threading
 import time
@@ -34,6 +35,14 @@ from twistrate.solver.errors import TwistrateError
 DISPLAY_HZ = 4.0
 #: Zero twists sent before letting go, so the arm is told to stop even if one is lost.
 FINAL_ZEROS = 3
+#: Garbage collection during the loop (as the service does, docs/operation.md "Threads"): what exists at
+#: the start is frozen (never scanned again), automatic collection is off, and the loop collects right
+#: after a twist went out: the young generation every GC_YOUNG_EVERY steps, the middle one every
+#: GC_MIDDLE_EVERY young collections, everything every GC_FULL_EVERY middle ones. An automatic collection
+#: would otherwise land wherever an allocation crosses a threshold, between a frame and its twist.
+GC_YOUNG_EVERY = 10
+GC_MIDDLE_EVERY = 10
+GC_FULL_EVERY = 100
 
 
 @dataclass
@@ -142,6 +151,26 @@ class Runner:
         return outcome
 
     def _loop(self, seconds: float | None, outcome: Outcome) -> None:
+        was_enabled = gc.isenabled()
+        gc.collect()
+        gc.freeze()
+        gc.disable()
+        try:
+            self._servo_loop(seconds, outcome)
+        finally:
+            gc.unfreeze()
+            if was_enabled:
+                gc.enable()
+
+    def _collect(self, steps: int) -> None:
+        """The scheduled collection after step number `steps` (its twist is out)."""
+        if steps % GC_YOUNG_EVERY:
+            return
+        young = steps // GC_YOUNG_EVERY
+        gc.collect(2 if young % (GC_MIDDLE_EVERY * GC_FULL_EVERY) == 0 else 1 if young % GC_MIDDLE_EVERY == 0
+                   else 0)
+
+    def _servo_loop(self, seconds: float | None, outcome: Outcome) -> None:
         period = 1.0 / self.config.run.rate_hz
         kind = self.config.law.kind
         t0 = outcome.t0 = time.monotonic()
@@ -188,6 +217,7 @@ class Runner:
                 self._show(now - t0, step, twist)
                 outcome.reason = "settled"
                 return
+            self._collect(outcome.twists)
 
     def _show(self, t_s: float, step: Step, twist: dict) -> None:
         if self.out is None:

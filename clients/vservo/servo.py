@@ -7,6 +7,7 @@ says the features are stale, missing or too few. Twists are (6,) linear first (v
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -17,13 +18,14 @@ from twistrate.clients.vservo.errorlog import Convergence
 from twistrate.clients.vservo.features import (
     Frame,
     Gate,
+    Matched,
     PointFrame,
     PoseFrame,
     ServoState,
     gate_state,
     match,
 )
-from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate, point_matrix
+from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, MeanMatrix, estimate, point_matrix
 from twistrate.solver.errors import ConfigError, field_error
 
 #: The discrete-time loop e_{k+1} = (1 - lambda T) e_k is stable for 0 < lambda T < 2; we refuse gains
@@ -112,11 +114,19 @@ class Servo:
         self.convergence = convergence or Convergence()
         self._counted: Frame | None = None  # the last frame the convergence count has seen
         if isinstance(goal, PointGoal):
+            K = len(goal.ids)
             self._xy_star = settings.intrinsics.normalised(goal.pixels)
             self._rows = {int(i): k for k, i in enumerate(goal.ids)}
             self._L_star = point_matrix(self._xy_star, goal.depths)  # (2K, 6), constant
             self._f = np.array([settings.intrinsics.fx, settings.intrinsics.fy])
             self._c = np.array([settings.intrinsics.cx, settings.intrinsics.cy])
+            # built once for the frames that show every goal point in the goal's order (a pipeline's
+            # usual frame): no matching, no row picking, L_hat filled in place
+            self._ids_key = np.asarray(goal.ids, dtype=np.int64).tobytes()
+            self._pixels_star = np.asarray(goal.pixels, dtype=float)
+            self._every = np.arange(K)
+            self._inv_f = 1.0 / self._f
+            self._L_mean = MeanMatrix(self._L_star)
 
     def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
         """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
@@ -137,24 +147,42 @@ class Servo:
         self._counted = frame
         return update()
 
+    def _match(self, frame: PointFrame) -> Matched:
+        """The frame's points matched to the goal's: at once when the frame holds exactly the goal's ids
+        in the goal's order (int64, as the wire decoder gives them), with finite pixels and finite
+        positive depths (a sum is finite only if every term is; else the general match decides)."""
+        ids, pixels, depths = frame.ids, frame.pixels, frame.depths
+        if (type(ids) is np.ndarray and ids.dtype == np.int64 and ids.tobytes() == self._ids_key
+                and type(pixels) is np.ndarray and pixels.dtype == np.float64
+                and math.isfinite(pixels.sum())
+                and (depths is None or (type(depths) is np.ndarray and depths.dtype == np.float64
+                                        and math.isfinite(depths.sum()) and depths.min() > 0.0))):
+            return Matched(self._every, pixels, depths)
+        return match(frame, self._rows)
+
     def _points(self, frame: PointFrame | None, arrived_s: float, now_s: float) -> Step:
         goal, s = self.goal, self.settings
-        matched = match(frame, self._rows) if frame is not None else None
+        matched = self._match(frame) if frame is not None else None
         state = gate_state(frame, arrived_s, now_s, s.gate, matched)
         if state is not ServoState.TRACKING:
             self.convergence.reset()
             return Step(state, ZERO, points=0 if matched is None else int(matched.index.size))
         k = matched.index
-        distance = np.sqrt(((matched.pixels - goal.pixels[k]) ** 2).sum(axis=1))
-        xy = (matched.pixels - self._c) / self._f
-        e = (xy - self._xy_star[k]).ravel()
-        error_norm = float(np.sqrt(e @ e))
         full = k.size == len(goal.ids)  # every point seen: k is 0..K-1 in order (match keeps desired order)
-        L_star = self._L_star if full else self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
-        L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k], L_star)
+        d = matched.pixels - (self._pixels_star if full else self._pixels_star[k])  # (M, 2) px
+        sq = d * d
+        distance = np.sqrt(sq[:, 0] + sq[:, 1])
+        e = (d * self._inv_f).ravel()  # s - s*, normalised: ((u, v) - (u*, v*)) / (f_x, f_y)
+        error_norm = math.sqrt(e @ e)
+        xy = (matched.pixels - self._c) * self._inv_f
+        if full and s.depth is DepthChoice.MEAN:  # the usual case, in place: (L_e + L_e*) / 2
+            L_hat = self._L_mean(xy, goal.depths if matched.depths is None else matched.depths)
+        else:
+            L_star = self._L_star if full else self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
+            L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k], L_star)
         gain = s.gain(error_norm)
         twist = laws.saturate(laws.ibvs_twist(L_hat, e, gain), s.linear_max, s.angular_max)
-        mean_px = float(distance.mean())
+        mean_px = float(distance.sum()) / k.size
         settled = self._count(frame, lambda: self.convergence.update_points(mean_px))
         return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, points=int(k.size),
                     error_px_mean=mean_px, error_px_max=float(distance.max()), error_norm=error_norm,
@@ -202,5 +230,4 @@ def wire_twist(twist: np.ndarray, mount: Mount, p_base_tool: np.ndarray | None =
                               "the tool origin (3,) m for a camera in the cell")
         linear, angular, point = transforms.eye_to_hand_twist(twist, mount.T, p_base_tool)
         frame = "base"
-    return {"linear": [float(c) for c in linear], "angular": [float(c) for c in angular],
-            "frame": frame, "point": [float(c) for c in point]}
+    return {"linear": linear.tolist(), "angular": angular.tolist(), "frame": frame, "point": point.tolist()}

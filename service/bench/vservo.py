@@ -1,13 +1,24 @@
 """`twistrate bench vservo`: from a features message sent to the command that answers its twist.
 
-Three processes: `twistrate serve` (its built-in simulated arm, the packaged demo configuration on free
-ports), `twistrate vservo --track` (the packaged panel-cell configuration), and this one, which plays
-the camera pipeline: at FRAME_HZ it places the tool where the newest command puts it (forward
+`twistrate serve` (its built-in simulated arm, the packaged demo configuration on free ports) runs once;
+two clients take turns answering the frames, in interleaved rounds, each its own process:
+
+* `twistrate vservo --track` (the packaged panel-cell configuration): decode, gate, law, twist;
+* the reference, a bare relay (service/bench/vservo_relay.py): the same features socket, client library
+  and waiting pattern, and one fixed twist per message at once, no decoding, no law. Its figures are
+  the floor of this machine (two loopback hops, two wake-ups of Python processes, the tick wait);
+  vservo's minus the relay's are vservo's own cost.
+
+This process plays the camera pipeline: it places the tool where the newest command puts it (forward
 kinematics of the joint targets), projects the panel's dots and sends them as a features message
-(docs/vision.md), stamped with its wall clock; it also watches every command. vservo answers each new
-frame with one twist at once and sends no other twists while frames keep coming (its keep-alive rate
-is set below the frame rate), so the first command after a frame whose `answers` names a new twist is
-that frame's answer. Reported, over the measured window (median, p99, max):
+(docs/vision.md), stamped with its wall clock; it also watches every command. Frames come FRAME_HZ
+per second on average with random gaps (uniform in [1 - JITTER, 1 + JITTER] periods, seeded), so a
+frame lands at a random phase of the service's tick and the tick wait is sampled over the whole tick
+(with fixed gaps that are a multiple of the tick, every frame of a run would see one phase). A client
+answers each new frame with one twist at once and sends no other twists while frames keep coming
+(vservo's keep-alive rate is set below the frame rate), so the first command after a frame whose
+`answers` names a new twist is that frame's answer. Reported per client, over the measured windows
+(median, p99, max):
 
 * features sent -> command published: the command's stamp (the service's wall clock at its tick)
   minus the frame's send stamp (this process's wall clock; one machine, one clock);
@@ -23,6 +34,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import signal
 import subprocess
 import sys
@@ -31,6 +43,7 @@ import time
 from pathlib import Path
 from typing import Any
 
+import msgpack
 import numpy as np
 import zmq
 
@@ -49,18 +62,26 @@ from twistrate.solver.errors import ConfigError
 from twistrate.solver.kinematics import tool_pose
 
 FRAME_HZ = 20.0
+#: Frame gaps are uniform in [1 - JITTER, 1 + JITTER] frame periods (25 to 75 ms at 20 Hz: wider than any
+#: service tick the benchmark accepts, so the phase of a frame in the tick is uniform).
+JITTER = 0.5
+SEED = 20261203
 DEFAULT_SECONDS = 10.0
 DEFAULT_RATE_HZ = 500.0
-#: Excluded from the figures: start-up, the first approach, connections settling, s.
+DEFAULT_ROUNDS = 2
+#: Excluded from each round's figures: the client's start, the first approach, connections settling, s.
 WARMUP_S = 2.0
 #: vservo's keep-alive twist rate in the benchmark: below FRAME_HZ, so every twist answers a frame.
 KEEPALIVE_HZ = 5.0
 TARGET_EXTRA_MS = 1.0
+#: The clients, in the order of each round (the reference first).
+CLIENTS = ("relay", "vservo")
+#: A client gets this long to come up (import, connect, claim, bind), s.
+CLIENT_START_S = 30.0
 
 
-def _spawn(args: list[str], err: Any) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "twistrate.service.commands.cli", *args],
-                            stdout=subprocess.DEVNULL, stderr=err)
+def _spawn(args: list[str], err: Any, module: str = "twistrate.service.commands.cli") -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", module, *args], stdout=subprocess.DEVNULL, stderr=err)
 
 
 def _stop(proc: subprocess.Popen, sig: int = signal.SIGTERM) -> None:
@@ -81,54 +102,114 @@ def _summary(values_ms: list[float]) -> dict[str, float]:
             "max_ms": float(a.max())}
 
 
-def bench(rate_hz: float, seconds: float) -> dict[str, Any]:
-    """One measured run at service tick rate `rate_hz` for `seconds` after the warm-up."""
-    service_config, text = synthetic_service_config(None, {"tick": {"rate_hz": rate_hz}})
-    arm = service_config.load_arm()
-    data = vc.load_config().model_dump()
-    data["endpoints"] = {**data["endpoints"], "features": ANY_PORT}
-    data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ}
-    data["camera"] = {**data["camera"], "rate_hz": FRAME_HZ}
-    config = vc.config_from_dict(data, "bench vservo config")
-    cell = synthetic.panel_cell(vc.intrinsics(config), vc.mount(config).T)
-    with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
-        paths = {name: str(Path(tmp) / name) for name in ("service.toml", "vservo.toml", "endpoints.json",
-                                                          "features.json", "stderr")}
-        Path(paths["service.toml"]).write_text(text)
-        Path(paths["vservo.toml"]).write_text(_toml_doc(data))
-        err = open(paths["stderr"], "w")  # noqa: SIM115 (closed below)
-        endpoints = ["--endpoints-file", paths["endpoints.json"]]
-        service = _spawn(["serve", "--config", paths["service.toml"], *endpoints], err)
-        vservo = _spawn(["vservo", "--config", paths["vservo.toml"], *endpoints, "--features-file",
-                         paths["features.json"], "--track", "--seconds", str(WARMUP_S + seconds + 40.0)], err)
+class _Run:
+    """One benchmark run: the service, the vservo configuration, the command watcher, the files."""
+
+    def __init__(self, rate_hz: float, tmp: str) -> None:
+        service_config, text = synthetic_service_config(None, {"tick": {"rate_hz": rate_hz}})
+        self.arm = service_config.load_arm()
+        data = vc.load_config().model_dump()
+        data["endpoints"] = {**data["endpoints"], "features": ANY_PORT}
+        data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ}
+        data["camera"] = {**data["camera"], "rate_hz": FRAME_HZ}
+        self.config = vc.config_from_dict(data, "bench vservo config")
+        self.cell = synthetic.panel_cell(vc.intrinsics(self.config), vc.mount(self.config).T)
+        names = ("service.toml", "vservo.toml", "endpoints.json", "stderr")
+        self.paths = {name: str(Path(tmp) / name) for name in names}
+        Path(self.paths["service.toml"]).write_text(text)
+        Path(self.paths["vservo.toml"]).write_text(_toml_doc(data))
+        self.tmp = tmp
+        self.err = open(self.paths["stderr"], "w")  # noqa: SIM115 (closed by close())
+        self.rng = np.random.default_rng(SEED)
+        self.service = _spawn(["serve", "--config", self.paths["service.toml"], "--endpoints-file",
+                               self.paths["endpoints.json"]], self.err)
+        self.ctx = zmq.Context()
+        self.sub: zmq.Socket | None = None
+
+    def failure(self, what: str) -> RuntimeError:
+        self.err.flush()
+        return RuntimeError(f"{what}: {Path(self.paths['stderr']).read_text()[-800:]}")
+
+    def watch(self) -> None:
         try:
-            output = read_endpoints(paths["endpoints.json"], SERVE_START_S)["output"]
-            features = read_features_file(paths["features.json"], SERVE_START_S)
+            output = read_endpoints(self.paths["endpoints.json"], SERVE_START_S)["output"]
         except ConfigError as exc:
-            _stop(vservo, signal.SIGINT)
-            _stop(service)
-            err.close()
-            raise RuntimeError(f"{exc}: {Path(paths['stderr']).read_text()[-800:]}") from None
-        ctx = zmq.Context()
-        sub = ctx.socket(zmq.SUB)
-        sub.setsockopt(zmq.LINGER, 0)
-        sub.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
-        sub.connect(output)
-        sender = FeatureSender(features, config.camera.name, ctx)
+            raise self.failure(str(exc)) from None
+        self.sub = self.ctx.socket(zmq.SUB)
+        self.sub.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.SUBSCRIBE, wire.TOPIC_COMMAND)
+        self.sub.connect(output)
+
+    def client(self, kind: str, k: int, seconds: float) -> subprocess.Popen:
+        features = str(Path(self.tmp) / f"features-{kind}-{k}.json")
+        endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features]
+        limit = ["--seconds", str(seconds + CLIENT_START_S + WARMUP_S + 30.0)]
+        if kind == "relay":
+            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ)], self.err,
+                          "twistrate.service.bench.vservo_relay")
+        else:
+            proc = _spawn(["vservo", "--config", self.paths["vservo.toml"], *endpoints, "--track", *limit],
+                          self.err)
+        proc.features_file = features  # type: ignore[attr-defined]
+        return proc
+
+    def close(self) -> None:
+        if self.sub is not None:
+            self.sub.close(0)
+        self.ctx.term()
+        _stop(self.service)
+        self.err.close()
+
+
+def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[str, Any]:
+    """One run at service tick rate `rate_hz`: `rounds` rounds, each the relay then vservo for
+    seconds / rounds s after its warm-up."""
+    per_round = seconds / rounds
+    load_before = os.getloadavg()[0]
+    samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
+                                                  "unanswered": [0]} for kind in CLIENTS}
+    with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
+        run = _Run(rate_hz, tmp)
         try:
-            result = _measure(sub, sender, arm, cell, seconds)
+            run.watch()
+            for k in range(rounds):
+                for kind in CLIENTS:
+                    proc = run.client(kind, k, per_round)
+                    try:
+                        features = read_features_file(proc.features_file, CLIENT_START_S)
+                    except ConfigError as exc:
+                        _stop(proc, signal.SIGINT)
+                        raise run.failure(f"{kind}: {exc}") from None
+                    sender = FeatureSender(features, run.config.camera.name, run.ctx)
+                    try:
+                        if not sender.wait_ready(CLIENT_START_S):
+                            raise run.failure(f"{kind}: no subscription to the features socket")
+                        got = _measure(run, sender, per_round)
+                    finally:
+                        sender.close()
+                        _stop(proc, signal.SIGINT)
+                    if got["frames"] == 0:
+                        raise run.failure(f"{kind}: no frame was answered")
+                    for key in ("published", "received"):
+                        samples[kind][key] += got[key]
+                    samples[kind]["frames"][0] += got["frames"]
+                    samples[kind]["unanswered"][0] += got["unanswered"]
         finally:
-            sender.close()
-            sub.close(0)
-            ctx.term()
-            _stop(vservo, signal.SIGINT)
-            _stop(service)
-            err.close()
-        if result["frames"] == 0:
-            raise RuntimeError("no frame was answered: " + Path(paths["stderr"]).read_text()[-800:])
-    period_ms = 1000.0 / rate_hz
-    result.update(rate_hz=rate_hz, seconds=seconds, frame_hz=FRAME_HZ,
-                  target_p99_ms=period_ms + TARGET_EXTRA_MS)
+            run.close()
+    result: dict[str, Any] = {"rate_hz": rate_hz, "seconds": seconds, "rounds": rounds, "frame_hz": FRAME_HZ,
+                              "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS,
+                              "load_average_1min": [load_before, os.getloadavg()[0]]}
+    for kind in CLIENTS:
+        s = samples[kind]
+        result[kind] = {"frames": s["frames"][0], "unanswered": s["unanswered"][0],
+                        "sent_to_published": _summary(s["published"]),
+                        "sent_to_received": _summary(s["received"])}
+    v, r = result["vservo"]["sent_to_published"], result["relay"]["sent_to_published"]
+    result["vservo_minus_relay"] = {"median_ms": v["median_ms"] - r["median_ms"],
+                                    "p99_ms": v["p99_ms"] - r["p99_ms"]}
+    # figures of the former layout, kept for readers of earlier JSON: vservo's
+    result.update(frames=result["vservo"]["frames"], unanswered=result["vservo"]["unanswered"],
+                  sent_to_published=v, sent_to_received=result["vservo"]["sent_to_received"])
     return result
 
 
@@ -142,42 +223,56 @@ def _toml_doc(data: dict[str, Any]) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _measure(sub: zmq.Socket, sender: FeatureSender, arm: Any, cell: synthetic.Cell,
-             seconds: float) -> dict[str, Any]:
-    period = 1.0 / FRAME_HZ
+def _gap(run: _Run) -> float:
+    """The next frame gap, s: uniform in [1 - JITTER, 1 + JITTER] frame periods."""
+    return float(run.rng.uniform(1.0 - JITTER, 1.0 + JITTER)) / FRAME_HZ
+
+
+def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]:
+    """Frames to one client for its warm-up and `seconds`; the latencies of the answered ones."""
+    sub, arm = run.sub, run.arm
+    assert sub is not None
     start = time.monotonic()
-    end = start + 30.0 + WARMUP_S + seconds  # bounded: the service and vservo get 30 s to come up
+    end = start + CLIENT_START_S + WARMUP_S + seconds  # bounded: the client gets that long to answer
     measuring_from = None
     next_frame = time.monotonic()
     target = None
-    answers = -1
+    answers = None
     pending: tuple[int, bool] | None = None  # (send stamp ns, counted) of the newest unanswered frame
     published, received, unanswered, frames = [], [], 0, 0
     while time.monotonic() < end:
         if sub.poll(max(0, int((next_frame - time.monotonic()) * 1000)), zmq.POLLIN):
-            while sub.poll(0, zmq.POLLIN):
-                frames_in = sub.recv_multipart()
+            newest = None
+            while True:  # every command (the first answering a frame counts), read lightly: on a busy
+                try:     # machine a full decode of each could not keep up with the tick rate
+                    data = sub.recv_multipart(zmq.NOBLOCK)[1]
+                except zmq.Again:
+                    break
                 got = time.time_ns()
-                command = wire.decode_command(frames_in[1], arm.n)
-                target = command.target
-                if command.answers != answers and command.answers >= 0:
-                    answers = command.answers
+                newest = data
+                m = msgpack.unpackb(data)
+                if answers is None:
+                    answers = m["answers"]  # the previous client's last twist: no answer of ours
+                elif m["answers"] != answers and m["answers"] >= 0:
+                    answers = m["answers"]
                     if pending is not None and pending[1]:
-                        published.append((command.stamp_ns - pending[0]) / 1e6)
+                        published.append((m["stamp_ns"] - pending[0]) / 1e6)
                         received.append((got - pending[0]) / 1e6)
+                    if measuring_from is None:
+                        measuring_from = time.monotonic() + WARMUP_S
+                        end = measuring_from + seconds
                     pending = None
+            if newest is not None:
+                target = wire.decode_command(newest, arm.n).target  # checked in full: the newest one
             continue
         if time.monotonic() < next_frame:
             continue
-        next_frame += period
+        next_frame += _gap(run)
         if target is None:
             continue
-        if measuring_from is None and answers >= 0:
-            measuring_from = time.monotonic() + WARMUP_S
-            end = measuring_from + seconds
         if pending is not None and pending[1]:
             unanswered += 1
-        ids, pixels, depths = cell.view(tool_pose(arm, target))
+        ids, pixels, depths = run.cell.view(tool_pose(arm, target))
         counted = measuring_from is not None and time.monotonic() >= measuring_from
         stamp = time.time_ns()
         sender.send(stamp, ids, pixels, depths)
@@ -185,39 +280,54 @@ def _measure(sub: zmq.Socket, sender: FeatureSender, arm: Any, cell: synthetic.C
         frames += counted
     if measuring_from is None:
         return {"frames": 0}
-    return {"frames": frames, "unanswered": unanswered, "sent_to_published": _summary(published),
-            "sent_to_received": _summary(received)}
+    return {"frames": frames, "unanswered": unanswered, "published": published, "received": received}
+
+
+def _lines(name: str, r: dict[str, Any]) -> list[str]:
+    p, q = r["sent_to_published"], r["sent_to_received"]
+    return [f"  {name}: {r['frames']} frames, {r['unanswered']} without an answer",
+            f"    features sent -> command published: median {p['median_ms']:.3f} ms, "
+            f"p99 {p['p99_ms']:.3f} ms, max {p['max_ms']:.3f} ms ({p['count']} answers)",
+            f"    features sent -> command received: median {q['median_ms']:.3f} ms, "
+            f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms"]
 
 
 def format_result(r: dict[str, Any]) -> str:
-    p, q = r["sent_to_published"], r["sent_to_received"]
-    verdict = "meets" if p["p99_ms"] <= r["target_p99_ms"] else "MISSES"
+    v, f, d = r["vservo"]["sent_to_published"], r["relay"]["sent_to_published"], r["vservo_minus_relay"]
+    target = r["target_p99_ms"]
+    verdict = "meets" if v["p99_ms"] <= target else "MISSES"
+    floor = "meets" if f["p99_ms"] <= target else "misses"
     return "\n".join([
-        f"vservo at service tick {r['rate_hz']:g} Hz, frames {r['frame_hz']:g} Hz, {r['seconds']:g} s: "
-        f"{r['frames']} frames, {r['unanswered']} without an answer",
-        f"  features sent -> command published: median {p['median_ms']:.3f} ms, p99 {p['p99_ms']:.3f} ms, "
-        f"max {p['max_ms']:.3f} ms ({p['count']} answers; target p99 <= {r['target_p99_ms']:.1f} ms: "
-        f"{verdict})",
-        f"  features sent -> command received: median {q['median_ms']:.3f} ms, p99 {q['p99_ms']:.3f} ms, "
-        f"max {q['max_ms']:.3f} ms",
+        f"vservo at service tick {r['rate_hz']:g} Hz, frames {r['frame_hz']:g} Hz on average (gaps "
+        f"+-{r['frame_jitter'] * 100:g} %, random tick phase), {r['rounds']} rounds, {r['seconds']:g} s "
+        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}",
+        *_lines("relay (reference: same sockets, fixed twist, no law)", r["relay"]),
+        *_lines("vservo", r["vservo"]),
+        f"  vservo minus relay (vservo's own cost): median {d['median_ms']:+.3f} ms, "
+        f"p99 {d['p99_ms']:+.3f} ms",
+        f"  target p99 <= one tick + {TARGET_EXTRA_MS:g} ms = {target:.1f} ms: vservo {verdict} it "
+        f"(p99 {v['p99_ms']:.3f} ms); the relay's floor {floor} it (p99 {f['p99_ms']:.3f} ms)",
     ])
 
 
 def run(argv: list[str] | None = None) -> int:
-    """`twistrate bench vservo [--seconds S] [--rate HZ] [--json FILE]`."""
+    """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--json FILE]`."""
     parser = argparse.ArgumentParser(prog="twistrate bench vservo", description=__doc__.splitlines()[0])
-    parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="measured window, s")
+    parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
+                        help="measured window per client, s (split over the rounds)")
     parser.add_argument("--rate", type=float, default=DEFAULT_RATE_HZ, help="service tick rate, Hz")
+    parser.add_argument("--rounds", type=int, default=DEFAULT_ROUNDS,
+                        help="interleaved rounds (relay, then vservo, each round)")
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     args = parser.parse_args(argv)
-    if not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0:
-        print("twistrate bench vservo: accepted: 0.5 <= --seconds <= 600, 10 <= --rate <= 2000",
-              file=sys.stderr)
+    if not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0 or not 1 <= args.rounds <= 20:
+        print("twistrate bench vservo: accepted: 0.5 <= --seconds <= 600, 10 <= --rate <= 2000, "
+              "1 <= --rounds <= 20", file=sys.stderr)
         return 2
-    result = bench(args.rate, args.seconds)
-    print(format_result(result))
+    result = bench(args.rate, args.seconds, args.rounds)
     if args.json:
         Path(args.json).write_text(json.dumps(result, indent=2, default=float))
+    print(format_result(result))
     return 0
 
 

@@ -57,6 +57,8 @@ SOURCE_HZ = 100.0
 DISPLAY_HZ = 4.0
 #: The demo's recording: {time} becomes the UTC start time (a recording never overwrites a file).
 DEFAULT_RECORDING = "twistrate-demo-{time}.trec"
+#: The closing screen's pointer to the camera loop on the same simulated arm (docs/vision.md section 9).
+CAMERA_LOOP_COMMAND = "twistrate vservo --synthetic"
 
 
 @dataclass(frozen=True)
@@ -409,6 +411,7 @@ def main(argv: list[str] | None = None) -> int:
         print(line)
     if recording is not None and recording.exists():
         print(f"  plot: {plot_recording(recording, args.config)}", flush=True)
+    print(f"  next, a camera loop on the simulated arm: {CAMERA_LOOP_COMMAND}", flush=True)
     return 0 if source.error is None else 1
 
 

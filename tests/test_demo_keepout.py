@@ -109,7 +109,17 @@ def test_the_demo_presses_toward_the_bench_stops_short_and_slides_away(monkeypat
     assert "keepout_limiting" in events
     assert any(f.get("limited by", "").startswith("KEEP-OUT") for f in panels["press toward the bench"])
     # then it slides along the bench and lifts off, followed in full
+    # The demo config ramps the asked twist ([speed] linear_accel_max, service/shaping.py): the ask turns
+    # from the press twist to the slide twist in |v_slide - v_press| / a_lin s, pressing on the bench
+    # (held back by the damper) meanwhile; every report after that turn runs at the full scale.
+    v_press = np.array(demo._PRESS.twist(0.0)[0])
+    v_slide = np.array(demo._SLIDE.twist(0.0)[0])
+    turn_s = float(np.linalg.norm(v_slide - v_press)) / cfg.speed.linear_accel_max
     slide = health["slide along the bench"]
-    assert slide and sum(m.scale == 1.0 for m in slide) >= 0.8 * len(slide)
-    # lifted back about as far as it went down: the tool point some 0.3 m above the bench again
-    assert forward(arm, lifted).T_base_tool[2, 3] > 0.3
+    t0 = slide[0].stamp_ns
+    after_turn = [m for m in slide if (m.stamp_ns - t0) / 1e9 > turn_s + 0.1]  # + 0.1 s: the health rate
+    assert after_turn and sum(m.scale == 1.0 for m in after_turn) >= 0.9 * len(after_turn)
+    # lifted off: the lift asks 0.26 m/s up for its 1.2 s; the ramp's turn from the slide twist takes
+    # |v_lift - v_slide| / a_lin = 0.66 s of it at half the rise on average, so the tool rises some 0.22 m
+    # from its press height (z 0.060 m on an idle run) to 0.285 m: well clear of the bench
+    assert forward(arm, lifted).T_base_tool[2, 3] > 0.25

@@ -44,6 +44,7 @@ from twistrate.service.motion import speed_cap_factor
 from twistrate.service.shaping import TwistRamp
 from twistrate.service.simarm import SimArm
 from twistrate.solver.arm import Arm
+from twistrate.solver.keepout import KeepOut
 from twistrate.solver.kinematics import forward, geometric_jacobian
 from twistrate.solver.load import load_arm
 from twistrate.solver.options import SolverOptions
@@ -82,15 +83,17 @@ Twist = tuple[np.ndarray, np.ndarray]
 
 def run_closed_loop(arm: Arm, options: SolverOptions, twist_at: Callable[[float], Twist], seconds: float,
                     q0: np.ndarray, lag_s: float = 0.0, linear_max: float = math.inf,
-                    angular_max: float = math.inf, ramp: TwistRamp | None = None) -> dict[str, np.ndarray]:
+                    angular_max: float = math.inf, ramp: TwistRamp | None = None,
+                    keepout: KeepOut | None = None) -> dict[str, np.ndarray]:
     """Run resolve in closed loop for `seconds` and record every tick.
 
     twist_at : t (s) -> (linear (3,) m/s, angular (3,) rad/s), base frame, tool point. q0 : (n,) start.
     lag_s : first-order lag of the simulated arm (0: q += q_dot T exactly). linear_max, angular_max : the
     service's tool speed caps applied to the twist first. ramp : the service's ramp of the asked twist
-    (`twistrate.service.shaping`, as the pipeline calls it) or None. Returns arrays per tick: asked
-    (N, 6) the solved twist (ramped), asked_raw (N, 6) the capped twist before the ramp, achieved
-    (N, 6), qd (N, n), scale (N,), tracking (N,) bool, damping (N,), sigma_min (N,).
+    (`twistrate.service.shaping`, as the pipeline calls it) or None. keepout : the keep-out pass of a
+    service config, or None. Returns arrays per tick: asked (N, 6) the solved twist (ramped), asked_raw
+    (N, 6) the capped twist before the ramp, achieved (N, 6), qd (N, n), scale (N,), tracking (N,)
+    bool, keepout_held (N,) bool (a keep-out damper row binds), damping (N,), sigma_min (N,).
     """
     n = arm.n
     ticks = round(seconds / PERIOD_S)
@@ -100,7 +103,8 @@ def run_closed_loop(arm: Arm, options: SolverOptions, twist_at: Callable[[float]
     last = None
     out = {"asked": np.zeros((ticks, 6)), "asked_raw": np.zeros((ticks, 6)),
            "achieved": np.zeros((ticks, 6)), "qd": np.zeros((ticks, n)),
-           "scale": np.zeros(ticks), "tracking": np.zeros(ticks, dtype=bool), "damping": np.zeros(ticks),
+           "scale": np.zeros(ticks), "tracking": np.zeros(ticks, dtype=bool),
+           "keepout_held": np.zeros(ticks, dtype=bool), "damping": np.zeros(ticks),
            "sigma_min": np.zeros(ticks)}
     for k in range(ticks):
         linear, angular = twist_at(k * PERIOD_S)
@@ -111,8 +115,9 @@ def run_closed_loop(arm: Arm, options: SolverOptions, twist_at: Callable[[float]
         if ramp is not None:
             frames = forward(arm, q)
             tw = ramp.shape(tw, frames, geometric_jacobian(arm, frames), qd, last, linear_max, angular_max)
-        r = resolve(arm, q, qd, tw, PERIOD_S, options)
+        r = resolve(arm, q, qd, tw, PERIOD_S, options, keepout)
         last = r
+        out["keepout_held"][k] = r.rows_active is not None and bool(np.any(r.rows_active))
         out["asked"][k] = r.twist_desired
         out["achieved"][k] = r.twist_achieved
         out["qd"][k] = r.qd
@@ -163,7 +168,10 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
     raw = run.get("asked_raw", asked)  # the operator's (capped) twist, before any ramp
     running = np.abs(asked).max(axis=1) > 0.0
     count = max(1, int(running.sum()))
-    zero = running & (scale == 0.0)
+    held = run.get("keepout_held", np.zeros(scale.shape[0], dtype=bool))
+    # A scale held at 0 by a keep-out zone is the stop asked for (the arm pressed against the bench), not
+    # a saturation: counted apart (scale_zero_keepout_fraction), outside the scale-0 share.
+    zero = running & (scale == 0.0) & ~held
     asked_w = np.linalg.norm(asked * weight, axis=1)
     err = np.linalg.norm((achieved - asked) * weight, axis=1)
     stalled = running & (np.linalg.norm(achieved * weight, axis=1) < STALL_SHARE * asked_w)
@@ -179,6 +187,7 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
         "ticks": int(scale.shape[0]),
         "running_ticks": int(running.sum()),
         "scale_zero_fraction": float(zero.sum()) / count,
+        "scale_zero_keepout_fraction": float((running & (scale == 0.0) & held).sum()) / count,
         "tracking_fraction": float((zero & run["tracking"]).sum()) / count,
         "braking_fraction": float((zero & ~run["tracking"]).sum()) / count,
         "scale_zero_after_step_fraction": float((zero & after_step).sum()) / count,
@@ -234,13 +243,15 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
 
 
 def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: SolverOptions | None = None,
-                seconds: float = 24.0, lag_s: float = DEMO_LAG_S, reference: bool = True,
-                ramp: TwistRamp | None = DEMO_RAMP) -> dict[str, Any]:
+                seconds: float = 29.8, lag_s: float = DEMO_LAG_S, reference: bool = True,
+                ramp: TwistRamp | None = DEMO_RAMP, keepout: KeepOut | None = None) -> dict[str, Any]:
     """The demo's scripted pass on reach7 at solver level (module docstring).
 
     scripted : the demo command's `scripted_twist`, t (s) -> (phase name, linear (3,) m/s, angular (3,)
     rad/s), base frame (passed in: the service core does not import the commands). ramp : the asked
-    twist's ramp (default the demo config's, `DEMO_RAMP`; None: off). With `reference`,
+    twist's ramp (default the demo config's, `DEMO_RAMP`; None: off). keepout : the demo config's
+    keep-out pass (its bench top and wall: the pass presses the tool toward the bench), or None. With
+    `reference`,
     the sign changes of the same pass without hard limits are reported too (`free_sign_changes`): the
     zero crossings the kinematics itself asks for."""
     arm = load_arm("reach7")
@@ -252,12 +263,12 @@ def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: Solv
 
     q0 = np.array(arm.q_home, dtype=float)
     caps = (DEMO_LINEAR_MAX, DEMO_ANGULAR_MAX)
-    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s, *caps, ramp=ramp)
+    run = run_closed_loop(arm, options, twist_at, seconds, q0, lag_s, *caps, ramp=ramp, keepout=keepout)
     figures = motion_figures(arm, run, options.characteristic_length)
     figures.update({"run": "demo pass (reach7)", "seconds": seconds, "lag_s": lag_s})
     if reference:
         free = SolverOptions(**{**_fields(options), "enforce_limits": False})
-        ref = run_closed_loop(arm, free, twist_at, seconds, q0, lag_s, *caps, ramp=ramp)
+        ref = run_closed_loop(arm, free, twist_at, seconds, q0, lag_s, *caps, ramp=ramp, keepout=keepout)
         figures["free_sign_changes"] = motion_figures(arm, ref, options.characteristic_length)["sign_changes"]
     return figures
 

@@ -7,7 +7,9 @@ from __future__ import annotations
 from typing import Any
 
 from twistrate.service.bench.saturation import DEMO_RAMP, demo_replay, push_through_wrist, tick_cost
-from twistrate.service.commands.demo import scripted_twist
+from twistrate.service.commands.demo import DEFAULT_SECONDS, scripted_twist
+from twistrate.service.config import load_config
+from twistrate.solver.load import load_arm
 
 #: Targets of the saturated tick (the 7-joint arm; ratios and shares, measured in one run).
 TARGETS = {"scale_zero_fraction": 0.005, "saturated_to_free": 2.0, "saturated_p99_us": 200.0,
@@ -15,7 +17,7 @@ TARGETS = {"scale_zero_fraction": 0.005, "saturated_to_free": 2.0, "saturated_p9
 
 
 def saturation_section(arms: tuple[str, ...] = ("bench6", "reach7"), push_s: float = 4.0,
-                       demo_s: float = 24.0, cost_ticks: int = 2000) -> dict[str, Any]:
+                       demo_s: float = DEFAULT_SECONDS, cost_ticks: int = 2000) -> dict[str, Any]:
     """Every figure of the section (plain numbers; printed by format_saturation). The durations and
     the timed tick count are for smoke tests only; the figures come from the defaults."""
     runs: dict[str, Any] = {}
@@ -23,8 +25,11 @@ def saturation_section(arms: tuple[str, ...] = ("bench6", "reach7"), push_s: flo
         runs[f"{name} jog"] = push_through_wrist(name, seconds=push_s, ramp_s=0.25)
         runs[f"{name} steps"] = push_through_wrist(name, seconds=push_s, ramp_s=0.0)
         runs[f"{name} steps, ramp"] = push_through_wrist(name, seconds=push_s, ramp_s=0.0, ramp=DEMO_RAMP)
-    runs["demo pass, no ramp"] = demo_replay(scripted_twist, seconds=demo_s, ramp=None, reference=False)
-    runs["demo pass"] = demo_replay(scripted_twist, seconds=demo_s)
+    # the demo config's keep-out pass (its bench top and wall), as the demo service runs it
+    keepout = load_config().keepout_pass(load_arm("reach7"))
+    runs["demo pass, no ramp"] = demo_replay(scripted_twist, seconds=demo_s, ramp=None, reference=False,
+                                             keepout=keepout)
+    runs["demo pass"] = demo_replay(scripted_twist, seconds=demo_s, keepout=keepout)
     return {"runs": runs, "cost": tick_cost("reach7", ticks=cost_ticks), "targets": TARGETS,
             "ramp": (DEMO_RAMP.linear_accel_max, DEMO_RAMP.angular_accel_max)}
 
@@ -51,7 +56,9 @@ def format_saturation(section: dict[str, Any]) -> str:
         if "free_sign_changes" in r:
             lines.append(f"  {name}: sign changes per joint {r['sign_changes']}, the same pass without hard "
                          f"limits {r['free_sign_changes']} (the kinematics' own zero crossings); the ramp's "
-                         f"lag behind the asked twist: mean {r['ramp_error_mean_m_s']:.4f} m/s (weighted)")
+                         f"lag behind the asked twist: mean {r['ramp_error_mean_m_s']:.4f} m/s (weighted);"
+                         f" held at scale 0 by the keep-out zones (the press, not counted above): "
+                         f"{_pct(r['scale_zero_keepout_fraction'])}")
     c = section["cost"]
     lines.append(f"  cost ({c['arm']}): free tick median {c['free_median_us']:.1f} us, saturated median "
                  f"{c['saturated_median_us']:.1f} us = {c['saturated_to_free']:.2f}x the free tick "

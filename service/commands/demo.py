@@ -50,7 +50,7 @@ CAUTIONS = (
     "  - Defer to local codes and licensed practice.",
 )
 #: Default run time, s (the whole scenario).
-DEFAULT_SECONDS = 25.8
+DEFAULT_SECONDS = 29.8
 #: Twists per second the scripted source sends.
 SOURCE_HZ = 100.0
 #: Live summary refreshes per second.
@@ -80,9 +80,10 @@ def _sweep(t: float) -> tuple[tuple[float, float, float], tuple[float, float, fl
     return (-0.03 * math.sin(s), 0.11 * math.sin(s), 0.0), (0.0, 0.0, 0.25 * math.sin(s))
 
 
-#: The inspection phases run at this factor of their first speeds (so the keep-out segment fits in about
-#: the same total time): each phase's duration divided by it, its twist multiplied.
-_PACE = 1.2
+#: The inspection phases run at this factor of their first speeds: each phase's duration divided by it,
+#: its twist multiplied. 1: 1.2 (to fit the keep-out segment into 24 s) drove the wrist into its limits
+#: harder and tripled the pass's scale-0 ticks (`twistrate bench solver`, demo pass).
+_PACE = 1.0
 
 
 def _paced(name: str, seconds: float, linear: tuple[float, float, float],

@@ -320,10 +320,12 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
     return result
 
 
-def _verdict(value: float, target: float | None) -> str:
+def _verdict(value: float, target: float | None, percent: bool = False) -> str:
+    """[met] or [MISSED: target ...]; percent: value and target are fractions printed as percent."""
     if target is None:
         return ""
-    return "  [met]" if value <= target else f"  [MISSED: target {target:g}]"
+    shown = f"{100.0 * target:g} %" if percent else f"{target:g}"
+    return "  [met]" if value <= target else f"  [MISSED: target {shown}]"
 
 
 def format_result(r: dict[str, Any]) -> str:
@@ -338,7 +340,7 @@ def format_result(r: dict[str, Any]) -> str:
         f"  tick lateness     median {r['lateness_median_us']:7.1f} us  p99 {r['lateness_p99_us']:7.1f} us  "
         f"max {r['lateness_max_us']:8.1f} us{_verdict(r['lateness_p99_us'], t['lateness_p99_us'])}",
         f"  overruns          {r['overruns']} of {r['ticks']} ticks ({100 * r['overrun_fraction']:.3f} %)"
-        f"{_verdict(r['overrun_fraction'], t['overrun_fraction'])}",
+        f"{_verdict(r['overrun_fraction'], t['overrun_fraction'], percent=True)}",
         f"  tick work         median {r['tick_work_median_us']:7.1f} us  p99 {r['tick_work_p99_us']:7.1f} us "
         f"(resolve median {r['solve_median_us']:.1f}, p99 {r['solve_p99_us']:.1f} us)",
         f"  deadline -> publish median {r['deadline_to_publish_median_us']:7.1f} us  p99 "
@@ -353,8 +355,8 @@ def format_result(r: dict[str, Any]) -> str:
         f"{r['tick_to_client_p99_us']:7.1f} us ({r['commands_received']} commands, "
         f"{r['commands_running']} running)",
         f"  service CPU       {100 * r['cpu_fraction']:.1f} % of one core (all its threads)"
-        f"{_verdict(r['cpu_fraction'], t['cpu_fraction'])}; tick lateness p99 {r['lateness_p99_us']:.1f} us "
-        f"beside it",
+        f"{_verdict(r['cpu_fraction'], t['cpu_fraction'], percent=True)}; "
+        f"tick lateness p99 {r['lateness_p99_us']:.1f} us beside it",
         "  CPU per thread    " + ", ".join(f"{THREAD_LABELS[k]} {100 * v:.1f} %"
                                           for k, v in r["thread_cpu_fraction"].items()),
         f"  context           all bench processes {100 * r['bench_cpu_fraction']:.0f} % of one core; load "

@@ -37,7 +37,7 @@ from twistrate.clients.linkbase import (
     LinkTimeoutError,
     RestartWatch,
     configure_socket,
-    no_lease_error,
+    lease_token,
     read_reply,
     reply_result,
     request_frames,
@@ -191,12 +191,7 @@ class AsyncLink:
             # else: a late reply to a request that timed out: dropped
 
     def _token(self) -> str:
-        if self.lease is None:
-            if self.lease_lost is not None:
-                raise ControlError("no_lease", f"lease: lost ({self.lease_lost}); accepted: a token from "
-                                   "claim() (claim again)")
-            raise no_lease_error()
-        return self.lease
+        return lease_token(self.lease, self.lease_lost)
 
     async def claim(self, client: str | None = None, lease_ms: int | None = None) -> str:
         """Take the lease; returns (and keeps) the token. Starts the renewal task (renew=True)."""

@@ -37,7 +37,7 @@ from twistrate.clients.linkbase import (  # the shared message code; re-exported
     LinkTimeoutError,
     RestartWatch,
     configure_socket,
-    no_lease_error,
+    lease_token,
     plain,
     read_reply,
     renew_due,
@@ -184,12 +184,7 @@ class Link:
         return result["lease"]
 
     def _token(self) -> str:
-        if self.lease is None:
-            if self.lease_lost is not None:
-                raise ControlError("no_lease", f"lease: lost ({self.lease_lost}); accepted: a token from "
-                                   "claim() (claim again)")
-            raise no_lease_error()
-        return self.lease
+        return lease_token(self.lease, self.lease_lost)
 
     def renew(self) -> int:
         """Extend the lease; returns its duration, ms."""

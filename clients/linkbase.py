@@ -116,6 +116,16 @@ def no_lease_error() -> ControlError:
     return ControlError("no_lease", "lease: got None; accepted: a token from claim() (claim first)")
 
 
+def lease_token(lease: str | None, lost: str | None) -> str:
+    """The token to send, or ControlError no_lease: none claimed yet, or lost (`lost` says why)."""
+    if lease is None:
+        if lost is not None:
+            raise ControlError("no_lease", f"lease: lost ({lost}); accepted: a token from claim() "
+                               "(claim again)")
+        raise no_lease_error()
+    return lease
+
+
 def renew_due(now_s: float, renewed_at_s: float, lease_ms: int | None) -> bool:
     """A third (RENEW_FRACTION) of the lease has passed since the last claim or renew."""
     return lease_ms is not None and now_s - renewed_at_s >= lease_ms * 1e-3 * RENEW_FRACTION

@@ -38,6 +38,24 @@ ANY_PORT = "tcp://127.0.0.1:*"
 SERVE_START_S = 20.0
 
 
+#: A service file config for a driver process (no built-in simulated arm), reach7 at 500 Hz on loopback
+#: ports picked at bind time; tests append sections of their own.
+DRIVER_CONFIG_TEXT = """[arm]
+file = "reach7"
+[tick]
+rate_hz = 500
+[endpoints]
+intake = "tcp://127.0.0.1:*"
+output = "tcp://127.0.0.1:*"
+control = "tcp://127.0.0.1:*"
+[simulation]
+enabled = false
+lag_s = 0.0
+[logging]
+level = "warning"
+"""
+
+
 def config_dict(**sections: dict[str, Any]) -> dict[str, Any]:
     """A config document on loopback ports picked at bind time; `sections` override/extend sections."""
     doc: dict[str, Any] = {

@@ -29,6 +29,7 @@ import numpy as np
 import pytest
 import zmq
 from service_harness import (
+    DRIVER_CONFIG_TEXT,
     collect_commands,
     reap,
     serve_process,
@@ -59,22 +60,7 @@ JOINTS_TIMEOUT_S = 0.100
 #: Every streaming loop gives up after this long, s (a loaded machine starts processes slowly).
 LIMIT_S = 30.0
 FAST = ([0.25, 0.0, -0.1], [0.0, 0.3, 0.2])
-CONFIG = """[arm]
-file = "reach7"
-[tick]
-rate_hz = 500
-[endpoints]
-intake = "tcp://127.0.0.1:*"
-output = "tcp://127.0.0.1:*"
-control = "tcp://127.0.0.1:*"
-[simulation]
-enabled = false
-lag_s = 0.0
-[watchdog]
-joints_timeout_ms = 100.0
-[logging]
-level = "warning"
-"""
+CONFIG = DRIVER_CONFIG_TEXT + "[watchdog]\njoints_timeout_ms = 100.0\n"
 
 
 def _ramp(cs):

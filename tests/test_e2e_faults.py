@@ -12,7 +12,7 @@ import time
 
 import numpy as np
 import pytest
-from service_harness import LOOP_LIMIT_S, reap, serve_process, stream_until, wait_for
+from service_harness import DRIVER_CONFIG_TEXT, LOOP_LIMIT_S, reap, serve_process, stream_until, wait_for
 
 from twistrate.clients.link import Link
 from twistrate.service.config import load_config
@@ -23,20 +23,7 @@ pytestmark = pytest.mark.timeout(120)
 #: Scheduling allowance for the driver's loop on a shared 2-core machine, s (several ms measured).
 ALLOWANCE_S = 0.025
 FAST = ([0.25, 0.0, -0.1], [0.0, 0.3, 0.2])
-CONFIG = """[arm]
-file = "reach7"
-[tick]
-rate_hz = 500
-[endpoints]
-intake = "tcp://127.0.0.1:*"
-output = "tcp://127.0.0.1:*"
-control = "tcp://127.0.0.1:*"
-[simulation]
-enabled = false
-lag_s = 0.0
-[logging]
-level = "warning"
-"""
+CONFIG = DRIVER_CONFIG_TEXT
 
 
 def test_sigkill_of_the_service_mid_motion_and_the_driver_stops_the_arm_itself(tmp_path):

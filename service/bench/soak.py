@@ -37,7 +37,7 @@ import zmq
 
 from twistrate.clients.link import Endpoints, Link
 from twistrate.service import wire
-from twistrate.service.bench.service import cpu_seconds, load_average, measure_floor
+from twistrate.service.bench.service import CONFIG_TEXT, cpu_seconds, load_average, measure_floor
 from twistrate.service.bench.soak_checks import identities, memory_growth, warmup_s
 from twistrate.service.bench.soak_source import source_main
 from twistrate.service.wire.discovery import read_endpoints
@@ -61,24 +61,8 @@ QUIET_LIMIT_S = 20.0
 #: The floor runs at most this long (a sample of the machine's stalls), s.
 FLOOR_MAX_S = 300.0
 RUN_LIMIT_MIN = 600.0
-CONFIG_TEXT = """[arm]
-file = "reach7"
-[tick]
-rate_hz = {rate_hz}
-health_hz = 50
-[endpoints]
-intake = "tcp://127.0.0.1:*"
-output = "tcp://127.0.0.1:*"
-control = "tcp://127.0.0.1:*"
-[simulation]
-enabled = false
-lag_s = 0.02
-[sockets]
-send_hwm = {hwm}
-receive_hwm = {hwm}
-[logging]
-level = "warning"
-"""
+#: The service bench's configuration, with queues deep enough that the counter identities are exact.
+SOCKETS_TEXT = "[sockets]\nsend_hwm = {hwm}\nreceive_hwm = {hwm}\n"
 
 
 def rss_mb(pid: int) -> float:
@@ -220,7 +204,7 @@ def soak(minutes: float, rate_hz: float, floor_s: float | None = None) -> dict[s
     errors: list[str] = []
     with tempfile.TemporaryDirectory() as tmp:
         cfg = Path(tmp) / "soak.toml"
-        cfg.write_text(CONFIG_TEXT.format(rate_hz=rate_hz, hwm=SOAK_HWM))
+        cfg.write_text(CONFIG_TEXT.format(rate_hz=rate_hz) + SOCKETS_TEXT.format(hwm=SOAK_HWM))
         ep_file = str(Path(tmp) / "endpoints.json")
         serve = _spawn(["twistrate.service.commands.cli", "serve", "--config", str(cfg), "--endpoints-file",
                         ep_file])

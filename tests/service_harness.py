@@ -101,6 +101,20 @@ def serve_process(config_path: str | Path, endpoints_file: str | Path, *extra: s
     return proc, Endpoints(ep["intake"], ep["output"], ep["control"])
 
 
+def record_steps(sim: SimArm) -> list[np.ndarray]:
+    """Wrap sim.step so that the simulated arm's position after every step (n,) is appended to the list
+    returned (read it once the service has stopped)."""
+    stepped: list[np.ndarray] = []
+    original = sim.step
+
+    def recorded(dt: float) -> None:
+        original(dt)
+        stepped.append(sim.q.copy())
+
+    sim.step = recorded  # type: ignore[method-assign]
+    return stepped
+
+
 @dataclass
 class LimitWatch:
     """Wraps a SimArm's step() to check its positions against its limits after every step."""

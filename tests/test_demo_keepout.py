@@ -15,7 +15,7 @@ import time
 
 import numpy as np
 import pytest
-from service_harness import running_service
+from service_harness import record_steps, running_service
 
 from twistrate.service import wire
 from twistrate.service.commands import demo
@@ -59,14 +59,7 @@ def test_the_demo_presses_toward_the_bench_stops_short_and_slides_away(monkeypat
     with running_service(cfg) as run:
         arm = run.service.arm
         sim = run.service.pipeline.sim
-        stepped: list[np.ndarray] = []
-        original = sim.step
-
-        def recorded(dt, original=original):
-            original(dt)
-            stepped.append(sim.q.copy())
-
-        sim.step = recorded
+        stepped = record_steps(sim)
         # health and events only (50 Hz and on change), so the test's own thread stays light
         watcher = run.link(topics=(wire.TOPIC_HEALTH, wire.TOPIC_EVENT))
         source = demo.ScriptedSource(run.endpoints, demo.DEFAULT_SECONDS, cfg.tunables())

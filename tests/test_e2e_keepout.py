@@ -14,7 +14,7 @@ import itertools
 
 import numpy as np
 import pytest
-from service_harness import make_config, running_service, stream_until
+from service_harness import make_config, record_steps, running_service, stream_until
 
 from twistrate.solver.keepout import KeepOut
 from twistrate.solver.kinematics import forward
@@ -50,14 +50,7 @@ def test_driven_into_the_table_it_stops_at_the_security_distance_and_leaves_at_s
             return float(watch.all_contacts(forward(arm, q)).distance.min())
 
         sim = run.service.pipeline.sim
-        stepped: list[np.ndarray] = []  # the simulated arm's position after every step (every tick)
-        original = sim.step
-
-        def recorded(dt, original=original):
-            original(dt)
-            stepped.append(sim.q.copy())
-
-        sim.step = recorded
+        stepped = record_steps(sim)  # the simulated arm's position after every step (every tick)
         link = run.link()
         link.claim("test", lease_ms=60000)
         link.enable()

@@ -19,7 +19,7 @@ import time
 
 import numpy as np
 import pytest
-from service_harness import make_config, running_service
+from service_harness import make_config, record_steps, running_service
 
 from twistrate.service import wire
 from twistrate.solver.keepout import KeepOut
@@ -75,14 +75,7 @@ def test_folding_on_itself_it_stops_at_d_s_and_unfolds_freely():
             return float(watch.all_contacts(forward(arm, np.asarray(q))).distance.min())
 
         sim = run.service.pipeline.sim
-        stepped: list[np.ndarray] = []
-        original = sim.step
-
-        def recorded(dt, original=original):
-            original(dt)
-            stepped.append(sim.q.copy())
-
-        sim.step = recorded
+        stepped = record_steps(sim)
         link = run.link()
         link.claim("test", lease_ms=60000)
         link.enable()

@@ -19,9 +19,14 @@ Figures (`motion_figures`), over the running ticks (asked twist nonzero):
 * `stalled_fraction`: ticks whose achieved twist is below STALL_SHARE of the asked one (weighted
   norm): what an operator sees as braking;
 * `sign_changes`: per joint, how often the commanded rate changes sign (with a dead band of
-  SIGN_DEADBAND of the joint's velocity limit, so rounding around 0 does not count), against
+  SIGN_DEADBAND of the joint's velocity limit, so rounding around 0 does not count), and
   `asked_direction_changes`: how often the asked twist turns by more than TURN_DEG from the direction
-  it had at its last counted turn;
+  it had at its last counted turn. The chatter criterion compares each joint with the same run
+  without hard limits (`free_sign_changes`, `extra_sign_changes`, see `chatter`): the rates of a
+  redundant arm following a curved path cross zero on their own, more often than the asked twist
+  turns (the demo pass without limits: up to 10 sign changes per joint against 8 turns), so "no more
+  sign changes than asked turns" cannot hold even without limits; what the limits must not do is add
+  sign changes of their own;
 * `peak_acceleration_ratio`: max over ticks and joints of |q_dot_k - q_dot_(k-1)| / (a_max T) (<= 1
   means within the acceleration limit on every tick); `peak_velocity_ratio` likewise |q_dot| / v_max;
 * `twist_error_max_m_s`, `twist_error_mean_m_s`: task-weighted norm of achieved - asked (the solved,
@@ -55,7 +60,7 @@ PERIOD_S = 0.002
 #: Rate of the demo's scripted source, Hz (twists are held between its samples).
 SOURCE_HZ = 100.0
 #: The demo config's solver options (configs/service/demo.toml, [solver]).
-DEMO_OPTIONS = SolverOptions(damping="singular_value", damping_max=0.04, singular_value_threshold=0.05,
+DEMO_OPTIONS = SolverOptions(damping="singular_value", damping_max=0.04, singular_value_threshold=0.08,
                              characteristic_length=0.3, limit_gain=1.0, enforce_limits=True)
 #: The demo config's speed caps ([speed]): linear m/s, angular rad/s.
 DEMO_LINEAR_MAX = 0.5
@@ -204,9 +209,34 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
     }
 
 
+def chatter(sign_changes: list[int], free_sign_changes: list[int]) -> dict[str, Any]:
+    """The chatter criterion of one run (module docstring): per joint, the sign changes beyond those of
+    the same run without hard limits. Returns {"extra": (n,) max(0, with - without) per joint,
+    "joints_over": the joints (indices) with extra sign changes, "met": none has any}."""
+    extra = [max(0, a - b) for a, b in zip(sign_changes, free_sign_changes, strict=True)]
+    over = [j for j, e in enumerate(extra) if e > 0]
+    return {"extra": extra, "joints_over": over, "met": not over}
+
+
+def _with_reference(figures: dict[str, Any], free_run: dict[str, np.ndarray], arm: Arm,
+                    characteristic_length: float) -> dict[str, Any]:
+    """`figures` plus the sign changes of the same run without hard limits and the chatter criterion."""
+    free = motion_figures(arm, free_run, characteristic_length)["sign_changes"]
+    figures["free_sign_changes"] = free
+    verdict = chatter(figures["sign_changes"], free)
+    figures["extra_sign_changes"] = verdict["extra"]
+    figures["chatter_met"] = verdict["met"]
+    return figures
+
+
+def _free(options: SolverOptions) -> SolverOptions:
+    """`options` without hard limits (the reference of the chatter criterion)."""
+    return SolverOptions(**{**_fields(options), "enforce_limits": False})
+
+
 def push_through_wrist(name: str, options: SolverOptions | None = None, seconds: float = 4.0,
                        speed: float = 0.3, ramp_s: float = 0.25, lag_s: float = 0.0,
-                       ramp: TwistRamp | None = None) -> dict[str, Any]:
+                       ramp: TwistRamp | None = None, reference: bool = False) -> dict[str, Any]:
     """Scripted push through the wrist singularity of example arm `name` (bench6 or reach7).
 
     From home with the wrist joint at +WRIST_START rad, the base-frame twist that the wrist joint alone
@@ -215,7 +245,8 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
     in and out over `ramp_s` (a half-cosine); ramp_s = 0 asks for steps (start and reversal at full
     speed, which no rate within one tick of acceleration can follow); `ramp` then applies the service's
     ramp of the asked twist (`twistrate.service.shaping`). Returns `motion_figures` plus the run's
-    settings.
+    settings; with `reference`, also the sign changes of the same run without hard limits and the
+    chatter criterion (`free_sign_changes`, `extra_sign_changes`, `chatter_met`).
     """
     arm = load_arm(name)
     options = DEMO_OPTIONS if options is None else options
@@ -239,6 +270,9 @@ def push_through_wrist(name: str, options: SolverOptions | None = None, seconds:
     figures = motion_figures(arm, run, options.characteristic_length)
     figures.update({"run": f"push through the wrist singularity ({name}, joint {j})", "seconds": seconds,
                     "ramp_s": ramp_s, "lag_s": lag_s, "sigma_min_lowest_m": float(run["sigma_min"].min())})
+    if reference:
+        free_run = run_closed_loop(arm, _free(options), twist_at, seconds, q0, lag_s, ramp=ramp)
+        _with_reference(figures, free_run, arm, options.characteristic_length)
     return figures
 
 
@@ -252,8 +286,9 @@ def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: Solv
     twist's ramp (default the demo config's, `DEMO_RAMP`; None: off). keepout : the demo config's
     keep-out pass (its bench top and wall: the pass presses the tool toward the bench), or None. With
     `reference`,
-    the sign changes of the same pass without hard limits are reported too (`free_sign_changes`): the
-    zero crossings the kinematics itself asks for."""
+    the sign changes of the same pass without hard limits are reported too (`free_sign_changes`: the
+    zero crossings the kinematics itself asks for), with the chatter criterion (`extra_sign_changes`,
+    `chatter_met`; module docstring)."""
     arm = load_arm("reach7")
     options = DEMO_OPTIONS if options is None else options
 
@@ -267,9 +302,9 @@ def demo_replay(scripted: Callable[[float], tuple[str, Any, Any]], options: Solv
     figures = motion_figures(arm, run, options.characteristic_length)
     figures.update({"run": "demo pass (reach7)", "seconds": seconds, "lag_s": lag_s})
     if reference:
-        free = SolverOptions(**{**_fields(options), "enforce_limits": False})
-        ref = run_closed_loop(arm, free, twist_at, seconds, q0, lag_s, *caps, ramp=ramp, keepout=keepout)
-        figures["free_sign_changes"] = motion_figures(arm, ref, options.characteristic_length)["sign_changes"]
+        ref = run_closed_loop(arm, _free(options), twist_at, seconds, q0, lag_s, *caps, ramp=ramp,
+                              keepout=keepout)
+        _with_reference(figures, ref, arm, options.characteristic_length)
     return figures
 
 

@@ -8,7 +8,9 @@ from __future__ import annotations
 import numpy as np
 
 from twistrate.service.bench.saturation import (
+    DEMO_OPTIONS,
     SIGN_DEADBAND,
+    chatter,
     demo_replay,
     motion_figures,
     push_through_wrist,
@@ -61,3 +63,41 @@ def test_demo_pass_start_and_timing_function_run() -> None:
     assert f["stalled_fraction"] < 0.01
     cost = tick_cost(ticks=100, repeats=1)
     assert cost["states"] > 0 and cost["free_median_us"] > 0.0 and cost["saturated_median_us"] > 0.0
+
+
+def test_sign_changes_of_a_sampled_sine_and_the_chatter_criterion() -> None:
+    # Closed form: sin(w t) has its zeros at k pi / w, so on [t0, t1] (no zero at either end) it changes
+    # sign floor(w t1 / pi) - floor(w t0 / pi) times; sampled at 500 Hz half a tick off the zeros, no sample
+    # falls inside the bench's dead band (1e-3 of v_max) at a zero for these amplitudes and frequencies.
+    arm = load_arm("planar3")
+    t = np.arange(0.0, 3.0, 0.002) + 0.001
+    w = (3.0 * np.pi, np.pi)  # zeros every 1/3 s and every 1 s
+    qd = np.zeros((t.size, 3))
+    qd[:, 0] = 0.5 * np.sin(w[0] * t)
+    qd[:, 1] = 0.5 * np.sin(w[1] * t)
+    qd[:, 2] = 0.5 * np.cos(np.pi * t / 3.0)  # its one zero at t = 1.5 s
+    expected = [int(np.floor(wi * t[-1] / np.pi) - np.floor(wi * t[0] / np.pi)) for wi in w] + [1]
+    asked = np.zeros((t.size, 6))
+    asked[:, 0] = 0.1
+    run = {"asked": asked, "achieved": asked, "qd": qd, "scale": np.ones(t.size),
+           "tracking": np.zeros(t.size, dtype=bool)}
+    f = motion_figures(arm, run, 0.3)
+    assert f["sign_changes"] == expected == [8, 2, 1]
+    assert chatter(f["sign_changes"], expected) == {"extra": [0, 0, 0], "joints_over": [], "met": True}
+    # fewer changes than the free run are never "extra"; more are, per joint (not against the max)
+    assert chatter(f["sign_changes"], [6, 5, 1]) == {"extra": [2, 0, 0], "joints_over": [0], "met": False}
+
+
+def test_the_bench_runs_with_the_demo_configs_solver_options() -> None:
+    # The saturation runs replay the demo at solver level with the options the demo service reads from
+    # its config (configs/service/demo.toml), so a change of the config is measured, not a copy of it.
+    from twistrate.service.config import load_config
+
+    assert load_config(None).solver_options(load_arm("reach7")) == DEMO_OPTIONS
+
+
+def test_the_jogged_push_reports_the_chatter_criterion_against_its_free_run() -> None:
+    f = push_through_wrist("reach7", seconds=2.0, reference=True)
+    assert len(f["free_sign_changes"]) == len(f["sign_changes"]) == 7
+    assert f["extra_sign_changes"] == chatter(f["sign_changes"], f["free_sign_changes"])["extra"]
+    assert f["chatter_met"] == (sum(f["extra_sign_changes"]) == 0)

@@ -14,6 +14,16 @@ change, like the speed caps keep the direction of the twist). Rules:
 
 * the previous shaped twist is the last resolution's `twist_desired` while running, else (and after a
   stop) the twist the arm makes (J q_dot_prev), so a resumed twist ramps from the motion the arm is in;
+* likewise after a tick that did not make its asked twist's direction: one with no feasible scale
+  (`Resolution.tracking`: the bounded least squares tracked) or one on which a keep-out zone held the
+  arm (a damper row met with equality, `Resolution.rows_active`). Ramping on from a twist the arm was
+  not making would keep asking, for the length of the ramp, for the part it could not make: after a
+  press against a zone, a change of direction (press, then slide along it) kept asking for the part
+  pointing into the zone and the direction-preserving scaling held the whole twist back (the demo's
+  pass: 166 stalled ticks at the start of its slide along the bench, then the scale jumping from 0.05
+  to 1 within three ticks); with two wrist joints on their limits, an operator's reversal (back off)
+  kept asking for the roll into them for half a second. The arm's twist J q_dot_prev is where an
+  acceleration-limited ramp physically starts, as after a stop;
 * a zero asked twist (a stop) is not ramped: the solver brakes along the previous rate as hard as the
   joints allow, never slower than before;
 * the shaped twist goes through the speed caps again, so a cap lowered this tick (reduced speed) holds
@@ -75,14 +85,23 @@ class TwistRamp:
             return desired
         x = twist_base(desired, frames.T_base_tool)
         x_prev = last.twist_desired if last is not None else None
-        if x_prev is None or not x_prev.any():  # from rest or after a stop (not ramped): the arm's twist
-            x_prev = J.dot(qd_prev)
+        if x_prev is None or not x_prev.any() or _held(last):
+            x_prev = J.dot(qd_prev)  # from rest, after a stop (not ramped), tracking or a hold: the arm's
         T = self.period
         x = ramp_step(x, x_prev, self.linear_accel_max * T, self.angular_accel_max * T)
         cap = speed_cap_factor(x[:3], x[3:], _ZERO3, linear_max, angular_max)
         if cap < 1.0:
             x = x * cap
         return DesiredTwist(x[:3], x[3:], "base", _ZERO3)
+
+
+def _held(last: Resolution | None) -> bool:
+    """True when the last tick did not make its asked twist's direction: no scale was feasible (it
+    tracked, `Resolution.tracking`) or a keep-out damper row held its rates (met with equality)."""
+    if last is None:
+        return False
+    rows = last.rows_active
+    return last.tracking or (rows is not None and bool(rows.any()))
 
 
 def twist_ramp(speed: SpeedSection, period: float) -> TwistRamp | None:

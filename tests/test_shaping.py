@@ -113,3 +113,36 @@ def test_a_stepped_push_keeps_a_scale_with_the_ramp() -> None:
     assert shaped["scale_zero_fraction"] == 0.0 and shaped["below_half_fraction"] == 0.0
     assert shaped["peak_acceleration_ratio"] <= 1.0 + 1e-9
     assert max(shaped["sign_changes"]) <= shaped["asked_direction_changes"] == 1
+
+
+def _copy(r, **changes):
+    from twistrate.solver.resolve import Resolution
+    fields = {name: getattr(r, name) for name in ("qd", "twist_desired", "twist_achieved", "scale", "damping",
+                                                  "limits_active", "frames", "J", "singular_values", "U",
+                                                  "tracking", "contacts", "rows_active")}
+    fields.update(changes)
+    return Resolution(**fields)
+
+
+@pytest.mark.parametrize("kind", ["tracking", "held", "scaled"])
+def test_after_a_tick_that_missed_its_direction_the_ramp_starts_from_the_arms_twist(kind: str) -> None:
+    # A rate limiter restarted from the motion the arm is in (closed form of ramp_step from J qd_prev):
+    # after a tick with no feasible scale (tracking) or held by a keep-out row; a merely scaled tick
+    # (direction kept) ramps on from its asked twist as before.
+    arm, q, frames, J = _reach7_state()
+    ramp = TwistRamp(0.5, 1.5, T)
+    last = resolve(arm, q, np.zeros(arm.n), DesiredTwist(np.array([0.0, 0.0, -0.14]), np.zeros(3)), T,
+                   _options())
+    qd_prev = np.linalg.pinv(J) @ np.array([0.0, 0.0, -0.02, 0.0, 0.0, 0.0])  # the arm makes 0.02 m/s down
+    if kind == "tracking":
+        last = _copy(last, tracking=True, scale=0.0)
+    elif kind == "held":
+        last = _copy(last, rows_active=np.array([False, True]))
+    else:
+        last = _copy(last, scale=0.4, rows_active=np.array([False, False]))
+    tw = DesiredTwist(np.array([0.0, 0.1, 0.0]), np.zeros(3))
+    out = ramped(ramp, tw, frames, J, qd_prev, last, _Caps())
+    start = J @ qd_prev if kind != "scaled" else last.twist_desired
+    target = np.array([0.0, 0.1, 0.0, 0.0, 0.0, 0.0])
+    expected = start + (0.5 * T) / np.linalg.norm((target - start)[:3]) * (target - start)
+    np.testing.assert_allclose(np.concatenate((out.linear, out.angular)), expected, atol=1e-12)

@@ -14,10 +14,12 @@ change, like the speed caps keep the direction of the twist). Rules:
 
 * the previous shaped twist is the last resolution's `twist_desired` while running, else (and after a
   stop) the twist the arm makes (J q_dot_prev), so a resumed twist ramps from the motion the arm is in;
-* likewise after a tick that did not make its asked twist's direction: one with no feasible scale
-  (`Resolution.tracking`: the bounded least squares tracked) or one on which a keep-out zone held the
-  arm (a damper row met with equality, `Resolution.rows_active`). Ramping on from a twist the arm was
-  not making would keep asking, for the length of the ramp, for the part it could not make: after a
+* likewise while the ramp moves toward a changed request after a tick that did not make its asked
+  twist's direction: one with no feasible scale (`Resolution.tracking`: the bounded least squares
+  tracked) or one on which a keep-out zone held the arm (a damper row met with equality,
+  `Resolution.rows_active`). A request the ramp has reached stays asked as it is (pressing on against a
+  zone or a limit keeps asking for the press, and the scale reports it). Ramping on from a twist the
+  arm was not making would keep asking, for the length of the ramp, for the part it could not make: after a
   press against a zone, a change of direction (press, then slide along it) kept asking for the part
   pointing into the zone and the direction-preserving scaling held the whole twist back (the demo's
   pass: 166 stalled ticks at the start of its slide along the bench, then the scale jumping from 0.05
@@ -84,11 +86,12 @@ class TwistRamp:
         if not (desired.linear.any() or desired.angular.any()):
             return desired
         x = twist_base(desired, frames.T_base_tool)
-        x_prev = last.twist_desired if last is not None else None
-        if x_prev is None or not x_prev.any() or _held(last):
-            x_prev = J.dot(qd_prev)  # from rest, after a stop (not ramped), tracking or a hold: the arm's
         T = self.period
-        x = ramp_step(x, x_prev, self.linear_accel_max * T, self.angular_accel_max * T)
+        step_v, step_w = self.linear_accel_max * T, self.angular_accel_max * T
+        x_prev = last.twist_desired if last is not None else None
+        if x_prev is None or not x_prev.any() or (_held(last) and _moving(x, x_prev, step_v, step_w)):
+            x_prev = J.dot(qd_prev)  # from rest, after a stop (not ramped), tracking or a hold: the arm's
+        x = ramp_step(x, x_prev, step_v, step_w)
         cap = speed_cap_factor(x[:3], x[3:], _ZERO3, linear_max, angular_max)
         if cap < 1.0:
             x = x * cap
@@ -102,6 +105,13 @@ def _held(last: Resolution | None) -> bool:
         return False
     rows = last.rows_active
     return last.tracking or (rows is not None and bool(rows.any()))
+
+
+def _moving(x: np.ndarray, x_prev: np.ndarray, step_v: float, step_w: float) -> bool:
+    """True when the ramp has not reached the request: x (6,) differs from the last shaped twist x_prev
+    (6,) by more than one step (linear m/s, angular rad/s)."""
+    d = x - x_prev
+    return float(d[:3].dot(d[:3])) > step_v * step_v or float(d[3:].dot(d[3:])) > step_w * step_w
 
 
 def twist_ramp(speed: SpeedSection, period: float) -> TwistRamp | None:

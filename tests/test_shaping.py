@@ -124,11 +124,12 @@ def _copy(r, **changes):
     return Resolution(**fields)
 
 
-@pytest.mark.parametrize("kind", ["tracking", "held", "scaled"])
+@pytest.mark.parametrize("kind", ["tracking", "held", "scaled", "reached"])
 def test_after_a_tick_that_missed_its_direction_the_ramp_starts_from_the_arms_twist(kind: str) -> None:
     # A rate limiter restarted from the motion the arm is in (closed form of ramp_step from J qd_prev):
-    # after a tick with no feasible scale (tracking) or held by a keep-out row; a merely scaled tick
-    # (direction kept) ramps on from its asked twist as before.
+    # after a tick with no feasible scale (tracking) or held by a keep-out row, for a changed request; a
+    # merely scaled tick (direction kept) ramps on from its asked twist as before, and a request the ramp
+    # has reached stays asked while held (pressing on keeps asking for the press).
     arm, q, frames, J = _reach7_state()
     ramp = TwistRamp(0.5, 1.5, T)
     last = resolve(arm, q, np.zeros(arm.n), DesiredTwist(np.array([0.0, 0.0, -0.14]), np.zeros(3)), T,
@@ -138,8 +139,13 @@ def test_after_a_tick_that_missed_its_direction_the_ramp_starts_from_the_arms_tw
         last = _copy(last, tracking=True, scale=0.0)
     elif kind == "held":
         last = _copy(last, rows_active=np.array([False, True]))
-    else:
+    elif kind == "scaled":
         last = _copy(last, scale=0.4, rows_active=np.array([False, False]))
+    else:
+        last = _copy(last, rows_active=np.array([False, True]))
+        press = DesiredTwist(last.twist_desired[:3], last.twist_desired[3:])
+        assert ramped(ramp, press, frames, J, qd_prev, last, _Caps()).linear.tolist() == [0.0, 0.0, -0.14]
+        return
     tw = DesiredTwist(np.array([0.0, 0.1, 0.0]), np.zeros(3))
     out = ramped(ramp, tw, frames, J, qd_prev, last, _Caps())
     start = J @ qd_prev if kind != "scaled" else last.twist_desired

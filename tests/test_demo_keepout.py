@@ -102,9 +102,10 @@ def test_the_demo_presses_toward_the_bench_stops_short_and_slides_away(monkeypat
     assert "keepout_limiting" in events
     assert any(f.get("limited by", "").startswith("KEEP-OUT") for f in panels["press toward the bench"])
     # then it slides along the bench and lifts off, followed in full
-    # The demo config ramps the asked twist ([speed] linear_accel_max, service/shaping.py): the ask turns
-    # from the press twist to the slide twist in |v_slide - v_press| / a_lin s, pressing on the bench
-    # (held back by the damper) meanwhile; every report after that turn runs at the full scale.
+    # The demo config ramps the asked twist ([speed] linear_accel_max, service/shaping.py): after the hold
+    # at the bench the ask ramps from the arm's own twist (about 0) to the slide twist, in at most
+    # |v_slide - v_press| / a_lin s (the turn from the press twist, the bound before that restart rule);
+    # every report after that runs at the full scale.
     v_press = np.array(demo._PRESS.twist(0.0)[0])
     v_slide = np.array(demo._SLIDE.twist(0.0)[0])
     turn_s = float(np.linalg.norm(v_slide - v_press)) / cfg.speed.linear_accel_max

@@ -415,7 +415,7 @@ def run(argv: list[str] | None = None) -> int:
               file=sys.stderr)
         return 2
     if args.with_dashboard:
-        return run_pairs(rates, args.seconds, args.rt_priority, args.json)
+        return run_pairs(rates, args.seconds, args.rt_priority, args.json, args.dashboard_nice)
     results = []
     for rate in rates:
         for flood in (False, True) if args.flood else (False,):

@@ -45,8 +45,13 @@ class DashboardBeside:
     dashboard load watching that service and returns once the load's warm-up is over; on exit it ends
     the load and keeps its figures in `figures` (None when the load failed; `error` says why)."""
 
-    def __init__(self, arms: int = ARMS, health_hz: float = HEALTH_HZ, pages: int = PAGES) -> None:
+    def __init__(self, arms: int = ARMS, health_hz: float = HEALTH_HZ, pages: int = PAGES,
+                 nice: int | None = None, attach: bool = True) -> None:
+        """nice : the dashboard's --nice (None: its default). attach : the dashboard watches the service
+        under test (False: the same load, but the dashboard watches only the invented arms and one
+        endpoint nobody serves, so the service has no extra subscriber: the machine's load alone)."""
         self.arms, self.health_hz, self.pages = arms, health_hz, pages
+        self.nice, self.attach = nice, attach
         self.figures: dict[str, Any] | None = None
         self.error: str | None = None
         self._proc: subprocess.Popen | None = None
@@ -56,6 +61,14 @@ class DashboardBeside:
         self._ep = ep
         return self
 
+    def _target(self) -> str:
+        if self.attach:
+            return f"under-test={self._ep.output},{self._ep.control}"
+        from twistrate.service.bench.dashboard import _free_ports
+
+        out, ctl = _free_ports(2)
+        return f"nobody=tcp://127.0.0.1:{out},tcp://127.0.0.1:{ctl}"
+
     def __enter__(self) -> DashboardBeside:
         self._tmp = tempfile.TemporaryDirectory(prefix="twr-dash-bench-")
         self._json = Path(self._tmp.name) / "dashboard.json"
@@ -63,7 +76,8 @@ class DashboardBeside:
             [sys.executable, "-m", "twistrate.service.bench.dashboard", "--arms", str(self.arms),
              "--health-hz", f"{self.health_hz:g}", "--pages", str(self.pages), "--seconds",
              f"{LOAD_LIMIT_S:g}", "--until-stdin-closes", "--json", str(self._json),
-             "--attach", f"under-test={self._ep.output},{self._ep.control}"],
+             "--attach", self._target(),
+             *([] if self.nice is None else ["--dashboard-nice", str(self.nice)])],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         give_up = time.monotonic() + DASHBOARD_START_S + WARMUP_S + 30.0
         assert self._proc.stdout is not None
@@ -104,6 +118,10 @@ ROWS = (
     ("overruns", "overrun_fraction", "{:.3%}"),
     ("arrival -> publish p99", "arrival_to_publish_p99_us", "{:.0f} us"),
     ("service CPU", "cpu_fraction", "{:.1%}"),
+    ("  tick thread", "thread_tick", "{:.1%}"),
+    ("  ZeroMQ I/O thread", "thread_zmq_io", "{:.1%}"),
+    ("  main (control) thread", "thread_main", "{:.1%}"),
+    ("tick work median", "tick_work_median_us", "{:.0f} us"),
     ("floor overruns", "floor_overrun_fraction", "{:.3%}"),
     ("load average (after)", "load_average_after", "{:.2f}"),
 )
@@ -112,6 +130,8 @@ ROWS = (
 def _value(r: dict[str, Any], key: str) -> Any:
     if key == "floor_overrun_fraction":
         return (r.get("floor") or {}).get("overrun_fraction")
+    if key.startswith("thread_"):
+        return (r.get("thread_cpu_fraction") or {}).get(key.removeprefix("thread_"))
     return r.get(key)
 
 
@@ -140,14 +160,16 @@ def format_pair(pair: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def run_pairs(rates: list[float], seconds: float, rt_priority: int | None, json_file: str | None) -> int:
-    """Each rate without, then with the dashboard; print each pair; write JSON when asked."""
+def run_pairs(rates: list[float], seconds: float, rt_priority: int | None, json_file: str | None,
+              dashboard_nice: int | None = None) -> int:
+    """Each rate without, then with the dashboard; print each pair; write JSON when asked.
+    dashboard_nice : the dashboard's --nice (None: its default)."""
     from twistrate.service.bench.service import bench_rate  # the one service benchmark, called twice
 
     pairs = []
     for rate in rates:
         without = bench_rate(rate, seconds, rt_priority)
-        beside = DashboardBeside()
+        beside = DashboardBeside(nice=dashboard_nice)
         with_ = bench_rate(rate, seconds, rt_priority, beside=beside)
         with_["dashboard"] = beside.figures
         if beside.figures is None:
@@ -169,3 +191,6 @@ def add_option(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--with-dashboard", action="store_true",
                         help=f"run each rate twice: without, then with the dashboard attached ({ARMS} arms "
                              f"incl. the service under test at {HEALTH_HZ:g} health/s, {PAGES} pages)")
+    parser.add_argument("--dashboard-nice", type=int, default=None, metavar="N",
+                        help="with --with-dashboard: the dashboard's --nice N (default: the dashboard's "
+                             "own default; 0: its priority unchanged)")

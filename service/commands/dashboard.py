@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from twistrate.clients.watch.priority import add_nice_argument, lower_priority
 from twistrate.service.commands.watch import add_target_arguments, feeds_from_args
 from twistrate.solver.errors import TwistrateError
 
@@ -27,6 +28,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--host", default="127.0.0.1", help="address to serve the page on (default loopback)")
     parser.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"port (default {DEFAULT_PORT})")
     parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    add_nice_argument(parser)
     args = parser.parse_args(argv)
     try:
         import aiohttp  # noqa: F401
@@ -41,6 +43,7 @@ def main(argv: list[str] | None = None) -> int:
     from twistrate.clients.watch.model import Fleet
     from twistrate.clients.watch.terminal import CAUTIONS
 
+    lower_priority(args.nice)  # before any thread starts (the feeds start theirs in serve)
     print("\n".join(CAUTIONS), flush=True)
     try:
         feeds = feeds_from_args(args)

@@ -12,7 +12,9 @@ from twistrate.solver.errors import InputError, WireError
 STATUS = {"mode": "disabled", "health": "clear", "tick": 3, "tick_hz": 500.0, "health_hz": 50.0,
           "arm": "reach7", "n": 1, "holder": None, "lease_remaining_ms": None, "fault": None,
           "simulated": True, "reduced_speed": False, "position": [0.0], "twist_age_ms": None,
-          "joints_age_ms": None, "realtime": False, "instance": 1, "started_ns": 0}
+          "joints_age_ms": None, "realtime": False, "instance": 1, "started_ns": 0,
+          "keepout": None,
+          "limiting": {"by": "none", "joint": None, "bound": None, "link": None, "other": None}}
 
 
 def _event(instance):

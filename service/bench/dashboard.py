@@ -31,6 +31,8 @@ from typing import Any
 
 import numpy as np
 
+from twistrate.service.commands.help_text import first_paragraph
+
 DEFAULT_ARMS = 8
 DEFAULT_HEALTH_HZ = 50.0
 DEFAULT_PAGES = 10
@@ -281,7 +283,7 @@ def format_figures(res: dict[str, Any]) -> str:
 
 
 def run(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=first_paragraph(__doc__))
     parser.add_argument("--arms", type=int, default=DEFAULT_ARMS)
     parser.add_argument("--health-hz", type=float, default=DEFAULT_HEALTH_HZ)
     parser.add_argument("--pages", type=int, default=DEFAULT_PAGES)

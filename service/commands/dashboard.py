@@ -16,6 +16,7 @@ import argparse
 import sys
 
 from twistrate.clients.watch.priority import add_nice_argument, lower_priority
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.commands.watch import add_target_arguments, feeds_from_args
 from twistrate.solver.errors import TwistrateError
 
@@ -23,7 +24,7 @@ DEFAULT_PORT = 47380
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate dashboard", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate dashboard", description=first_paragraph(__doc__))
     add_target_arguments(parser)
     parser.add_argument("--host", default="127.0.0.1", help="address to serve the page on (default loopback)")
     parser.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"port (default {DEFAULT_PORT})")

@@ -17,17 +17,28 @@ DEFAULT_NICE = 10
 
 
 def lower_priority(increment: int) -> int:
-    """Add `increment` (0 ... 19) to this process's niceness; the niceness now.
+    """Add `increment` (0 ... 19) to this process's niceness, for every thread it has; the niceness now.
 
-    Call it before any thread starts: on Linux a niceness belongs to a thread and the threads it starts
-    inherit it, so every thread the dashboard starts afterwards (the feeds' receive and control threads,
-    ZeroMQ's I/O threads, the event loop's executor) runs at it. A refusal is not an error (the
-    niceness stays as it was).
+    On Linux a niceness belongs to a thread (setpriority with a thread id), and a thread starts with
+    its creator's. So every thread that exists now is set (threads started at import, such as a numeric
+    library's worker pool, included), and every thread started afterwards (the feeds' receive and
+    control threads, ZeroMQ's I/O threads, the event loop's executor) inherits it. Call it early. A
+    refusal is not an error: the niceness stays as it was.
     """
-    if increment > 0:
+    if increment <= 0:
+        return os.getpriority(os.PRIO_PROCESS, 0)
+    target = min(19, os.getpriority(os.PRIO_PROCESS, 0) + increment)
+    try:
+        threads = [int(t) for t in os.listdir("/proc/self/task")]
+    except OSError:  # no /proc: this thread only
+        threads = [0]
+    for tid in threads:
         with contextlib.suppress(OSError):
-            os.nice(increment)
-    return os.nice(0)
+            if os.getpriority(os.PRIO_PROCESS, tid) < target:
+                os.setpriority(os.PRIO_PROCESS, tid, target)
+    with contextlib.suppress(OSError):
+        os.setpriority(os.PRIO_PROCESS, 0, target)
+    return os.getpriority(os.PRIO_PROCESS, 0)
 
 
 def add_nice_argument(parser: argparse.ArgumentParser) -> None:

@@ -416,7 +416,8 @@ def run(argv: list[str] | None = None) -> int:
               file=sys.stderr)
         return 2
     if args.with_dashboard:
-        return run_pairs(rates, args.seconds, args.rt_priority, args.json, args.dashboard_nice)
+        return run_pairs(rates, args.seconds, args.rt_priority, args.json, args.dashboard_nice,
+                         args.dashboard_detached)
     results = []
     for rate in rates:
         for flood in (False, True) if args.flood else (False,):

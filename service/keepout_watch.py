@@ -43,6 +43,9 @@ class KeepoutWatch:
         self.engagements = 0
         #: the nearest pair any health report found: (distance m, link, other), or None
         self.closest: tuple[float, str, str] | None = None
+        #: the newest health report's nearest pair (wire.KeepoutNearest), or None (no keep-out, no report
+        #: yet); the `status` op replies with it
+        self.nearest: wire.KeepoutNearest | None = None
 
     def step(self, res: Resolution | None) -> None:
         """Book one tick: res its resolution, or None when it did not solve (not running)."""
@@ -66,25 +69,34 @@ class KeepoutWatch:
                 self.p.emit_event("keepout_released", f"no keep-out damper limited the scale for "
                                                       f"{self.hold_ticks} ticks; now {lim.by}")
 
-    def health(self, q: np.ndarray) -> dict[str, Any]:
-        """encode_health's `keepout` and `limiting` arguments at the tick's joint state q (n,)."""
+    def limiting(self) -> wire.Limiting:
+        """The constraint that limited the last solved tick's scale, as the wire names it."""
         lim = self.current
         if lim.by == LIMIT_JOINT:
-            wire_lim = wire.Limiting(lim.by, lim.joint, lim.bound)
-        elif lim.by == LIMIT_KEEPOUT:
+            return wire.Limiting(lim.by, lim.joint, lim.bound)
+        if lim.by == LIMIT_KEEPOUT:
             link, other, _ = self.links[lim.pair]
-            wire_lim = wire.Limiting(lim.by, link=link, other=other)
-        else:
-            wire_lim = wire.Limiting(lim.by)
+            return wire.Limiting(lim.by, link=link, other=other)
+        return wire.Limiting(lim.by)
+
+    def status(self) -> dict[str, Any]:
+        """The `status` op's `keepout` (the newest health report's nearest pair) and `limiting` (the last
+        solved tick's) fields."""
+        return {"keepout": self.nearest, "limiting": self.limiting()}
+
+    def health(self, q: np.ndarray) -> dict[str, Any]:
+        """encode_health's `keepout` and `limiting` arguments at the tick's joint state q (n,)."""
+        wire_lim = self.limiting()
         ko = self.p.keepout
         found = None if ko is None else ko.nearest(self.p.kinematics(q)[0], q)
         if found is None:
+            self.nearest = None
             return {"keepout": None, "limiting": wire_lim}
         d, pair = found
         link, other, zone = self.links[pair]
         if self.closest is None or d < self.closest[0]:
             self.closest = (d, link, other)
         bound = wire.MAX_KEEPOUT_DISTANCE_M
-        return {"keepout": wire.KeepoutNearest(min(bound, max(-bound, d)), link, other,
-                                               "zone" if zone else "link"),
-                "limiting": wire_lim}
+        self.nearest = wire.KeepoutNearest(min(bound, max(-bound, d)), link, other,
+                                           "zone" if zone else "link")
+        return {"keepout": self.nearest, "limiting": wire_lim}

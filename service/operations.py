@@ -76,4 +76,5 @@ def status(p: Pipeline, now: int) -> dict[str, Any]:
         "joints_age_ms": None if q is None or intake.q_rx_ns == 0 else (now - intake.q_rx_ns) / 1e6,
         "realtime": is_realtime(),  # the tick thread's own policy (status runs on it)
         "instance": p.reports.instance, "started_ns": p.reports.started_ns,
+        **p.keepout_watch.status(),  # keepout (the newest health report's nearest pair), limiting
     }

@@ -74,7 +74,9 @@ class Peer:
                     "n": N, "holder": None, "lease_remaining_ms": None, "fault": None, "simulated": True,
                     "reduced_speed": False, "position": [0.0] * N, "twist_age_ms": None,
                     "joints_age_ms": None, "realtime": False,
-                    "instance": 7, "started_ns": 1_700_000_000_000_000_000}
+                    "instance": 7, "started_ns": 1_700_000_000_000_000_000,
+                    "keepout": None,
+                    "limiting": {"by": "none", "joint": None, "bound": None, "link": None, "other": None}}
         return {}
 
     def _answer(self, frames: list[bytes]) -> None:

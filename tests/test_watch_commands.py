@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -23,6 +24,7 @@ from service_harness import config_dict, make_config, reap, running_service, twi
 
 from twistrate.clients.watch.dashboard import Dashboard  # noqa: E402
 from twistrate.clients.watch.model import Fleet  # noqa: E402
+from twistrate.clients.watch.priority import DEFAULT_NICE  # noqa: E402
 from twistrate.service import security  # noqa: E402
 from twistrate.service.commands import watch as watch_cmd  # noqa: E402
 from twistrate.service.wire.discovery import write_endpoints  # noqa: E402
@@ -120,6 +122,17 @@ def test_curve_service_is_watched_with_the_clients_keys(tmp_path):
             assert fleet.arm("x").received["health"] == 0 and not fleet.arm("x").connected
 
 
+def _niceness_of_threads(pid: int) -> dict[str, int]:
+    """Thread name -> niceness of every thread of a process (Linux proc(5): /proc/PID/task/TID/stat,
+    field 19 is the nice value; field 2 the name)."""
+    out = {}
+    for task in os.listdir(f"/proc/{pid}/task"):
+        with open(f"/proc/{pid}/task/{task}/stat") as f:
+            head, rest = f.read().rsplit(")", 1)
+        out[f"{head.split('(', 1)[1]}/{task}"] = int(rest.split()[16])
+    return out
+
+
 def test_dashboard_command_serves_a_running_service(tmp_path):
     with running_service(make_config()) as run:
         path = tmp_path / "cell-a.toml"
@@ -148,9 +161,13 @@ def test_dashboard_command_serves_a_running_service(tmp_path):
             import uvloop
 
             page, frame = uvloop.run(fetch())
+            threads = _niceness_of_threads(proc.pid)
         finally:
             proc.terminate()
             reap(proc)
+    # it lowered its own priority before starting a thread: every thread (the feed's receive and control
+    # threads, ZeroMQ's I/O threads, the event loop's) runs at the default niceness above ours
+    assert len(threads) >= 4 and set(threads.values()) == {min(19, os.nice(0) + DEFAULT_NICE)}, threads
     assert "Arms on watch" in page
     arm = frame["arms"][0]
     assert arm["name"] == "cell-a" and arm["arm"] == "reach7" and arm["mode"] == "disabled"
@@ -186,3 +203,23 @@ def test_watch_command_in_tmux_against_a_running_service(tmp_path):
     assert max(len(line) for line in lines) <= 80
     assert sum(bool(re.match(r"│ \S+ +\[[.|<>]+\]", line)) for line in lines) == 7  # a row per joint
     assert lines[1].startswith("Not a safety-rated function")  # the cautions, unwrapped
+
+
+def test_nice_option_takes_0_to_19_and_lowers_the_priority_of_the_calling_process(capsys):
+    from twistrate.clients.watch.priority import add_nice_argument
+
+    parser = argparse.ArgumentParser(prog="dash")
+    add_nice_argument(parser)
+    assert parser.parse_args([]).nice == DEFAULT_NICE and parser.parse_args(["--nice", "0"]).nice == 0
+    for bad in ("20", "-1", "x"):
+        with pytest.raises(SystemExit):
+            parser.parse_args(["--nice", bad])
+        assert "--nice" in capsys.readouterr().err
+    # in a child process (the niceness of this one stays): --nice 3 raises it by 3 (nice(2))
+    code = (
+        "import os; from twistrate.clients.watch.priority import lower_priority as f; "
+        "a = os.nice(0); b = f(3); c = f(0); print(a, b, c)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    a, b, c = map(int, out.split())
+    assert b == min(19, a + 3) and c == b

@@ -144,3 +144,32 @@ def test_foresight_before_any_health_message_says_so():
     fleet = Fleet()
     fleet.arm("quiet").set_status({"mode": "disabled", "holder": None}, 0.0)
     assert "at these rates: n/a (no health message yet)" in render_text(fleet, 0.5)
+
+
+def test_keepout_line_names_the_pair_and_the_limiting_constraint_within_80_columns():
+    """The keep-out row reads what the newest health message's `keepout` and `limiting` say
+    (docs/protocol.md 7.4): none configured; a zone pair and a joint bound; a keep-out damper on the
+    nearest pair; a self pair with a different limiting pair."""
+    fleet = _fleet_at(1.0, names=("left",))
+    view = fleet.arms["left"]
+    msg = FakeArm("left", phase=0.0, period_s=12.0)
+    health = next(m for kind, m in msg.messages(1.02, 1.7e9) if kind == "health")
+    cases = [
+        (None, {"by": "none"}, "keep-out none configured   limit none"),
+        ({"nearest_m": 0.0412, "link": "bend", "other": "table", "other_kind": "zone"},
+         {"by": "joint", "joint": 1, "bound": "velocity"},
+         "keep-out 0.041 m bend to table   limit lift velocity"),
+        ({"nearest_m": 0.03, "link": "nod", "other": "table", "other_kind": "zone"},
+         {"by": "keepout", "link": "nod", "other": "table"},
+         "keep-out 0.030 m nod to table   limit keep-out, this pair"),
+        ({"nearest_m": -0.002, "link": "nod", "other": "turn", "other_kind": "link"},
+         {"by": "keepout", "link": "bend", "other": "wall"},
+         "keep-out -0.002 m nod to turn (self)   limit keep-out bend to wall"),
+    ]
+    for keepout, limiting, expected in cases:
+        fleet.feed("left", "health", {**health, "keepout": keepout, "limiting": limiting}, 1.02)
+        lines = render_text(fleet, 1.02).splitlines()
+        row = [line for line in lines if "keep-out" in line]
+        assert len(row) == 1 and expected in row[0], (expected, row)
+        assert max(len(line) for line in lines) <= WIDTH
+    assert view.latest["keepout"]["other_kind"] == "link" and view.latest["limiting"]["by"] == "keepout"

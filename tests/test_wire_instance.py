@@ -12,7 +12,9 @@ from twistrate.solver.errors import InputError, WireError
 STATUS = {"mode": "disabled", "health": "clear", "tick": 3, "tick_hz": 500.0, "health_hz": 50.0,
           "arm": "reach7", "n": 1, "holder": None, "lease_remaining_ms": None, "fault": None,
           "simulated": True, "reduced_speed": False, "position": [0.0], "twist_age_ms": None,
-          "joints_age_ms": None, "realtime": False, "instance": 1, "started_ns": 0}
+          "joints_age_ms": None, "realtime": False, "instance": 1, "started_ns": 0,
+          "keepout": None,
+          "limiting": {"by": "none", "joint": None, "bound": None, "link": None, "other": None}}
 
 
 def _event(instance):
@@ -86,3 +88,35 @@ def test_status_without_the_identity_is_refused():
     with pytest.raises(WireError) as info:
         wire.decode_reply(msgpack.packb(good))
     assert info.value.reason == "missing_field"
+
+
+_NEAR = {"nearest_m": 0.125, "link": "elbow", "other": "table", "other_kind": "zone"}
+
+
+def test_status_keepout_and_limiting_round_trip():
+    # the maps of the health message (docs/protocol.md 7.4), in the status reply (8.2)
+    result = {**STATUS, "keepout": _NEAR,
+              "limiting": {"by": "keepout", "joint": None, "bound": None, "link": "elbow", "other": "table"}}
+    msg = wire.decode_reply(wire.encode_reply(seq=4, op="status", result=result, stamp_ns=6))
+    assert msg.result == result
+    tuples = {**STATUS, "keepout": wire.KeepoutNearest(*_NEAR.values()),
+              "limiting": wire.Limiting("joint", 0, "velocity")}
+    msg = wire.decode_reply(wire.encode_reply(seq=4, op="status", result=tuples, stamp_ns=6))
+    assert msg.result["keepout"] == _NEAR
+    joint = {"by": "joint", "joint": 0, "bound": "velocity", "link": None, "other": None}
+    assert msg.result["limiting"] == joint
+
+
+@pytest.mark.parametrize(("field", "key", "bad", "reason"), [
+    ("keepout", "nearest_m", float("nan"), "non_finite"), ("keepout", "other_kind", "floor", "bad_value"),
+    ("limiting", "by", "wall", "bad_value"), ("limiting", "joint", 3, "bad_value")])
+def test_status_decoder_refuses_a_bad_keepout_or_limiting(field, key, bad, reason):
+    result = {**STATUS, "keepout": _NEAR,
+              "limiting": {"by": "joint", "joint": 0, "bound": "position", "link": None, "other": None}}
+    good = msgpack.unpackb(wire.encode_reply(seq=4, op="status", result=result, stamp_ns=6))
+    good["result"][field][key] = bad  # joint 3 is out of range for STATUS's n = 1
+    with pytest.raises(WireError) as info:
+        wire.decode_reply(msgpack.packb(good))
+    assert info.value.reason == reason and f"reply(status).result.{field}.{key}" in str(info.value)
+    with pytest.raises(InputError, match=rf"result\.{field}\.{key}"):
+        wire.encode_reply(seq=4, op="status", result={**result, field: {**result[field], key: bad}})

@@ -25,6 +25,7 @@ from typing import Any
 from aiohttp import WSMsgType, web
 
 from twistrate.clients.watch.model import Fleet
+from twistrate.clients.watch.priority import add_nice_argument, lower_priority
 
 log = logging.getLogger("twistrate.dashboard")
 
@@ -243,7 +244,9 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--host", default="127.0.0.1", help="address to serve on (default loopback)")
     parser.add_argument("--port", type=int, default=47380, help="port (0: any free one)")
     parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    add_nice_argument(parser)
     args = parser.parse_args(argv)
+    lower_priority(args.nice)  # first: before any thread starts
     print("\n".join(CAUTIONS), flush=True)
     feeds: list[Any] = []
     try:

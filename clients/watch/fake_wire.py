@@ -84,6 +84,8 @@ class FakeService:
             "realtime": False,
             "instance": self.arm.instance,
             "started_ns": self.started_ns,
+            "keepout": None,
+            "limiting": {"by": "none", "joint": None, "bound": None, "link": None, "other": None},
         }
 
     def _answer(self) -> None:

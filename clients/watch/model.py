@@ -17,6 +17,9 @@ caller (no clock here), and keeps:
 - the events as a list (newest last), with the model's own `gone` and `back` entries;
 - the foresight of the newest health message: the time to the pinched threshold along the current
   rates and, per joint, the time to its position limit, with the joint that gets there first;
+- the keep-out figures of the newest health message: the nearest keep-out pair (`keepout`: nearest_m,
+  link, other, other_kind; None without keep-out) and the constraint that limited the scale
+  (`limiting`: by, joint, bound, link, other);
 - gone / back: an arm is gone when nothing arrived for `gone_after_s`, and back with the next message;
 - restarts: a new instance id (status and event, docs/protocol.md section 6) marks a restarted service;
   a tick count that goes backwards only does so while no id is known (with an id it waits for one).
@@ -57,6 +60,9 @@ SERIES = (
     "scale",
     "damping",
 )
+#: the fields of health.keepout and health.limiting (docs/protocol.md 7.4)
+KEEPOUT_FIELDS = ("nearest_m", "link", "other", "other_kind")
+LIMITING_FIELDS = ("by", "joint", "bound", "link", "other")
 _QUOTED = re.compile(r"'([^']*)'|\"([^\"]*)\"")
 
 
@@ -84,6 +90,15 @@ def _flat(v: Any) -> list[float | None] | None:
     elif v is not None and v and isinstance(v[0], (list, tuple)):
         v = [x for row in v for x in row]
     return _floats(v)
+
+
+def _fields(v: Any, names: tuple[str, ...]) -> dict[str, Any] | None:
+    """A keepout or limiting value (a named tuple, a map, or None) as a plain map of `names`; numbers
+    not finite become None."""
+    if v is None:
+        return None
+    out = {k: (v.get(k) if isinstance(v, Mapping) else getattr(v, k, None)) for k in names}
+    return {k: _num(x) if isinstance(x, float) else x for k, x in out.items()}
 
 
 def _int(v: Any) -> int | None:
@@ -219,6 +234,9 @@ class ArmView:
             "time_to_limit_s": _floats(_get(msg, "time_to_limit_s")),
             "first_limit_joint": _int(_get(msg, "first_limit_joint")),
             "time_to_first_limit_s": _num(_get(msg, "time_to_first_limit_s")),
+            # keep-out (docs/protocol.md 7.4): the nearest pair (None without keep-out), what limited
+            "keepout": _fields(_get(msg, "keepout"), KEEPOUT_FIELDS),
+            "limiting": _fields(_get(msg, "limiting"), LIMITING_FIELDS),
         }
         self.rejected = {str(k): int(v) for k, v in (_get(msg, "rejected") or {}).items()}
         self.overruns = int(_get(msg, "overruns", 0))

@@ -6,7 +6,8 @@ their marks (clear `ok`, narrow `!`, pinched `!!`) and how long each has held; m
 linear, angular) and the smallest singular value against the thresholds, with a strip of the last
 seconds of the smallest singular value (each character one time bucket; `:` marks below narrow,
 `#` below pinched); the singular values; scale, damping, the measured tick rate and overruns; refused
-input by reason; the lease holder; the foresight along the current rates (time to the pinched
+input by reason; the lease holder; the nearest keep-out pair and what limited the scale (a joint
+bound, a keep-out damper or nothing); the foresight along the current rates (time to the pinched
 threshold, the joint that reaches its position limit first and when); each joint's position within
 its range and its rate against its limit as bars, with its time to that limit; the newest events.
 """
@@ -91,6 +92,38 @@ def foresight_line(view: ArmView) -> Text:
         name = view.joints[first]["name"] if first < len(view.joints) else f"j{first + 1}"
         when = lt.get("time_to_first_limit_s")
         t.append(f"{name} in {secs(when)}", style="bold yellow" if when is not None and when < 2.0 else "")
+    return t
+
+
+def _joint_name(view: ArmView, i: int) -> str:
+    return str(view.joints[i]["name"])[:10] if i < len(view.joints) else f"j{i + 1}"
+
+
+def keepout_line(view: ArmView) -> Text:
+    """The newest health message's nearest keep-out pair and the constraint that limited the scale."""
+    lt = view.latest
+    if "tick" not in lt:
+        return Text("keep-out n/a (no health message yet)", style="dim")
+    ko, lim = lt.get("keepout"), lt.get("limiting") or {}
+    t = Text("keep-out ")
+    if ko is None:
+        t.append("none configured", style="dim")
+    else:
+        d = ko.get("nearest_m")
+        self_pair = " (self)" if ko.get("other_kind") == "link" else ""
+        t.append(f"{_fmt(d, '.3f', ' m')} {ko.get('link')} to {ko.get('other')}{self_pair}")
+    t.append("   limit ")
+    by = lim.get("by")
+    if by == "joint" and lim.get("joint") is not None:
+        t.append(f"{_joint_name(view, int(lim['joint']))} {lim.get('bound')}", style="bold yellow")
+    elif by == "keepout":
+        same = ko is not None and (ko.get("link"), ko.get("other")) == (lim.get("link"), lim.get("other"))
+        t.append(
+            "keep-out" + (", this pair" if same else f" {lim.get('link')} to {lim.get('other')}"),
+            style="bold yellow",
+        )
+    else:
+        t.append("none" if by == "none" else "n/a", style="dim")
     return t
 
 
@@ -249,6 +282,7 @@ def render_arm(view: ArmView, now: float) -> Panel:
     )
     holder = view.holder or "nobody"
     lines.append(Text(f"lease held by {holder}   refused {total}" + (f": {by}" if by else "")))
+    lines.append(keepout_line(view))
     lines.append(foresight_line(view))
     lines.append(_joints_table(view))
     events = list(view.events)[-EVENTS_SHOWN:]

@@ -31,6 +31,8 @@ from typing import Any
 
 import numpy as np
 
+from twistrate.service.commands.help_text import first_paragraph
+
 DEFAULT_ARMS = 8
 DEFAULT_HEALTH_HZ = 50.0
 DEFAULT_PAGES = 10
@@ -55,6 +57,15 @@ def _cpu_s(pid: int) -> float:
     with open(f"/proc/{pid}/stat") as f:
         fields = f.read().rsplit(")", 1)[1].split()
     return (int(fields[11]) + int(fields[12])) / CLK_TCK
+
+
+def _nice(pid: int) -> int | None:
+    """The niceness of a process's main thread (/proc/PID/stat field 19), None when gone."""
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return int(f.read().rsplit(")", 1)[1].split()[16])
+    except (OSError, ValueError, IndexError):
+        return None
 
 
 async def _page(url: str, stop: asyncio.Event, out: dict[str, Any]) -> None:
@@ -101,8 +112,10 @@ class DashboardLoad:
         health_hz: float = DEFAULT_HEALTH_HZ,
         pages: int = DEFAULT_PAGES,
         services: tuple[tuple[str, str, str], ...] = (),
+        nice: int | None = None,
     ) -> None:
         self.arms, self.health_hz, self.pages, self.services = arms, health_hz, pages, services
+        self.nice = nice  # the dashboard's --nice (None: its default)
         self.fakes: list[Any] = []
         self.proc: subprocess.Popen | None = None
         self.out: dict[str, Any] = {"measuring": False}
@@ -124,8 +137,9 @@ class DashboardLoad:
             self.fakes.append(FakeService(f"arm{i + 1}", out, ctl, self.health_hz, phase=1.3 * i).start())
             connect += ["--connect", f"arm{i + 1}={out},{ctl}"]
         port = ports[-1]
+        nice = [] if self.nice is None else ["--nice", str(self.nice)]
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "twistrate.clients.watch.dashboard", *connect, "--port", str(port)],
+            [sys.executable, "-m", "twistrate.clients.watch.dashboard", *connect, "--port", str(port), *nice],
             stdout=subprocess.DEVNULL,
             stderr=subprocess.PIPE,
         )
@@ -176,6 +190,7 @@ class DashboardLoad:
         assert self.proc is not None
         self._t.append((_cpu_s(self.proc.pid), time.process_time(), time.monotonic()))
         self.out["measuring"] = False
+        self.out["dashboard_nice"] = _nice(self.proc.pid)
 
     def __exit__(self, *exc: object) -> None:
         if self._loop is not None and self._stop is not None:
@@ -215,6 +230,7 @@ class DashboardLoad:
                 round(f.published_health / f.elapsed(), 1) for f in self.fakes
             ],
             "bench_process_cpu_fraction": round((own1 - own0) / window, 4),
+        "dashboard_nice": self.out.get("dashboard_nice"),
             "load_average": list(os.getloadavg()),
         }
 
@@ -228,11 +244,12 @@ def until_stdin_closes(seconds: float) -> None:
 
 
 def measure(arms: int, health_hz: float, pages: int, seconds: float,
-            services: tuple[tuple[str, str, str], ...] = (), until: Any = time.sleep) -> dict[str, Any]:
+            services: tuple[tuple[str, str, str], ...] = (), until: Any = time.sleep,
+            nice: int | None = None) -> dict[str, Any]:
     """Start the publishers, the dashboard and the pages, measure `seconds` after WARMUP_S ("measuring"
     is printed when the window opens: bench service --with-dashboard waits for it); the figures.
     until(seconds) : how the window is waited out (time.sleep, or until_stdin_closes)."""
-    with DashboardLoad(arms, health_hz, pages, services) as load:
+    with DashboardLoad(arms, health_hz, pages, services, nice) as load:
         time.sleep(WARMUP_S)
         load.measure_start()
         print("measuring", flush=True)
@@ -253,7 +270,8 @@ def format_figures(res: dict[str, Any]) -> str:
     return "\n".join([
         f"dashboard with {res['arms']} arms at {res['health_hz']:g} health/s and {res['pages']} pages, "
         f"{res['window_s']} s:",
-        f"  dashboard CPU {100 * res['dashboard_cpu_fraction']:.1f} % of one core",
+        f"  dashboard CPU {100 * res['dashboard_cpu_fraction']:.1f} % of one core (niceness "
+        f"{res.get('dashboard_nice', 'n/a')})",
         f"  frames per page {span(res['frames_per_s_per_page'])} /s, {num(res['frame_bytes_median'], '.0f')} "
         "bytes (median)",
         f"  data age on arrival: median {num(res['data_age_ms_median'], '.1f')} ms, "
@@ -265,7 +283,7 @@ def format_figures(res: dict[str, Any]) -> str:
 
 
 def run(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench dashboard", description=first_paragraph(__doc__))
     parser.add_argument("--arms", type=int, default=DEFAULT_ARMS)
     parser.add_argument("--health-hz", type=float, default=DEFAULT_HEALTH_HZ)
     parser.add_argument("--pages", type=int, default=DEFAULT_PAGES)
@@ -276,6 +294,8 @@ def run(argv: list[str] | None = None) -> int:
     parser.add_argument("--until-stdin-closes", action="store_true",
                         help="end the window when standard input closes (at most --seconds; used by "
                              "`twistrate bench service --with-dashboard`)")
+    parser.add_argument("--dashboard-nice", type=int, default=None, metavar="N",
+                        help="the dashboard's --nice N (default: the dashboard's own default)")
     args = parser.parse_args(argv)
     services = []
     for text in args.attach:
@@ -283,7 +303,7 @@ def run(argv: list[str] | None = None) -> int:
         out, _, ctl = rest.partition(",")
         services.append((name, out, ctl))
     res = measure(args.arms, args.health_hz, args.pages, args.seconds, tuple(services),
-                  until_stdin_closes if args.until_stdin_closes else time.sleep)
+                  until_stdin_closes if args.until_stdin_closes else time.sleep, args.dashboard_nice)
     if args.json:  # first: a reader waiting for the figures gets them even if printing fails
         with open(args.json, "w") as f:
             json.dump(res, f, indent=2)

@@ -30,6 +30,7 @@ from typing import Any
 
 import numpy as np
 
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.solver.arm import Arm
 from twistrate.solver.errors import TwistrateError
 from twistrate.solver.kinematics import forward, geometric_jacobian
@@ -169,7 +170,7 @@ def format_result(r: dict[str, Any]) -> str:
 
 def run(argv: list[str] | None = None) -> int:
     """`twistrate bench limits [--ticks N] [--seed S] [--arms A,B] [--json FILE]`."""
-    parser = argparse.ArgumentParser(prog="twistrate bench limits", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench limits", description=first_paragraph(__doc__))
     parser.add_argument("--ticks", type=int, default=DEFAULT_TICKS, help="random ticks in all (default 10^6)")
     parser.add_argument("--seed", type=int, default=11, help="random seed (default 11)")
     parser.add_argument("--arms", default=",".join(DEFAULT_ARMS), help="example arms, comma-separated")

@@ -56,6 +56,7 @@ import numpy as np
 from twistrate.clients.link import Endpoints, Link
 from twistrate.service.bench.service_dashboard import add_option as add_dashboard_option
 from twistrate.service.bench.service_dashboard import run_pairs
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.tick import (
     ARRIVAL_TARGET_EXTRA_US,
     DEFAULT_RT_PRIORITY,
@@ -386,7 +387,7 @@ def format_result(r: dict[str, Any]) -> str:
 
 def run(argv: list[str] | None = None) -> int:
     """`twistrate bench service [--json FILE] [--seconds S] [--rates HZ,HZ] [--rt-priority N] [--flood]`."""
-    parser = argparse.ArgumentParser(prog="twistrate bench service", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench service", description=first_paragraph(__doc__))
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS, help="measured time per rate, s")
     parser.add_argument("--rates", default=",".join(f"{r:g}" for r in DEFAULT_RATES),
@@ -415,7 +416,8 @@ def run(argv: list[str] | None = None) -> int:
               file=sys.stderr)
         return 2
     if args.with_dashboard:
-        return run_pairs(rates, args.seconds, args.rt_priority, args.json)
+        return run_pairs(rates, args.seconds, args.rt_priority, args.json, args.dashboard_nice,
+                         args.dashboard_detached)
     results = []
     for rate in rates:
         for flood in (False, True) if args.flood else (False,):

@@ -40,6 +40,7 @@ from twistrate.service import wire
 from twistrate.service.bench.service import CONFIG_TEXT, cpu_seconds, load_average, measure_floor
 from twistrate.service.bench.soak_checks import identities, memory_growth, warmup_s
 from twistrate.service.bench.soak_source import source_main
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import WireError
 
@@ -309,7 +310,7 @@ def format_result(r: dict[str, Any]) -> str:
 
 def run(argv: list[str] | None = None) -> int:
     """`twistrate bench soak --minutes N [--rate HZ] [--json FILE] [--floor-seconds S]`."""
-    parser = argparse.ArgumentParser(prog="twistrate bench soak", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench soak", description=first_paragraph(__doc__))
     parser.add_argument("--minutes", type=float, default=60.0, help="how long the sources run (default 60)")
     parser.add_argument("--rate", type=float, default=1000.0, help="tick rate, Hz (default 1000)")
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")

@@ -38,6 +38,7 @@ from twistrate.clients.teleop.events import EV_KEY, RawEvent, ReplaySource, axis
 from twistrate.clients.teleop.profile import profile_from_dict
 from twistrate.clients.teleop.run import TeleopRun
 from twistrate.service.bench.service import CONFIG_TEXT, SERVE_START_S, _spawn, _stop, load_average
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import TwistrateError
 
@@ -247,7 +248,7 @@ def format_result(r: dict[str, Any]) -> str:
 
 
 def run(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate bench teleop", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench teleop", description=first_paragraph(__doc__))
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
                         help=f"measured stream length, s (default {DEFAULT_SECONDS:g})")
     parser.add_argument("--tick-hz", type=float, default=DEFAULT_TICK_HZ,

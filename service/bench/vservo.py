@@ -51,6 +51,7 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureSender
 from twistrate.service import wire
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.commands.vservo import (
     ANY_PORT,
     SERVE_START_S,
@@ -312,7 +313,7 @@ def format_result(r: dict[str, Any]) -> str:
 
 def run(argv: list[str] | None = None) -> int:
     """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--json FILE]`."""
-    parser = argparse.ArgumentParser(prog="twistrate bench vservo", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate bench vservo", description=first_paragraph(__doc__))
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
                         help="measured window per client, s (split over the rounds)")
     parser.add_argument("--rate", type=float, default=DEFAULT_RATE_HZ, help="service tick rate, Hz")

@@ -24,6 +24,7 @@ import zmq
 from twistrate.clients.link import Endpoints, Link
 from twistrate.clients.vservo.feed import MAX_MESSAGE_BYTES, RECEIVE_HWM
 from twistrate.service import wire
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.commands.vservo import ANY_PORT, SERVE_START_S, write_features_file
 from twistrate.service.wire.discovery import read_endpoints
 
@@ -85,7 +86,7 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="vservo_relay", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="vservo_relay", description=first_paragraph(__doc__))
     parser.add_argument("--endpoints-file", required=True, help="the service's endpoints file")
     parser.add_argument("--features-file", required=True, help="where to write the bound features socket")
     parser.add_argument("--seconds", type=float, default=120.0, help="stop after this long, s")

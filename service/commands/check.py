@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import ServiceConfig, load_config
 from twistrate.service.recorder import TIME_PLACEHOLDER
 from twistrate.service.tunables import tunable_ranges
@@ -38,7 +39,7 @@ def describe(config: ServiceConfig, arm: Arm) -> list[str]:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate check", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate check", description=first_paragraph(__doc__))
     parser.add_argument("config", help="the service TOML file")
     parser.add_argument("--quiet", "-q", action="store_true", help="print nothing when it is valid")
     args = parser.parse_args(argv)

@@ -23,7 +23,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "vservo": ("vservo", "close a camera loop (visual servoing); --synthetic: on a simulated cell"),
     "teleop": ("teleop", "jog the arm from a six-axis hand controller or the keyboard"),
     "bench": ("twistrate.service.bench.cli",
-              "benchmarks: `bench solver`, `bench service`, `bench keepout`, `bench vservo`, `bench teleop`"),
+              "the project's benchmarks (`twistrate bench --help` lists them)"),
     "plot": ("plot", "a figure of a recording (PNG, SVG)"),
     "watch": ("watch", "the arms in a terminal, a panel per arm (read-only)"),
     "dashboard": ("dashboard", "a web page watching one or more arms (read-only)"),

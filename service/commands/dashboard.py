@@ -15,6 +15,8 @@ from __future__ import annotations
 import argparse
 import sys
 
+from twistrate.clients.watch.priority import add_nice_argument, lower_priority
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.commands.watch import add_target_arguments, feeds_from_args
 from twistrate.solver.errors import TwistrateError
 
@@ -22,11 +24,12 @@ DEFAULT_PORT = 47380
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate dashboard", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate dashboard", description=first_paragraph(__doc__))
     add_target_arguments(parser)
     parser.add_argument("--host", default="127.0.0.1", help="address to serve the page on (default loopback)")
     parser.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"port (default {DEFAULT_PORT})")
     parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    add_nice_argument(parser)
     args = parser.parse_args(argv)
     try:
         import aiohttp  # noqa: F401
@@ -41,6 +44,7 @@ def main(argv: list[str] | None = None) -> int:
     from twistrate.clients.watch.model import Fleet
     from twistrate.clients.watch.terminal import CAUTIONS
 
+    lower_priority(args.nice)  # before any thread starts (the feeds start theirs in serve)
     print("\n".join(CAUTIONS), flush=True)
     try:
         feeds = feeds_from_args(args)

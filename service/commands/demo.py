@@ -33,6 +33,7 @@ from twistrate.clients.link import Endpoints, Link
 from twistrate.service import wire
 from twistrate.service.commands.demo_panel import PANEL_COLUMNS as PANEL_COLUMNS
 from twistrate.service.commands.demo_panel import Display, fit
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import ServiceConfig, config_from_dict, load_config
 from twistrate.service.control import ControlThread
 from twistrate.service.motion import speed_cap_factor
@@ -347,7 +348,7 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate demo", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate demo", description=first_paragraph(__doc__))
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
                         help=f"how long the scripted pass runs, s (default {DEFAULT_SECONDS:g}: all of it)")
     parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")

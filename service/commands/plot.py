@@ -17,6 +17,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.solver.errors import InputError, TwistrateError
 
 
@@ -73,7 +74,7 @@ def figure_of(recording: str | Path, out: str | Path, svg: bool = False, config_
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate plot", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate plot", description=first_paragraph(__doc__))
     parser.add_argument("recording", help="a recording (.trec) from `serve --record`, `record` or the demo")
     parser.add_argument("--out", help="the PNG to write (default: the recording's name with .png)")
     parser.add_argument("--svg", action="store_true", help="also write an SVG beside the PNG")

@@ -28,6 +28,7 @@ import zmq
 from twistrate.clients.link import Endpoints, Link
 from twistrate.clients.probe import probe
 from twistrate.service import wire
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import load_config
 from twistrate.service.recorder import Recorder, format_summary, plot_svg, read_recording, summarize
 from twistrate.service.recording_csv import write_csv
@@ -78,7 +79,7 @@ def record_stream(config_path: str | None, out: str, seconds: float | None, stop
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate record", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate record", description=first_paragraph(__doc__))
     parser.add_argument("--config", help="the service's TOML file (endpoints and arm)")
     parser.add_argument("--out", metavar="PATH", help="record to this file")
     parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")

@@ -21,6 +21,7 @@ import uvloop
 import zmq
 import zmq.asyncio
 
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import RT_PRIORITY_MAX, ServiceConfig, load_config
 from twistrate.service.control import ControlServer
 from twistrate.service.recorder import Recorder
@@ -77,7 +78,7 @@ async def run_control(service: Service, endpoints_file: str | None = None) -> No
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate serve", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate serve", description=first_paragraph(__doc__))
     parser.add_argument("--config", help="service TOML file (default: the packaged demo configuration)")
     parser.add_argument("--record", metavar="PATH",
                         help="record every tick to PATH (overrides [recorder] path; an existing file is "

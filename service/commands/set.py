@@ -20,6 +20,7 @@ from typing import Any
 from twistrate.clients.link import Link
 from twistrate.clients.probe import PROBE_TIMEOUT_S, probe
 from twistrate.service.commands.connect import add_endpoint_args, endpoints_from
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.solver.errors import ControlError, InputError, TwistrateError, field_error
 
 #: the name this command claims the lease under
@@ -43,7 +44,7 @@ def parse_assignments(items: list[str]) -> dict[str, Any]:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate set", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate set", description=first_paragraph(__doc__))
     add_endpoint_args(parser)
     parser.add_argument("assignments", nargs="+", metavar="NAME=VALUE", help="tunables to change")
     parser.add_argument("--json", action="store_true", help="print the tunables after the change as JSON")

@@ -9,6 +9,7 @@ import sys
 
 from twistrate.clients.link import Endpoints
 from twistrate.clients.probe import PROBE_TIMEOUT_S, probe
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import load_config
 from twistrate.service.sim_driver import SimDriver
 from twistrate.service.wire.discovery import read_endpoints
@@ -19,7 +20,7 @@ ENDPOINTS_WAIT_S = 20.0
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate sim", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate sim", description=first_paragraph(__doc__))
     parser.add_argument("--config", help="the service's TOML file (endpoints, arm, simulation settings)")
     parser.add_argument("--rate", type=float, help="joint-state publish rate, Hz (default: the tick rate)")
     parser.add_argument("--seconds", type=float, help="stop after this long (default: until SIGINT/SIGTERM)")

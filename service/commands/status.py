@@ -1,5 +1,7 @@
-"""`twistrate status`: one look at a running service (mode, lease holder, health, counters, tick timing),
-or one line saying that none answers (exit 1).
+"""`twistrate status`: one look at a running service, or one line saying that none answers (exit 1).
+
+It shows the mode, the lease holder, the health state, the counters, the tick timing, the nearest
+keep-out pair and what limits the scale.
 
     twistrate status [--config FILE | --endpoints-file FILE] [--json]
 """
@@ -14,11 +16,30 @@ from typing import Any
 from twistrate.clients.link import Link
 from twistrate.clients.probe import PROBE_TIMEOUT_S, probe
 from twistrate.service.commands.connect import add_endpoint_args, endpoints_from
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.solver.errors import TwistrateError
 
 
 def _us(ns: int | None) -> str:
     return "n/a" if ns is None else f"{ns / 1000:.0f} us"
+
+
+def keepout_text(status: dict[str, Any]) -> str:
+    """The status reply's nearest keep-out pair and limiting constraint, in words."""
+    ko, lim = status.get("keepout"), status.get("limiting") or {}
+    if ko is None:
+        near = "keep-out none configured"
+    else:
+        kind = "itself" if ko.get("other_kind") == "link" else "zone"
+        near = f"keep-out nearest {ko['nearest_m']:.4f} m: {ko['link']} to {ko['other']} ({kind})"
+    by = lim.get("by")
+    if by == "joint":
+        what = f"joint {lim.get('joint')} ({lim.get('bound')} bound)"
+    elif by == "keepout":
+        what = f"keep-out {lim.get('link')} to {lim.get('other')}"
+    else:
+        what = by or "n/a"
+    return f"{near}; scale limited by {what}"
 
 
 def format_status(status: dict[str, Any], counters: dict[str, int]) -> list[str]:
@@ -44,6 +65,7 @@ def format_status(status: dict[str, Any], counters: dict[str, int]) -> list[str]
         f"{counters.get('faults', 0)}, limit events {counters.get('limit_events', 0)}",
         f"  newest joint state {'n/a' if age is None else f'{age:.1f} ms'} old, newest twist "
         f"{'n/a' if twist_age is None else f'{twist_age:.1f} ms'} old",
+        f"  {keepout_text(status)}",
     ]
     refused = {k[len("rejected_"):]: v for k, v in counters.items()
                if k.startswith("rejected_") and k != "rejected_total" and v}
@@ -53,7 +75,7 @@ def format_status(status: dict[str, Any], counters: dict[str, int]) -> list[str]
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate status", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate status", description=first_paragraph(__doc__))
     add_endpoint_args(parser)
     parser.add_argument("--timeout", type=float, default=PROBE_TIMEOUT_S,
                         help=f"how long to wait for the reply, s (default {PROBE_TIMEOUT_S:g})")

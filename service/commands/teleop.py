@@ -30,6 +30,7 @@ from twistrate.clients.teleop.line import PlainLine, RichLine
 from twistrate.clients.teleop.profile import load_profile
 from twistrate.clients.teleop.run import TeleopRun
 from twistrate.service import wire
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import ConfigError, TwistrateError
 
@@ -47,7 +48,7 @@ DEFAULT_LEASE_MS = 1000
 
 
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="twistrate teleop", description=__doc__.splitlines()[0])
+    p = argparse.ArgumentParser(prog="twistrate teleop", description=first_paragraph(__doc__))
     p.add_argument("--list", action="store_true", help="list six-axis input devices and exit")
     p.add_argument("--device", help="device path (/dev/input/eventN) or part of its name "
                                     "(default: the profile's device.select, else the first six-axis device)")

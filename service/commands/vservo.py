@@ -40,6 +40,7 @@ from twistrate.clients.vservo.runner import Outcome, Runner
 from twistrate.clients.vservo.synthetic_feed import SyntheticPipeline
 from twistrate.service import wire
 from twistrate.service.commands.demo import CAUTIONS as DEMO_CAUTIONS
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import ServiceConfig, config_from_dict
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import ConfigError, TwistrateError
@@ -153,7 +154,7 @@ def decay_rate(times: list[float], norms: list[float | None], high: float = 1e-1
 
 
 def parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="twistrate vservo", description=__doc__.splitlines()[0])
+    p = argparse.ArgumentParser(prog="twistrate vservo", description=first_paragraph(__doc__))
     p.add_argument("--config", help="vservo TOML file (default: the packaged panel cell, "
                                     "configs/vservo/panel.toml)")
     p.add_argument("--synthetic", action="store_true",

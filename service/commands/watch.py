@@ -31,6 +31,7 @@ from typing import Any
 
 from twistrate.clients.link import CurveKeys, Endpoints
 from twistrate.clients.watch.wire_feed import WireFeed
+from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.config import load_config
 from twistrate.service.wire.discovery import read_endpoints
 from twistrate.solver.errors import InputError, TwistrateError, field_error
@@ -171,7 +172,7 @@ def feeds_from_args(args: argparse.Namespace) -> list[WireFeed]:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="twistrate watch", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="twistrate watch", description=first_paragraph(__doc__))
     add_target_arguments(parser)
     parser.add_argument("--screen", action="store_true", help="draw on the terminal's alternate screen")
     parser.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")

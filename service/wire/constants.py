@@ -180,7 +180,7 @@ REPLY_RESULTS: dict[str, frozenset[str]] = {
     "status": frozenset(("mode", "health", "tick", "tick_hz", "health_hz", "arm", "n", "holder",
                          "lease_remaining_ms",
                          "fault", "simulated", "reduced_speed", "position", "twist_age_ms", "joints_age_ms",
-                         "realtime", "instance", "started_ns")),
+                         "realtime", "instance", "started_ns", "keepout", "limiting")),
     "arm": frozenset(("name", "n", "joints", "home")),
     "counters": frozenset(("counters",)),
     "set": frozenset(("params",)),

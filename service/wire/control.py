@@ -50,7 +50,8 @@ from twistrate.service.wire.constants import (
     SEQ_MAX,
     STAMP_MAX,
 )
-from twistrate.service.wire.messages import ReplyMessage, RequestMessage
+from twistrate.service.wire.health import _dec_keepout, _dec_limiting, _enc_keepout, _enc_limiting
+from twistrate.service.wire.messages import KeepoutNearest, Limiting, ReplyMessage, RequestMessage
 from twistrate.solver.errors import InputError, WireError
 
 _REQUEST_HEADER = frozenset((*HEADER_KEYS, "op"))
@@ -161,6 +162,27 @@ def peek_request(data: bytes) -> tuple[int, str]:
 _STATUS_IDENTITY = (("instance", INSTANCE_MIN, INSTANCE_MAX), ("started_ns", 0, STAMP_MAX))
 
 
+def _status_keepout(result: Mapping[str, Any], encode: bool) -> dict[str, Any]:
+    """The status result with its `keepout` (nil or a map, as in health) and `limiting` (a map) checked:
+    encode takes each as its tuple (KeepoutNearest, Limiting) or its map; decode leaves maps."""
+    out = dict(result)
+    n = result["n"] if type(result.get("n")) is int and result["n"] > 0 else 1
+    ko, lim = result["keepout"], result["limiting"]
+    where_k, where_l = "reply(status).result.keepout", "reply(status).result.limiting"
+    if encode:
+        if isinstance(ko, Mapping):
+            ko = tuple(ko.get(f) for f in KeepoutNearest._fields)
+        if isinstance(lim, Mapping):
+            lim = tuple(lim.get(f) for f in Limiting._fields)
+        out["keepout"] = None if ko is None else _enc_keepout(ko, where_k)
+        out["limiting"] = _enc_limiting(lim, n, where_l)
+    else:
+        k = _dec_keepout(ko, where_k)
+        out["keepout"] = None if k is None else k._asdict()
+        out["limiting"] = _dec_limiting(lim, n, where_l)._asdict()
+    return out
+
+
 def _status_identity(result: dict[str, Any], check: Any) -> None:
     """Check the status result's `instance` and `started_ns` with check (enc_int or dec_int)."""
     for key, lo, hi in _STATUS_IDENTITY:
@@ -196,6 +218,8 @@ def encode_reply(*, seq: int, op: str, result: Mapping[str, Any] | None = None,
         if frozenset(result) != REPLY_RESULTS[op]:
             raise input_fail(f"reply({op}).result", sorted(result),
                              f"exactly the fields {sorted(REPLY_RESULTS[op])}")
+        if op == "status":
+            result = _status_keepout(result, encode=True)
         m["result"] = enc_plain(result, f"reply({op}).result")
         if op == "status":
             _status_identity(m["result"], enc_int)
@@ -227,5 +251,6 @@ def decode_reply(data: bytes) -> ReplyMessage:
     dec_plain(result, f"reply({op}).result")
     if op == "status":
         _status_identity(result, dec_int)
+        result = _status_keepout(result, encode=False)
     return ReplyMessage(seq, stamp, op, True, result, None, None)
 

@@ -144,60 +144,62 @@ def encode_health(*, seq: int, stamp_ns: int | None, tick: int, manipulability: 
     return pack(m, MAX_HEALTH_BYTES, KIND_HEALTH)
 
 
-def _enc_keepout(k: tuple) -> dict:
+def _enc_keepout(k: tuple, where: str = "health.keepout") -> dict:
+    """A KeepoutNearest as its wire map; where : the field name errors give (the health or status map)."""
     nearest_m, link, other, other_kind = k
-    return {"nearest_m": enc_num(nearest_m, "health.keepout.nearest_m", -MAX_KEEPOUT_DISTANCE_M,
+    return {"nearest_m": enc_num(nearest_m, f"{where}.nearest_m", -MAX_KEEPOUT_DISTANCE_M,
                                  MAX_KEEPOUT_DISTANCE_M),
-            "link": enc_str(link, "health.keepout.link", MAX_NAME_CHARS),
-            "other": enc_str(other, "health.keepout.other", MAX_NAME_CHARS),
-            "other_kind": enc_str(other_kind, "health.keepout.other_kind", MAX_NAME_CHARS,
+            "link": enc_str(link, f"{where}.link", MAX_NAME_CHARS),
+            "other": enc_str(other, f"{where}.other", MAX_NAME_CHARS),
+            "other_kind": enc_str(other_kind, f"{where}.other_kind", MAX_NAME_CHARS,
                                   KEEPOUT_OTHER_KINDS)}
 
 
-def _enc_limiting(k: tuple, n: int) -> dict:
+def _enc_limiting(k: tuple, n: int, where: str = "health.limiting") -> dict:
+    """A Limiting as its wire map (n joints); where : as for _enc_keepout."""
     by, joint, bound, link, other = k
-    by = enc_str(by, "health.limiting.by", MAX_NAME_CHARS, LIMITERS)
+    by = enc_str(by, f"{where}.by", MAX_NAME_CHARS, LIMITERS)
     out = {"by": by, "joint": None, "bound": None, "link": None, "other": None}
     if by == "joint":
-        out["joint"] = enc_int(joint, "health.limiting.joint", 0, n - 1)
-        out["bound"] = enc_str(bound, "health.limiting.bound", MAX_NAME_CHARS, BOUND_KINDS)
+        out["joint"] = enc_int(joint, f"{where}.joint", 0, n - 1)
+        out["bound"] = enc_str(bound, f"{where}.bound", MAX_NAME_CHARS, BOUND_KINDS)
     elif by == "keepout":
-        out["link"] = enc_str(link, "health.limiting.link", MAX_NAME_CHARS)
-        out["other"] = enc_str(other, "health.limiting.other", MAX_NAME_CHARS)
+        out["link"] = enc_str(link, f"{where}.link", MAX_NAME_CHARS)
+        out["other"] = enc_str(other, f"{where}.other", MAX_NAME_CHARS)
     if (by != "joint" and (joint is not None or bound is not None)) or \
             (by != "keepout" and (link is not None or other is not None)):
-        raise input_fail("health.limiting", tuple(k), "joint and bound only with by 'joint', link and other "
+        raise input_fail(where, tuple(k), "joint and bound only with by 'joint', link and other "
                          "only with by 'keepout'")
     return out
 
 
-def _dec_keepout(v: object) -> KeepoutNearest | None:
+def _dec_keepout(v: object, where: str = "health.keepout") -> KeepoutNearest | None:
     if v is None:
         return None
-    k = submap(v, "health.keepout", _KEEPOUT_KEYS)
+    k = submap(v, where, _KEEPOUT_KEYS)
     return KeepoutNearest(
-        dec_num(k["nearest_m"], "health.keepout.nearest_m", -MAX_KEEPOUT_DISTANCE_M, MAX_KEEPOUT_DISTANCE_M),
-        dec_str(k["link"], "health.keepout.link", MAX_NAME_CHARS),
-        dec_str(k["other"], "health.keepout.other", MAX_NAME_CHARS),
-        dec_str(k["other_kind"], "health.keepout.other_kind", MAX_NAME_CHARS, KEEPOUT_OTHER_KINDS))
+        dec_num(k["nearest_m"], f"{where}.nearest_m", -MAX_KEEPOUT_DISTANCE_M, MAX_KEEPOUT_DISTANCE_M),
+        dec_str(k["link"], f"{where}.link", MAX_NAME_CHARS),
+        dec_str(k["other"], f"{where}.other", MAX_NAME_CHARS),
+        dec_str(k["other_kind"], f"{where}.other_kind", MAX_NAME_CHARS, KEEPOUT_OTHER_KINDS))
 
 
-def _dec_limiting(v: object, n: int) -> Limiting:
-    k = submap(v, "health.limiting", _LIMITING_KEYS)
-    by = dec_str(k["by"], "health.limiting.by", MAX_NAME_CHARS, LIMITERS)
+def _dec_limiting(v: object, n: int, where: str = "health.limiting") -> Limiting:
+    k = submap(v, where, _LIMITING_KEYS)
+    by = dec_str(k["by"], f"{where}.by", MAX_NAME_CHARS, LIMITERS)
     joint = bound = link = other = None
     if by == "joint":
-        joint = dec_int(k["joint"], "health.limiting.joint", 0, n - 1)
-        bound = dec_str(k["bound"], "health.limiting.bound", MAX_NAME_CHARS, BOUND_KINDS)
+        joint = dec_int(k["joint"], f"{where}.joint", 0, n - 1)
+        bound = dec_str(k["bound"], f"{where}.bound", MAX_NAME_CHARS, BOUND_KINDS)
     elif by == "keepout":
-        link = dec_str(k["link"], "health.limiting.link", MAX_NAME_CHARS)
-        other = dec_str(k["other"], "health.limiting.other", MAX_NAME_CHARS)
+        link = dec_str(k["link"], f"{where}.link", MAX_NAME_CHARS)
+        other = dec_str(k["other"], f"{where}.other", MAX_NAME_CHARS)
     for name in ("joint", "bound") if by != "joint" else ():
         if k[name] is not None:
-            raise wire_fail("bad_value", f"health.limiting.{name}", k[name], f"nil when by is {by!r}")
+            raise wire_fail("bad_value", f"{where}.{name}", k[name], f"nil when by is {by!r}")
     for name in ("link", "other") if by != "keepout" else ():
         if k[name] is not None:
-            raise wire_fail("bad_value", f"health.limiting.{name}", k[name], f"nil when by is {by!r}")
+            raise wire_fail("bad_value", f"{where}.{name}", k[name], f"nil when by is {by!r}")
     return Limiting(by, joint, bound, link, other)
 
 

@@ -21,6 +21,12 @@ def test_bench_vservo_smoke_run_writes_every_figure(tmp_path: Path, capsys) -> N
         for key in ("sent_to_published", "sent_to_received"):
             assert r[key]["count"] >= r["frames"] - r["unanswered"] - 1
             assert 0.0 < r[key]["median_ms"] <= r[key]["p99_ms"] <= r[key]["max_ms"]
+        # the client's own record joins every answer (its timings file), and the three parts are times
+        # in causal order on one clock: each positive, together no longer than sent -> published
+        parts = [r[part] for part in vservo.PARTS]
+        assert all(p["count"] == r["sent_to_published"]["count"] for p in parts)
+        assert all(0.0 < p["median_ms"] <= p["p99_ms"] <= p["max_ms"] for p in parts)
+        assert sum(p["median_ms"] for p in parts) <= r["sent_to_published"]["max_ms"]
     v, f = doc["vservo"]["sent_to_published"], doc["relay"]["sent_to_published"]
     assert doc["vservo_minus_relay"]["median_ms"] == v["median_ms"] - f["median_ms"]
     assert doc["target_p99_ms"] == 1000.0 / doc["rate_hz"] + vservo.TARGET_EXTRA_MS

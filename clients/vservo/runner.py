@@ -10,10 +10,12 @@ and release.
 
 from __future__ import annotations
 
+import csv
 import gc
 import sys
 import threading
 import time
+from array import array
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import TextIO
@@ -25,7 +27,7 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo.errorlog import ErrorLog
 from twistrate.clients.vservo.features import ServoState
 from twistrate.clients.vservo.feed import FeatureInput, to_frame
-from twistrate.clients.vservo.servo import Servo, Step, wire_twist
+from twistrate.clients.vservo.servo import ZERO, Servo, Step, wire_twist
 from twistrate.clients.vservo.toolpose import ToolPose
 from twistrate.service import wire
 from twistrate.service.wire import EventMessage, HealthMessage
@@ -62,6 +64,39 @@ class Outcome:
     timeline: list[str] = field(default_factory=list)  # the state of every step, in step order
 
 
+class Timings:
+    """What `Runner(on_sent=...)` reports, kept in memory and written after the run (nothing on the path
+    but four appends): per twist that answered a new frame, the frame's seq, the twist's seq, when the
+    frame was taken off the socket and when its twist had gone out (wall clock, ns since 1970 UTC; the
+    benchmark compares them with the sender's and the service's stamps on the same machine)."""
+
+    COLUMNS = ("features_seq", "twist_seq", "received_ns", "sent_ns")
+
+    def __init__(self) -> None:
+        self.rows: tuple[array, ...] = tuple(array("q") for _ in self.COLUMNS)
+
+    def __call__(self, features_seq: int, twist_seq: int, received_ns: int, sent_ns: int) -> None:
+        a, b, c, d = self.rows
+        a.append(features_seq)
+        b.append(twist_seq)
+        c.append(received_ns)
+        d.append(sent_ns)
+
+    def write(self, path: str) -> None:
+        """A CSV file (RFC 4180, one header row): the COLUMNS, one row per answered frame."""
+        with open(path, "w", newline="") as f:
+            out = csv.writer(f, lineterminator="\n")
+            out.writerow(self.COLUMNS)
+            out.writerows(zip(*self.rows, strict=True))
+
+
+def read_timings(path: str) -> dict[str, list[int]]:
+    """The columns of a file Timings.write wrote, as lists of int."""
+    with open(path, newline="") as f:
+        rows = list(csv.reader(f))
+    return {name: [int(r[i]) for r in rows[1:]] for i, name in enumerate(rows[0])}
+
+
 def status_line(t_s: float, step: Step, twist: dict, mode: str, health: str, frames: int,
                 refused: int) -> str:
     """One terminal line: time, state, feature error (pixels and normalised), twist sent, service."""
@@ -82,14 +117,15 @@ class Runner:
     """One vservo run against a service. tool_origin: a callable giving the tool origin (3,) m, base
     frame, needed only for a camera in the cell; by default the newest `state` message the link
     receives (subscribe it to b"state"; until one arrives the twist is zero and the state `stale`).
-    on_sent(features_seq, twist_seq) is called for every twist sent in answer to a new frame (the
-    benchmark pairs them); on_start(t0) when the loop starts (t0: time.monotonic(), the origin of the
-    run's times)."""
+    on_sent(features_seq, twist_seq, received_ns, sent_ns) is called for every twist sent in answer to a
+    new frame, after the send (wall clock, time.time_ns(): when the frame was taken off the socket and
+    when its twist had gone out; the benchmark splits the latency with them); on_start(t0) when the loop
+    starts (t0: time.monotonic(), the origin of the run's times)."""
 
     def __init__(self, config: vc.VservoConfig, link: Link, feed: FeatureInput, *, track: bool = False,
                  log: ErrorLog | None = None, out: TextIO | None = sys.stdout,
                  tool_origin: Callable[[], np.ndarray | None] | None = None,
-                 on_sent: Callable[[int, int], None] | None = None,
+                 on_sent: Callable[[int, int, int, int], None] | None = None,
                  on_start: Callable[[float], None] | None = None) -> None:
         self.config = config
         self.link = link
@@ -126,13 +162,16 @@ class Runner:
             elif isinstance(message, wire.StateMessage):
                 self.poses.update_message(message)
 
-    def _send(self, step: Step) -> tuple[int, dict]:
+    def _send(self, step: Step) -> tuple[int, dict, Step]:
+        """Send the step's twist; returns its seq, the wire fields and the step sent (a camera in the cell
+        without a tool pose yet sends a zero twist, state `stale`)."""
         origin = self.tool_origin() if self.tool_origin is not None else None
         if self.mount.kind == "cell" and origin is None:
-            step = Step(ServoState.STALE, np.zeros(6))  # no tool pose yet: nothing safe to send
-            origin = np.zeros(3)
+            step = Step(ServoState.STALE, ZERO)  # no tool pose yet: nothing safe to send
+            origin = (0.0, 0.0, 0.0)
         twist = wire_twist(step.twist, self.mount, origin)
-        return self.link.send_twist(twist["linear"], twist["angular"], twist["frame"], twist["point"]), twist
+        seq = self.link.send_twist(twist["linear"], twist["angular"], twist["frame"], twist["point"])
+        return seq, twist, step
 
     def run(self, seconds: float | None = None) -> Outcome:
         """Claim, enable, servo until done; then zero twists, disable, release. Returns the outcome."""
@@ -193,10 +232,10 @@ class Runner:
             step = self.servo.step(frame, arrived, now)
             if self.mount.kind == "cell":
                 self._watch_service()  # the newest tool origin before the twist goes out
-            seq, twist = self._send(step)
-            outcome.twists += 1
+            seq, twist, step = self._send(step)
             if got is not None and self.on_sent is not None:
-                self.on_sent(pending.seq, seq)
+                self.on_sent(pending.seq, seq, self.feed.arrived_ns, time.time_ns())
+            outcome.twists += 1
             next_send = now + period
             outcome.states[step.state.value] = outcome.states.get(step.state.value, 0) + 1
             outcome.last = step

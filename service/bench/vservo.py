@@ -23,7 +23,11 @@ answers each new frame with one twist at once and sends no other twists while fr
 * features sent -> command published: the command's stamp (the service's wall clock at its tick)
   minus the frame's send stamp (this process's wall clock; one machine, one clock);
 * features sent -> command received here (adds the output transport and this process's wake-up);
-* frames without an answer before the next frame.
+* frames without an answer before the next frame;
+* where the time goes, from the client's own record of each answer (`--timings`, wall clock, one
+  machine): features sent -> taken off the client's socket (the input hop and the client's wake-up),
+  -> its twist sent (the client's own work: decoding, the law, encoding), -> command published (the
+  intake hop, the wait for the tick and the tick's own work).
 
 Target: p99 of sent -> published <= one service tick + 1 ms (the twist waits at most one tick; 1 ms
 for two loopback hops, decoding, the law and vservo's wake-up).
@@ -50,6 +54,7 @@ import zmq
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureSender
+from twistrate.clients.vservo.runner import read_timings
 from twistrate.service import wire
 from twistrate.service.commands.vservo import (
     ANY_PORT,
@@ -142,7 +147,9 @@ class _Run:
 
     def client(self, kind: str, k: int, seconds: float) -> subprocess.Popen:
         features = str(Path(self.tmp) / f"features-{kind}-{k}.json")
-        endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features]
+        timings = str(Path(self.tmp) / f"timings-{kind}-{k}.csv")
+        endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features,
+                     "--timings", timings]
         limit = ["--seconds", str(seconds + CLIENT_START_S + WARMUP_S + 30.0)]
         if kind == "relay":
             proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ)], self.err,
@@ -151,6 +158,7 @@ class _Run:
             proc = _spawn(["vservo", "--config", self.paths["vservo.toml"], *endpoints, "--track", *limit],
                           self.err)
         proc.features_file = features  # type: ignore[attr-defined]
+        proc.timings_file = timings  # type: ignore[attr-defined]
         return proc
 
     def close(self) -> None:
@@ -167,7 +175,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     per_round = seconds / rounds
     load_before = os.getloadavg()[0]
     samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
-                                                  "unanswered": [0]} for kind in CLIENTS}
+                                                  "unanswered": [0], **{part: [] for part in PARTS}}
+                                           for kind in CLIENTS}
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
         run = _Run(rate_hz, tmp)
         try:
@@ -190,6 +199,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
                         _stop(proc, signal.SIGINT)
                     if got["frames"] == 0:
                         raise run.failure(f"{kind}: no frame was answered")
+                    for part, values in _split(got["answers"], proc.timings_file).items():
+                        samples[kind][part] += values
                     for key in ("published", "received"):
                         samples[kind][key] += got[key]
                     samples[kind]["frames"][0] += got["frames"]
@@ -203,7 +214,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
         s = samples[kind]
         result[kind] = {"frames": s["frames"][0], "unanswered": s["unanswered"][0],
                         "sent_to_published": _summary(s["published"]),
-                        "sent_to_received": _summary(s["received"])}
+                        "sent_to_received": _summary(s["received"]),
+                        **{part: _summary(s[part]) for part in PARTS}}
     v, r = result["vservo"]["sent_to_published"], result["relay"]["sent_to_published"]
     result["vservo_minus_relay"] = {"median_ms": v["median_ms"] - r["median_ms"],
                                     "p99_ms": v["p99_ms"] - r["p99_ms"]}
@@ -211,6 +223,28 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     result.update(frames=result["vservo"]["frames"], unanswered=result["vservo"]["unanswered"],
                   sent_to_published=v, sent_to_received=result["vservo"]["sent_to_received"])
     return result
+
+
+#: The parts of features sent -> command published, from the client's timings file (module docstring).
+PARTS = ("sent_to_taken", "taken_to_twist", "twist_to_published")
+
+
+def _split(answers: list[tuple[int, int, int]], path: str) -> dict[str, list[float]]:
+    """The three parts (ms) of each counted answer (twist seq, frame send stamp ns, command stamp ns),
+    joined by twist seq with the client's timings file (missing file or rows: those answers left out)."""
+    out: dict[str, list[float]] = {part: [] for part in PARTS}
+    try:
+        t = read_timings(path)
+    except (OSError, ValueError, IndexError, KeyError):
+        return out
+    rows = dict(zip(t["twist_seq"], zip(t["received_ns"], t["sent_ns"], strict=True), strict=True))
+    for twist_seq, sent_ns, stamp_ns in answers:
+        if twist_seq in rows:
+            taken, out_ns = rows[twist_seq]
+            out["sent_to_taken"].append((taken - sent_ns) / 1e6)
+            out["taken_to_twist"].append((out_ns - taken) / 1e6)
+            out["twist_to_published"].append((stamp_ns - out_ns) / 1e6)
+    return out
 
 
 def _toml_doc(data: dict[str, Any]) -> str:
@@ -240,6 +274,7 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
     answers = None
     pending: tuple[int, bool] | None = None  # (send stamp ns, counted) of the newest unanswered frame
     published, received, unanswered, frames = [], [], 0, 0
+    answered: list[tuple[int, int, int]] = []  # (twist seq, frame send stamp, command stamp) when counted
     while time.monotonic() < end:
         if sub.poll(max(0, int((next_frame - time.monotonic()) * 1000)), zmq.POLLIN):
             newest = None
@@ -258,6 +293,7 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
                     if pending is not None and pending[1]:
                         published.append((m["stamp_ns"] - pending[0]) / 1e6)
                         received.append((got - pending[0]) / 1e6)
+                        answered.append((answers, pending[0], m["stamp_ns"]))
                     if measuring_from is None:
                         measuring_from = time.monotonic() + WARMUP_S
                         end = measuring_from + seconds
@@ -280,16 +316,21 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
         frames += counted
     if measuring_from is None:
         return {"frames": 0}
-    return {"frames": frames, "unanswered": unanswered, "published": published, "received": received}
+    return {"frames": frames, "unanswered": unanswered, "published": published, "received": received,
+            "answers": answered}
 
 
 def _lines(name: str, r: dict[str, Any]) -> list[str]:
     p, q = r["sent_to_published"], r["sent_to_received"]
+    labels = ("to its socket", "to its twist", "to published")
+    parts = ", ".join(f"{label} {r[k]['median_ms']:.3f} / {r[k]['p99_ms']:.3f} / {r[k]['max_ms']:.3f}"
+                      for k, label in zip(PARTS, labels, strict=True))
     return [f"  {name}: {r['frames']} frames, {r['unanswered']} without an answer",
             f"    features sent -> command published: median {p['median_ms']:.3f} ms, "
             f"p99 {p['p99_ms']:.3f} ms, max {p['max_ms']:.3f} ms ({p['count']} answers)",
             f"    features sent -> command received: median {q['median_ms']:.3f} ms, "
-            f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms"]
+            f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms",
+            f"    parts, median / p99 / max ms ({r[PARTS[0]]['count']} answers): {parts}"]
 
 
 def format_result(r: dict[str, Any]) -> str:

@@ -13,6 +13,7 @@ field named (or, for a pose message, decodes it): one authority for every refusa
 
 from __future__ import annotations
 
+import math
 import time
 from collections import Counter
 from collections.abc import Sequence
@@ -126,12 +127,13 @@ class FeatureInput:
         self.arrived_ns = 0
 
     def newest(self, timeout_s: float) -> tuple[PointsMessage | wire.FeaturesMessage, float] | None:
-        """Wait up to timeout_s for a message; then take every queued one and return the newest good one
-        with its arrival time (time.monotonic(), s), or None. Every message taken is decoded (so each
-        refusal is counted); the queue is drained with non-blocking receives while the socket's events say
-        a message waits (no poll per message, and no exception at the end of the queue)."""
+        """Wait up to timeout_s (rounded up to whole ms: a positive wait never becomes a busy poll) for a
+        message; then take every queued one and return the newest good one with its arrival time
+        (time.monotonic(), s), or None. Every message taken is decoded (so each refusal is counted); the
+        queue is drained with non-blocking receives while the socket's events say a message waits (no
+        poll per message, and no exception at the end of the queue)."""
         sock = self._sock
-        if not self._poller.poll(max(0, int(timeout_s * 1000))):
+        if not self._poller.poll(max(0, math.ceil(timeout_s * 1000))):
             return None
         best = None
         while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import csv
 import gc
+import os
 import sys
 import threading
 import time
@@ -65,25 +66,68 @@ class Outcome:
 
 
 class Timings:
-    """What `Runner(on_sent=...)` reports, kept in memory and written after the run (nothing on the path
-    but four appends): per twist that answered a new frame, the frame's seq, the twist's seq, when the
-    frame was taken off the socket and when its twist had gone out (wall clock, ns since 1970 UTC; the
-    benchmark compares them with the sender's and the service's stamps on the same machine)."""
+    """What `Runner(on_sent=..., on_wait=...)` reports, kept in memory and written after the run (nothing
+    on the path: `waiting` is called before each wait, the call after the twist went out): per twist
+    that answered a new frame, the frame's seq, the twist's seq, when the frame was taken off the socket
+    and when its twist had gone out (wall clock, ns since 1970 UTC; the benchmark compares them with the
+    sender's and the service's stamps on the same machine), and how long threads waited for a CPU
+    (runnable but not running, ns; Linux schedstat, its second field; -1 where unavailable) from the
+    start of the wait in which the frame came to the twist sent: `cpu_wait_ns` the loop's thread,
+    `cpu_wait_all_ns` every thread of the process (the loop's and ZeroMQ's I/O threads, which take the
+    frame off the connection first; threads that wait at the same time add up). That window holds the
+    frame's wake-up and its whole path: a stall there that these waits cover is the machine's load, not
+    the client's work. proc: where procfs is mounted."""
 
-    COLUMNS = ("features_seq", "twist_seq", "received_ns", "sent_ns")
+    COLUMNS = ("features_seq", "twist_seq", "received_ns", "sent_ns", "cpu_wait_ns", "cpu_wait_all_ns")
 
-    def __init__(self) -> None:
+    def __init__(self, proc: str = "/proc") -> None:
+        self.proc = proc
         self.rows: tuple[array, ...] = tuple(array("q") for _ in self.COLUMNS)
+        self._own: int | None = None  # /proc/thread-self/schedstat of the reporting thread, opened by it
+        self._all: list[int] = []  # every thread's, opened then too
+        self._before = (-1, -1)
+
+    def _open(self) -> None:
+        try:
+            self._own = os.open(f"{self.proc}/thread-self/schedstat", os.O_RDONLY)
+            for tid in os.listdir(f"{self.proc}/self/task"):
+                self._all.append(os.open(f"{self.proc}/self/task/{tid}/schedstat", os.O_RDONLY))
+        except OSError:
+            self._own = -1
+
+    def _waited_ns(self) -> tuple[int, int]:
+        """(the reporting thread's, all threads') cumulative run-queue wait, ns, or -1."""
+        if self._own is None:
+            self._open()
+        if self._own < 0:
+            return -1, -1
+        try:
+            own = int(os.pread(self._own, 100, 0).split()[1])
+            return own, sum(int(os.pread(fd, 100, 0).split()[1]) for fd in self._all)
+        except (OSError, ValueError, IndexError):
+            return -1, -1
+
+    def waiting(self) -> None:
+        """Called right before the loop waits for a frame."""
+        self._before = self._waited_ns()
 
     def __call__(self, features_seq: int, twist_seq: int, received_ns: int, sent_ns: int) -> None:
-        a, b, c, d = self.rows
+        a, b, c, d, e, f = self.rows
         a.append(features_seq)
         b.append(twist_seq)
         c.append(received_ns)
         d.append(sent_ns)
+        own, every = self._waited_ns()
+        ok = own >= 0 and self._before[0] >= 0
+        e.append(own - self._before[0] if ok else -1)
+        f.append(every - self._before[1] if ok else -1)
 
     def write(self, path: str) -> None:
         """A CSV file (RFC 4180, one header row): the COLUMNS, one row per answered frame."""
+        for fd in (self._own, *self._all):
+            if fd is not None and fd >= 0:
+                os.close(fd)
+        self._own, self._all = None, []
         with open(path, "w", newline="") as f:
             out = csv.writer(f, lineterminator="\n")
             out.writerow(self.COLUMNS)
@@ -120,13 +164,15 @@ class Runner:
     on_sent(features_seq, twist_seq, received_ns, sent_ns) is called for every twist sent in answer to a
     new frame, after the send (wall clock, time.time_ns(): when the frame was taken off the socket and
     when its twist had gone out; the benchmark splits the latency with them); on_start(t0) when the loop
-    starts (t0: time.monotonic(), the origin of the run's times)."""
+    starts (t0: time.monotonic(), the origin of the run's times); on_wait() right before each wait for
+    a frame (off the path; Timings.waiting)."""
 
     def __init__(self, config: vc.VservoConfig, link: Link, feed: FeatureInput, *, track: bool = False,
                  log: ErrorLog | None = None, out: TextIO | None = sys.stdout,
                  tool_origin: Callable[[], np.ndarray | None] | None = None,
                  on_sent: Callable[[int, int, int, int], None] | None = None,
-                 on_start: Callable[[float], None] | None = None) -> None:
+                 on_start: Callable[[float], None] | None = None,
+                 on_wait: Callable[[], None] | None = None) -> None:
         self.config = config
         self.link = link
         self.feed = feed
@@ -140,6 +186,7 @@ class Runner:
         self.tool_origin = tool_origin
         self.on_sent = on_sent
         self.on_start = on_start
+        self.on_wait = on_wait
         self.servo = Servo(vc.settings(config), vc.goal(config), vc.convergence(config))
         self.mode = "?"
         self.health = "?"
@@ -222,6 +269,8 @@ class Runner:
             if seconds is not None and now - t0 >= seconds:
                 outcome.reason = "time"
                 return
+            if self.on_wait is not None:
+                self.on_wait()
             got = self.feed.newest(min(max(0.0, next_send - now), 0.05))
             if got is not None:
                 pending, arrived = got

@@ -27,7 +27,11 @@ answers each new frame with one twist at once and sends no other twists while fr
 * where the time goes, from the client's own record of each answer (`--timings`, wall clock, one
   machine): features sent -> taken off the client's socket (the input hop and the client's wake-up),
   -> its twist sent (the client's own work: decoding, the law, encoding), -> command published (the
-  intake hop, the wait for the tick and the tick's own work).
+  intake hop, the wait for the tick and the tick's own work);
+* how long the client's thread waited for a CPU (runnable, not running; the kernel's account) from the
+  start of the wait in which the frame came to its twist sent, and for the stalls (features sent ->
+  twist sent > STALL_MS) the share of each that this wait covers: near 100 % means the machine's load,
+  not the client's code, made the stall.
 
 Target: p99 of sent -> published <= one service tick + 1 ms (the twist waits at most one tick; 1 ms
 for two loopback hops, decoding, the law and vservo's wake-up).
@@ -97,6 +101,10 @@ def _stop(proc: subprocess.Popen, sig: int = signal.SIGTERM) -> None:
     except subprocess.TimeoutExpired:
         proc.kill()
         proc.wait(5.0)
+
+
+def _median(values: list[float]) -> float:
+    return float(np.median(values)) if values else math.nan
 
 
 def _summary(values_ms: list[float]) -> dict[str, float]:
@@ -175,7 +183,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     per_round = seconds / rounds
     load_before = os.getloadavg()[0]
     samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
-                                                  "unanswered": [0], **{part: [] for part in PARTS}}
+                                                  "unanswered": [0],
+                                                  **{part: [] for part in (*PARTS, *STALL_KEYS)}}
                                            for kind in CLIENTS}
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
         run = _Run(rate_hz, tmp)
@@ -215,7 +224,11 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
         result[kind] = {"frames": s["frames"][0], "unanswered": s["unanswered"][0],
                         "sent_to_published": _summary(s["published"]),
                         "sent_to_received": _summary(s["received"]),
-                        **{part: _summary(s[part]) for part in PARTS}}
+                        **{part: _summary(s[part]) for part in (*PARTS, CPU_WAIT, CPU_WAIT_ALL)},
+                        "stalls": {"count": len(s["stall_ms"]), "over_ms": STALL_MS,
+                                   "median_ms": _summary(s["stall_ms"])["median_ms"],
+                                   "cpu_wait_share_median": _median(s["stall_wait_share"]),
+                                   "cpu_wait_all_share_median": _median(s["stall_wait_all_share"])}}
     v, r = result["vservo"]["sent_to_published"], result["relay"]["sent_to_published"]
     result["vservo_minus_relay"] = {"median_ms": v["median_ms"] - r["median_ms"],
                                     "p99_ms": v["p99_ms"] - r["p99_ms"]}
@@ -225,25 +238,43 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     return result
 
 
-#: The parts of features sent -> command published, from the client's timings file (module docstring).
+#: The parts of features sent -> command published, from the client's timings file (module docstring),
+#: and the client's thread waiting for a CPU (runnable, not running) from the start of the wait in which
+#: the frame came to its twist sent (runner.Timings).
 PARTS = ("sent_to_taken", "taken_to_twist", "twist_to_published")
+CPU_WAIT, CPU_WAIT_ALL = "cpu_wait", "cpu_wait_all"
+#: An answer is a stall when features sent -> its twist sent takes longer than this, ms.
+STALL_MS = 5.0
+STALL_KEYS = (CPU_WAIT, CPU_WAIT_ALL, "stall_ms", "stall_wait_share", "stall_wait_all_share")
 
 
 def _split(answers: list[tuple[int, int, int]], path: str) -> dict[str, list[float]]:
     """The three parts (ms) of each counted answer (twist seq, frame send stamp ns, command stamp ns),
-    joined by twist seq with the client's timings file (missing file or rows: those answers left out)."""
-    out: dict[str, list[float]] = {part: [] for part in PARTS}
+    joined by twist seq with the client's timings file (missing file or rows: those answers left out),
+    the client thread's CPU wait (ms) over each answer's window, and for each stall the share of it
+    that this wait covers."""
+    out: dict[str, list[float]] = {part: [] for part in (*PARTS, *STALL_KEYS)}
     try:
         t = read_timings(path)
+        rows = {seq: (taken, out_ns, (own, every) if own >= 0 else None) for seq, taken, out_ns, own, every
+                in zip(t["twist_seq"], t["received_ns"], t["sent_ns"], t["cpu_wait_ns"], t["cpu_wait_all_ns"],
+                       strict=True)}
     except (OSError, ValueError, IndexError, KeyError):
         return out
-    rows = dict(zip(t["twist_seq"], zip(t["received_ns"], t["sent_ns"], strict=True), strict=True))
     for twist_seq, sent_ns, stamp_ns in answers:
-        if twist_seq in rows:
-            taken, out_ns = rows[twist_seq]
-            out["sent_to_taken"].append((taken - sent_ns) / 1e6)
-            out["taken_to_twist"].append((out_ns - taken) / 1e6)
-            out["twist_to_published"].append((stamp_ns - out_ns) / 1e6)
+        if twist_seq not in rows:
+            continue
+        taken, out_ns, wait_ns = rows[twist_seq]
+        out["sent_to_taken"].append((taken - sent_ns) / 1e6)
+        out["taken_to_twist"].append((out_ns - taken) / 1e6)
+        out["twist_to_published"].append((stamp_ns - out_ns) / 1e6)
+        if wait_ns is not None:
+            out[CPU_WAIT].append(wait_ns[0] / 1e6)
+            out[CPU_WAIT_ALL].append(wait_ns[1] / 1e6)
+            if (out_ns - sent_ns) / 1e6 > STALL_MS:
+                out["stall_ms"].append((out_ns - sent_ns) / 1e6)
+                out["stall_wait_share"].append(wait_ns[0] / (out_ns - sent_ns))
+                out["stall_wait_all_share"].append(wait_ns[1] / (out_ns - sent_ns))
     return out
 
 
@@ -322,6 +353,7 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
 
 def _lines(name: str, r: dict[str, Any]) -> list[str]:
     p, q = r["sent_to_published"], r["sent_to_received"]
+    w, wa, st = r[CPU_WAIT], r[CPU_WAIT_ALL], r["stalls"]
     labels = ("to its socket", "to its twist", "to published")
     parts = ", ".join(f"{label} {r[k]['median_ms']:.3f} / {r[k]['p99_ms']:.3f} / {r[k]['max_ms']:.3f}"
                       for k, label in zip(PARTS, labels, strict=True))
@@ -330,7 +362,13 @@ def _lines(name: str, r: dict[str, Any]) -> list[str]:
             f"p99 {p['p99_ms']:.3f} ms, max {p['max_ms']:.3f} ms ({p['count']} answers)",
             f"    features sent -> command received: median {q['median_ms']:.3f} ms, "
             f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms",
-            f"    parts, median / p99 / max ms ({r[PARTS[0]]['count']} answers): {parts}"]
+            f"    parts, median / p99 / max ms ({r[PARTS[0]]['count']} answers): {parts}",
+            f"    waiting for a CPU from its wait for the frame to the twist, median / p99 / max ms: its "
+            f"loop's thread {w['median_ms']:.3f} / {w['p99_ms']:.3f} / {w['max_ms']:.3f}, all its threads "
+            f"{wa['median_ms']:.3f} / {wa['p99_ms']:.3f} / {wa['max_ms']:.3f}",
+            f"    {st['count']} stalls (features sent -> twist sent > {st['over_ms']:g} ms, median "
+            f"{st['median_ms']:.1f} ms): CPU wait covers {st['cpu_wait_share_median'] * 100:.0f} % of each "
+            f"(median; all threads {st['cpu_wait_all_share_median'] * 100:.0f} %)"]
 
 
 def format_result(r: dict[str, Any]) -> str:

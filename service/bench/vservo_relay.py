@@ -16,6 +16,7 @@ file as `twistrate vservo --timings` (features_seq 0: the relay does not decode)
 from __future__ import annotations
 
 import argparse
+import math
 import signal
 import threading
 import time
@@ -65,7 +66,9 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
                 while not stop.is_set() and time.monotonic() < end:
                     now = time.monotonic()
                     received_ns = 0
-                    if sock.poll(int(min(max(0.0, next_send - now), POLL_S) * 1000), zmq.POLLIN):
+                    if timings is not None:
+                        timings.waiting()
+                    if sock.poll(math.ceil(min(max(0.0, next_send - now), POLL_S) * 1000), zmq.POLLIN):
                         while sock.getsockopt(zmq.EVENTS) & zmq.POLLIN:  # drain, as vservo's feed does
                             try:
                                 sock.recv_multipart(zmq.NOBLOCK)

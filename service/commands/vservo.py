@@ -221,7 +221,8 @@ def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
               f"{service.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
         timings = Timings() if args.timings else None
-        runner = Runner(config, link, feed, track=args.track, log=log, on_sent=timings)
+        runner = Runner(config, link, feed, track=args.track, log=log, on_sent=timings,
+                        on_wait=None if timings is None else timings.waiting)
         _on_signals(runner)
         outcome = runner.run(args.seconds)
     if timings is not None:
@@ -285,7 +286,7 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
         timings = Timings() if args.timings else None
         runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin,
-                        on_sent=timings)
+                        on_sent=timings, on_wait=None if timings is None else timings.waiting)
         _on_signals(runner)
         pipeline.start()
         stack.callback(pipeline.stop)

@@ -30,8 +30,18 @@ def test_bench_vservo_smoke_run_writes_every_figure(tmp_path: Path, capsys) -> N
     v, f = doc["vservo"]["sent_to_published"], doc["relay"]["sent_to_published"]
     assert doc["vservo_minus_relay"]["median_ms"] == v["median_ms"] - f["median_ms"]
     assert doc["target_p99_ms"] == 1000.0 / doc["rate_hz"] + vservo.TARGET_EXTRA_MS
+    # the path in one process: both forms give the same twist (within pointlaw's 1e-8 relative bound:
+    # the normal equations at cond_2 <= 1e8 of L_hat^T L_hat), every stage timed
+    path = doc["path"]
+    assert path["twist_difference"] <= 1e-7 * path["twist_size"] and path["twist_size"] > 0.0
+    for form in ("vservo", "reference"):
+        for mode in ("hot", "after_wait"):
+            r = path[form][mode]
+            assert all(r[stage] > 0.0 for stage in ("decode", "step", "twist", "encode"))
+            assert r["total"] >= max(r[stage] for stage in ("decode", "step", "twist", "encode"))
     text = capsys.readouterr().out
     assert "features sent -> command published" in text and "vservo minus relay" in text
+    assert "per-frame path in one process" in text
 
 
 def test_frame_gaps_sample_every_phase_of_the_tick() -> None:

@@ -35,6 +35,9 @@ answers each new frame with one twist at once and sends no other twists while fr
 
 Target: p99 of sent -> published <= one service tick + 1 ms (the twist waits at most one tick; 1 ms
 for two loopback hops, decoding, the law and vservo's wake-up).
+
+Before the service starts, the per-frame path's cost in this process, vservo's form against the numpy
+reference form (service/bench/vservo_path.py), hot and after a wait.
 """
 
 from __future__ import annotations
@@ -60,6 +63,7 @@ from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureSender
 from twistrate.clients.vservo.runner import read_timings
 from twistrate.service import wire
+from twistrate.service.bench.vservo_path import format_costs, path_costs
 from twistrate.service.commands.vservo import (
     ANY_PORT,
     SERVE_START_S,
@@ -182,6 +186,7 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     seconds / rounds s after its warm-up."""
     per_round = seconds / rounds
     load_before = os.getloadavg()[0]
+    path = path_costs()  # before the service starts: this process alone
     samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
                                                   "unanswered": [0],
                                                   **{part: [] for part in (*PARTS, *STALL_KEYS)}}
@@ -216,7 +221,8 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
                     samples[kind]["unanswered"][0] += got["unanswered"]
         finally:
             run.close()
-    result: dict[str, Any] = {"rate_hz": rate_hz, "seconds": seconds, "rounds": rounds, "frame_hz": FRAME_HZ,
+    result: dict[str, Any] = {"path": path, "rate_hz": rate_hz, "seconds": seconds, "rounds": rounds,
+                              "frame_hz": FRAME_HZ,
                               "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS,
                               "load_average_1min": [load_before, os.getloadavg()[0]]}
     for kind in CLIENTS:
@@ -386,6 +392,7 @@ def format_result(r: dict[str, Any]) -> str:
         f"p99 {d['p99_ms']:+.3f} ms",
         f"  target p99 <= one tick + {TARGET_EXTRA_MS:g} ms = {target:.1f} ms: vservo {verdict} it "
         f"(p99 {v['p99_ms']:.3f} ms); the relay's floor {floor} it (p99 {f['p99_ms']:.3f} ms)",
+        *format_costs(r["path"]),
     ])
 
 

@@ -68,3 +68,4 @@ def test_bench_vservo_refuses_a_bad_window(capsys) -> None:
     assert vservo.run(["--seconds", "0.1"]) == 2
     assert "--seconds" in capsys.readouterr().err
     assert vservo.run(["--rounds", "0"]) == 2
+    assert vservo.run(["--realtime", "100"]) == 2 and "--realtime" in capsys.readouterr().err

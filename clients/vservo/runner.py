@@ -28,6 +28,7 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo.errorlog import ErrorLog
 from twistrate.clients.vservo.features import ServoState
 from twistrate.clients.vservo.feed import FeatureInput, to_frame
+from twistrate.clients.vservo.sched import realtime
 from twistrate.clients.vservo.servo import ZERO, Servo, Step, wire_twist
 from twistrate.clients.vservo.toolpose import ToolPose
 from twistrate.service import wire
@@ -63,6 +64,7 @@ class Outcome:
     times: list[float] = field(default_factory=list)
     errors: list[float | None] = field(default_factory=list)
     timeline: list[str] = field(default_factory=list)  # the state of every step, in step order
+    scheduling: str = "normal scheduling (real-time not requested)"  # the loop's ([run] realtime_priority)
 
 
 class Timings:
@@ -241,9 +243,12 @@ class Runner:
         gc.collect()
         gc.freeze()
         gc.disable()
+        rt = realtime(self.config.run.realtime_priority)  # this thread and ZeroMQ's I/O threads, if asked
+        outcome.scheduling = rt.text
         try:
             self._servo_loop(seconds, outcome)
         finally:
+            rt.restore()  # from this thread: the loop's own policy is its caller's again
             gc.unfreeze()
             if was_enabled:
                 gc.enable()

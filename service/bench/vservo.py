@@ -122,12 +122,13 @@ def _summary(values_ms: list[float]) -> dict[str, float]:
 class _Run:
     """One benchmark run: the service, the vservo configuration, the command watcher, the files."""
 
-    def __init__(self, rate_hz: float, tmp: str) -> None:
+    def __init__(self, rate_hz: float, tmp: str, realtime_priority: int = 0) -> None:
         service_config, text = synthetic_service_config(None, {"tick": {"rate_hz": rate_hz}})
         self.arm = service_config.load_arm()
         data = vc.load_config().model_dump()
         data["endpoints"] = {**data["endpoints"], "features": ANY_PORT}
-        data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ}
+        data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ, "realtime_priority": realtime_priority}
+        self.realtime_priority = realtime_priority
         data["camera"] = {**data["camera"], "rate_hz": FRAME_HZ}
         self.config = vc.config_from_dict(data, "bench vservo config")
         self.cell = synthetic.panel_cell(vc.intrinsics(self.config), vc.mount(self.config).T)
@@ -164,8 +165,8 @@ class _Run:
                      "--timings", timings]
         limit = ["--seconds", str(seconds + CLIENT_START_S + WARMUP_S + 30.0)]
         if kind == "relay":
-            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ)], self.err,
-                          "twistrate.service.bench.vservo_relay")
+            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ), "--realtime",
+                           str(self.realtime_priority)], self.err, "twistrate.service.bench.vservo_relay")
         else:
             proc = _spawn(["vservo", "--config", self.paths["vservo.toml"], *endpoints, "--track", *limit],
                           self.err)
@@ -181,9 +182,10 @@ class _Run:
         self.err.close()
 
 
-def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[str, Any]:
+def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS,
+          realtime_priority: int = 0) -> dict[str, Any]:
     """One run at service tick rate `rate_hz`: `rounds` rounds, each the relay then vservo for
-    seconds / rounds s after its warm-up."""
+    seconds / rounds s after its warm-up; realtime_priority: both clients' [run] realtime_priority."""
     per_round = seconds / rounds
     load_before = os.getloadavg()[0]
     path = path_costs()  # before the service starts: this process alone
@@ -192,7 +194,7 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
                                                   **{part: [] for part in (*PARTS, *STALL_KEYS)}}
                                            for kind in CLIENTS}
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
-        run = _Run(rate_hz, tmp)
+        run = _Run(rate_hz, tmp, realtime_priority)
         try:
             run.watch()
             for k in range(rounds):
@@ -222,6 +224,7 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
         finally:
             run.close()
     result: dict[str, Any] = {"path": path, "rate_hz": rate_hz, "seconds": seconds, "rounds": rounds,
+                              "clients_realtime_priority": realtime_priority,
                               "frame_hz": FRAME_HZ,
                               "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS,
                               "load_average_1min": [load_before, os.getloadavg()[0]]}
@@ -372,9 +375,11 @@ def _lines(name: str, r: dict[str, Any]) -> list[str]:
             f"    waiting for a CPU from its wait for the frame to the twist, median / p99 / max ms: its "
             f"loop's thread {w['median_ms']:.3f} / {w['p99_ms']:.3f} / {w['max_ms']:.3f}, all its threads "
             f"{wa['median_ms']:.3f} / {wa['p99_ms']:.3f} / {wa['max_ms']:.3f}",
-            f"    {st['count']} stalls (features sent -> twist sent > {st['over_ms']:g} ms, median "
-            f"{st['median_ms']:.1f} ms): CPU wait covers {st['cpu_wait_share_median'] * 100:.0f} % of each "
-            f"(median; all threads {st['cpu_wait_all_share_median'] * 100:.0f} %)"]
+            f"    {st['count']} stalls (features sent -> twist sent > {st['over_ms']:g} ms)"
+            + (f", median {st['median_ms']:.1f} ms: CPU wait covers "
+               f"{st['cpu_wait_share_median'] * 100:.0f} % of each (median; all threads "
+               f"{st['cpu_wait_all_share_median'] * 100:.0f} %)"
+               if st["count"] else "")]
 
 
 def format_result(r: dict[str, Any]) -> str:
@@ -385,7 +390,9 @@ def format_result(r: dict[str, Any]) -> str:
     return "\n".join([
         f"vservo at service tick {r['rate_hz']:g} Hz, frames {r['frame_hz']:g} Hz on average (gaps "
         f"+-{r['frame_jitter'] * 100:g} %, random tick phase), {r['rounds']} rounds, {r['seconds']:g} s "
-        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}",
+        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}"
+        + (f"; clients SCHED_FIFO {r['clients_realtime_priority']} (if permitted)"
+           if r.get("clients_realtime_priority") else ""),
         *_lines("relay (reference: same sockets, fixed twist, no law)", r["relay"]),
         *_lines("vservo", r["vservo"]),
         f"  vservo minus relay (vservo's own cost): median {d['median_ms']:+.3f} ms, "
@@ -397,20 +404,24 @@ def format_result(r: dict[str, Any]) -> str:
 
 
 def run(argv: list[str] | None = None) -> int:
-    """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--json FILE]`."""
+    """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--realtime PRIORITY] [--json FILE]`."""
     parser = argparse.ArgumentParser(prog="twistrate bench vservo", description=__doc__.splitlines()[0])
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
                         help="measured window per client, s (split over the rounds)")
     parser.add_argument("--rate", type=float, default=DEFAULT_RATE_HZ, help="service tick rate, Hz")
     parser.add_argument("--rounds", type=int, default=DEFAULT_ROUNDS,
                         help="interleaved rounds (relay, then vservo, each round)")
+    parser.add_argument("--realtime", type=int, default=0, metavar="PRIORITY",
+                        help="both clients' loops under SCHED_FIFO at this priority, if permitted (0: off; "
+                             "vservo's [run] realtime_priority)")
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     args = parser.parse_args(argv)
-    if not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0 or not 1 <= args.rounds <= 20:
+    if (not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0 or not 1 <= args.rounds <= 20
+            or not 0 <= args.realtime <= 99):
         print("twistrate bench vservo: accepted: 0.5 <= --seconds <= 600, 10 <= --rate <= 2000, "
-              "1 <= --rounds <= 20", file=sys.stderr)
+              "1 <= --rounds <= 20, 0 <= --realtime <= 99", file=sys.stderr)
         return 2
-    result = bench(args.rate, args.seconds, args.rounds)
+    result = bench(args.rate, args.seconds, args.rounds, args.realtime)
     if args.json:
         Path(args.json).write_text(json.dumps(result, indent=2, default=float))
     print(format_result(result))

@@ -26,6 +26,7 @@ import zmq
 from twistrate.clients.link import Endpoints, Link
 from twistrate.clients.vservo.feed import MAX_MESSAGE_BYTES, RECEIVE_HWM
 from twistrate.clients.vservo.runner import Timings
+from twistrate.clients.vservo.sched import realtime
 from twistrate.service import wire
 from twistrate.service.commands.vservo import ANY_PORT, SERVE_START_S, write_features_file
 from twistrate.service.wire.discovery import read_endpoints
@@ -41,11 +42,12 @@ POINT = (0.04, 0.0, 0.02)
 
 
 def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: threading.Event,
-          keepalive_hz: float = 5.0, timings: Timings | None = None) -> int:
+          keepalive_hz: float = 5.0, timings: Timings | None = None, realtime_priority: int = 0) -> int:
     """Relay until `seconds` or `stop`; returns the number of twists sent. Like vservo, it also sends
     its twist `keepalive_hz` times per second while no message arrives (the lease is renewed from the
     twists it sends); the benchmark's frames come faster, so every twist then answers a frame.
-    timings: told of every twist that answered a message (as vservo's Runner tells its on_sent)."""
+    timings: told of every twist that answered a message (as vservo's Runner tells its on_sent);
+    realtime_priority: as vservo's [run] realtime_priority (sched.realtime, for the loop)."""
     ctx = zmq.Context()
     sock = ctx.socket(zmq.SUB)
     sock.setsockopt(zmq.LINGER, 0)
@@ -62,6 +64,7 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
             write_features_file(features_file, sock.getsockopt_string(zmq.LAST_ENDPOINT))
             end = time.monotonic() + seconds
             next_send = time.monotonic()
+            rt = realtime(realtime_priority)
             try:
                 while not stop.is_set() and time.monotonic() < end:
                     now = time.monotonic()
@@ -85,6 +88,7 @@ def relay(endpoints: Endpoints, features_file: str, seconds: float, stop: thread
                     sent += 1
                     next_send = time.monotonic() + 1.0 / keepalive_hz
             finally:
+                rt.restore()
                 link.send_twist((0.0, 0.0, 0.0), ANGULAR)
                 link.disable()
                 link.release()
@@ -101,13 +105,15 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--seconds", type=float, default=120.0, help="stop after this long, s")
     parser.add_argument("--keepalive-hz", type=float, default=5.0, help="twists per second without messages")
     parser.add_argument("--timings", metavar="FILE", help="after the run, write the receive and send times")
+    parser.add_argument("--realtime", type=int, default=0, metavar="PRIORITY",
+                        help="SCHED_FIFO priority of the loop and its ZeroMQ I/O threads (0: off)")
     args = parser.parse_args(argv)
     stop = threading.Event()
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, lambda *_: stop.set())
     timings = Timings() if args.timings else None
     relay(Endpoints(**read_endpoints(args.endpoints_file, SERVE_START_S)), args.features_file, args.seconds,
-          stop, args.keepalive_hz, timings)
+          stop, args.keepalive_hz, timings, max(0, min(args.realtime, 99)))
     if timings is not None:
         timings.write(args.timings)
     return 0

@@ -315,7 +315,8 @@ def _report(outcome: Outcome, config: vc.VservoConfig, log_path: str | None) -> 
     last = outcome.last
     lines = ["", "REPORT", f"  ended: {outcome.reason}" + (f" ({outcome.detail})" if outcome.detail else ""),
              f"  frames {outcome.frames}, twists sent {outcome.twists}; steps per state: "
-             + ", ".join(f"{k} {v}" for k, v in sorted(outcome.states.items()))]
+             + ", ".join(f"{k} {v}" for k, v in sorted(outcome.states.items())),
+             f"  scheduling: {outcome.scheduling}"]
     if outcome.settled_at_s is not None:
         lines.append(f"  settled after {outcome.settled_at_s:.2f} s (mean error <= "
                      f"{config.settle.threshold_px:g} px for {config.settle.hold_frames} frames)")

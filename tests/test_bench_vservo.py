@@ -21,11 +21,27 @@ def test_bench_vservo_smoke_run_writes_every_figure(tmp_path: Path, capsys) -> N
         for key in ("sent_to_published", "sent_to_received"):
             assert r[key]["count"] >= r["frames"] - r["unanswered"] - 1
             assert 0.0 < r[key]["median_ms"] <= r[key]["p99_ms"] <= r[key]["max_ms"]
+        # the client's own record joins every answer (its timings file), and the three parts are times
+        # in causal order on one clock: each positive, together no longer than sent -> published
+        parts = [r[part] for part in vservo.PARTS]
+        assert all(p["count"] == r["sent_to_published"]["count"] for p in parts)
+        assert all(0.0 < p["median_ms"] <= p["p99_ms"] <= p["max_ms"] for p in parts)
+        assert sum(p["median_ms"] for p in parts) <= r["sent_to_published"]["max_ms"]
     v, f = doc["vservo"]["sent_to_published"], doc["relay"]["sent_to_published"]
     assert doc["vservo_minus_relay"]["median_ms"] == v["median_ms"] - f["median_ms"]
     assert doc["target_p99_ms"] == 1000.0 / doc["rate_hz"] + vservo.TARGET_EXTRA_MS
+    # the path in one process: both forms give the same twist (within pointlaw's 1e-8 relative bound:
+    # the normal equations at cond_2 <= 1e8 of L_hat^T L_hat), every stage timed
+    path = doc["path"]
+    assert path["twist_difference"] <= 1e-7 * path["twist_size"] and path["twist_size"] > 0.0
+    for form in ("vservo", "reference"):
+        for mode in ("hot", "after_wait"):
+            r = path[form][mode]
+            assert all(r[stage] > 0.0 for stage in ("decode", "step", "twist", "encode"))
+            assert r["total"] >= max(r[stage] for stage in ("decode", "step", "twist", "encode"))
     text = capsys.readouterr().out
     assert "features sent -> command published" in text and "vservo minus relay" in text
+    assert "per-frame path in one process" in text
 
 
 def test_frame_gaps_sample_every_phase_of_the_tick() -> None:
@@ -52,3 +68,4 @@ def test_bench_vservo_refuses_a_bad_window(capsys) -> None:
     assert vservo.run(["--seconds", "0.1"]) == 2
     assert "--seconds" in capsys.readouterr().err
     assert vservo.run(["--rounds", "0"]) == 2
+    assert vservo.run(["--realtime", "100"]) == 2 and "--realtime" in capsys.readouterr().err

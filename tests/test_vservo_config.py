@@ -196,3 +196,89 @@ def test_the_demos_closing_pointer_is_a_command_vservo_takes() -> None:
     assert words[:2] == ["twistrate", "vservo"]
     assert command.parser().parse_args(words[2:]).synthetic
     assert len(f"  next, a camera loop on the simulated arm: {demo.CAMERA_LOOP_COMMAND}") <= 80
+
+
+def test_timings_take_the_run_queue_wait_of_the_kernels_schedstat(tmp_path) -> None:
+    # /proc/<pid>/task/<tid>/schedstat holds "time on the CPU, time waiting on a run queue, timeslices"
+    # in ns (the kernel's Documentation/scheduler/sched-stats.rst); Timings takes the second field of
+    # the reporting thread and of every thread, over the window from `waiting` to the report.
+    from twistrate.clients.vservo.runner import Timings, read_timings
+
+    own = tmp_path / "thread-self" / "schedstat"
+    tasks = [tmp_path / "self" / "task" / tid / "schedstat" for tid in ("11", "12")]
+    for path in (own, *tasks):
+        path.parent.mkdir(parents=True)
+    own.write_text("500 1000 7\n")
+    tasks[0].write_text("500 1000 7\n")
+    tasks[1].write_text("90 40 2\n")
+    timings = Timings(proc=str(tmp_path))
+    timings.waiting()
+    own.write_text("900 1600 9\n")  # the loop's thread waited 600 ns more, the other thread 25 ns
+    tasks[0].write_text("900 1600 9\n")
+    tasks[1].write_text("95 65 3\n")
+    timings(7, 3, 1_000, 2_500)
+    timings.write(str(tmp_path / "t.csv"))
+    got = read_timings(str(tmp_path / "t.csv"))
+    assert got == {"features_seq": [7], "twist_seq": [3], "received_ns": [1_000], "sent_ns": [2_500],
+                   "cpu_wait_ns": [600], "cpu_wait_all_ns": [625]}
+    missing = Timings(proc=str(tmp_path / "none"))  # no procfs: -1, never an error
+    missing.waiting()
+    missing(1, 1, 0, 0)
+    assert missing.rows[4].tolist() == [-1] and missing.rows[5].tolist() == [-1]
+
+
+def test_the_runner_reports_each_answered_frame_after_its_twist() -> None:
+    # on_wait before every wait, on_sent(features seq, twist seq, taken, sent) after each twist that
+    # answers a new frame (wall clock: taken <= sent); the keep-alive twists are not reported.
+    import time
+
+    from twistrate.clients.link import LinkTimeoutError
+    from twistrate.clients.vservo.feed import PointsMessage
+    from twistrate.clients.vservo.runner import Runner
+
+    sent: list[int] = []
+    events: list[str] = []
+
+    class Link:
+        def wait_ready(self, timeout_s: float) -> None: ...
+        def claim(self, client: str, lease_ms: int) -> str: return "token"
+        def enable(self) -> str: return "running"
+        def disable(self) -> str: return "idle"
+        def release(self) -> None: ...
+
+        def receive(self, timeout_s: float) -> None:
+            raise LinkTimeoutError("none")
+
+        def send_twist(self, linear, angular, frame="base", point=None) -> int:
+            sent.append(len(sent) + 1)
+            events.append("twist")
+            return sent[-1]
+
+    class Feed:
+        received, refused, arrived_ns, calls = 0, {}, 0, 0
+
+        def newest(self, timeout_s: float):
+            self.calls += 1
+            if self.calls % 3:
+                time.sleep(min(timeout_s, 0.002))
+                return None
+            self.received += 1
+            self.arrived_ns = time.time_ns()
+            goal = doc["goal"]
+            return (PointsMessage(self.received, 0, "bench-cam", time.time_ns(), tuple(goal["ids"]),
+                                  tuple(tuple(p) for p in goal["pixels"]), None), time.monotonic())
+
+    reports: list[tuple[int, int, int, int]] = []
+    doc = _doc()
+    doc["run"]["rate_hz"] = 200.0
+    runner = Runner(vc.config_from_dict(doc), Link(), Feed(), out=None, track=True,  # type: ignore[arg-type]
+                    on_sent=lambda *r: (reports.append(r), events.append("report")),
+                    on_wait=lambda: events.append("wait"))
+    outcome = runner.run(0.2)
+    assert outcome.frames >= 5 and len(reports) == outcome.frames
+    assert [r[0] for r in reports] == list(range(1, len(reports) + 1))
+    assert all(r[2] <= r[3] for r in reports) and len(set(r[1] for r in reports)) == len(reports)
+    assert outcome.twists > len(reports)  # keep-alive twists too, not reported
+    for k, e in enumerate(events):  # every report follows its twist at once; a wait precedes each frame
+        if e == "report":
+            assert events[k - 1] == "twist" and "wait" in events[max(0, k - 3):k - 1]

@@ -299,19 +299,3 @@ def test_a_given_desired_matrix_is_used_as_is() -> None:
     for choice in DepthChoice:
         np.testing.assert_array_equal(estimate(choice, xy, Z, xy_s, Z_s, L_s),
                                       estimate(choice, xy, Z, xy_s, Z_s))
-
-
-def test_the_mean_matrix_of_the_servos_hot_path_is_eq_11() -> None:
-    # MeanMatrix builds (L_e + L_e*) / 2 from the monomials of eq. (11) (Chaumette and Hutchinson 2006)
-    # in one product; point_matrix, the entry-by-entry form checked against finite differences above,
-    # is the reference. Called twice: the buffer it reuses must not leak one frame into the next.
-    from twistrate.clients.vservo.interaction import MeanMatrix
-
-    rng = np.random.default_rng(21)
-    xy_s, Z_s = rng.normal(size=(5, 2)) * 0.2, rng.uniform(0.2, 1.5, 5)
-    L_s = point_matrix(xy_s, Z_s)
-    mean = MeanMatrix(L_s)
-    for _ in range(2):
-        xy, Z = rng.normal(size=(5, 2)) * 0.2, rng.uniform(0.2, 1.5, 5)
-        np.testing.assert_allclose(mean(xy, Z), estimate(DepthChoice.MEAN, xy, Z, xy_s, Z_s), rtol=1e-14,
-                                   atol=1e-15)

@@ -138,7 +138,7 @@ def test_feature_loss_brings_the_tool_to_rest_and_the_run_resumes() -> None:
                    offset(T_star, *STARTS[0]), 2000)
     hidden = range(100, 150)
     assert all(run.states[k] == "missing" for k in hidden)
-    assert all(not run.twists[k].any() for k in hidden)
+    assert all(not any(run.twists[k]) for k in hidden)
     np.testing.assert_array_equal(run.poses[101], run.poses[150])  # at rest while hidden
     assert run.states[99] == "tracking" and run.states[150] == "tracking"
     assert run.states[-1] == "settled"
@@ -151,10 +151,10 @@ def test_stale_and_too_few_features_give_zero_twist() -> None:
     frame = PointFrame(ids, pixels, depths, 0.0)
     assert servo.step(frame, 0.0, 0.1).state.value == "tracking"
     stale = servo.step(frame, 0.0, 0.25)
-    assert stale.state.value == "stale" and not stale.twist.any()
+    assert stale.state.value == "stale" and not any(stale.twist)
     three = PointFrame(ids[:3], pixels[:3], depths[:3], 0.3)
     few = servo.step(three, 0.3, 0.3)
-    assert few.state.value == "too_few" and few.points == 3 and not few.twist.any()
+    assert few.state.value == "too_few" and few.points == 3 and not any(few.twist)
     duplicated = PointFrame(np.array([21, 21, 22, 23, 24]), pixels, depths, 0.4)  # 21 twice: both dropped
     assert servo.step(duplicated, 0.4, 0.4).state.value == "too_few"
     nan = PointFrame(ids, np.where(np.arange(5)[:, None] < 2, np.nan, pixels), depths, 0.5)

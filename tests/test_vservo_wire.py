@@ -1,5 +1,6 @@
 """The features message (docs/vision.md): round trip, the document's worked example, and refusals with
-the protocol's reason keys (docs/protocol.md section 11)."""
+the protocol's reason keys (docs/protocol.md section 11); vservo's own decoder (feed.decode_features)
+against the protocol's reference decoder (twistrate.service.wire.features)."""
 
 from __future__ import annotations
 
@@ -62,7 +63,7 @@ def _refused(doc: dict) -> str:
     return info.value.reason
 
 
-@pytest.mark.parametrize(("change", "reason"), [
+CHANGES = [
     (lambda d: d.update(extra=1), "extra_field"),
     (lambda d: d.pop("pose"), "missing_field"),
     (lambda d: d.update(proto=2), "bad_version"),
@@ -82,11 +83,92 @@ def _refused(doc: dict) -> str:
      "bad_rotation"),
     (lambda d: d.update(pose={"position": [0, 0, 1], "rotation": [1, 0, 0, 0, 1, 0, 0, 0, -1]}),
      "bad_rotation"),  # a reflection: det -1
-])
+    (lambda d: d.update(seq=-1), "bad_value"),
+    (lambda d: d.update(stamp_ns=2**63), "bad_value"),
+    (lambda d: d.update(capture_ns=1.5), "bad_type"),
+    (lambda d: d.update(camera="c" * 65), "bad_value"),
+    (lambda d: d.update(points={"id": 1}), "bad_type"),
+    (lambda d: d["points"].append([1, 2]), "bad_type"),
+    (lambda d: d["points"][1].update(extra=0), "extra_field"),
+    (lambda d: d["points"][2].update(v=-math.inf), "non_finite"),
+    (lambda d: d["points"][3].update(id=2**31), "bad_value"),
+    (lambda d: d["points"][4].update(depth=100.5), "too_large"),
+    (lambda d: d["points"][4].update(depth=False), "bad_type"),
+]
+
+
+@pytest.mark.parametrize(("change", "reason"), CHANGES)
 def test_refusals_name_the_reason(change, reason: str) -> None:
     doc = _example()
     change(doc)
     assert _refused(doc) == reason
+
+
+def _both(frames: list[bytes]) -> tuple[object, object]:
+    """(reference, vservo's) result of decoding `frames`: the message, or the WireError's (reason, text)."""
+    from twistrate.clients.vservo.feed import decode_features
+
+    out = []
+    for decode in (wf.decode_features_frames, decode_features):
+        try:
+            out.append(decode(frames))
+        except WireError as exc:
+            out.append((exc.reason, str(exc)))
+    return out[0], out[1]
+
+
+def _same_message(ref: object, got: object) -> None:
+    assert type(got).__name__ in ("FeaturesMessage", "PointsMessage")
+    assert (got.seq, got.stamp_ns, got.camera, got.capture_ns) == (ref.seq, ref.stamp_ns, ref.camera,
+                                                                  ref.capture_ns)
+    np.testing.assert_array_equal(np.asarray(got.ids, dtype=np.int64).reshape(-1), ref.ids)
+    np.testing.assert_array_equal(np.asarray(got.pixels, dtype=float).reshape(-1, 2), ref.pixels)
+    assert (got.depths is None) == (ref.depths is None)
+    if ref.depths is not None:
+        np.testing.assert_array_equal(got.depths, ref.depths)
+    assert (got.T_cam_target is None) == (ref.T_cam_target is None)
+    if ref.T_cam_target is not None:
+        np.testing.assert_array_equal(got.T_cam_target, ref.T_cam_target)
+
+
+@pytest.mark.parametrize(("change", "reason"), CHANGES)
+def test_vservos_decoder_refuses_as_the_reference_does(change, reason: str) -> None:
+    # feed.decode_features takes its own quick checks and leaves every doubt to the reference decoder:
+    # each refusal must be the reference's, reason and text (the field named) alike.
+    doc = _example()
+    change(doc)
+    ref, got = _both([wf.TOPIC_FEATURES, msgpack.packb(doc)])
+    assert ref == got and ref[0] == reason
+
+
+def test_vservos_decoder_gives_the_references_values() -> None:
+    # Random well-formed messages (points with and without depths, some depths missing, integer pixels,
+    # no points, a pose) decode to the reference's values; vservo's gives plain tuples for points.
+    from twistrate.clients.vservo.feed import PointsMessage
+
+    rng = np.random.default_rng(5)
+    for k in range(300):
+        n = int(rng.integers(0, 12))
+        doc = _example()
+        doc["seq"], doc["capture_ns"] = int(rng.integers(0, 2**62)), int(rng.integers(0, 2**62))
+        depth_kind = k % 3  # all depths, none, some
+        with_depth = [depth_kind == 0 or (depth_kind == 2 and j % 2 == 1) for j in range(n)]
+        doc["points"] = [{"id": int(rng.integers(0, 2**31)),
+                          "u": float(rng.uniform(-1e5, 1e5)) if k % 5 else int(rng.integers(-1000, 1000)),
+                          "v": float(rng.uniform(-1e5, 1e5)),
+                          "depth": float(rng.uniform(1e-3, 100.0)) if with_depth[j] else None}
+                         for j in range(n)]
+        if k % 7 == 0:
+            doc["pose"] = {"position": [0.01, -0.02, 0.3], "rotation": [1.0, 0, 0, 0, -1.0, 0, 0, 0, -1.0]}
+        frames = [wf.TOPIC_FEATURES, msgpack.packb(doc)]
+        ref, got = _both(frames)
+        _same_message(ref, got)
+        assert isinstance(got, PointsMessage) == (doc["pose"] is None)
+    for frames in ([wf.TOPIC_FEATURES], [b"featuresX", msgpack.packb(_example())],
+                   [wf.TOPIC_FEATURES, b"\x00" * (wf.MAX_FEATURES_BYTES + 1)], [wf.TOPIC_FEATURES, b"\xc1"],
+                   [wf.TOPIC_FEATURES, msgpack.packb([1, 2])]):
+        ref, got = _both(frames)
+        assert isinstance(ref, tuple) and ref == got
 
 
 def test_frames_size_and_topic() -> None:

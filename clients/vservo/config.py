@@ -106,6 +106,8 @@ class EndpointsSection(_Section):
 class RunSection(_Section):
     rate_hz: Annotated[float, Field(gt=0.0, le=1000.0)] = 50.0  # twists per second without new frames
     lease_ms: Annotated[int, Field(ge=50, le=60_000)] = 3000
+    # SCHED_FIFO priority of the loop and its ZeroMQ I/O threads when the OS permits (sched.py); 0: off
+    realtime_priority: Annotated[int, Field(ge=0, le=99)] = 0
 
 
 class VservoConfig(_Section):

@@ -8,6 +8,7 @@ good features return. Times are seconds on one monotonic clock the caller owns (
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from enum import StrEnum
 
@@ -29,12 +30,14 @@ class ServoState(StrEnum):
 
 @dataclass(frozen=True, eq=False)
 class PointFrame:
-    """Image points of one frame. ids (N,) int; pixels (N, 2) (u, v) px; depths (N,) m or None;
-    capture_s: capture time, s, on the receiver's clock (the sender's capture_ns mapped by the caller)."""
+    """Image points of one frame. ids (N,) int; pixels (N, 2) (u, v) px; depths (N,) m or None; either
+    numpy arrays or, as feed.decode_features gives them, tuples (ids a tuple of int, pixels a tuple of
+    (u, v) float pairs, depths a tuple of float); capture_s: capture time, s, on the receiver's clock
+    (the sender's capture_ns mapped by the caller)."""
 
-    ids: np.ndarray
-    pixels: np.ndarray
-    depths: np.ndarray | None
+    ids: np.ndarray | tuple[int, ...]
+    pixels: np.ndarray | tuple[tuple[float, float], ...]
+    depths: np.ndarray | tuple[float, ...] | None
     capture_s: float
 
 
@@ -63,11 +66,12 @@ class Gate:
 class Matched:
     """Points of a frame matched to the desired ones by id, in the desired set's order.
 
-    index (M,) int: rows of the desired set; pixels (M, 2) px; depths (M,) m or None."""
+    index (M,) int: rows of the desired set; pixels (M, 2) px; depths (M,) m or None; numpy arrays
+    (from `match`) or sequences of the same shapes (the servo's own form, plain floats)."""
 
-    index: np.ndarray
-    pixels: np.ndarray
-    depths: np.ndarray | None
+    index: np.ndarray | Sequence[int]
+    pixels: np.ndarray | Sequence[Sequence[float]]
+    depths: np.ndarray | Sequence[float] | None
 
 
 def match(frame: PointFrame, desired_ids: np.ndarray | dict[int, int]) -> Matched:
@@ -77,9 +81,11 @@ def match(frame: PointFrame, desired_ids: np.ndarray | dict[int, int]) -> Matche
     in a frame is ambiguous: all its copies are dropped (common practice: never guess which detection
     is the right one). Small N: a plain loop beats array set operations here."""
     rows_of = desired_ids if isinstance(desired_ids, dict) else {int(i): k for k, i in enumerate(desired_ids)}
-    ok = np.isfinite(frame.pixels).all(axis=1)
-    if frame.depths is not None:
-        ok &= np.isfinite(frame.depths) & (frame.depths > 0.0)
+    pixels = np.asarray(frame.pixels, dtype=float).reshape(-1, 2)
+    depths = None if frame.depths is None else np.asarray(frame.depths, dtype=float)
+    ok = np.isfinite(pixels).all(axis=1)
+    if depths is not None:
+        ok &= np.isfinite(depths) & (depths > 0.0)
     seen: dict[int, int] = {}
     dup: set[int] = set()
     for j, (i, good) in enumerate(zip(np.asarray(frame.ids).tolist(), ok.tolist(), strict=True)):
@@ -91,8 +97,7 @@ def match(frame: PointFrame, desired_ids: np.ndarray | dict[int, int]) -> Matche
     pairs = sorted((rows_of[i], j) for i, j in seen.items() if i not in dup)
     index = np.array([k for k, _ in pairs], dtype=int)
     rows = np.array([j for _, j in pairs], dtype=int)
-    depths = None if frame.depths is None else np.asarray(frame.depths, float)[rows]
-    return Matched(index, np.asarray(frame.pixels, float)[rows].reshape(-1, 2), depths)
+    return Matched(index, pixels[rows], None if depths is None else depths[rows])
 
 
 def gate_state(frame: Frame | None, arrived_s: float, now_s: float, gate: Gate,
@@ -111,8 +116,8 @@ def gate_state(frame: Frame | None, arrived_s: float, now_s: float, gate: Gate,
         if not np.isfinite(frame.T_cam_target).all():
             return ServoState.TOO_FEW
         return ServoState.TRACKING
-    if matched is None or matched.index.size == 0:
+    if matched is None or len(matched.index) == 0:
         return ServoState.MISSING
-    if matched.index.size < MIN_POINTS:
+    if len(matched.index) < MIN_POINTS:
         return ServoState.TOO_FEW
     return ServoState.TRACKING

@@ -8,6 +8,7 @@ rad/s, expressed in the current camera frame (the paper's v_c).
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -98,8 +99,10 @@ class GainSchedule:
         return self.near + (self.far - self.near) * r / (r + self.knee * self.knee)
 
 
-def saturate(twist: np.ndarray, linear_max: float, angular_max: float) -> np.ndarray:
-    """(6,) twist scaled by one factor so |v| <= linear_max (m/s) and |w| <= angular_max (rad/s).
+def saturate(twist: Sequence[float] | np.ndarray, linear_max: float,
+             angular_max: float) -> tuple[float, ...]:
+    """(6,) twist (v, w) scaled by one factor so |v| <= linear_max (m/s) and |w| <= angular_max (rad/s),
+    as a tuple of 6 floats.
 
     One common factor keeps the direction of the whole twist (common practice: scaling each part or
     clipping components would bend the path the law asks for).
@@ -111,4 +114,4 @@ def saturate(twist: np.ndarray, linear_max: float, angular_max: float) -> np.nda
         factor = linear_max / v
     if w * factor > angular_max:
         factor = angular_max / w
-    return twist * factor
+    return tuple(float(c) * factor for c in twist)

@@ -8,11 +8,12 @@ says the features are stale, missing or too few. Twists are (6,) linear first (v
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from twistrate.clients.vservo import laws, transforms
+from twistrate.clients.vservo import laws
 from twistrate.clients.vservo.camera import Intrinsics
 from twistrate.clients.vservo.errorlog import Convergence
 from twistrate.clients.vservo.features import (
@@ -25,14 +26,14 @@ from twistrate.clients.vservo.features import (
     gate_state,
     match,
 )
-from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, MeanMatrix, estimate, point_matrix
+from twistrate.clients.vservo.interaction import MIN_POINTS, DepthChoice, estimate, point_matrix
+from twistrate.clients.vservo.pointlaw import PointLaw
 from twistrate.solver.errors import ConfigError, field_error
 
 #: The discrete-time loop e_{k+1} = (1 - lambda T) e_k is stable for 0 < lambda T < 2; we refuse gains
 #: beyond this share of that bound, since latency lowers it further (common practice).
 GAIN_PERIOD_MAX = 1.0
-ZERO = np.zeros(6)
-ZERO.setflags(write=False)
+ZERO = (0.0,) * 6
 
 
 @dataclass(frozen=True, eq=False)
@@ -87,10 +88,11 @@ class Settings:
 
 @dataclass(frozen=True, eq=False)
 class Step:
-    """One step's result. twist (6,): the camera twist to send (camera frame), zero unless tracking."""
+    """One step's result. twist (6,): the camera twist to send, (v, w) of the camera frame, m/s and
+    rad/s, a tuple of 6 floats, zero unless tracking."""
 
     state: ServoState
-    twist: np.ndarray
+    twist: tuple[float, ...]
     points: int = 0
     error_px_mean: float | None = None
     error_px_max: float | None = None
@@ -123,10 +125,14 @@ class Servo:
             # built once for the frames that show every goal point in the goal's order (a pipeline's
             # usual frame): no matching, no row picking, L_hat filled in place
             self._ids_key = np.asarray(goal.ids, dtype=np.int64).tobytes()
+            self._ids_tuple = tuple(int(i) for i in goal.ids)
+            self._shape = (K, 2)
             self._pixels_star = np.asarray(goal.pixels, dtype=float)
-            self._every = np.arange(K)
+            self._every = tuple(range(K))
             self._inv_f = 1.0 / self._f
-            self._L_mean = MeanMatrix(self._L_star)
+            i = settings.intrinsics
+            self._law = PointLaw(i.fx, i.fy, i.cx, i.cy, self._pixels_star.tolist(),
+                                 np.asarray(goal.depths, dtype=float).tolist(), settings.depth)
 
     def step(self, frame: Frame | None, arrived_s: float, now_s: float) -> Step:
         """The twist for the newest frame (None: none yet), received at arrived_s, at time now_s (s)."""
@@ -148,45 +154,61 @@ class Servo:
         return update()
 
     def _match(self, frame: PointFrame) -> Matched:
-        """The frame's points matched to the goal's: at once when the frame holds exactly the goal's ids
-        in the goal's order (int64, as the wire decoder gives them), with finite pixels and finite
-        positive depths (a sum is finite only if every term is; else the general match decides)."""
+        """The frame's points matched to the goal's, as plain floats for the law: at once when the frame
+        holds exactly the goal's ids in the goal's order (a tuple from feed.decode_features, or an int64
+        array as the wire's reference decoder gives them) with finite pixels and finite positive depths
+        (a sum is finite only if every term is); else the general match decides (features.match)."""
         ids, pixels, depths = frame.ids, frame.pixels, frame.depths
-        if (type(ids) is np.ndarray and ids.dtype == np.int64 and ids.tobytes() == self._ids_key
-                and type(pixels) is np.ndarray and pixels.dtype == np.float64
-                and math.isfinite(pixels.sum())
-                and (depths is None or (type(depths) is np.ndarray and depths.dtype == np.float64
-                                        and math.isfinite(depths.sum()) and depths.min() > 0.0))):
+        if type(ids) is tuple:
+            same = ids == self._ids_tuple
+        else:
+            same = (type(ids) is np.ndarray and ids.dtype == np.int64 and ids.tobytes() == self._ids_key
+                    and type(pixels) is np.ndarray and pixels.dtype == np.float64
+                    and pixels.shape == self._shape
+                    and (depths is None or (type(depths) is np.ndarray and depths.dtype == np.float64)))
+            if same:
+                pixels = pixels.tolist()
+                depths = None if depths is None else depths.tolist()
+        if same and len(pixels) == len(self._ids_tuple) and math.isfinite(sum(map(sum, pixels))) and (
+                depths is None or (len(depths) == len(pixels) and math.isfinite(sum(depths))
+                                   and min(depths) > 0.0)):
             return Matched(self._every, pixels, depths)
-        return match(frame, self._rows)
+        m = match(frame, self._rows)
+        return Matched(m.index.tolist(), m.pixels.tolist(), None if m.depths is None else m.depths.tolist())
 
     def _points(self, frame: PointFrame | None, arrived_s: float, now_s: float) -> Step:
-        goal, s = self.goal, self.settings
+        s = self.settings
         matched = self._match(frame) if frame is not None else None
         state = gate_state(frame, arrived_s, now_s, s.gate, matched)
+        if state is ServoState.TRACKING:
+            rows = None if matched.index is self._every else matched.index
+            law = self._law(matched.pixels, matched.depths, rows)
+            if not law.ok:  # pixels so large their squares overflow: nothing usable
+                state = ServoState.TOO_FEW
         if state is not ServoState.TRACKING:
             self.convergence.reset()
-            return Step(state, ZERO, points=0 if matched is None else int(matched.index.size))
-        k = matched.index
-        full = k.size == len(goal.ids)  # every point seen: k is 0..K-1 in order (match keeps desired order)
-        d = matched.pixels - (self._pixels_star if full else self._pixels_star[k])  # (M, 2) px
-        sq = d * d
-        distance = np.sqrt(sq[:, 0] + sq[:, 1])
-        e = (d * self._inv_f).ravel()  # s - s*, normalised: ((u, v) - (u*, v*)) / (f_x, f_y)
-        error_norm = math.sqrt(e @ e)
-        xy = (matched.pixels - self._c) * self._inv_f
-        if full and s.depth is DepthChoice.MEAN:  # the usual case, in place: (L_e + L_e*) / 2
-            L_hat = self._L_mean(xy, goal.depths if matched.depths is None else matched.depths)
-        else:
-            L_star = self._L_star if full else self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
-            L_hat = estimate(s.depth, xy, matched.depths, self._xy_star[k], goal.depths[k], L_star)
-        gain = s.gain(error_norm)
-        twist = laws.saturate(laws.ibvs_twist(L_hat, e, gain), s.linear_max, s.angular_max)
-        mean_px = float(distance.sum()) / k.size
+            return Step(state, ZERO, points=0 if matched is None else len(matched.index))
+        gain = s.gain(law.error_norm)
+        if law.direction is not None:
+            twist = (-gain * c for c in law.direction)
+        else:  # ill-conditioned for the normal equations: the SVD reference drops the null directions
+            twist = self._reference_twist(matched, rows, gain)
+        twist = laws.saturate(tuple(twist), s.linear_max, s.angular_max)
+        mean_px = law.mean_px
         settled = self._count(frame, lambda: self.convergence.update_points(mean_px))
-        return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, points=int(k.size),
-                    error_px_mean=mean_px, error_px_max=float(distance.max()), error_norm=error_norm,
-                    gain=gain)
+        return Step(ServoState.SETTLED if settled else ServoState.TRACKING, twist, points=len(matched.index),
+                    error_px_mean=mean_px, error_px_max=law.max_px, error_norm=law.error_norm, gain=gain)
+
+    def _reference_twist(self, matched: Matched, rows: list[int] | None, gain: float) -> np.ndarray:
+        """(6,) -gain L_hat^+ e by interaction.estimate and laws.ibvs_twist (numpy, SVD)."""
+        k = np.arange(len(self.goal.ids)) if rows is None else np.asarray(rows, dtype=int)
+        pixels = np.asarray(matched.pixels, dtype=float).reshape(-1, 2)
+        depths = None if matched.depths is None else np.asarray(matched.depths, dtype=float)
+        e = ((pixels - self._pixels_star[k]) * self._inv_f).ravel()
+        xy = (pixels - self._c) * self._inv_f
+        L_star = self._L_star[np.column_stack([2 * k, 2 * k + 1]).ravel()]
+        L_hat = estimate(self.settings.depth, xy, depths, self._xy_star[k], self.goal.depths[k], L_star)
+        return laws.ibvs_twist(L_hat, e, gain)
 
     def _pose(self, frame: PoseFrame | None, arrived_s: float, now_s: float) -> Step:
         s = self.settings
@@ -215,19 +237,28 @@ class Mount:
     def __post_init__(self) -> None:
         if self.kind not in ("tool", "cell"):
             raise field_error(ConfigError, "mount", self.kind, "'tool' or 'cell'")
+        T = np.asarray(self.T, dtype=float)
+        # R's rows and t as plain floats, for wire_twist (frozen: set once here)
+        object.__setattr__(self, "_R", tuple(tuple(row) for row in T[:3, :3].tolist()))
+        object.__setattr__(self, "_t", tuple(T[:3, 3].tolist()))
 
 
-def wire_twist(twist: np.ndarray, mount: Mount, p_base_tool: np.ndarray | None = None) -> dict:
+def wire_twist(twist: Sequence[float] | np.ndarray, mount: Mount,
+               p_base_tool: Sequence[float] | np.ndarray | None = None) -> dict:
     """The service's twist fields {linear, angular, frame, point} (lists of float) for a camera twist
-    (6,). A camera on the tool needs nothing else (tool frame, at the camera); a camera in the cell
-    needs the tool origin p_base_tool (3,) m, base frame (base frame, at the camera's location)."""
+    (6,) (v, w), camera frame. A camera on the tool needs nothing else (tool frame, at the camera: R v,
+    R w, point t, as transforms.camera_point_twist); a camera in the cell needs the tool origin
+    p_base_tool (3,) m, base frame (base frame, at the camera's location: -R v, -R w, point p - p_base_tool,
+    as transforms.eye_to_hand_twist). On plain floats: a handful of products, cheaper than numpy calls."""
+    (r00, r01, r02), (r10, r11, r12), (r20, r21, r22) = mount._R
+    v0, v1, v2, w0, w1, w2 = twist
+    linear = [r00 * v0 + r01 * v1 + r02 * v2, r10 * v0 + r11 * v1 + r12 * v2, r20 * v0 + r21 * v1 + r22 * v2]
+    angular = [r00 * w0 + r01 * w1 + r02 * w2, r10 * w0 + r11 * w1 + r12 * w2, r20 * w0 + r21 * w1 + r22 * w2]
     if mount.kind == "tool":
-        linear, angular, point = transforms.camera_point_twist(twist, mount.T)
-        frame = "tool"
-    else:
-        if p_base_tool is None:
-            raise field_error(ConfigError, "p_base_tool", None,
-                              "the tool origin (3,) m for a camera in the cell")
-        linear, angular, point = transforms.eye_to_hand_twist(twist, mount.T, p_base_tool)
-        frame = "base"
-    return {"linear": linear.tolist(), "angular": angular.tolist(), "frame": frame, "point": point.tolist()}
+        return {"linear": linear, "angular": angular, "frame": "tool", "point": list(mount._t)}
+    if p_base_tool is None:
+        raise field_error(ConfigError, "p_base_tool", None, "the tool origin (3,) m for a camera in the cell")
+    o0, o1, o2 = (float(c) for c in p_base_tool)
+    t0, t1, t2 = mount._t
+    return {"linear": [-c for c in linear], "angular": [-c for c in angular], "frame": "base",
+            "point": [t0 - o0, t1 - o1, t2 - o2]}

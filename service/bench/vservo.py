@@ -23,10 +23,21 @@ answers each new frame with one twist at once and sends no other twists while fr
 * features sent -> command published: the command's stamp (the service's wall clock at its tick)
   minus the frame's send stamp (this process's wall clock; one machine, one clock);
 * features sent -> command received here (adds the output transport and this process's wake-up);
-* frames without an answer before the next frame.
+* frames without an answer before the next frame;
+* where the time goes, from the client's own record of each answer (`--timings`, wall clock, one
+  machine): features sent -> taken off the client's socket (the input hop and the client's wake-up),
+  -> its twist sent (the client's own work: decoding, the law, encoding), -> command published (the
+  intake hop, the wait for the tick and the tick's own work);
+* how long the client's thread waited for a CPU (runnable, not running; the kernel's account) from the
+  start of the wait in which the frame came to its twist sent, and for the stalls (features sent ->
+  twist sent > STALL_MS) the share of each that this wait covers: near 100 % means the machine's load,
+  not the client's code, made the stall.
 
 Target: p99 of sent -> published <= one service tick + 1 ms (the twist waits at most one tick; 1 ms
 for two loopback hops, decoding, the law and vservo's wake-up).
+
+Before the service starts, the per-frame path's cost in this process, vservo's form against the numpy
+reference form (service/bench/vservo_path.py), hot and after a wait.
 """
 
 from __future__ import annotations
@@ -50,7 +61,9 @@ import zmq
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.feed import FeatureSender
+from twistrate.clients.vservo.runner import read_timings
 from twistrate.service import wire
+from twistrate.service.bench.vservo_path import format_costs, path_costs
 from twistrate.service.commands.help_text import first_paragraph
 from twistrate.service.commands.vservo import (
     ANY_PORT,
@@ -95,6 +108,10 @@ def _stop(proc: subprocess.Popen, sig: int = signal.SIGTERM) -> None:
         proc.wait(5.0)
 
 
+def _median(values: list[float]) -> float:
+    return float(np.median(values)) if values else math.nan
+
+
 def _summary(values_ms: list[float]) -> dict[str, float]:
     a = np.array(values_ms)
     if a.size == 0:
@@ -106,12 +123,13 @@ def _summary(values_ms: list[float]) -> dict[str, float]:
 class _Run:
     """One benchmark run: the service, the vservo configuration, the command watcher, the files."""
 
-    def __init__(self, rate_hz: float, tmp: str) -> None:
+    def __init__(self, rate_hz: float, tmp: str, realtime_priority: int = 0) -> None:
         service_config, text = synthetic_service_config(None, {"tick": {"rate_hz": rate_hz}})
         self.arm = service_config.load_arm()
         data = vc.load_config().model_dump()
         data["endpoints"] = {**data["endpoints"], "features": ANY_PORT}
-        data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ}
+        data["run"] = {**data["run"], "rate_hz": KEEPALIVE_HZ, "realtime_priority": realtime_priority}
+        self.realtime_priority = realtime_priority
         data["camera"] = {**data["camera"], "rate_hz": FRAME_HZ}
         self.config = vc.config_from_dict(data, "bench vservo config")
         self.cell = synthetic.panel_cell(vc.intrinsics(self.config), vc.mount(self.config).T)
@@ -143,15 +161,18 @@ class _Run:
 
     def client(self, kind: str, k: int, seconds: float) -> subprocess.Popen:
         features = str(Path(self.tmp) / f"features-{kind}-{k}.json")
-        endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features]
+        timings = str(Path(self.tmp) / f"timings-{kind}-{k}.csv")
+        endpoints = ["--endpoints-file", self.paths["endpoints.json"], "--features-file", features,
+                     "--timings", timings]
         limit = ["--seconds", str(seconds + CLIENT_START_S + WARMUP_S + 30.0)]
         if kind == "relay":
-            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ)], self.err,
-                          "twistrate.service.bench.vservo_relay")
+            proc = _spawn([*endpoints, *limit, "--keepalive-hz", str(KEEPALIVE_HZ), "--realtime",
+                           str(self.realtime_priority)], self.err, "twistrate.service.bench.vservo_relay")
         else:
             proc = _spawn(["vservo", "--config", self.paths["vservo.toml"], *endpoints, "--track", *limit],
                           self.err)
         proc.features_file = features  # type: ignore[attr-defined]
+        proc.timings_file = timings  # type: ignore[attr-defined]
         return proc
 
     def close(self) -> None:
@@ -162,15 +183,19 @@ class _Run:
         self.err.close()
 
 
-def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[str, Any]:
+def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS,
+          realtime_priority: int = 0) -> dict[str, Any]:
     """One run at service tick rate `rate_hz`: `rounds` rounds, each the relay then vservo for
-    seconds / rounds s after its warm-up."""
+    seconds / rounds s after its warm-up; realtime_priority: both clients' [run] realtime_priority."""
     per_round = seconds / rounds
     load_before = os.getloadavg()[0]
+    path = path_costs()  # before the service starts: this process alone
     samples: dict[str, dict[str, list]] = {kind: {"published": [], "received": [], "frames": [0],
-                                                  "unanswered": [0]} for kind in CLIENTS}
+                                                  "unanswered": [0],
+                                                  **{part: [] for part in (*PARTS, *STALL_KEYS)}}
+                                           for kind in CLIENTS}
     with tempfile.TemporaryDirectory(prefix="twistrate-bench-vservo-") as tmp:
-        run = _Run(rate_hz, tmp)
+        run = _Run(rate_hz, tmp, realtime_priority)
         try:
             run.watch()
             for k in range(rounds):
@@ -191,20 +216,29 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
                         _stop(proc, signal.SIGINT)
                     if got["frames"] == 0:
                         raise run.failure(f"{kind}: no frame was answered")
+                    for part, values in _split(got["answers"], proc.timings_file).items():
+                        samples[kind][part] += values
                     for key in ("published", "received"):
                         samples[kind][key] += got[key]
                     samples[kind]["frames"][0] += got["frames"]
                     samples[kind]["unanswered"][0] += got["unanswered"]
         finally:
             run.close()
-    result: dict[str, Any] = {"rate_hz": rate_hz, "seconds": seconds, "rounds": rounds, "frame_hz": FRAME_HZ,
+    result: dict[str, Any] = {"path": path, "rate_hz": rate_hz, "seconds": seconds, "rounds": rounds,
+                              "clients_realtime_priority": realtime_priority,
+                              "frame_hz": FRAME_HZ,
                               "frame_jitter": JITTER, "target_p99_ms": 1000.0 / rate_hz + TARGET_EXTRA_MS,
                               "load_average_1min": [load_before, os.getloadavg()[0]]}
     for kind in CLIENTS:
         s = samples[kind]
         result[kind] = {"frames": s["frames"][0], "unanswered": s["unanswered"][0],
                         "sent_to_published": _summary(s["published"]),
-                        "sent_to_received": _summary(s["received"])}
+                        "sent_to_received": _summary(s["received"]),
+                        **{part: _summary(s[part]) for part in (*PARTS, CPU_WAIT, CPU_WAIT_ALL)},
+                        "stalls": {"count": len(s["stall_ms"]), "over_ms": STALL_MS,
+                                   "median_ms": _summary(s["stall_ms"])["median_ms"],
+                                   "cpu_wait_share_median": _median(s["stall_wait_share"]),
+                                   "cpu_wait_all_share_median": _median(s["stall_wait_all_share"])}}
     v, r = result["vservo"]["sent_to_published"], result["relay"]["sent_to_published"]
     result["vservo_minus_relay"] = {"median_ms": v["median_ms"] - r["median_ms"],
                                     "p99_ms": v["p99_ms"] - r["p99_ms"]}
@@ -212,6 +246,46 @@ def bench(rate_hz: float, seconds: float, rounds: int = DEFAULT_ROUNDS) -> dict[
     result.update(frames=result["vservo"]["frames"], unanswered=result["vservo"]["unanswered"],
                   sent_to_published=v, sent_to_received=result["vservo"]["sent_to_received"])
     return result
+
+
+#: The parts of features sent -> command published, from the client's timings file (module docstring),
+#: and the client's thread waiting for a CPU (runnable, not running) from the start of the wait in which
+#: the frame came to its twist sent (runner.Timings).
+PARTS = ("sent_to_taken", "taken_to_twist", "twist_to_published")
+CPU_WAIT, CPU_WAIT_ALL = "cpu_wait", "cpu_wait_all"
+#: An answer is a stall when features sent -> its twist sent takes longer than this, ms.
+STALL_MS = 5.0
+STALL_KEYS = (CPU_WAIT, CPU_WAIT_ALL, "stall_ms", "stall_wait_share", "stall_wait_all_share")
+
+
+def _split(answers: list[tuple[int, int, int]], path: str) -> dict[str, list[float]]:
+    """The three parts (ms) of each counted answer (twist seq, frame send stamp ns, command stamp ns),
+    joined by twist seq with the client's timings file (missing file or rows: those answers left out),
+    the client thread's CPU wait (ms) over each answer's window, and for each stall the share of it
+    that this wait covers."""
+    out: dict[str, list[float]] = {part: [] for part in (*PARTS, *STALL_KEYS)}
+    try:
+        t = read_timings(path)
+        rows = {seq: (taken, out_ns, (own, every) if own >= 0 else None) for seq, taken, out_ns, own, every
+                in zip(t["twist_seq"], t["received_ns"], t["sent_ns"], t["cpu_wait_ns"], t["cpu_wait_all_ns"],
+                       strict=True)}
+    except (OSError, ValueError, IndexError, KeyError):
+        return out
+    for twist_seq, sent_ns, stamp_ns in answers:
+        if twist_seq not in rows:
+            continue
+        taken, out_ns, wait_ns = rows[twist_seq]
+        out["sent_to_taken"].append((taken - sent_ns) / 1e6)
+        out["taken_to_twist"].append((out_ns - taken) / 1e6)
+        out["twist_to_published"].append((stamp_ns - out_ns) / 1e6)
+        if wait_ns is not None:
+            out[CPU_WAIT].append(wait_ns[0] / 1e6)
+            out[CPU_WAIT_ALL].append(wait_ns[1] / 1e6)
+            if (out_ns - sent_ns) / 1e6 > STALL_MS:
+                out["stall_ms"].append((out_ns - sent_ns) / 1e6)
+                out["stall_wait_share"].append(wait_ns[0] / (out_ns - sent_ns))
+                out["stall_wait_all_share"].append(wait_ns[1] / (out_ns - sent_ns))
+    return out
 
 
 def _toml_doc(data: dict[str, Any]) -> str:
@@ -241,6 +315,7 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
     answers = None
     pending: tuple[int, bool] | None = None  # (send stamp ns, counted) of the newest unanswered frame
     published, received, unanswered, frames = [], [], 0, 0
+    answered: list[tuple[int, int, int]] = []  # (twist seq, frame send stamp, command stamp) when counted
     while time.monotonic() < end:
         if sub.poll(max(0, int((next_frame - time.monotonic()) * 1000)), zmq.POLLIN):
             newest = None
@@ -259,6 +334,7 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
                     if pending is not None and pending[1]:
                         published.append((m["stamp_ns"] - pending[0]) / 1e6)
                         received.append((got - pending[0]) / 1e6)
+                        answered.append((answers, pending[0], m["stamp_ns"]))
                     if measuring_from is None:
                         measuring_from = time.monotonic() + WARMUP_S
                         end = measuring_from + seconds
@@ -281,16 +357,30 @@ def _measure(run: _Run, sender: FeatureSender, seconds: float) -> dict[str, Any]
         frames += counted
     if measuring_from is None:
         return {"frames": 0}
-    return {"frames": frames, "unanswered": unanswered, "published": published, "received": received}
+    return {"frames": frames, "unanswered": unanswered, "published": published, "received": received,
+            "answers": answered}
 
 
 def _lines(name: str, r: dict[str, Any]) -> list[str]:
     p, q = r["sent_to_published"], r["sent_to_received"]
+    w, wa, st = r[CPU_WAIT], r[CPU_WAIT_ALL], r["stalls"]
+    labels = ("to its socket", "to its twist", "to published")
+    parts = ", ".join(f"{label} {r[k]['median_ms']:.3f} / {r[k]['p99_ms']:.3f} / {r[k]['max_ms']:.3f}"
+                      for k, label in zip(PARTS, labels, strict=True))
     return [f"  {name}: {r['frames']} frames, {r['unanswered']} without an answer",
             f"    features sent -> command published: median {p['median_ms']:.3f} ms, "
             f"p99 {p['p99_ms']:.3f} ms, max {p['max_ms']:.3f} ms ({p['count']} answers)",
             f"    features sent -> command received: median {q['median_ms']:.3f} ms, "
-            f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms"]
+            f"p99 {q['p99_ms']:.3f} ms, max {q['max_ms']:.3f} ms",
+            f"    parts, median / p99 / max ms ({r[PARTS[0]]['count']} answers): {parts}",
+            f"    waiting for a CPU from its wait for the frame to the twist, median / p99 / max ms: its "
+            f"loop's thread {w['median_ms']:.3f} / {w['p99_ms']:.3f} / {w['max_ms']:.3f}, all its threads "
+            f"{wa['median_ms']:.3f} / {wa['p99_ms']:.3f} / {wa['max_ms']:.3f}",
+            f"    {st['count']} stalls (features sent -> twist sent > {st['over_ms']:g} ms)"
+            + (f", median {st['median_ms']:.1f} ms: CPU wait covers "
+               f"{st['cpu_wait_share_median'] * 100:.0f} % of each (median; all threads "
+               f"{st['cpu_wait_all_share_median'] * 100:.0f} %)"
+               if st["count"] else "")]
 
 
 def format_result(r: dict[str, Any]) -> str:
@@ -301,31 +391,38 @@ def format_result(r: dict[str, Any]) -> str:
     return "\n".join([
         f"vservo at service tick {r['rate_hz']:g} Hz, frames {r['frame_hz']:g} Hz on average (gaps "
         f"+-{r['frame_jitter'] * 100:g} %, random tick phase), {r['rounds']} rounds, {r['seconds']:g} s "
-        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}",
+        f"each client; load average {r['load_average_1min'][0]:.1f} -> {r['load_average_1min'][1]:.1f}"
+        + (f"; clients SCHED_FIFO {r['clients_realtime_priority']} (if permitted)"
+           if r.get("clients_realtime_priority") else ""),
         *_lines("relay (reference: same sockets, fixed twist, no law)", r["relay"]),
         *_lines("vservo", r["vservo"]),
         f"  vservo minus relay (vservo's own cost): median {d['median_ms']:+.3f} ms, "
         f"p99 {d['p99_ms']:+.3f} ms",
         f"  target p99 <= one tick + {TARGET_EXTRA_MS:g} ms = {target:.1f} ms: vservo {verdict} it "
         f"(p99 {v['p99_ms']:.3f} ms); the relay's floor {floor} it (p99 {f['p99_ms']:.3f} ms)",
+        *format_costs(r["path"]),
     ])
 
 
 def run(argv: list[str] | None = None) -> int:
-    """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--json FILE]`."""
+    """`twistrate bench vservo [--seconds S] [--rate HZ] [--rounds N] [--realtime PRIORITY] [--json FILE]`."""
     parser = argparse.ArgumentParser(prog="twistrate bench vservo", description=first_paragraph(__doc__))
     parser.add_argument("--seconds", type=float, default=DEFAULT_SECONDS,
                         help="measured window per client, s (split over the rounds)")
     parser.add_argument("--rate", type=float, default=DEFAULT_RATE_HZ, help="service tick rate, Hz")
     parser.add_argument("--rounds", type=int, default=DEFAULT_ROUNDS,
                         help="interleaved rounds (relay, then vservo, each round)")
+    parser.add_argument("--realtime", type=int, default=0, metavar="PRIORITY",
+                        help="both clients' loops under SCHED_FIFO at this priority, if permitted (0: off; "
+                             "vservo's [run] realtime_priority)")
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     args = parser.parse_args(argv)
-    if not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0 or not 1 <= args.rounds <= 20:
+    if (not 0.5 <= args.seconds <= 600.0 or not 10.0 <= args.rate <= 2000.0 or not 1 <= args.rounds <= 20
+            or not 0 <= args.realtime <= 99):
         print("twistrate bench vservo: accepted: 0.5 <= --seconds <= 600, 10 <= --rate <= 2000, "
-              "1 <= --rounds <= 20", file=sys.stderr)
+              "1 <= --rounds <= 20, 0 <= --realtime <= 99", file=sys.stderr)
         return 2
-    result = bench(args.rate, args.seconds, args.rounds)
+    result = bench(args.rate, args.seconds, args.rounds, args.realtime)
     if args.json:
         Path(args.json).write_text(json.dumps(result, indent=2, default=float))
     print(format_result(result))

@@ -36,7 +36,7 @@ from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo import synthetic
 from twistrate.clients.vservo.errorlog import ErrorLog
 from twistrate.clients.vservo.feed import FeatureInput
-from twistrate.clients.vservo.runner import Outcome, Runner
+from twistrate.clients.vservo.runner import Outcome, Runner, Timings
 from twistrate.clients.vservo.synthetic_feed import SyntheticPipeline
 from twistrate.service import wire
 from twistrate.service.commands.demo import CAUTIONS as DEMO_CAUTIONS
@@ -168,6 +168,9 @@ def parser() -> argparse.ArgumentParser:
                    help="the service's endpoints from the file `twistrate serve --endpoints-file FILE` wrote")
     p.add_argument("--features-file", metavar="FILE",
                    help="write where the features socket is bound (JSON), for a pipeline started later")
+    p.add_argument("--timings", metavar="FILE",
+                   help="after the run, write when each frame was received and when its twist went out "
+                        "(CSV, wall clock ns; `twistrate bench vservo` reads it)")
     p.add_argument("--service-config", help="--synthetic: the service's TOML (default: the packaged demo)")
     p.add_argument("--noise-px", type=float, default=0.0, help="--synthetic: pixel noise sigma, px")
     p.add_argument("--latency-ms", type=float, default=0.0, help="--synthetic: capture to delivery, ms")
@@ -218,9 +221,13 @@ def run_live(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         link = stack.enter_context(Link(service, client="vservo", topics=topics, timeout_s=2.0))
         print(f"vservo: features from {feed.endpoint} (camera {config.camera.name!r}), service at "
               f"{service.control}; {config.law.kind} law, goal of {_goal_text(config)}", flush=True)
-        runner = Runner(config, link, feed, track=args.track, log=log)
+        timings = Timings() if args.timings else None
+        runner = Runner(config, link, feed, track=args.track, log=log, on_sent=timings,
+                        on_wait=None if timings is None else timings.waiting)
         _on_signals(runner)
         outcome = runner.run(args.seconds)
+    if timings is not None:
+        timings.write(args.timings)
     _report(outcome, config, args.log)
     return 0 if outcome.reason in ("settled", "time", "stopped") else 1
 
@@ -278,13 +285,17 @@ def run_synthetic(args: argparse.Namespace, config: vc.VservoConfig) -> int:
         print(f"synthetic: service {arm.name} ({arm.n} joints, simulated) at {ep.control}; camera "
               f"{config.camera.name!r} {config.camera.rate_hz:g} Hz, noise {args.noise_px:g} px, latency "
               f"{args.latency_ms:g} ms, drop {args.drop:g}, blackouts {args.blackout or 'none'}", flush=True)
-        runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin)
+        timings = Timings() if args.timings else None
+        runner = Runner(config, link, feed, track=args.track, log=log, on_start=pipeline.begin,
+                        on_sent=timings, on_wait=None if timings is None else timings.waiting)
         _on_signals(runner)
         pipeline.start()
         stack.callback(pipeline.stop)
         outcome = runner.run(args.seconds)
         if service.poll() is not None:
             print(f"the service exited: {err_path.read_text()[-500:]}", file=sys.stderr)
+    if timings is not None:
+        timings.write(args.timings)
     _report(outcome, config, args.log)
     if pipeline.error:
         print(f"  the synthetic camera failed: {pipeline.error}")
@@ -305,7 +316,8 @@ def _report(outcome: Outcome, config: vc.VservoConfig, log_path: str | None) -> 
     last = outcome.last
     lines = ["", "REPORT", f"  ended: {outcome.reason}" + (f" ({outcome.detail})" if outcome.detail else ""),
              f"  frames {outcome.frames}, twists sent {outcome.twists}; steps per state: "
-             + ", ".join(f"{k} {v}" for k, v in sorted(outcome.states.items()))]
+             + ", ".join(f"{k} {v}" for k, v in sorted(outcome.states.items())),
+             f"  scheduling: {outcome.scheduling}"]
     if outcome.settled_at_s is not None:
         lines.append(f"  settled after {outcome.settled_at_s:.2f} s (mean error <= "
                      f"{config.settle.threshold_px:g} px for {config.settle.hold_frames} frames)")

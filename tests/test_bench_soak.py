@@ -102,3 +102,17 @@ def test_identities_hold_on_consistent_counts_and_each_fails_on_its_own_defect()
     case = _consistent()
     case[3]["commands"] = 7999  # one command dropped between the service and the watcher
     assert [ch["ok"] for ch in identities(*case)][3] is False
+
+
+def test_a_helper_that_dies_without_figures_is_reported_with_its_exit_code_and_stderr():
+    # The soak reads each helper process's last JSON line; one that crashed (a traceback, exit 1)
+    # must be named with its exit code and the end of its stderr, not as an empty output.
+    from twistrate.service.bench.soak import _last_json
+
+    crash = "import sys; sys.stderr.write('boom at tick 7'); sys.exit(3)"
+    proc = subprocess.Popen([sys.executable, "-c", crash], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    out, err = proc.communicate(timeout=30)
+    with pytest.raises(RuntimeError, match=r"twist source process \(exit code 3\).*boom at tick 7"):
+        _last_json("twist source", proc, out, err)
+    assert _last_json("driver", proc, 'noise\n{"sent": 4}\n', "") == {"sent": 4}

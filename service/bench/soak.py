@@ -186,11 +186,13 @@ def _stop(proc: subprocess.Popen, timeout_s: float = 20.0) -> tuple[str, str]:
     return out or "", err or ""
 
 
-def _last_json(text: str) -> dict[str, Any]:
-    for line in reversed(text.strip().splitlines()):
+def _last_json(name: str, proc: subprocess.Popen, out: str, err: str) -> dict[str, Any]:
+    """The last JSON line a helper process printed; else an error with its exit code and stderr."""
+    for line in reversed(out.strip().splitlines()):
         with contextlib.suppress(ValueError):
             return json.loads(line)
-    raise RuntimeError(f"bench soak: no JSON line in a helper's output: {text[-300:]!r}")
+    raise RuntimeError(f"bench soak: the {name} process (exit code {proc.returncode}) printed no figures; "
+                       f"its stderr ends: {err.strip()[-600:]!r}")
 
 
 def _taken(c: dict[str, int]) -> int:
@@ -238,9 +240,9 @@ def soak(minutes: float, rate_hz: float, floor_s: float | None = None) -> dict[s
                     next_sample += sample_s
             t1, cpu1 = time.monotonic(), cpu_seconds(serve.pid)
             src_out, src_err = _stop(source)
-            sent = _last_json(src_out)
+            sent = _last_json("twist source", source, src_out, src_err)
             drv_out, drv_err = _stop(driver)
-            driver_counts = _last_json(drv_out)
+            driver_counts = _last_json("driver", driver, drv_out, drv_err)
             errors += [e.strip().splitlines()[-1] for e in (src_err, drv_err) if "Traceback" in e]
             quiet_until, last, give_up = time.monotonic() + QUIET_S, -1, time.monotonic() + QUIET_LIMIT_S
             while time.monotonic() < quiet_until and time.monotonic() < give_up:

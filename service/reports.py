@@ -15,6 +15,7 @@ from twistrate.service import wire
 from twistrate.solver.errors import InputError
 from twistrate.solver.foresight import foresight, task_joint_weight
 from twistrate.solver.health import STATES, assess, next_state
+from twistrate.solver.svd import svd_full
 
 if TYPE_CHECKING:
     from twistrate.service.pipeline import Pipeline
@@ -121,7 +122,7 @@ class HealthReporter:
 
         def encode(seq: int) -> bytes:
             frames, J = p.kinematics(q)
-            U, s, _ = np.linalg.svd(J[:3], full_matrices=True)
+            U, s, _ = svd_full(J[:3])  # numpy.linalg.svd's LAPACK call, less overhead
             radii = np.zeros(3)
             radii[:s.size] = s
             T = frames.T_base_tool

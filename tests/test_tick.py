@@ -152,6 +152,42 @@ def test_the_margin_adapts_from_the_wake_up_before_the_prepare_too():
     assert tk.spin_ns == pytest.approx(max(SPIN_MIN_NS, 20_000 + SPIN_PAD_NS), abs=300)
 
 
+class TwoOversleeps(FakeClock):
+    """The wake-up before the prepare (the first sleep of each wait) oversleeps by `first`, the one
+    before the spin by `oversleep`."""
+
+    def __init__(self, first, **kw):
+        super().__init__(**kw)
+        self.first = first
+
+    def sleep(self, s):
+        self.sleeps.append(s)
+        self.t += int(s * 1e9) + (self.first if len(self.sleeps) % 2 == 1 else self.oversleep)
+
+
+def test_the_margin_follows_the_wake_up_before_the_spin_and_the_spin_is_counted():
+    """With a sleep before the spin, only that wake-up sets the margin: the prepare's (a longer sleep,
+    here oversleeping 150 us) cannot make the deadline late and does not widen the busy wait. The time
+    spent spinning is what the margin leaves after the wake-up: margin - (oversleep + a clock read)."""
+    clk = TwoOversleeps(first=150_000, read_cost=100, oversleep=30_000)
+    tk = Ticker(1_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep, adaptive=True)
+    tk.start()
+
+    def prepare(deadline):
+        clk.t += 100_000  # the prepare's work
+
+    for _ in range(SPIN_WINDOW):
+        tk.wait(prepare, prepare_ns=600_000)
+        clk.t += 100_000
+    assert len(clk.sleeps) == 2 * SPIN_WINDOW  # a sleep before the prepare and one before the spin
+    assert tk.spin_ns == pytest.approx(30_000 + SPIN_PAD_NS, abs=300)
+    before = tk.spin_ns_total
+    tk.wait(prepare, prepare_ns=600_000)
+    spun = tk.spin_ns_total - before
+    assert spun == pytest.approx(tk.spin_ns - 30_000, abs=3 * clk.read_cost)
+    assert tk.overruns == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
+
+
 def test_work_ending_exactly_on_deadline_is_an_overrun():
     clk = FakeClock(read_cost=0, oversleep=0)
     tk = Ticker(1_000_000, spin_ns=0, clock=clk, sleep=clk.sleep)

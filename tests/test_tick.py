@@ -214,6 +214,21 @@ def test_histogram_percentiles_match_numpy_within_one_bin():
     assert s["mean_us"] == pytest.approx(samples.mean() / 1000.0)
 
 
+def test_histogram_summary_matches_numpy_with_stalls_far_above_the_bulk():
+    # The summary reads the bins only up to the max's: with stalls of 12 ms and 80 ms (the last bin) among
+    # 40 us wake-ups, its median and p99 are still numpy's (inverted CDF, the reference) within one bin.
+    rng = np.random.default_rng(11)
+    for stall in (12_000_000, 80_000_000):
+        samples = np.concatenate([rng.gamma(2.0, 20_000.0, size=3000), [stall] * 40]).astype(np.int64)
+        h = LatencyHistogram()
+        for v in rng.permutation(samples):
+            h.add(int(v))
+        s = h.summary()
+        for key, p in (("median_us", 50.0), ("p99_us", 99.0)):
+            assert abs(s[key] - np.percentile(samples, p, method="inverted_cdf") / 1000.0) <= 1.0 + 1e-9
+        assert h.percentiles_us((99.9, 100.0)) == [stall / 1000.0, stall / 1000.0]
+
+
 def test_histogram_percentiles_never_exceed_the_max():
     # A percentile of a sample lies between its min and max (definition of the empirical quantile,
     # common practice); every duration below one bin (sub-µs lateness on a quiet machine) is the case

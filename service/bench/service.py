@@ -20,7 +20,8 @@ client. It reports
   threads, as a fraction of one core), against its target, with the tick lateness p99 on the same line
   (the spin before each deadline trades CPU for lateness); and the same per thread
   (/proc/PID/task/TID/stat): the tick thread, ZeroMQ's I/O thread, the main thread (the control plane
-  under `twistrate serve`) and any other;
+  under `twistrate serve`) and any other; and of the tick thread's, the time it spun on the clock before
+  its deadlines (counters `spin_ns`: busy waiting, CPU time);
 * the floor: right after the service stopped, a bare loop (service/bench/floor.py) with the same rate,
   scheduling and CPU wake-up request and no work, for as long; its overruns and lateness beside ours
   (target: our overrun fraction at most the floor's + 0.05 percentage points);
@@ -290,6 +291,8 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
         "thread_cpu_fraction": {role: (threads1[role] - threads0.get(role, 0.0)) / (wall1 - wall0)
                                 for role in threads1},
         "bench_cpu_fraction": (ours1 - ours0) / (wall1 - wall0),
+        # the tick thread's busy wait before its deadlines (counters spin_ns), a share of one core
+        "spin_cpu_fraction": (c1.get("spin_ns", 0) - c0.get("spin_ns", 0)) / 1e9 / (wall1 - wall0),
         "load_average_before": load0,
         "load_average_after": load1,
         "speculation_used_fraction": (c1.get("speculation_used", 0) - c0.get("speculation_used", 0)) / ticks
@@ -358,7 +361,8 @@ def format_result(r: dict[str, Any]) -> str:
         f"{_verdict(r['cpu_fraction'], t['cpu_fraction'], percent=True)}; "
         f"tick lateness p99 {r['lateness_p99_us']:.1f} us beside it",
         "  CPU per thread    " + ", ".join(f"{THREAD_LABELS[k]} {100 * v:.1f} %"
-                                          for k, v in r["thread_cpu_fraction"].items()),
+                                          for k, v in r["thread_cpu_fraction"].items())
+        + f" (of the tick's: spinning before the deadlines {100 * r.get('spin_cpu_fraction', 0.0):.1f} %)",
         f"  context           all bench processes {100 * r['bench_cpu_fraction']:.0f} % of one core; load "
         f"average {r['load_average_before']:.2f} -> {r['load_average_after']:.2f}; solved ahead of the "
         f"deadline {100 * r['speculation_used_fraction']:.0f} % of ticks",

@@ -17,7 +17,8 @@ Policy (documented in docs/operation.md):
 * Overrun: when the tick's work ends after the next deadline has already passed, every grid slot
   that passed without a tick is counted as one overrun, and the schedule re-anchors to the next
   future slot of the same grid (no burst of catch-up ticks). Overruns are reported in status and
-  health; nothing is absorbed silently.
+  health; nothing is absorbed silently. Those that follow a period whose sleep ended more than half a
+  period late (a stalled wake-up: the machine's) are also counted apart (overruns_after_stalled_wake).
 * The thread gives the CPU up every period: each wait() sleeps at least MIN_SLEEP_NS, even when
   the tick is late, so an overrunning tick cannot hold a core (with SCHED_FIFO, nothing of lower
   priority would run on it otherwise).
@@ -196,6 +197,11 @@ class Ticker:
         self.forced_sleeps = 0
         #: wall time spent spinning before the deadlines, ns (busy waiting: CPU time of the thread)
         self.spin_ns_total = 0
+        #: overruns that followed a period whose sleep ended more than half a period after it was due (a
+        #: wake-up stalled: the machine's, not the work's); the other overruns followed work that ran long
+        #: (or was itself stalled while working)
+        self.overruns_after_stalled_wake = 0
+        self._stalled = False
         self.lateness = LatencyHistogram()
         self.adaptive = adaptive
         self._overshoot = np.zeros(SPIN_WINDOW, dtype=np.int64)
@@ -230,6 +236,8 @@ class Ticker:
             # The work ran past the next deadline: count the passed slots, re-anchor on the grid.
             missed = (now - d) // period + 1
             self.overruns += missed
+            if self._stalled:
+                self.overruns_after_stalled_wake += missed
             d += missed * period
         slept = 0
         first = -1  # overshoot of the wake-up before the prepare (-1: no such sleep)
@@ -243,11 +251,13 @@ class Ticker:
             now = clock()
         remaining = d - now - self.spin_ns
         short = MIN_SLEEP_NS - slept  # still owed this period
+        second = -1  # overshoot of the wake-up before the spin
         if remaining > 0 and remaining >= short:
             self._sleep(remaining / 1e9)
             now = clock()
+            second = now - (d - self.spin_ns)
             if self.adaptive:
-                self._adapt(now - (d - self.spin_ns))
+                self._adapt(second)
         else:
             if self.adaptive and first >= 0:
                 self._adapt(first)  # no wake-up before the spin this period: keep the window moving
@@ -261,6 +271,7 @@ class Ticker:
         while t < d:
             t = clock()
         self.spin_ns_total += t - now
+        self._stalled = first > period // 2 or second > period // 2
         self.lateness.add(t - d)
         self.deadline = d
         self.ticks += 1

@@ -188,6 +188,26 @@ def test_the_margin_follows_the_wake_up_before_the_spin_and_the_spin_is_counted(
     assert tk.overruns == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
 
 
+def test_overruns_after_a_stalled_wake_up_are_counted_apart_from_long_work():
+    """A sleep that ends 2.5 ms late at 1 kHz (a stalled wake-up) makes the next tick's work end past the
+    following deadlines: those overruns are the stall's. Work of 2.5 periods after an on-time wake-up
+    overruns too, and is not."""
+    clk = FakeClock(read_cost=100, oversleep=20_000)
+    tk = Ticker(1_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    tk.wait()
+    clk.oversleep = 2_500_000  # the next sleeps stall
+    tk.wait()
+    clk.oversleep = 20_000
+    clk.t += 100_000  # ordinary work
+    tk.wait()
+    # woke 2.4 ms after its deadline, worked 0.1 ms: the next two deadlines passed
+    assert tk.overruns == 2 and tk.overruns_after_stalled_wake == 2
+    clk.t += 2_500_000  # work of 2.5 periods after an on-time wake-up
+    tk.wait()
+    assert tk.overruns == 4 and tk.overruns_after_stalled_wake == 2
+
+
 def test_work_ending_exactly_on_deadline_is_an_overrun():
     clk = FakeClock(read_cost=0, oversleep=0)
     tk = Ticker(1_000_000, spin_ns=0, clock=clk, sleep=clk.sleep)

@@ -85,7 +85,6 @@ class Pipeline:
         #: the time budget of the drain before the deadline, ns (a third of it at the deadline)
         self.drain_budget_ns = min(DRAIN_BUDGET_NS, self.period_ns // 8)
         self.health_every = max(1, round(self.rate_hz / config.tick.health_hz))
-
         self.twist_timeout_ns = int(config.watchdog.twist_timeout_ms * 1e6)
         self.joints_timeout_ns = int(config.watchdog.joints_timeout_ms * 1e6)
         self._q_lo = np.where(np.isfinite(arm.q_min), arm.q_min - JOINT_RANGE_TOLERANCE, -np.inf)

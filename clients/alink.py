@@ -174,7 +174,7 @@ class AsyncLink:
         if op == "status" and reply.ok:
             self._saw_instance(reply.result["instance"])  # checked by the codec: an int >= 1
         if "tick" in reply.result and isinstance(reply.result["tick"], int):
-            self._saw_tick(reply.result["tick"])
+            self._saw_tick(reply.result["tick"], status=True)
         return reply_result(reply, op)
 
     async def _read_control(self) -> None:
@@ -279,8 +279,8 @@ class AsyncLink:
 
     # -- stream in -----------------------------------------------------------------------------------
 
-    def _saw_tick(self, tick: int) -> None:
-        if self.restart.see(tick):
+    def _saw_tick(self, tick: int, status: bool = False) -> None:
+        if self.restart.see(tick, status):
             self._restarted()
         elif self.restart.suspect and not self._closed:
             self._task("confirm", self._confirm)  # the counter went back: let the instance id decide

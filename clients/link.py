@@ -151,7 +151,7 @@ class Link:
         result = reply_result(reply, op)
         if op == "status" and isinstance(result.get("tick"), int):
             self._saw_instance(result["instance"])  # checked by the codec (docs/protocol.md section 6)
-            self._saw_tick(result["tick"])
+            self._saw_tick(result["tick"], status=True)
         return result
 
     def _send_request(self, op: str, args: Mapping[str, Any]) -> int:
@@ -230,8 +230,8 @@ class Link:
         if self.restart.see_instance(instance):
             self._restarted()
 
-    def _saw_tick(self, tick: int) -> None:
-        if self.restart.see(tick):
+    def _saw_tick(self, tick: int, status: bool = False) -> None:
+        if self.restart.see(tick, status):
             self._restarted()
 
     def _restarted(self) -> None:

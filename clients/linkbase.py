@@ -140,18 +140,29 @@ class RestartWatch:
     """Notices a restarted service. The authority is the instance id (docs/protocol.md section 6: a
     random id per service process, in the `status` result and in every event): `see_instance(id)`
     returns True once per new id. The tick counter is the fast hint: a new service starts it at zero,
-    so a tick more than RESTART_MARGIN_TICKS below the highest seen (from commands, health, events or
-    status) `see(tick)` reports as a restart while no id is known, or, once one is, when
-    `trust_ticks` (the blocking Link, which has no task to ask with); otherwise it sets `suspect`, and
-    the caller asks `status` to let the id decide. A restarted service is disabled and holds no lease
-    (sections 9 and 10): the client must claim again, and only the operator may enable.
+    so a tick more than RESTART_MARGIN_TICKS below the highest seen `see(tick)` reports as a restart
+    while no id is known, or, once one is, when `trust_ticks` (the blocking Link, which has no task to
+    ask with); otherwise it sets `suspect`, and the caller asks `status` to let the id decide. A
+    restarted service is disabled and holds no lease (sections 9 and 10): the client must claim again,
+    and only the operator may enable.
+
+    Which ticks are compared: output messages (commands, health, state, events) arrive in the order
+    the service published them, so one lower than an earlier one by more than the margin is a new
+    instance's. A `status` reply carries the tick the service is at now, ahead of every output message
+    still queued for the client: it is compared with everything seen before (a status tick far below
+    an output message's is a restart), but it never raises the mark the output messages are compared
+    with (`see(tick, status=True)`), or reading queued commands after a status would look like the tick
+    counter going back.
 
     by : what noticed the last restart ("instance" or "tick"); instance : the id known (None: not yet;
     after a restart noticed from the ticks, the next id is learned without a second notice)."""
 
     def __init__(self, trust_ticks: bool = True) -> None:
         self.trust_ticks = trust_ticks
+        #: the highest tick seen (output messages and status replies)
         self.highest: int | None = None
+        #: the highest tick of an output message (what the next output message is compared with)
+        self.highest_output: int | None = None
         self.highest_before: int | None = None  # the highest tick of the instance before the restart
         self.restarts = 0
         self.instance: int | None = None
@@ -159,18 +170,27 @@ class RestartWatch:
         self.by: str | None = None
         self.suspect = False
 
-    def see(self, tick: int) -> bool:
-        dropped = self.highest is not None and tick + RESTART_MARGIN_TICKS < self.highest
+    def see(self, tick: int, status: bool = False) -> bool:
+        """The tick of an output message (in the order received), or of a `status` reply (status=True);
+        True when it shows a restart (see the class docstring)."""
+        mark = self.highest if status else self.highest_output
+        dropped = mark is not None and tick + RESTART_MARGIN_TICKS < mark
         if dropped and (self.instance is None or self.trust_ticks):
             self._restarted("tick")
             self.instance_before, self.instance = self.instance, None  # the new id: learned, not news
             self.highest = tick
+            self.highest_output = None if status else tick  # output still queued may be the old one's
             return True
         if dropped:
             self.suspect = True  # the id decides (ask status)
             self.highest = tick
-        elif self.highest is None or tick > self.highest:
+            if not status:
+                self.highest_output = tick
+            return False
+        if self.highest is None or tick > self.highest:
             self.highest = tick
+        if not status and (self.highest_output is None or tick > self.highest_output):
+            self.highest_output = tick
         return False
 
     def see_instance(self, instance: int) -> bool:
@@ -181,7 +201,7 @@ class RestartWatch:
             return False
         self._restarted("instance")
         self.instance_before = old
-        self.highest = None  # the new instance's ticks start afresh
+        self.highest = self.highest_output = None  # the new instance's ticks start afresh
         return True
 
     def _restarted(self, by: str) -> None:

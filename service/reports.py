@@ -15,6 +15,8 @@ from twistrate.service import wire
 from twistrate.solver.errors import InputError
 from twistrate.solver.foresight import foresight, task_joint_weight
 from twistrate.solver.health import STATES, assess, next_state
+from twistrate.solver.kinematics import Frames
+from twistrate.solver.svd import svd_full
 
 if TYPE_CHECKING:
     from twistrate.service.pipeline import Pipeline
@@ -114,19 +116,21 @@ class HealthReporter:
 
         self._publish("health", wire.TOPIC_HEALTH, encode)
 
-    def publish_state(self, wall: int, q: np.ndarray, qd: np.ndarray) -> None:
-        """The state message at q (n,) with the commanded rates qd (n,): tool pose, joint origins and the
-        translational manipulability ellipsoid (singular value decomposition of J_v = J[:3], base frame)."""
-        p = self.p
+    def publish_state(self, wall: int, q: np.ndarray, qd: np.ndarray, tick: int, frames: Frames,
+                      J: np.ndarray) -> None:
+        """The state message of tick `tick` (wall : its wall-clock stamp, ns) at q (n,) with the rates
+        commanded then qd (n,) and that tick's kinematics (frames; J (6, n) geometric Jacobian, base frame,
+        tool point): tool pose, joint origins and the translational manipulability ellipsoid (singular
+        value decomposition of J_v = J[:3], base frame). It may go out a tick later (docs/protocol.md
+        7.6): it describes the tick it names."""
 
         def encode(seq: int) -> bytes:
-            frames, J = p.kinematics(q)
-            U, s, _ = np.linalg.svd(J[:3], full_matrices=True)
+            U, s, _ = svd_full(J[:3])  # numpy.linalg.svd's LAPACK call, less overhead
             radii = np.zeros(3)
             radii[:s.size] = s
             T = frames.T_base_tool
             origins = np.vstack((np.zeros((1, 3)), frames.p_base, T[None, :3, 3]))
-            return wire.encode_state(seq=seq, stamp_ns=wall, tick=p.tick, position=q, rate=qd,
+            return wire.encode_state(seq=seq, stamp_ns=wall, tick=tick, position=q, rate=qd,
                                      tool_position=T[:3, 3], tool_rotation=T[:3, :3], origins=origins,
                                      ellipsoid_radii=radii, ellipsoid_axes=U)
 

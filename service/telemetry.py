@@ -108,6 +108,8 @@ class Telemetry:
         out = dict(self.counts)
         out["ticks"] = self.ticker.ticks
         out["overruns"] = self.ticker.overruns
+        out["spin_ns"] = self.ticker.spin_ns_total  # busy waiting before the deadlines (tick.py)
+        out["overruns_after_stalled_wake"] = self.ticker.overruns_after_stalled_wake
         rejected = dict(self.rejected)
         for reason in INTAKE_REASONS:  # every reason from the start, 0 until its first refusal
             out[f"rejected_{reason}"] = 0

@@ -35,7 +35,7 @@ import numpy as np
 from twistrate.solver.arm import Arm
 from twistrate.solver.options import HealthThresholds, SolverOptions
 from twistrate.solver.resolve import Resolution
-from twistrate.solver.svd import svd_full
+from twistrate.solver.svd import singular_values, svd_full
 
 CLEAR = "clear"
 NARROW = "narrow"
@@ -79,7 +79,7 @@ def manipulability(J: np.ndarray) -> float:
     det(J J^T) rounds to a tiny negative)."""
     if J.shape[0] == 0 or J.shape[1] == 0:
         return 0.0
-    return float(np.prod(np.linalg.svd(J, compute_uv=False)))
+    return float(np.prod(singular_values(J)))  # numpy.linalg.svd's LAPACK call, less overhead
 
 
 def limit_margins(arm: Arm, q: np.ndarray) -> np.ndarray:

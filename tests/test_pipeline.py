@@ -168,3 +168,37 @@ def test_control_operations_run_at_the_next_tick_boundary_and_report_its_mode():
     events = [msgpack.unpackb(data)["event"] for topic, data in rig.out if topic == wire.TOPIC_EVENT]
     # docs/protocol.md section 10: enabled with a fresh twist at hand, the first tick runs
     assert events == ["lease_claimed", "enabled", "running", "disabled"]
+
+
+def test_state_goes_out_on_the_tick_after_each_health():
+    # docs/protocol.md 7.6: health at the health rate, the state message on the tick after each health,
+    # describing the health's tick (same tick, positions and rates as that tick's command); both at 50 Hz
+    # of a 500 Hz tick here, one every 10 ticks.
+    rig = Rig(tick={"rate_hz": 500.0, "health_hz": 50.0})
+    token = _enable(rig)
+    for _ in range(60):
+        rig.tick(([0.02, 0.0, 0.01], [0.0, 0.0, 0.05]), token)
+    n = rig.pipe.n
+    kinds = [t for t, _ in rig.out if t in (wire.TOPIC_HEALTH, wire.TOPIC_STATE)]
+    assert kinds == [wire.TOPIC_HEALTH, wire.TOPIC_STATE] * 6  # the state after its health
+    health = [wire.decode_health(d, n).tick for t, d in rig.out if t == wire.TOPIC_HEALTH]
+    states = [wire.decode_state(d, n) for t, d in rig.out if t == wire.TOPIC_STATE]
+    commands = {c.tick: c for c in rig.commands()}
+    assert health == list(range(0, 60, 10)) and [s.tick for s in states] == health
+    sent_after = []  # the tick of the last command sent before each state message
+    last_command = None
+    for topic, data in rig.out:
+        if topic == wire.TOPIC_COMMAND:
+            last_command = wire.decode_command(data, n).tick
+        elif topic == wire.TOPIC_STATE:
+            sent_after.append(last_command)
+    assert sent_after == [k + 1 for k in health], "sent on the next tick, after that tick's command"
+    for s in states:  # the health tick's positions and the rates commanded at it (its command's)
+        cmd = commands[s.tick]
+        np.testing.assert_allclose(s.rate, cmd.rate, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(s.position + s.rate * rig.pipe.period_s, cmd.target, rtol=0, atol=1e-12)
+    every_tick = Rig(tick={"rate_hz": 50.0, "health_hz": 50.0})
+    for _ in range(3):
+        every_tick.tick()
+    topics = [t for t, _ in every_tick.out if t != wire.TOPIC_COMMAND]
+    assert topics == [wire.TOPIC_HEALTH, wire.TOPIC_STATE] * 3

@@ -61,6 +61,46 @@ def test_without_an_id_the_tick_counter_decides_once():
     assert not trusting.see_instance(10) and trusting.restarts == 1
 
 
+def test_a_status_tick_ahead_of_queued_output_is_not_a_restart():
+    # docs/protocol.md section 6: the same id within a run is the same process, whatever its counters
+    # show; section 7.3: a command every tick, tick counting up by one. A status reply carries the tick
+    # the service is at now, ahead of the commands still queued for the client.
+    for trust in (True, False):
+        watch = RestartWatch(trust_ticks=trust)
+        watch.see_instance(0xC3)
+        watch.see(1000)  # a command read
+        assert not watch.see(6000, status=True)  # status while 5000 ticks of commands wait unread
+        assert not any(watch.see(t) for t in range(1001, 1010)), "the queued commands, read in order"
+        assert watch.restarts == 0 and not watch.suspect and watch.instance == 0xC3
+        # a real restart still shows: a status tick far below the commands seen, or the commands' own
+        # counter going back
+        assert watch.see(3, status=True) == trust and (watch.restarts == 1 or watch.suspect)
+    watch = RestartWatch(trust_ticks=True)
+    watch.see(1000)
+    watch.see(6000, status=True)
+    assert watch.see(2) and watch.by == "tick", "the output's own counter went back"
+
+
+def test_the_blocking_link_keeps_its_lease_reading_commands_queued_before_a_status():
+    """End to end: commands pile up unread while the link waits (more than RESTART_MARGIN_TICKS of
+    them), then `status` answers with the service's current tick, then the queued commands are read:
+    the same instance id throughout (docs/protocol.md section 6), so no restart and the lease is kept."""
+    rate_hz = 250.0
+    with running_service(make_config(tick={"rate_hz": rate_hz})) as run:
+        link = run.link(topics=(b"command",))
+        link.claim(lease_ms=10_000)
+        link.receive_command(timeout_s=WAIT_S)
+        time.sleep(3 * RESTART_MARGIN_TICKS / rate_hz)  # about 300 commands queue unread
+        status = link.status()
+        first = link.receive_command(timeout_s=WAIT_S)
+        assert status["tick"] > first.tick + RESTART_MARGIN_TICKS, "the commands read are older"
+        for _ in range(20):
+            link.receive_command(timeout_s=WAIT_S)
+        assert link.restart.restarts == 0 and link.lease is not None and link.lease_lost is None
+        assert link.status()["holder"] == "link"
+        assert link.restart.instance == status["instance"]
+
+
 class _Restarter:
     """Stops a running service and starts a new one on the same endpoints (from any thread)."""
 

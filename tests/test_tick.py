@@ -152,6 +152,62 @@ def test_the_margin_adapts_from_the_wake_up_before_the_prepare_too():
     assert tk.spin_ns == pytest.approx(max(SPIN_MIN_NS, 20_000 + SPIN_PAD_NS), abs=300)
 
 
+class TwoOversleeps(FakeClock):
+    """The wake-up before the prepare (the first sleep of each wait) oversleeps by `first`, the one
+    before the spin by `oversleep`."""
+
+    def __init__(self, first, **kw):
+        super().__init__(**kw)
+        self.first = first
+
+    def sleep(self, s):
+        self.sleeps.append(s)
+        self.t += int(s * 1e9) + (self.first if len(self.sleeps) % 2 == 1 else self.oversleep)
+
+
+def test_the_margin_follows_the_wake_up_before_the_spin_and_the_spin_is_counted():
+    """With a sleep before the spin, only that wake-up sets the margin: the prepare's (a longer sleep,
+    here oversleeping 150 us) cannot make the deadline late and does not widen the busy wait. The time
+    spent spinning is what the margin leaves after the wake-up: margin - (oversleep + a clock read)."""
+    clk = TwoOversleeps(first=150_000, read_cost=100, oversleep=30_000)
+    tk = Ticker(1_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep, adaptive=True)
+    tk.start()
+
+    def prepare(deadline):
+        clk.t += 100_000  # the prepare's work
+
+    for _ in range(SPIN_WINDOW):
+        tk.wait(prepare, prepare_ns=600_000)
+        clk.t += 100_000
+    assert len(clk.sleeps) == 2 * SPIN_WINDOW  # a sleep before the prepare and one before the spin
+    assert tk.spin_ns == pytest.approx(30_000 + SPIN_PAD_NS, abs=300)
+    before = tk.spin_ns_total
+    tk.wait(prepare, prepare_ns=600_000)
+    spun = tk.spin_ns_total - before
+    assert spun == pytest.approx(tk.spin_ns - 30_000, abs=3 * clk.read_cost)
+    assert tk.overruns == 0 and tk.lateness.max_ns <= 2 * clk.read_cost
+
+
+def test_overruns_after_a_stalled_wake_up_are_counted_apart_from_long_work():
+    """A sleep that ends 2.5 ms late at 1 kHz (a stalled wake-up) makes the next tick's work end past the
+    following deadlines: those overruns are the stall's. Work of 2.5 periods after an on-time wake-up
+    overruns too, and is not."""
+    clk = FakeClock(read_cost=100, oversleep=20_000)
+    tk = Ticker(1_000_000, spin_ns=100_000, clock=clk, sleep=clk.sleep)
+    tk.start()
+    tk.wait()
+    clk.oversleep = 2_500_000  # the next sleeps stall
+    tk.wait()
+    clk.oversleep = 20_000
+    clk.t += 100_000  # ordinary work
+    tk.wait()
+    # woke 2.4 ms after its deadline, worked 0.1 ms: the next two deadlines passed
+    assert tk.overruns == 2 and tk.overruns_after_stalled_wake == 2
+    clk.t += 2_500_000  # work of 2.5 periods after an on-time wake-up
+    tk.wait()
+    assert tk.overruns == 4 and tk.overruns_after_stalled_wake == 2
+
+
 def test_work_ending_exactly_on_deadline_is_an_overrun():
     clk = FakeClock(read_cost=0, oversleep=0)
     tk = Ticker(1_000_000, spin_ns=0, clock=clk, sleep=clk.sleep)
@@ -176,6 +232,21 @@ def test_histogram_percentiles_match_numpy_within_one_bin():
     s = h.summary()
     assert s["count"] == 5000
     assert s["mean_us"] == pytest.approx(samples.mean() / 1000.0)
+
+
+def test_histogram_summary_matches_numpy_with_stalls_far_above_the_bulk():
+    # The summary reads the bins only up to the max's: with stalls of 12 ms and 80 ms (the last bin) among
+    # 40 us wake-ups, its median and p99 are still numpy's (inverted CDF, the reference) within one bin.
+    rng = np.random.default_rng(11)
+    for stall in (12_000_000, 80_000_000):
+        samples = np.concatenate([rng.gamma(2.0, 20_000.0, size=3000), [stall] * 40]).astype(np.int64)
+        h = LatencyHistogram()
+        for v in rng.permutation(samples):
+            h.add(int(v))
+        s = h.summary()
+        for key, p in (("median_us", 50.0), ("p99_us", 99.0)):
+            assert abs(s[key] - np.percentile(samples, p, method="inverted_cdf") / 1000.0) <= 1.0 + 1e-9
+        assert h.percentiles_us((99.9, 100.0)) == [stall / 1000.0, stall / 1000.0]
 
 
 def test_histogram_percentiles_never_exceed_the_max():

@@ -20,7 +20,8 @@ client. It reports
   threads, as a fraction of one core), against its target, with the tick lateness p99 on the same line
   (the spin before each deadline trades CPU for lateness); and the same per thread
   (/proc/PID/task/TID/stat): the tick thread, ZeroMQ's I/O thread, the main thread (the control plane
-  under `twistrate serve`) and any other;
+  under `twistrate serve`) and any other; and of the tick thread's, the time it spun on the clock before
+  its deadlines (counters `spin_ns`: busy waiting, CPU time);
 * the floor: right after the service stopped, a bare loop (service/bench/floor.py) with the same rate,
   scheduling and CPU wake-up request and no work, for as long; its overruns and lateness beside ours
   (target: our overrun fraction at most the floor's + 0.05 percentage points);
@@ -260,6 +261,7 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
     floor = None if flood else measure_floor(rate_hz, seconds, rt_priority)
     ticks = c1["ticks"] - c0["ticks"]
     overruns = c1["overruns"] - c0["overruns"]
+    stalled = c1.get("overruns_after_stalled_wake", 0) - c0.get("overruns_after_stalled_wake", 0)
     lat = np.array(received, dtype=float) / 1000.0
     period_us = 1e6 / rate_hz
     result = {
@@ -269,6 +271,8 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
         "ticks_total": c1["ticks"],
         "overruns": overruns,
         "overrun_fraction": overruns / ticks if ticks else math.nan,
+        # overruns after a wake-up that ended more than half a period late (the machine's; the rest: work)
+        "overruns_after_stalled_wake": stalled,
         "lateness_median_us": c1["lateness_median_ns"] / 1000.0,
         "lateness_p99_us": c1["lateness_p99_ns"] / 1000.0,
         "lateness_max_us": c1["lateness_max_ns"] / 1000.0,
@@ -291,6 +295,8 @@ def bench_rate(rate_hz: float, seconds: float, rt_priority: int | None = None,
         "thread_cpu_fraction": {role: (threads1[role] - threads0.get(role, 0.0)) / (wall1 - wall0)
                                 for role in threads1},
         "bench_cpu_fraction": (ours1 - ours0) / (wall1 - wall0),
+        # the tick thread's busy wait before its deadlines (counters spin_ns), a share of one core
+        "spin_cpu_fraction": (c1.get("spin_ns", 0) - c0.get("spin_ns", 0)) / 1e9 / (wall1 - wall0),
         "load_average_before": load0,
         "load_average_after": load1,
         "speculation_used_fraction": (c1.get("speculation_used", 0) - c0.get("speculation_used", 0)) / ticks
@@ -341,7 +347,9 @@ def format_result(r: dict[str, Any]) -> str:
         f"  tick lateness     median {r['lateness_median_us']:7.1f} us  p99 {r['lateness_p99_us']:7.1f} us  "
         f"max {r['lateness_max_us']:8.1f} us{_verdict(r['lateness_p99_us'], t['lateness_p99_us'])}",
         f"  overruns          {r['overruns']} of {r['ticks']} ticks ({100 * r['overrun_fraction']:.3f} %)"
-        f"{_verdict(r['overrun_fraction'], t['overrun_fraction'], percent=True)}",
+        f"{_verdict(r['overrun_fraction'], t['overrun_fraction'], percent=True)}; "
+        f"{r.get('overruns_after_stalled_wake', 0)} after a stalled wake-up (the machine's), "
+        f"{r['overruns'] - r.get('overruns_after_stalled_wake', 0)} after long work",
         f"  tick work         median {r['tick_work_median_us']:7.1f} us  p99 {r['tick_work_p99_us']:7.1f} us "
         f"(resolve median {r['solve_median_us']:.1f}, p99 {r['solve_p99_us']:.1f} us)",
         f"  deadline -> publish median {r['deadline_to_publish_median_us']:7.1f} us  p99 "
@@ -359,7 +367,8 @@ def format_result(r: dict[str, Any]) -> str:
         f"{_verdict(r['cpu_fraction'], t['cpu_fraction'], percent=True)}; "
         f"tick lateness p99 {r['lateness_p99_us']:.1f} us beside it",
         "  CPU per thread    " + ", ".join(f"{THREAD_LABELS[k]} {100 * v:.1f} %"
-                                          for k, v in r["thread_cpu_fraction"].items()),
+                                          for k, v in r["thread_cpu_fraction"].items())
+        + f" (of the tick's: spinning before the deadlines {100 * r.get('spin_cpu_fraction', 0.0):.1f} %)",
         f"  context           all bench processes {100 * r['bench_cpu_fraction']:.0f} % of one core; load "
         f"average {r['load_average_before']:.2f} -> {r['load_average_after']:.2f}; solved ahead of the "
         f"deadline {100 * r['speculation_used_fraction']:.0f} % of ticks",

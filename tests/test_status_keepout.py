@@ -109,11 +109,15 @@ def test_status_without_keepout_has_no_pair_and_names_a_joint_bound():
             return sum(c.answers >= 0 and c.mode == "running" and c.scale < 1.0 for c in cs) > 20
 
         stream_until(link, [0.0, 0.0, 0.0], [0.0, 0.0, 20.0], scaled)
-        link.send_twist([0.0, 0.0, 0.0], [0.0, 0.0, 20.0])
-        status = link.status()
+        for _ in range(5):  # on a loaded machine the twist may have gone stale before the status is read
+            link.send_twist([0.0, 0.0, 0.0], [0.0, 0.0, 20.0])
+            status = link.status()
+            if status["mode"] == "running":
+                break
+        assert status["mode"] == "running", status
         lim = status["limiting"]
         assert status["keepout"] is None
-        assert lim["by"] == "joint" and 0 <= lim["joint"] < status["n"]
+        assert lim["by"] == "joint" and 0 <= lim["joint"] < status["n"], status
         assert lim["bound"] in ("position", "velocity", "acceleration") and lim["link"] is None
 
 

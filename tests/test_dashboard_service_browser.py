@@ -286,3 +286,54 @@ def test_dashboard_shows_the_nearest_keepout_pair_and_the_damper_holding_the_sca
     assert problems == [], problems
     for name in ("keepout-far", "keepout-held", "keepout-released"):
         assert (shots / f"{name}.png").stat().st_size > 10_000
+
+
+#: the self-collision cell and fold of tests/test_e2e_self_collision.py: the tool back toward the base and
+#: down, until two of the arm's own links hold each other back
+SELF_KEEPOUT = {"influence_m": 0.10, "security_m": 0.02, "gain_m_s": 0.3, "self_collision": True}
+FOLD = ([-0.25, 0.0, -0.15], [0.0, 0.0, 0.0])
+
+
+def test_dashboard_shows_a_self_collision_pair_and_marks_both_links(tmp_path):
+    """Folded on itself, the arm's nearest pair is two of its own links: the page says so, names both,
+    and the 3-D view marks both links' segments of the chain."""
+    fleet = Fleet(gone_after_s=1.0)
+    shots = tmp_path / "screens"
+    shots.mkdir()
+    with contextlib.ExitStack() as stack:
+        cfg = make_config(simulation={"lag_s": 0.0}, keepout=SELF_KEEPOUT)
+        run = stack.enter_context(running_service(cfg))
+        _, url = stack.enter_context(served(Dashboard(fleet, [WireFeed("cell-a", run.endpoints)])))
+        page = stack.enter_context(browser_page(str(tmp_path / "profile")))
+        view = fleet.arm("cell-a")
+        page.goto(url + "/")
+        _attr_is(page, "mode", "disabled")
+        _box_is(page, "ko", "clear")
+        link = run.link()
+        link.claim("browser-test", lease_ms=60_000)
+        link.enable()
+        with sending(link, FOLD):
+            wait_for(
+                lambda: (
+                    (view.latest.get("limiting") or {}).get("by") == "keepout"
+                    and (view.latest.get("keepout") or {}).get("other_kind") == "link"
+                ),
+                limit_s=40.0,
+            )
+            page.wait_for_function(
+                f"() => document.querySelector({KO_JS}).dataset.by === 'keepout'"
+                f" && / \\(its own link\\)$/.test(document.querySelector({KO_JS})"
+                ".querySelector('[data-field=ko_pair]').textContent)",
+                timeout=WAIT_MS,
+            )
+            box = page.evaluate(BOX_JS)
+            marked = page.locator(f"{CARD} canvas.c3d").get_attribute("data-nearest")
+            page.screenshot(path=str(shots / "self-held.png"), full_page=True)
+    names = [j["name"] for j in view.joints]
+    m = re.fullmatch(r"(\S+) to (\S+) \(its own link\)", box["pair"])
+    assert m and {m.group(1), m.group(2)} <= {*names, "root"}, box
+    # both links marked: each one's segment of the `origins` polyline (docs/protocol.md 7.6)
+    segment = {n: i + 1 for i, n in enumerate(names)} | {"root": 0}
+    assert marked == f"{segment[m.group(1)]},{segment[m.group(2)]}", (marked, box)
+    assert box["limiting"].startswith("keep-out damper, "), box
+    assert (shots / "self-held.png").stat().st_size > 10_000

@@ -45,7 +45,7 @@ function keepout(el, a) {
     const d = ko.nearest_m;
     box.dataset.ko = d === null || d === undefined ? "unknown" : d < 0 ? "overlap" : "clear";
     text(el, "ko_nearest", d === null || d === undefined ? "n/a" : d < 0 ? `overlap ${(-d).toFixed(3)} m` : `${d.toFixed(3)} m`);
-    text(el, "ko_pair", `${pairText(ko.link, ko.other)} ${ko.other_kind === "link" ? "(self: the arm's own link)" : "(zone)"}`);
+    text(el, "ko_pair", `${pairText(ko.link, ko.other)} ${ko.other_kind === "link" ? "(its own link)" : "(zone)"}`);
   }
   const by = lim ? lim.by : null;
   box.dataset.by = by || "unknown";

@@ -27,6 +27,52 @@ function ahead(el, a) {
   f.dataset.soon = String(name !== null && tf !== null && tf < SOON_S);
 }
 
+// keep-out (the health message's `keepout` and `limiting`, docs/protocol.md 7.4): the nearest pair and
+// what held the scale back. The state is on the box as data-ko / data-by, told by words and marks too.
+function jointName(a, i) { return i === null || i === undefined ? "a joint" : ((a.joints[i] || {}).name || `joint ${i + 1}`); }
+function pairText(link, other) { return `${link ?? "?"} to ${other ?? "?"}`; }
+function keepout(el, a) {
+  const L = a.latest || {}, box = q(el, "keepout"), ko = L.keepout, lim = L.limiting;
+  if (L.tick === undefined) {  // no health message yet
+    box.dataset.ko = "unknown"; box.dataset.by = "unknown";
+    text(el, "ko_nearest", "n/a"); text(el, "ko_pair", "n/a"); text(el, "limiting", "n/a");
+    return;
+  }
+  if (!ko) {
+    box.dataset.ko = "none";
+    text(el, "ko_nearest", "none configured"); text(el, "ko_pair", "no keep-out zones on this service");
+  } else {
+    const d = ko.nearest_m;
+    box.dataset.ko = d === null || d === undefined ? "unknown" : d < 0 ? "overlap" : "clear";
+    text(el, "ko_nearest", d === null || d === undefined ? "n/a" : d < 0 ? `overlap ${(-d).toFixed(3)} m` : `${d.toFixed(3)} m`);
+    text(el, "ko_pair", `${pairText(ko.link, ko.other)} ${ko.other_kind === "link" ? "(its own link)" : "(zone)"}`);
+  }
+  const by = lim ? lim.by : null;
+  box.dataset.by = by || "unknown";
+  if (by === "keepout") {
+    const same = ko && ko.link === lim.link && ko.other === lim.other;
+    text(el, "limiting", `keep-out damper, ${pairText(lim.link, lim.other)}${same ? " (the nearest pair)" : ""}`);
+  } else if (by === "joint") {
+    text(el, "limiting", `joint ${jointName(a, lim.joint)}, its ${lim.bound || "?"} bound`);
+  } else if (by === "none") {
+    text(el, "limiting", a.mode === "running" ? "nothing: the twist is followed in full" : "nothing (not running)");
+  } else text(el, "limiting", "n/a");
+}
+
+// The link of the nearest keep-out pair as a segment of the `origins` polyline (base, joint origins in
+// chain order, tool): the link joint i moves carries joint i's origin and the next one (or the tool's),
+// points i + 1 and i + 2; `root` carries the base and joint 0's origin. The closest points themselves
+// are not on the wire, so only the link is marked.
+function nearestLink(a) {
+  const ko = (a.latest || {}).keepout, lim = (a.latest || {}).limiting;
+  if (!ko || !a.origins || ko.nearest_m === null || ko.nearest_m === undefined) return null;
+  const seg = (name) => { const i = name === "root" ? -1 : a.joints.findIndex((j) => j.name === name); return name === "root" || i >= 0 ? i + 1 : null; };
+  const segments = [seg(ko.link), ko.other_kind === "link" ? seg(ko.other) : null].filter((k) => k !== null && k + 1 < a.origins.length);
+  if (!segments.length) return null;
+  const held = !!lim && lim.by === "keepout" && lim.link === ko.link && lim.other === ko.other;
+  return { segments, distance: ko.nearest_m, link: ko.link, other: ko.other, kind: ko.other_kind, held };
+}
+
 function card(name) {
   let c = cards.get(name);
   if (c) return c;
@@ -158,9 +204,11 @@ function apply(a, full) {
   const rej = Object.entries(a.rejected).filter(([, v]) => v > 0).sort((x, y) => y[1] - x[1]);
   text(el, "refused", rej.length ? `${a.rejected_total} in all: ` + rej.map(([k, v]) => `${k} ${v}`).join(", ") : "none");
   ahead(el, a);
+  keepout(el, a);
   joints(el, a);
   events(el, a);
-  c.view3d.set(a.origins, a.ellipsoid, a.tool, a.health);
+  c.view3d.set(a.origins, a.ellipsoid, a.tool, a.health, nearestLink(a));
+  q(el, "ko-key").hidden = c.view3d.nearest === null;
   c.pending = a;  // the canvases are redrawn once per displayed frame, not once per message
   if (!drawScheduled) { drawScheduled = true; requestAnimationFrame(drawAll); }
 }

@@ -14,7 +14,7 @@ export class ArmView3D {
     this.canvas = canvas;
     this.onScale = onScale;
     this.yaw = DEFAULT_YAW; this.pitch = DEFAULT_PITCH; this.zoom = 1;
-    this.state = null; this.reach = 0; this.rmax = 0; this.health = "clear";
+    this.state = null; this.nearest = null; this.reach = 0; this.rmax = 0; this.health = "clear";
     let drag = null;
     canvas.addEventListener("pointerdown", (e) => { drag = [e.clientX, e.clientY]; canvas.setPointerCapture(e.pointerId); canvas.style.cursor = "grabbing"; });
     canvas.addEventListener("pointermove", (e) => {
@@ -31,8 +31,9 @@ export class ArmView3D {
     canvas.addEventListener("dblclick", () => { this.yaw = DEFAULT_YAW; this.pitch = DEFAULT_PITCH; this.zoom = 1; this.draw(); });
   }
 
-  set(origins, ellipsoid, tool, health) {
+  set(origins, ellipsoid, tool, health, nearest) {
     this.state = { origins, ellipsoid, tool };
+    this.nearest = nearest || null;  // {segments, distance, link, other, kind, held}: the nearest keep-out pair's link(s)
     this.health = health || "clear";
     if (origins) for (const p of origins) this.reach = Math.max(this.reach, Math.hypot(p[0], p[1], p[2]));
     if (ellipsoid && ellipsoid.radii) for (const r of ellipsoid.radii) if (r !== null) this.rmax = Math.max(this.rmax, r);
@@ -59,7 +60,7 @@ export class ArmView3D {
     ctx.font = `${12 * dpr}px system-ui, sans-serif`;
     if (!s || !s.origins || s.origins.some((p) => !p || p.some((v) => v === null))) {
       ctx.fillStyle = "#93a4b5"; ctx.fillText("no joint state yet", 10 * dpr, 20 * dpr);
-      canvas.dataset.drawn = "none"; return;
+      canvas.dataset.drawn = "none"; canvas.dataset.nearest = ""; return;
     }
     canvas.dataset.drawn = s.ellipsoid ? "arm+ellipsoid" : "arm";
     const reach = Math.max(this.reach, 0.1);
@@ -120,5 +121,36 @@ export class ArmView3D {
       const tw = ctx.measureText(label).width;
       ctx.fillText(label, Math.max(4 * dpr, Math.min(pb[0] + 5 * dpr, W - tw - 4 * dpr)), Math.max(14 * dpr, Math.min(pb[1], H - 6 * dpr)));
     }
+    this.drawNearest(ctx, o, dpr);
+  }
+
+  // The link(s) of the nearest keep-out pair, drawn last (on top): a wide band along the link's segment
+  // of the chain and a ring at its middle (a link can be a few mm of the chain), in the narrow colour
+  // (the weakest direction has the pinched one): the ring dashed while the pair is only the nearest,
+  // solid and the label starting with HELD while its damper holds the scale; a label in the
+  // top left corner with a leader to the ring. The closest points are not on the wire: only the link.
+  drawNearest(ctx, o, dpr) {
+    const nk = this.nearest, canvas = this.canvas;
+    canvas.dataset.nearest = nk ? nk.segments.join(",") : "";
+    if (!nk) return;
+    const colour = "#e9a23b";
+    ctx.save();
+    ctx.strokeStyle = colour; ctx.lineCap = "round"; ctx.globalAlpha = 0.8; ctx.lineWidth = 11 * dpr;
+    for (const k of nk.segments) this.line(ctx, o[k], o[k + 1]);
+    ctx.globalAlpha = 1; ctx.lineWidth = 2.5 * dpr; ctx.setLineDash(nk.held ? [] : [5 * dpr, 4 * dpr]);
+    const rings = nk.segments.map((k) => this.project(o[k].map((v, j) => (v + o[k + 1][j]) / 2)));
+    for (const m of rings) { ctx.beginPath(); ctx.arc(m[0], m[1], 14 * dpr, 0, 2 * Math.PI); ctx.stroke(); }
+    const label = `${nk.held ? "HELD, " : ""}nearest keep-out: ${nk.distance < 0 ? "overlap " : ""}${Math.abs(nk.distance).toFixed(3)} m, ${nk.link} to ${nk.other}`;
+    ctx.font = `600 ${12 * dpr}px system-ui, sans-serif`;
+    const tw = Math.min(ctx.measureText(label).width, this.canvas.width - 16 * dpr), x = 8 * dpr, y = 20 * dpr;
+    ctx.setLineDash([2 * dpr, 3 * dpr]); ctx.lineWidth = 1.5 * dpr;
+    const m = rings[0], lx = Math.max(x, Math.min(m[0], x + tw)), ly = y + 5 * dpr;
+    const dx = m[0] - lx, dy = m[1] - ly, len = Math.hypot(dx, dy);
+    if (len > 16 * dpr) { ctx.beginPath(); ctx.moveTo(lx, ly); ctx.lineTo(m[0] - dx / len * 14 * dpr, m[1] - dy / len * 14 * dpr); ctx.stroke(); }
+    ctx.setLineDash([]);
+    ctx.fillStyle = "rgba(15, 20, 25, 0.9)"; ctx.fillRect(x - 4 * dpr, y - 14 * dpr, tw + 8 * dpr, 19 * dpr);
+    ctx.strokeStyle = colour; ctx.lineWidth = (nk.held ? 2.5 : 1) * dpr; ctx.strokeRect(x - 4 * dpr, y - 14 * dpr, tw + 8 * dpr, 19 * dpr);
+    ctx.fillStyle = "#f0b860"; ctx.fillText(label, x, y, tw);
+    ctx.restore();
   }
 }

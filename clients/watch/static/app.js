@@ -22,7 +22,9 @@ function ahead(el, a) {
   if (L.tick === undefined) { text(el, "to_pinched", "n/a"); text(el, "first_limit", "n/a"); return; }  // no health yet
   text(el, "to_pinched", tp === null || tp === undefined ? "not ahead" : tp <= 0 ? "now (pinched)" : `in ${secs(tp)}`);
   p.dataset.soon = String(tp !== null && tp !== undefined && tp < SOON_S);
-  const name = fj === null || fj === undefined ? null : ((a.joints[fj] || {}).name || `joint ${fj + 1}`);
+  // the joint and its time come together (docs/protocol.md 7.4); a joint without a time is not ahead
+  const name = fj === null || fj === undefined || tf === null || tf === undefined ? null
+    : ((a.joints[fj] || {}).name || `joint ${fj + 1}`);
   text(el, "first_limit", name === null ? "none ahead" : `${name} in ${secs(tf)}`);
   f.dataset.soon = String(name !== null && tf !== null && tf < SOON_S);
 }

@@ -286,11 +286,13 @@ class Link:
         ("base" or "tool"); point (3,) m offset of the reference point from the tool origin in
         `frame`. Returns its seq. Raises InputError for values the protocol refuses."""
         if self.auto_renew:
-            self._renew_without_waiting()
+            self._take_replies()  # a lost lease is known before the twist is sent
         seq = self._seq[wire.KIND_TWIST] = self._seq[wire.KIND_TWIST] + 1
         data = wire.encode_twist(seq=seq, lease=self._token(), linear=linear, angular=angular, frame=frame,
                                   point=point)
         self._intake.send_multipart([wire.TOPIC_TWIST, data])
+        if self.auto_renew:
+            self._renew_without_waiting()  # a renewal when due, after the twist: it does not delay it
         return seq
 
     def stream_twists(self, twist_at: Callable[[float], tuple[Sequence[float], Sequence[float]] | None],

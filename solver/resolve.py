@@ -427,8 +427,8 @@ def _enforce(
                 tracking = True
                 y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
                 mu = max(lam, TRACK_DAMPING_MIN)
-                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, y_ref) if rows is None
-                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows))
+                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, y_ref, (U, s, Vh)) if rows is None
+                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows, (U, s, Vh)))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
     else:

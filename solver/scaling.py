@@ -281,7 +281,7 @@ def active_set(
 
 def bounded_damped_rates_rows(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
-    rows: tuple[np.ndarray, np.ndarray],
+    rows: tuple[np.ndarray, np.ndarray], svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
 ) -> np.ndarray:
     """`bounded_damped_rates` with extra rows R y >= r (R (p, n), r (p,), e.g. keep-out dampers), (n,).
 
@@ -295,7 +295,7 @@ def bounded_damped_rates_rows(
     """
     R, r = rows
     n = A.shape[1]
-    y0 = bounded_damped_rates(A, x_w, lo, hi, mu, y_ref)
+    y0 = bounded_damped_rates(A, x_w, lo, hi, mu, y_ref, svd)
     eye = np.eye(n)
     G = np.concatenate((eye, -eye, -R))
     h = np.concatenate((hi, -lo, -r))

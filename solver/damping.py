@@ -55,11 +55,7 @@ def damping_factor(s: np.ndarray, options: SolverOptions) -> float:
     """
     policy = options.damping
     if policy == "singular_value":
-        eps = options.singular_value_threshold
-        s_min = float(s[-1])
-        if s_min >= eps:
-            return 0.0
-        return options.damping_max * math.sqrt(1.0 - (s_min / eps) ** 2)
+        return _singular_value_law(float(s[-1]), options)
     if policy == "constant":
         return options.damping_max
     if policy == "manipulability":
@@ -69,6 +65,14 @@ def damping_factor(s: np.ndarray, options: SolverOptions) -> float:
             return 0.0
         return options.damping_max * (1.0 - w / w0)
     return 0.0
+
+
+def _singular_value_law(s_min: float, options: SolverOptions) -> float:
+    """Damping factor (m) of the "singular_value" policy for the smallest singular value s_min (m)."""
+    eps = options.singular_value_threshold
+    if s_min >= eps:
+        return 0.0
+    return options.damping_max * math.sqrt(1.0 - (s_min / eps) ** 2)
 
 
 def task_rates(
@@ -196,25 +200,35 @@ def resting_joint_damping(
     n = a.shape[0]
     # Python floats: the test is a handful of comparisons per joint (cheaper than numpy calls on n values)
     a_l, sp, reach = a.tolist(), speed.tolist(), AT.tolist()  # speed and A T in joint units
-    keep = [i for i in range(n) if not ((a_l[i] < 0.0 and sp[i] <= reach[i])
-                                        or (a_l[i] > 0.0 and sp[n + i] <= reach[i]))]
+    keep = []
+    for i in range(n):
+        v = a_l[i]
+        if not ((v < 0.0 and sp[i] <= reach[i]) or (v > 0.0 and sp[n + i] <= reach[i])):
+            keep.append(i)
     n_e = len(keep)
     if n_e in (0, n):
         return a, lam
-    A_e = A[:, keep]
     if options.damping != "singular_value":
-        return _resting_by_svd(A_e, keep, a, x_w, lam, options)
+        return _resting_by_svd(A[:, keep], keep, a, x_w, lam, options)
     wide = n_e >= A.shape[0]
-    G = A_e.dot(A_e.T) if wide else A_e.T.dot(A_e)
-    ev = symmetric_eigenvalues(G)  # ascending, s_e^2 up to rounding (may dip below 0 by eps s_max^2)
-    np.maximum(ev, 0.0, out=ev)
-    np.sqrt(ev, out=ev)
-    lam_e = damping_factor(ev[::-1], options)
+    if wide:  # A_0: A with the resting columns zeroed, so A_0 A^T = A_e A_e^T and A_0^T w is 0 there
+        on = [0.0] * n
+        for i in keep:
+            on[i] = 1.0
+        A_0 = A * on
+        G = A_0.dot(A.T)
+    else:
+        A_e = A[:, keep]
+        G = A_e.T.dot(A_e)
+    # the smallest eigenvalue, s_min^2 to rounding (it may dip below 0 by about eps s_max^2)
+    lam_e = _singular_value_law(math.sqrt(max(symmetric_eigenvalues(G).item(0), 0.0)), options)
     if lam_e <= lam:
         return a, lam
     G.ravel()[:: G.shape[0] + 1] += lam_e * lam_e  # (a view: G is contiguous)
+    if wide:
+        return solve_small(G, x_w).dot(A_0), lam_e
     out = np.zeros(n)
-    out[keep] = A_e.T.dot(solve_small(G, x_w)) if wide else solve_small(G, x_w.dot(A_e))
+    out[keep] = solve_small(G, x_w.dot(A_e))
     return out, lam_e
 
 

@@ -309,6 +309,7 @@ def _rates(
     # Null-space objectives, projected with the exact projector: they only act where A has a null
     # space (rank < n); otherwise the slow path evaluates them on demand (`_enforce`).
     y0 = _objective_rates(plan, q, J, U, s, Vh) if rank < n else None
+    z = None
     if y0 is not None:
         # y = y_task + (I - A+ A) y0 in one product: with z = Vh y0, (I - A+ A) y0 = Vh[rank:]^T z[rank:],
         # so y = Vh^T z after z[:rank] is replaced by the task coefficients.
@@ -335,11 +336,12 @@ def _rates(
         if bplan is not None:
             qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
                                                              x * plan.task_scale, plan, q, qd_prev,
-                                                             options, rows)
+                                                             options, rows, z)
         else:
             bits = np.zeros(n, dtype=np.uint8)
-        ok = np.isfinite(qd)
-        if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
+        # overflow of a huge (finite) request near a singularity: the sum is not finite then (and, rarely,
+        # for finite rates whose sum overflows; the element test decides)
+        if not math.isfinite(qd.sum()) and not np.isfinite(qd).all():
             qd, scale, bits = _finite_fallback(plan, q, qd_prev)
         if rows is not None:  # which damper rows the (limited) rates meet with equality
             active = rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
@@ -384,6 +386,7 @@ def _enforce(
     qd_prev: np.ndarray,
     options: SolverOptions,
     rows: tuple[np.ndarray, np.ndarray] | None = None,
+    z: np.ndarray | None = None,
 ) -> tuple[np.ndarray, float, np.ndarray, int, bool, float]:
     """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking,
     damping): damping is lam, or the larger damping of the joints the limits leave free
@@ -398,6 +401,8 @@ def _enforce(
     no special treatment). Passes: 1 for the scaling solve, 2 when tracking followed.
     rows : keep-out rows (R (p, n), r (p,)), R q_dot >= r, or None; they join the scaling LP and the
     bounded least squares (then also for a zero twist, instead of braking along the previous rate).
+    z : (n,) the fast path's Vh y0 with the task coefficients in front (its z[rank:] is Vh[rank:] y0),
+    or None (then computed here).
     """
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
@@ -414,7 +419,7 @@ def _enforce(
         passes = 1
     else:
         Vn = Vh[rank:]
-        z_pref = None if y0 is None or rank == n else Vn.dot(y0)
+        z_pref = None if y0 is None or rank == n else (Vn.dot(y0) if z is None else z[rank:])
         a = coef.dot(Vh[:rank])
         a, lam = resting_joint_damping(A, a, x_w, lam, bounds.speed, plan.bounds.AT_n, options)
         found = max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows)
@@ -423,7 +428,7 @@ def _enforce(
             scale, y = found
         else:
             scale, y, passes = 0.0, None, 2
-            if x_w.any() or rows is not None:  # track: the bounded damped least-squares rates
+            if rows is not None or any(x_w.tolist()):  # track: the bounded damped least-squares rates
                 tracking = True
                 y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
                 mu = max(lam, TRACK_DAMPING_MIN)
@@ -431,12 +436,14 @@ def _enforce(
                      else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows, (U, s, Vh)))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
+    elif d is None and tracking and rows is None:
+        qd = y  # the bounded least squares' rates are inside the bounds already (held ones on them)
     else:
         if d is not None:
             y = y * d
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
-    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking, lam
+    return qd, scale, active_bits(bounds, qd), passes, tracking, lam
 
 
 def _finite_fallback(plan: Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
@@ -446,5 +453,5 @@ def _finite_fallback(plan: Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np
         return np.zeros(n), 0.0, np.zeros(n, dtype=np.uint8)
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
-    return qd, 0.0, active_bits(bounds, qd, np.ones(n, dtype=bool))
+    return qd, 0.0, active_bits(bounds, qd)
 

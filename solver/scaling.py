@@ -90,6 +90,8 @@ def max_scale(
     BOUND_TOL (the caller clips).
     """
     k = N.shape[1]
+    if k == 1 and rows is None:  # the 7-joint tick: the tolerance is added on Python floats there
+        return _max_scale_one(a, N[:, 0], lo, hi, 0.0 if z_pref is None else float(z_pref[0]), BOUND_TOL)
     lo_t = lo - BOUND_TOL
     hi_t = hi + BOUND_TOL
     if rows is not None:
@@ -106,8 +108,6 @@ def max_scale(
         return s, s * a
     if k == 1:
         zp = 0.0 if z_pref is None else float(z_pref[0])
-        if rows is None:
-            return _max_scale_one(a, N[:, 0], lo_t, hi_t, zp)
         n = a.shape[0]
         cap = np.abs(R).dot(np.maximum(np.abs(lo_t), np.abs(hi_t))) + 1.0  # R y <= cap for any bounded y
         found = _max_scale_one(np.concatenate((a, R.dot(a))), np.concatenate((N[:, 0], R.dot(N[:, 0]))),
@@ -132,9 +132,11 @@ def _scale_range(h: np.ndarray, f: np.ndarray) -> tuple[float, float] | None:
 
 
 def _max_scale_one(
-    a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float
+    a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float, tol: float = 0.0,
 ) -> tuple[float, np.ndarray] | None:
     """k = 1: eliminate z (Fourier-Motzkin), walking the pairs that bind from s = 1 down.
+
+    lo_t, hi_t : (n,) the bounds, widened by `tol` here (BOUND_TOL; 0 when the caller widened them).
 
     Joint i, signed so that its null-space coefficient g_i = |nv_i| >= 0: l_i <= s f_i + z g_i <= u_i.
     A joint with g_i <= NULL_EPS bounds s alone (l_i <= s f_i <= u_i: a ratio test). The others bound z:
@@ -149,6 +151,9 @@ def _max_scale_one(
     dozen operations on 7 numbers beat the vectorised n^2 products' numpy calls.
     """
     A_, N_, L_, U_ = a.tolist(), nv.tolist(), lo_t.tolist(), hi_t.tolist()
+    if tol:
+        L_ = [v - tol for v in L_]
+        U_ = [v + tol for v in U_]
     s_hi, s_lo = 1.0, 0.0
     upper: list[tuple[float, float]] = []  # (alpha, beta): z <= alpha - s beta
     lower: list[tuple[float, float]] = []  # z >= alpha - s beta
@@ -171,8 +176,20 @@ def _max_scale_one(
     if not upper:
         return s, s * a
     for _ in range(len(upper) * len(lower) + 2):
-        z_hi, al_h, be_h = min((al - s * be, al, be) for al, be in upper)
-        z_lo, al_l, be_l = max((al - s * be, al, be) for al, be in lower)
+        # the binding pair: the least (z, alpha, beta) of the upper lines, the greatest of the lower
+        # (explicit loops: the same order as min/max over the tuples, without building them)
+        al_h, be_h = upper[0]
+        z_hi = al_h - s * be_h
+        for al, be in upper:
+            v = al - s * be
+            if v < z_hi or (v == z_hi and (al < al_h or (al == al_h and be < be_h))):
+                z_hi, al_h, be_h = v, al, be
+        al_l, be_l = lower[0]
+        z_lo = al_l - s * be_l
+        for al, be in lower:
+            v = al - s * be
+            if v > z_lo or (v == z_lo and (al > al_l or (al == al_l and be > be_l))):
+                z_lo, al_l, be_l = v, al, be
         if z_hi - z_lo >= -ROOT_RTOL * (1.0 + abs(z_hi) + abs(z_lo)):
             break
         if be_h <= be_l:  # the binding line D = (al_h - al_l) - s (be_h - be_l) never rises leftward

@@ -63,14 +63,17 @@ STEP_MAX_PER_JOINT = 8
 
 def bounded_damped_rates(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
-    svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+    svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None, z_ref: np.ndarray | None = None,
 ) -> np.ndarray:
     """argmin |A y - x_w|^2 + mu^2 |y - y_ref|^2 over lo <= y <= hi (module docstring), (n,).
 
     A : (m, n) weighted Jacobian; x_w : (m,) asked twist, task-weighted (m/s); lo, hi : (n,) bounds,
     lo <= hi (lo == hi: a pinned joint, always held); mu : damping (m), > 0; y_ref : (n,) the
-    null-space objective rates (zeros for none). svd : the full SVD (U (m, m), s (min(m, n),)
-    descending, Vh (n, n)) of A (`twistrate.solver.svd.svd_full`), or None to compute it here.
+    null-space objective rates (zeros for none), or None with z_ref. svd : the full SVD (U (m, m),
+    s (min(m, n),) descending, Vh (n, n)) of A (`twistrate.solver.svd.svd_full`), or None to compute
+    it here. z_ref : (n - r,) with the SVD and y_ref None: y_ref = Vh[r:]^T z_ref, the objective rates
+    given by their null-space coordinates (so V^T y_ref = (0, z_ref) exactly, and y_ref itself is
+    formed only if step 2 does not answer).
     """
     n = A.shape[1]
     U, s, Vh = svd_full(A) if svd is None else svd
@@ -78,7 +81,12 @@ def bounded_damped_rates(
     mu2 = mu * mu
     # y* = V c with c_i = g_i (s_i u_i^T x_w + mu^2 v_i^T y_ref), g_i = 1 / (s_i^2 + mu^2)
     ux = x_w.dot(U).tolist()
-    vy = Vh.dot(y_ref).tolist()
+    if y_ref is not None:
+        vy = Vh.dot(y_ref).tolist()
+    elif z_ref is not None:
+        vy = [0.0] * (n - z_ref.shape[0]) + z_ref.tolist()
+    else:
+        vy = [0.0] * n
     sv = s.tolist()
     g = [0.0] * n
     c = [0.0] * n
@@ -96,7 +104,7 @@ def bounded_damped_rates(
     else:
         return y_star
     P = (Vh.T * g).dot(Vh)
-    normal = _Normal(A, x_w, mu2, y_ref)
+    normal = _Normal(A, x_w, mu2, y_ref, z_ref, Vh)
     found = _guess_held(P.tolist(), normal, ys, lo_l, hi_l)
     if found is not None:  # its free joints were checked inside their bounds, the held ones are on them
         return np.array(found[1])
@@ -117,16 +125,21 @@ class _Normal:
 
     __slots__ = ("_args", "_lists")
 
-    def __init__(self, A: np.ndarray, x_w: np.ndarray, mu2: float, y_ref: np.ndarray) -> None:
-        self._args = (A, x_w, mu2, y_ref)
+    def __init__(self, A: np.ndarray, x_w: np.ndarray, mu2: float, y_ref: np.ndarray | None,
+                 z_ref: np.ndarray | None, Vh: np.ndarray) -> None:
+        self._args = (A, x_w, mu2, y_ref, z_ref, Vh)
         self._lists: tuple[list[list[float]], list[float], float] | None = None
 
     def lists(self) -> tuple[list[list[float]], list[float], float]:
         if self._lists is None:
-            A, x_w, mu2, y_ref = self._args
+            A, x_w, mu2, y_ref, z_ref, Vh = self._args
             H = A.T.dot(A)
             H.ravel()[:: H.shape[0] + 1] += mu2  # (a view: H is contiguous)
-            q = A.T.dot(x_w) + mu2 * y_ref
+            q = A.T.dot(x_w)
+            if y_ref is None and z_ref is not None:
+                y_ref = z_ref.dot(Vh[Vh.shape[0] - z_ref.shape[0]:])
+            if y_ref is not None:
+                q += mu2 * y_ref
             ql = q.tolist()
             self._lists = (H.tolist(), ql, RELEASE_RTOL * (1.0 + max(map(abs, ql))))
         return self._lists

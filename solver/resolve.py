@@ -304,7 +304,8 @@ def _rates(
         tol = RANK_ATOL
     rank = numerical_rank(s, tol)
     # Task rates y_task = coef @ Vh[:rank] (weighted coordinates), kept in the singular basis.
-    coef, lam = task_coefficients(U, s, Vh, rank, x * plan.task_scale, A, options)
+    x_w = x * plan.task_scale
+    coef, lam = task_coefficients(U, s, Vh, rank, x_w, A, options)
 
     # Null-space objectives, projected with the exact projector: they only act where A has a null
     # space (rank < n); otherwise the slow path evaluates them on demand (`_enforce`).
@@ -334,9 +335,8 @@ def _rates(
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
-            qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
-                                                             x * plan.task_scale, plan, q, qd_prev,
-                                                             options, rows, z)
+            qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam, x_w,
+                                                             plan, q, qd_prev, options, rows, z)
         else:
             bits = np.zeros(n, dtype=np.uint8)
         # overflow of a huge (finite) request near a singularity: the sum is not finite then (and, rarely,
@@ -430,10 +430,12 @@ def _enforce(
             scale, y, passes = 0.0, None, 2
             if rows is not None or any(x_w.tolist()):  # track: the bounded damped least-squares rates
                 tracking = True
-                y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
                 mu = max(lam, TRACK_DAMPING_MIN)
-                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, y_ref, (U, s, Vh)) if rows is None
-                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows, (U, s, Vh)))
+                if rows is None:  # the objective rates by their null-space coordinates z_pref
+                    y = bounded_damped_rates(A, x_w, lo_y, hi_y, mu, None, (U, s, Vh), z_pref)
+                else:
+                    y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
+                    y = bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows, (U, s, Vh))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
     elif d is None and tracking and rows is None:

@@ -67,10 +67,13 @@ from twistrate.solver.limits import (
 from twistrate.solver.options import SolverOptions
 from twistrate.solver.plan import Plan, plan_of
 from twistrate.solver.scaling import (
+    BOUND_TOL,
     TRACK_DAMPING_MIN,
     bounded_damped_rates,
     bounded_damped_rates_rows,
     max_scale,
+    max_scale_one,
+    rest_rates,
 )
 from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 from twistrate.solver.twist import twist_base
@@ -339,10 +342,10 @@ def _rates(
                                                              plan, q, qd_prev, options, rows, z)
         else:
             bits = np.zeros(n, dtype=np.uint8)
-        # overflow of a huge (finite) request near a singularity: the sum is not finite then (and, rarely,
-        # for finite rates whose sum overflows; the element test decides)
-        if not math.isfinite(qd.sum()) and not np.isfinite(qd).all():
-            qd, scale, bits = _finite_fallback(plan, q, qd_prev)
+        # overflow of a huge (finite) request near a singularity (a sum overflowing alone: the element test)
+        if not math.isfinite(qd.sum()) and not np.isfinite(qd).all():  # rates nearest rest, scale 0
+            qd, bits = rest_rates(bplan, q, qd_prev) if bplan is not None else (np.zeros(n), bits)
+            scale = 0.0
         if rows is not None:  # which damper rows the (limited) rates meet with equality
             active = rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
     k = s.shape[0]
@@ -401,8 +404,7 @@ def _enforce(
     no special treatment). Passes: 1 for the scaling solve, 2 when tracking followed.
     rows : keep-out rows (R (p, n), r (p,)), R q_dot >= r, or None; they join the scaling LP and the
     bounded least squares (then also for a zero twist, instead of braking along the previous rate).
-    z : (n,) the fast path's Vh y0 with the task coefficients in front (its z[rank:] is Vh[rank:] y0),
-    or None (then computed here).
+    z : (n,) the fast path's Vh y0, task coefficients in front (z[rank:] = Vh[rank:] y0), or None.
     """
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
@@ -422,7 +424,9 @@ def _enforce(
         z_pref = None if y0 is None or rank == n else (Vn.dot(y0) if z is None else z[rank:])
         a = coef.dot(Vh[:rank])
         a, lam = resting_joint_damping(A, a, x_w, lam, bounds.speed, plan.bounds.AT_n, options)
-        found = max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows)
+        k1 = rank == n - 1 and rows is None  # one null vector Vh[rank] (7-joint arms): the walk directly
+        found = (max_scale_one(a, Vh[rank], lo_y, hi_y, 0.0 if z_pref is None else z_pref.item(0), BOUND_TOL)
+                 if k1 else max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows))
         passes = 1
         if found is not None:
             scale, y = found
@@ -431,29 +435,16 @@ def _enforce(
             if rows is not None or any(x_w.tolist()):  # track: the bounded damped least-squares rates
                 tracking = True
                 mu = max(lam, TRACK_DAMPING_MIN)
-                if rows is None:  # the objective rates by their null-space coordinates z_pref
-                    y = bounded_damped_rates(A, x_w, lo_y, hi_y, mu, None, (U, s, Vh), z_pref)
-                else:
-                    y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
-                    y = bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows, (U, s, Vh))
+                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, None, (U, s, Vh), z_pref) if rows is None
+                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, np.zeros(n) if z_pref is None
+                                                    else Vn.T.dot(z_pref), rows, (U, s, Vh)))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
-    elif d is None and tracking and rows is None:
-        qd = y  # the bounded least squares' rates are inside the bounds already (held ones on them)
+    elif d is None and tracking and rows is None:  # the bounded least squares' rates are inside
+        qd = y
     else:
         if d is not None:
             y = y * d
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
     return qd, scale, active_bits(bounds, qd), passes, tracking, lam
-
-
-def _finite_fallback(plan: Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
-    """Rates when the request overflowed: the rate nearest rest within the bounds, scale 0."""
-    n = q.shape[0]
-    if plan.bounds is None:
-        return np.zeros(n), 0.0, np.zeros(n, dtype=np.uint8)
-    bounds = rate_bounds(plan.bounds, q, qd_prev)
-    qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
-    return qd, 0.0, active_bits(bounds, qd)
-

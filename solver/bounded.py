@@ -10,8 +10,14 @@ inverse P, the minimiser with B held at values v_B is y* + P[:, B] lam, lam = P_
 (y* = P q the unconstrained minimiser), and lam is the gradient at the held joints (H P = I), i.e.
 their multipliers: at a lower bound lam_i >= 0, at an upper bound lam_i <= 0.
 
-How the held set is found (every path ends in the same polish, the free joints' normal equations
-solved directly, so the answer depends only on the held set):
+The inverse and the unconstrained minimiser come from an SVD of A (the tick's own, passed in, or one
+computed here): with A = U S V^T, H = V (S^T S + mu^2 I) V^T, so P = V diag(g) V^T with g_i =
+1 / (s_i^2 + mu^2) (s_i = 0 beyond min(m, n)) and y* = V diag(g) (S^T U^T x_w + mu^2 V^T y_ref): no
+inverse of H is formed, and P is accurate to rounding of its largest entry whatever H's condition
+(V is orthogonal to rounding; g is exact).
+
+How the held set is found (every path ends in the held set's own minimiser from the smaller of two
+regular systems, `_held_minimiser`, so the answer depends only on the held set):
 
 1. y* inside the bounds: done (y* itself).
 2. One joint held (the common case when the twist asks far beyond a box of one tick of
@@ -30,20 +36,22 @@ solved directly, so the answer depends only on the held set):
    descends and stays inside the bounds; the pass cap bounds the rare degenerate zig-zag).
 
 Steps 2 and 3 run on Python floats: for n <= 9 joints a pass is a few dozen multiplications, far
-cheaper than the numpy calls it would take on arrays of 7 numbers.
+cheaper than the numpy calls it would take on arrays of 7 numbers. H and q (step 3 on, and the release
+tolerance) are formed only when step 2 does not answer.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-try:  # the LAPACK gufuncs behind numpy.linalg.solve / inv (private, hence the fallback; see svd.py)
+from twistrate.solver.svd import svd_full
+
+try:  # the LAPACK gufunc behind numpy.linalg.solve (private, hence the fallback; see svd.py)
     from numpy.linalg import _umath_linalg as _gufuncs
 
     _solve1 = _gufuncs.solve1
-    _inv = _gufuncs.inv
 except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
-    _solve1 = _inv = None
+    _solve1 = None
 
 #: Relative size below which a multiplier counts as zero (release test of a held joint).
 RELEASE_RTOL = 1e-12
@@ -55,55 +63,95 @@ STEP_MAX_PER_JOINT = 8
 
 def bounded_damped_rates(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
+    svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None, z_ref: np.ndarray | None = None,
 ) -> np.ndarray:
     """argmin |A y - x_w|^2 + mu^2 |y - y_ref|^2 over lo <= y <= hi (module docstring), (n,).
 
     A : (m, n) weighted Jacobian; x_w : (m,) asked twist, task-weighted (m/s); lo, hi : (n,) bounds,
     lo <= hi (lo == hi: a pinned joint, always held); mu : damping (m), > 0; y_ref : (n,) the
-    null-space objective rates (zeros for none).
+    null-space objective rates (zeros for none), or None with z_ref. svd : the full SVD (U (m, m),
+    s (min(m, n),) descending, Vh (n, n)) of A (`twistrate.solver.svd.svd_full`), or None to compute
+    it here. z_ref : (n - r,) with the SVD and y_ref None: y_ref = Vh[r:]^T z_ref, the objective rates
+    given by their null-space coordinates (so V^T y_ref = (0, z_ref) exactly, and y_ref itself is
+    formed only if step 2 does not answer).
     """
     n = A.shape[1]
-    At = A.T
-    H = At.dot(A)
-    H.ravel()[:: n + 1] += mu * mu  # (a view: H is contiguous)
-    q = At.dot(x_w)
-    q += (mu * mu) * y_ref
-    y_star = _spd_solve(H, q)
+    U, s, Vh = svd_full(A) if svd is None else svd
+    k = s.shape[0]
+    mu2 = mu * mu
+    # y* = V c with c_i = g_i (s_i u_i^T x_w + mu^2 v_i^T y_ref), g_i = 1 / (s_i^2 + mu^2)
+    ux = x_w.dot(U).tolist()
+    if y_ref is not None:
+        vy = Vh.dot(y_ref).tolist()
+    elif z_ref is not None:
+        vy = [0.0] * (n - z_ref.shape[0]) + z_ref.tolist()
+    else:
+        vy = [0.0] * n
+    sv = s.tolist()
+    g = [0.0] * n
+    c = [0.0] * n
+    for i in range(n):
+        si = sv[i] if i < k else 0.0
+        gi = 1.0 / (si * si + mu2)
+        g[i] = gi
+        c[i] = gi * (si * ux[i] + mu2 * vy[i]) if i < k else vy[i]
+    y_star = np.dot(c, Vh)
     ys = y_star.tolist()
     lo_l, hi_l = lo.tolist(), hi.tolist()
-    if all(lo_l[i] <= ys[i] <= hi_l[i] for i in range(n)):
-        return y_star
-    P = _spd_inv(H)
-    ql = q.tolist()
-    tol = RELEASE_RTOL * (1.0 + max(map(abs, ql)))
-    held = _guess_held(P.tolist(), H.tolist(), ys, ql, lo_l, hi_l, tol)
-    if held is None:
-        y = np.minimum(np.maximum(y_star, lo), hi)
-        held_mask, y = _held_by_steps(P, y_star, y, np.flatnonzero(y != y_star), lo, hi, tol)
-        B, F = np.flatnonzero(held_mask).tolist(), np.flatnonzero(~held_mask).tolist()
-        held = dict(zip(B, y[held_mask].tolist(), strict=True))
+    for i in range(n):
+        if not lo_l[i] <= ys[i] <= hi_l[i]:
+            break
     else:
-        B = sorted(held)
-        F = [i for i in range(n) if i not in held]
-    out = [0.0] * n
-    for i in B:
-        out[i] = held[i]
-    if F:  # polish: the free joints' normal equations solved directly (accuracy of P)
-        H_F = H[F]
-        rhs = q[F] - H_F[:, B].dot([held[i] for i in B]) if B else q[F]
-        for i, v in zip(F, _spd_solve(H_F[:, F], rhs).tolist(), strict=True):
-            out[i] = min(max(v, lo_l[i]), hi_l[i])  # rounding only: the free joints are inside
-    return np.array(out)
+        return y_star
+    P = (Vh.T * g).dot(Vh)
+    normal = _Normal(A, x_w, mu2, y_ref, z_ref, Vh)
+    found = _guess_held(P.tolist(), normal, ys, lo_l, hi_l)
+    if found is not None:  # its free joints were checked inside their bounds, the held ones are on them
+        return np.array(found[1])
+    H, q, tol = normal.lists()
+    y_clip = np.minimum(np.maximum(y_star, lo), hi)
+    held_mask, y_clip = _held_by_steps(P, y_star, y_clip, np.flatnonzero(y_clip != y_star), lo, hi, tol)
+    held = dict(zip(np.flatnonzero(held_mask).tolist(), y_clip[held_mask].tolist(), strict=True))
+    y = _held_minimiser(P.tolist(), H, ys, q, held, sorted(held), [i for i in range(n) if i not in held])[0]
+    for i in range(n):
+        if i not in held:
+            y[i] = min(max(y[i], lo_l[i]), hi_l[i])  # rounding only: the free joints are inside
+    return np.array(y)
+
+
+class _Normal:
+    """The normal matrix H = A^T A + mu^2 I (n, n), the right-hand side q = A^T x_w + mu^2 y_ref (n,)
+    and the release tolerance of a multiplier, as lists, formed on first use (step 3 on)."""
+
+    __slots__ = ("_args", "_lists")
+
+    def __init__(self, A: np.ndarray, x_w: np.ndarray, mu2: float, y_ref: np.ndarray | None,
+                 z_ref: np.ndarray | None, Vh: np.ndarray) -> None:
+        self._args = (A, x_w, mu2, y_ref, z_ref, Vh)
+        self._lists: tuple[list[list[float]], list[float], float] | None = None
+
+    def lists(self) -> tuple[list[list[float]], list[float], float]:
+        if self._lists is None:
+            A, x_w, mu2, y_ref, z_ref, Vh = self._args
+            H = A.T.dot(A)
+            H.ravel()[:: H.shape[0] + 1] += mu2  # (a view: H is contiguous)
+            q = A.T.dot(x_w)
+            if y_ref is None and z_ref is not None:
+                y_ref = z_ref.dot(Vh[Vh.shape[0] - z_ref.shape[0]:])
+            if y_ref is not None:
+                q += mu2 * y_ref
+            ql = q.tolist()
+            self._lists = (H.tolist(), ql, RELEASE_RTOL * (1.0 + max(map(abs, ql))))
+        return self._lists
 
 
 def _guess_held(
-    P: list[list[float]], H: list[list[float]], ys: list[float], q: list[float], lo: list[float],
-    hi: list[float], tol: float,
-) -> dict[int, float] | None:
+    P: list[list[float]], normal: _Normal, ys: list[float], lo: list[float], hi: list[float],
+) -> tuple[dict[int, float], list[float]] | None:
     """Steps 2 and 3 of the module docstring on Python floats: the optimal held set {joint: bound
-    value}, or None when neither finds it. P, H : (n, n) the inverse normal matrix and the normal matrix
-    as lists; ys : (n,) the unconstrained minimiser; q : (n,) the right-hand side (H ys = q); lo, hi :
-    (n,) bounds; tol : release tolerance of a multiplier."""
+    value} and its minimiser (n,), or None when neither finds it. P : (n, n) the inverse normal
+    matrix as lists; normal : H, q and the release tolerance on demand; ys : (n,) the unconstrained
+    minimiser; lo, hi : (n,) bounds."""
     n = len(ys)
     start: dict[int, float] = {}
     pinned = []
@@ -117,9 +165,18 @@ def _guess_held(
             start[i] = hi[i]
     if len(pinned) <= 1:  # step 2: a pinned joint, if any, must be the one held
         for i in pinned or list(start):
-            lam = (start[i] - ys[i]) / P[i][i]
-            if all(k == i or lo[k] <= ys[k] + P[k][i] * lam <= hi[k] for k in range(n)):
-                return {i: start[i]}
+            v_i = start[i]
+            lam = (v_i - ys[i]) / P[i][i]
+            y = list(ys)
+            for k in range(n):
+                y_k = ys[k] + P[k][i] * lam
+                if not lo[k] <= y_k <= hi[k] and k != i:
+                    break
+                y[k] = y_k
+            else:
+                y[i] = v_i
+                return {i: v_i}, y
+    H, q, tol = normal.lists()
     held = start
     is_pinned = set(pinned)
     for _ in range(PDAS_MAX_PASSES):  # step 3
@@ -140,7 +197,7 @@ def _guess_held(
             elif y[k] > hi[k]:
                 nxt[k], changed = hi[k], True
         if not changed:
-            return held
+            return held, y
         if not nxt:
             return None
         held = nxt
@@ -155,6 +212,12 @@ def _held_minimiser(
     smaller of two regular systems: P_BB lam = v_B - y*_B (then y = y* + P[:, B] lam), or
     H_FF y_F = q_F - H_FB v_B (then lam = (H y - q)_B, the gradient at the held joints)."""
     n = len(ys)
+    if len(B) == 1:  # the step-2 formula: lam = (v_i - y*_i) / P_ii
+        i = B[0]
+        lam = [(held[i] - ys[i]) / P[i][i]]
+        y = [ys[k] + P[k][i] * lam[0] for k in range(n)]
+        y[i] = held[i]
+        return y, lam
     if len(B) <= len(F):
         lam = _chol_solve([[P[i][j] for j in B] for i in B], [held[i] - ys[i] for i in B])
         y = list(ys)
@@ -274,10 +337,3 @@ def _spd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
     if _solve1 is not None:
         return _solve1(M, b, signature="dd->d")
     return np.linalg.solve(M, b)  # pragma: no cover
-
-
-def _spd_inv(M: np.ndarray) -> np.ndarray:
-    """M^-1 for a small symmetric positive definite M."""
-    if _inv is not None:
-        return _inv(M, signature="d->d")
-    return np.linalg.inv(M)  # pragma: no cover

@@ -33,7 +33,14 @@ import math
 import numpy as np
 
 from twistrate.solver.options import SolverOptions
-from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
+from twistrate.solver.svd import (
+    RANK_ATOL,
+    RANK_RTOL,
+    numerical_rank,
+    solve_small,
+    svd_full,
+    symmetric_eigenvalues,
+)
 
 #: Smallest attenuation factor used when converting selective damping to an equivalent l (keeps
 #: the reported damping finite; gamma_max > 0 is required by `twistrate.solver.resolve`).
@@ -48,11 +55,7 @@ def damping_factor(s: np.ndarray, options: SolverOptions) -> float:
     """
     policy = options.damping
     if policy == "singular_value":
-        eps = options.singular_value_threshold
-        s_min = float(s[-1])
-        if s_min >= eps:
-            return 0.0
-        return options.damping_max * math.sqrt(1.0 - (s_min / eps) ** 2)
+        return _singular_value_law(float(s[-1]), options)
     if policy == "constant":
         return options.damping_max
     if policy == "manipulability":
@@ -62,6 +65,14 @@ def damping_factor(s: np.ndarray, options: SolverOptions) -> float:
             return 0.0
         return options.damping_max * (1.0 - w / w0)
     return 0.0
+
+
+def _singular_value_law(s_min: float, options: SolverOptions) -> float:
+    """Damping factor (m) of the "singular_value" policy for the smallest singular value s_min (m)."""
+    eps = options.singular_value_threshold
+    if s_min >= eps:
+        return 0.0
+    return options.damping_max * math.sqrt(1.0 - (s_min / eps) ** 2)
 
 
 def task_rates(
@@ -164,25 +175,68 @@ def resting_joint_damping(
     A joint "rests" when the task rate a_i (weighted) pushes it toward a limit it is within one tick
     of braking of (position speed bound on that side <= A T): it cannot help the task any more, and
     the other joints may be near a singularity of their own that the damping of the whole A (lam)
-    does not see. Then the damping policy is applied to the singular values of A without the resting
-    columns; if that asks for more damping, the task rates become the damped least-squares rates of
-    those joints alone (resting joints 0), whose twist A a is the new damped twist the scaling
-    problem scales. A : (m, n) weighted Jacobian; a : (n,) damped task rates (weighted coordinates);
-    x_w : (m,) weighted asked twist (m/s); lam : the tick's damping (m); speed : (2n,) sided
-    position/velocity speed bounds (`twistrate.solver.limits.RateBounds.speed`, lower side first);
-    AT : (n,) one tick of acceleration (rad/s or m/s). Returns (a (n,), damping (m)).
+    does not see. Then the damping policy is applied to the singular values of A_e, A without the
+    resting columns; if that asks for more damping (lam_e > lam), the task rates become the damped
+    least-squares rates of those joints alone (resting joints 0), whose twist A a is the new damped
+    twist the scaling problem scales. A : (m, n) weighted Jacobian; a : (n,) damped task rates
+    (weighted coordinates); x_w : (m,) weighted asked twist (m/s); lam : the tick's damping (m);
+    speed : (2n,) sided position/velocity speed bounds (`twistrate.solver.limits.RateBounds.speed`,
+    lower side first); AT : (n,) one tick of acceleration (rad/s or m/s). Returns (a (n,), damping (m)).
+
+    How, for "singular_value" (no SVD of A_e; Golub & Van Loan 2013, "Matrix Computations", 4th ed.,
+    section 8.6: the singular values of A_e are the square roots of the eigenvalues of its Gram
+    matrix): with p = min(m, n_e), G = A_e A_e^T (m x m) when A_e is wide or square, else A_e^T A_e
+    (n_e x n_e); its p eigenvalues are s_e^2. The law reads only s_min^2 (Chiaverini 1997), which the
+    Gram matrix gives to an absolute accuracy of eps s_max^2, so the damping is the SVD's to rounding.
+    The damped rates A_e^T (G + lam_e^2 I)^-1 x_w (wide) or (G + lam_e^2 I)^-1 A_e^T x_w (tall) are
+    the SVD's sum_i s_i / (s_i^2 + lam_e^2) v_i u_i^T x_w; G + lam_e^2 I is well conditioned, its
+    smallest eigenvalue s_min^2 + lam_e^2 >= min(eps^2, damping_max^2) (the law raises lam_e as s_min
+    falls). The SVD route left out directions with s_i <= RANK_RTOL s_max; they add at most
+    RANK_RTOL s_max |x_w| / lam_e^2. "manipulability" keeps the SVD of A_e: its w = prod s_i is linear
+    in the smallest singular value, which the Gram matrix gives only to about sqrt(eps) s_max.
     """
     if options.damping not in _DAMPING_BY_SIZE:
         return a, lam  # the other policies never damp more for smaller singular values
     n = a.shape[0]
     # Python floats: the test is a handful of comparisons per joint (cheaper than numpy calls on n values)
     a_l, sp, reach = a.tolist(), speed.tolist(), AT.tolist()  # speed and A T in joint units
-    keep = [i for i in range(n) if not ((a_l[i] < 0.0 and sp[i] <= reach[i])
-                                        or (a_l[i] > 0.0 and sp[n + i] <= reach[i]))]
-    if len(keep) in (0, n):
+    keep = []
+    for i in range(n):
+        v = a_l[i]
+        if not ((v < 0.0 and sp[i] <= reach[i]) or (v > 0.0 and sp[n + i] <= reach[i])):
+            keep.append(i)
+    n_e = len(keep)
+    if n_e in (0, n):
         return a, lam
-    A_e = A[:, keep]
-    # One full SVD (its singular values decide; most resting ticks need its vectors too)
+    if options.damping != "singular_value":
+        return _resting_by_svd(A[:, keep], keep, a, x_w, lam, options)
+    wide = n_e >= A.shape[0]
+    if wide:  # A_0: A with the resting columns zeroed, so A_0 A^T = A_e A_e^T and A_0^T w is 0 there
+        on = [0.0] * n
+        for i in keep:
+            on[i] = 1.0
+        A_0 = A * on
+        G = A_0.dot(A.T)
+    else:
+        A_e = A[:, keep]
+        G = A_e.T.dot(A_e)
+    # the smallest eigenvalue, s_min^2 to rounding (it may dip below 0 by about eps s_max^2)
+    lam_e = _singular_value_law(math.sqrt(max(symmetric_eigenvalues(G).item(0), 0.0)), options)
+    if lam_e <= lam:
+        return a, lam
+    G.ravel()[:: G.shape[0] + 1] += lam_e * lam_e  # (a view: G is contiguous)
+    if wide:
+        return solve_small(G, x_w).dot(A_0), lam_e
+    out = np.zeros(n)
+    out[keep] = solve_small(G, x_w.dot(A_e))
+    return out, lam_e
+
+
+def _resting_by_svd(
+    A_e: np.ndarray, keep: list[int], a: np.ndarray, x_w: np.ndarray, lam: float, options: SolverOptions,
+) -> tuple[np.ndarray, float]:
+    """`resting_joint_damping` from a full SVD of A_e (m, n_e), the columns `keep` of A (same
+    arguments and result)."""
     U_e, s_e, Vh_e = svd_full(A_e)
     lam_e = damping_factor(s_e, options)
     if lam_e <= lam:
@@ -191,6 +245,6 @@ def resting_joint_damping(
     s_r = s_e if r == s_e.size else s_e[:r]
     coef = x_w.dot(U_e[:, :r]) if r < U_e.shape[1] else x_w.dot(U_e)
     coef *= s_r / (s_r * s_r + lam_e * lam_e)
-    out = np.zeros(n)
+    out = np.zeros(a.shape[0])
     out[keep] = coef.dot(Vh_e[:r])
     return out, lam_e

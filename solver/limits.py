@@ -56,6 +56,7 @@ reach: the joints decelerate together along the previous rate as hard as the slo
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -115,9 +116,9 @@ class BoundPlan:
     check: np.ndarray
 
 
-@dataclass(frozen=True)
-class RateBounds:
+class RateBounds(NamedTuple):
     """Rate bounds of one tick, crossing resolved. lo, hi : (n,) rad/s or m/s, lo <= hi.
+    (An immutable named tuple: built on every saturated tick, cheaper than a frozen dataclass.)
 
     speed : (2n,) sided position/velocity speed bound (lower side [:n], upper [n:]), >= 0, <= V.
     velocity_bound : (2n,) bool, True where `speed` is the velocity limit (not braking).
@@ -211,8 +212,9 @@ def rate_bounds(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> RateBoun
     return RateBounds(lo, hi, speed, e_raw >= plan.e_hi, acc_lo, acc_hi)
 
 
-def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """(n,) uint8 LIMIT_* bits of the joints in `mask` (bool (n,)) for the bounds qd sits on.
+def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray | None = None) -> np.ndarray:
+    """(n,) uint8 LIMIT_* bits of the joints in `mask` (bool (n,); None: every joint) for the bounds
+    qd sits on.
 
     A joint on its position/velocity bound gets LIMIT_VELOCITY when that side's bound is the
     velocity limit, else LIMIT_POSITION; on its acceleration bound LIMIT_ACCELERATION. A joint
@@ -222,10 +224,11 @@ def active_bits(bounds: RateBounds, qd: np.ndarray, mask: np.ndarray) -> np.ndar
     n = qd.shape[0]
     # Python floats: a few comparisons per joint (cheaper than two dozen numpy calls on n values)
     q_l, sp, vb = qd.tolist(), bounds.speed.tolist(), bounds.velocity_bound.tolist()
-    acc_lo, acc_hi, on = bounds.acc_lo.tolist(), bounds.acc_hi.tolist(), mask.tolist()
+    acc_lo, acc_hi = bounds.acc_lo.tolist(), bounds.acc_hi.tolist()
+    on = None if mask is None else mask.tolist()
     bits = [0] * n
     for i in range(n):
-        if not on[i]:
+        if on is not None and not on[i]:
             continue
         v = q_l[i]
         tol = SOURCE_RTOL * (1.0 + abs(v))

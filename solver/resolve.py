@@ -67,10 +67,13 @@ from twistrate.solver.limits import (
 from twistrate.solver.options import SolverOptions
 from twistrate.solver.plan import Plan, plan_of
 from twistrate.solver.scaling import (
+    BOUND_TOL,
     TRACK_DAMPING_MIN,
     bounded_damped_rates,
     bounded_damped_rates_rows,
     max_scale,
+    max_scale_one,
+    rest_rates,
 )
 from twistrate.solver.svd import RANK_ATOL, RANK_RTOL, numerical_rank, svd_full
 from twistrate.solver.twist import twist_base
@@ -304,11 +307,13 @@ def _rates(
         tol = RANK_ATOL
     rank = numerical_rank(s, tol)
     # Task rates y_task = coef @ Vh[:rank] (weighted coordinates), kept in the singular basis.
-    coef, lam = task_coefficients(U, s, Vh, rank, x * plan.task_scale, A, options)
+    x_w = x * plan.task_scale
+    coef, lam = task_coefficients(U, s, Vh, rank, x_w, A, options)
 
     # Null-space objectives, projected with the exact projector: they only act where A has a null
     # space (rank < n); otherwise the slow path evaluates them on demand (`_enforce`).
     y0 = _objective_rates(plan, q, J, U, s, Vh) if rank < n else None
+    z = None
     if y0 is not None:
         # y = y_task + (I - A+ A) y0 in one product: with z = Vh y0, (I - A+ A) y0 = Vh[rank:]^T z[rank:],
         # so y = Vh^T z after z[:rank] is replaced by the task coefficients.
@@ -333,14 +338,14 @@ def _rates(
         bits = np.zeros(n, dtype=np.uint8)  # (the test fails for a non-finite qd)
     else:
         if bplan is not None:
-            qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam,
-                                                             x * plan.task_scale, plan, q, qd_prev,
-                                                             options, rows)
+            qd, scale, bits, iterations, tracking, lam = _enforce(A, J, U, s, Vh, coef, y0, rank, lam, x_w,
+                                                             plan, q, qd_prev, options, rows, z)
         else:
             bits = np.zeros(n, dtype=np.uint8)
-        ok = np.isfinite(qd)
-        if not ok[ok.argmin()]:  # overflow of a huge (finite) request near a singularity
-            qd, scale, bits = _finite_fallback(plan, q, qd_prev)
+        # overflow of a huge (finite) request near a singularity (a sum overflowing alone: the element test)
+        if not math.isfinite(qd.sum()) and not np.isfinite(qd).all():  # rates nearest rest, scale 0
+            qd, bits = rest_rates(bplan, q, qd_prev) if bplan is not None else (np.zeros(n), bits)
+            scale = 0.0
         if rows is not None:  # which damper rows the (limited) rates meet with equality
             active = rows[0].dot(qd) - rows[1] <= ROW_ACTIVE_TOL * (1.0 + np.abs(rows[1]))
     k = s.shape[0]
@@ -384,6 +389,7 @@ def _enforce(
     qd_prev: np.ndarray,
     options: SolverOptions,
     rows: tuple[np.ndarray, np.ndarray] | None = None,
+    z: np.ndarray | None = None,
 ) -> tuple[np.ndarray, float, np.ndarray, int, bool, float]:
     """Slow path: the scaling problem, else tracking. Returns (qd, scale, bits, passes, tracking,
     damping): damping is lam, or the larger damping of the joints the limits leave free
@@ -398,6 +404,7 @@ def _enforce(
     no special treatment). Passes: 1 for the scaling solve, 2 when tracking followed.
     rows : keep-out rows (R (p, n), r (p,)), R q_dot >= r, or None; they join the scaling LP and the
     bounded least squares (then also for a zero twist, instead of braking along the previous rate).
+    z : (n,) the fast path's Vh y0, task coefficients in front (z[rank:] = Vh[rank:] y0), or None.
     """
     bounds = rate_bounds(plan.bounds, q, qd_prev)
     d = plan.col_scale
@@ -414,37 +421,30 @@ def _enforce(
         passes = 1
     else:
         Vn = Vh[rank:]
-        z_pref = None if y0 is None or rank == n else Vn.dot(y0)
+        z_pref = None if y0 is None or rank == n else (Vn.dot(y0) if z is None else z[rank:])
         a = coef.dot(Vh[:rank])
         a, lam = resting_joint_damping(A, a, x_w, lam, bounds.speed, plan.bounds.AT_n, options)
-        found = max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows)
+        k1 = rank == n - 1 and rows is None  # one null vector Vh[rank] (7-joint arms): the walk directly
+        found = (max_scale_one(a, Vh[rank], lo_y, hi_y, 0.0 if z_pref is None else z_pref.item(0), BOUND_TOL)
+                 if k1 else max_scale(a, Vn.T, lo_y, hi_y, z_pref, rows))
         passes = 1
         if found is not None:
             scale, y = found
         else:
             scale, y, passes = 0.0, None, 2
-            if x_w.any() or rows is not None:  # track: the bounded damped least-squares rates
+            if rows is not None or any(x_w.tolist()):  # track: the bounded damped least-squares rates
                 tracking = True
-                y_ref = np.zeros(n) if z_pref is None else Vn.T.dot(z_pref)
                 mu = max(lam, TRACK_DAMPING_MIN)
-                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, y_ref) if rows is None
-                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, y_ref, rows))
+                y = (bounded_damped_rates(A, x_w, lo_y, hi_y, mu, None, (U, s, Vh), z_pref) if rows is None
+                     else bounded_damped_rates_rows(A, x_w, lo_y, hi_y, mu, np.zeros(n) if z_pref is None
+                                                    else Vn.T.dot(z_pref), rows, (U, s, Vh)))
     if y is None:  # a stop asked for with no task-consistent rate in reach: brake along the path
         qd = brake_along(qd_prev, bounds, plan.bounds.AT_n)
+    elif d is None and tracking and rows is None:  # the bounded least squares' rates are inside
+        qd = y
     else:
         if d is not None:
             y = y * d
         qd = np.minimum(np.maximum(y, bounds.lo), bounds.hi)  # rounding only; y is inside
     # Every joint on a bound is reported: the saturated ones and the one that limits the scale.
-    return qd, scale, active_bits(bounds, qd, np.ones(n, dtype=bool)), passes, tracking, lam
-
-
-def _finite_fallback(plan: Plan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, float, np.ndarray]:
-    """Rates when the request overflowed: the rate nearest rest within the bounds, scale 0."""
-    n = q.shape[0]
-    if plan.bounds is None:
-        return np.zeros(n), 0.0, np.zeros(n, dtype=np.uint8)
-    bounds = rate_bounds(plan.bounds, q, qd_prev)
-    qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
-    return qd, 0.0, active_bits(bounds, qd, np.ones(n, dtype=bool))
-
+    return qd, scale, active_bits(bounds, qd), passes, tracking, lam

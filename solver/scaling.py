@@ -19,7 +19,7 @@ construction: the twist is scaled along its own direction, never bent.
 * k = 1 (7-joint arms): z is eliminated exactly (Fourier-Motzkin elimination; Dantzig & Eaves 1973,
   J. Comb. Theory A 14, "Fourier-Motzkin elimination and its dual"): every pair of an upper and a
   lower bound on z gives one linear condition on s, at most n^2 of them; the largest s meeting all
-  is the optimum, found by walking down from s = 1 along the pairs that bind (`_max_scale_one`:
+  is the optimum, found by walking down from s = 1 along the pairs that bind (`max_scale_one`:
   usually one or two of them, on Python floats).
 * k >= 2: a primal active-set method on the (1 + k)-dimensional LP (Nocedal & Wright 2006,
   "Numerical Optimization", 2nd ed., sections 16.5 and 13; the projected objective as the
@@ -52,6 +52,7 @@ from __future__ import annotations
 import numpy as np
 
 from twistrate.solver.bounded import bounded_damped_rates
+from twistrate.solver.limits import BoundPlan, active_bits, rate_bounds
 
 #: Slack (weighted rad/s) of the rate bounds inside the LP (rounding; the caller clips into them).
 BOUND_TOL = 1e-12
@@ -90,6 +91,8 @@ def max_scale(
     BOUND_TOL (the caller clips).
     """
     k = N.shape[1]
+    if k == 1 and rows is None:  # the 7-joint tick: the tolerance is added on Python floats there
+        return max_scale_one(a, N[:, 0], lo, hi, 0.0 if z_pref is None else float(z_pref[0]), BOUND_TOL)
     lo_t = lo - BOUND_TOL
     hi_t = hi + BOUND_TOL
     if rows is not None:
@@ -106,11 +109,9 @@ def max_scale(
         return s, s * a
     if k == 1:
         zp = 0.0 if z_pref is None else float(z_pref[0])
-        if rows is None:
-            return _max_scale_one(a, N[:, 0], lo_t, hi_t, zp)
         n = a.shape[0]
         cap = np.abs(R).dot(np.maximum(np.abs(lo_t), np.abs(hi_t))) + 1.0  # R y <= cap for any bounded y
-        found = _max_scale_one(np.concatenate((a, R.dot(a))), np.concatenate((N[:, 0], R.dot(N[:, 0]))),
+        found = max_scale_one(np.concatenate((a, R.dot(a))), np.concatenate((N[:, 0], R.dot(N[:, 0]))),
                                np.concatenate((lo_t, r_t)), np.concatenate((hi_t, cap)), zp)
         return None if found is None else (found[0], found[1][:n])
     return _max_scale_general(a, N, lo_t, hi_t, np.zeros(k) if z_pref is None else z_pref,
@@ -131,10 +132,15 @@ def _scale_range(h: np.ndarray, f: np.ndarray) -> tuple[float, float] | None:
     return s_lo, s_hi
 
 
-def _max_scale_one(
-    a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float
+def max_scale_one(
+    a: np.ndarray, nv: np.ndarray, lo_t: np.ndarray, hi_t: np.ndarray, z_pref: float, tol: float = 0.0,
 ) -> tuple[float, np.ndarray] | None:
     """k = 1: eliminate z (Fourier-Motzkin), walking the pairs that bind from s = 1 down.
+
+    `max_scale` for k = 1 (also called by the tick directly, `twistrate.solver.resolve`): a : (n,)
+    task rates, nv : (n,) the unit null vector of A, z_pref : the preferred null-space coordinate;
+    lo_t, hi_t : (n,) the bounds, widened by `tol` here (BOUND_TOL; 0 when the caller widened them).
+    Returns (s, y (n,)) or None, as `max_scale`.
 
     Joint i, signed so that its null-space coefficient g_i = |nv_i| >= 0: l_i <= s f_i + z g_i <= u_i.
     A joint with g_i <= NULL_EPS bounds s alone (l_i <= s f_i <= u_i: a ratio test). The others bound z:
@@ -149,6 +155,9 @@ def _max_scale_one(
     dozen operations on 7 numbers beat the vectorised n^2 products' numpy calls.
     """
     A_, N_, L_, U_ = a.tolist(), nv.tolist(), lo_t.tolist(), hi_t.tolist()
+    if tol:
+        L_ = [v - tol for v in L_]
+        U_ = [v + tol for v in U_]
     s_hi, s_lo = 1.0, 0.0
     upper: list[tuple[float, float]] = []  # (alpha, beta): z <= alpha - s beta
     lower: list[tuple[float, float]] = []  # z >= alpha - s beta
@@ -171,8 +180,20 @@ def _max_scale_one(
     if not upper:
         return s, s * a
     for _ in range(len(upper) * len(lower) + 2):
-        z_hi, al_h, be_h = min((al - s * be, al, be) for al, be in upper)
-        z_lo, al_l, be_l = max((al - s * be, al, be) for al, be in lower)
+        # the binding pair: the least (z, alpha, beta) of the upper lines, the greatest of the lower
+        # (explicit loops: the same order as min/max over the tuples, without building them)
+        al_h, be_h = upper[0]
+        z_hi = al_h - s * be_h
+        for al, be in upper:
+            v = al - s * be
+            if v < z_hi or (v == z_hi and (al < al_h or (al == al_h and be < be_h))):
+                z_hi, al_h, be_h = v, al, be
+        al_l, be_l = lower[0]
+        z_lo = al_l - s * be_l
+        for al, be in lower:
+            v = al - s * be
+            if v > z_lo or (v == z_lo and (al > al_l or (al == al_l and be > be_l))):
+                z_lo, al_l, be_l = v, al, be
         if z_hi - z_lo >= -ROOT_RTOL * (1.0 + abs(z_hi) + abs(z_lo)):
             break
         if be_h <= be_l:  # the binding line D = (al_h - al_l) - s (be_h - be_l) never rises leftward
@@ -281,7 +302,7 @@ def active_set(
 
 def bounded_damped_rates_rows(
     A: np.ndarray, x_w: np.ndarray, lo: np.ndarray, hi: np.ndarray, mu: float, y_ref: np.ndarray,
-    rows: tuple[np.ndarray, np.ndarray],
+    rows: tuple[np.ndarray, np.ndarray], svd: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
 ) -> np.ndarray:
     """`bounded_damped_rates` with extra rows R y >= r (R (p, n), r (p,), e.g. keep-out dampers), (n,).
 
@@ -295,7 +316,7 @@ def bounded_damped_rates_rows(
     """
     R, r = rows
     n = A.shape[1]
-    y0 = bounded_damped_rates(A, x_w, lo, hi, mu, y_ref)
+    y0 = bounded_damped_rates(A, x_w, lo, hi, mu, y_ref, svd)
     eye = np.eye(n)
     G = np.concatenate((eye, -eye, -R))
     h = np.concatenate((hi, -lo, -r))
@@ -314,3 +335,11 @@ def bounded_damped_rates_rows(
     target = Li_T.T.dot(A.T.dot(x_w) + (mu * mu) * y_ref)  # L^-1 q
     u = active_set(G.dot(Li_T), h, Lc.T.dot(y0), target=target)
     return np.minimum(np.maximum(Li_T.dot(u), lo), hi)
+
+
+def rest_rates(plan: BoundPlan, q: np.ndarray, qd_prev: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The rates (n,) nearest rest within the tick's bounds, and their `active_bits` (n,) (the tick's
+    answer when a huge finite request overflowed)."""
+    bounds = rate_bounds(plan, q, qd_prev)
+    qd = np.minimum(np.maximum(0.0, bounds.lo), bounds.hi)
+    return qd, active_bits(bounds, qd)

@@ -6,7 +6,8 @@ Jacobian. For a 6 x 7 matrix the public `numpy.linalg.svd` spends about a third 
 Python-level argument handling and error-state setup; `svd_full` calls the same LAPACK-backed
 generalised ufunc directly (numpy's `numpy.linalg._umath_linalg.svd_f`, present in numpy 1.x and
 2.x) and falls back to `numpy.linalg.svd` if that private entry point is missing or reports a
-failure.
+failure. The same route serves two smaller kernels of the saturated tick: the eigenvalues of a small
+symmetric matrix (`symmetric_eigenvalues`) and a small regular solve (`solve_small`).
 """
 
 from __future__ import annotations
@@ -18,8 +19,10 @@ try:  # the gufunc behind numpy.linalg.svd(full_matrices=True); private, hence t
 
     _svd_gufunc = _gufuncs.svd_f
     _values_gufunc = _gufuncs.svd
+    _eigvalsh_gufunc = _gufuncs.eigvalsh_lo
+    _solve1_gufunc = _gufuncs.solve1
 except (ImportError, AttributeError):  # pragma: no cover - depends on the numpy build
-    _svd_gufunc = _values_gufunc = None
+    _svd_gufunc = _values_gufunc = _eigvalsh_gufunc = _solve1_gufunc = None
 
 #: Relative rank tolerance: singular values <= RANK_RTOL * s_max are treated as zero (the
 #: direction is numerically singular). Used for the pseudo-inverse of policy "none", the
@@ -76,3 +79,27 @@ def numerical_rank(s: np.ndarray, tol: float) -> int:
     if s.size == 0 or s[-1] > tol:
         return int(s.size)
     return int(np.count_nonzero(s > tol))
+
+
+def symmetric_eigenvalues(G: np.ndarray) -> np.ndarray:
+    """(p,) eigenvalues, ascending, of a finite symmetric (p, p) matrix (its lower triangle is read).
+
+    The LAPACK-backed gufunc behind `numpy.linalg.eigvalsh`, called directly (as `svd_full`); falls
+    back to the public function. Zeros if LAPACK does not converge (not observed for small matrices).
+    """
+    if _eigvalsh_gufunc is not None:
+        w = _eigvalsh_gufunc(G, signature="d->d")
+        if w[0] == w[0]:  # not NaN: converged
+            return w
+    try:
+        return np.linalg.eigvalsh(G)
+    except np.linalg.LinAlgError:
+        return np.zeros(G.shape[0])
+
+
+def solve_small(M: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """M^-1 b (p,) for a small regular (p, p) matrix M (the callers' are positive definite by
+    construction), through the gufunc behind `numpy.linalg.solve` when present."""
+    if _solve1_gufunc is not None:
+        return _solve1_gufunc(M, b, signature="dd->d")
+    return np.linalg.solve(M, b)  # pragma: no cover - depends on the numpy build

@@ -14,6 +14,7 @@ import dataclasses
 import importlib.util
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -51,6 +52,10 @@ def test_bench_solver_smoke_run_writes_every_figure(tmp_path: Path, capsys) -> N
         assert figures["limits"]["ticks"] == 100
     for load in (report["machine"]["load_average"], report["load_average_end"]):
         assert len(load) == 3 and all(v >= 0.0 for v in load)
+    # the free 7-joint tick's target against the compiled library's tick is 1.3x (issue 12)
+    assert report["targets_7_joint"]["ratio_to_compiled"] == 1.3
+    if HAS_PINOCCHIO:
+        assert re.search(r"ratio_to_compiled \d+\.\d+ <= 1\.3: (met|MISSED)", text), text
 
 
 def test_bench_solver_rejects_too_few_ticks(capsys) -> None:

@@ -113,3 +113,18 @@ def test_cholesky_solve_matches_numpy() -> None:
         b = rng.normal(size=m)
         np.testing.assert_allclose(bounded._chol_solve(M.tolist(), b.tolist()), np.linalg.solve(M, b),
                                    rtol=1e-10, atol=1e-12)
+
+
+def test_objective_rates_by_their_null_space_coordinates_match_bvls() -> None:
+    # The tick's call: the SVD of A passed in and the objective rates given as null-space coordinates
+    # z (y_ref = Vh[r:]^T z); checked against bvls on y_ref formed explicitly.
+    rng = np.random.default_rng(45)
+    for _ in range(300):
+        A, x, lo, hi, mu, _ = _problem(rng)
+        U, s, Vh = np.linalg.svd(A)  # full matrices: Vh (n, n)
+        r = int(np.count_nonzero(s > 1e-10 * s[0]))
+        z = rng.normal(scale=0.3, size=A.shape[1] - r)
+        y = bounded_damped_rates(A, x, lo, hi, mu, None, (U, s, Vh), z)
+        ref = _reference(A, x, lo, hi, mu, Vh[r:].T @ z)
+        assert np.all(y >= lo) and np.all(y <= hi)
+        np.testing.assert_allclose(y, ref, atol=1e-8 * (1.0 + np.abs(ref).max()))

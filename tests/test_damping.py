@@ -6,9 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from twistrate.solver.damping import damping_factor, task_rates
+from twistrate.solver.damping import damping_factor, resting_joint_damping, task_rates
 from twistrate.solver.options import SolverOptions
-from twistrate.solver.svd import numerical_rank, rank_tolerance, svd_full
+from twistrate.solver.svd import RANK_RTOL, numerical_rank, rank_tolerance, svd_full
 
 
 def _rates(A: np.ndarray, x: np.ndarray, options: SolverOptions) -> tuple[np.ndarray, float]:
@@ -164,3 +164,57 @@ def test_exactly_singular_matrix_gives_finite_bounded_rates(rng: np.random.Gener
     _, s, Vh = np.linalg.svd(A)
     assert s[-1] < 1e-12
     assert abs(Vh[5] @ y) < 1e-9 * (1 + np.linalg.norm(y))
+
+
+def _resting_reference(A, x, lam, keep, options):
+    """The resting joints' damping by its definition: the policy on numpy's SVD of A[:, keep] and the
+    damped least-squares rates of those columns (Wampler 1986), resting columns 0."""
+    U, s, Vh = np.linalg.svd(A[:, keep])
+    lam_e = damping_factor(s, options)
+    if lam_e <= lam:
+        return None, lam
+    k = s.size
+    out = np.zeros(A.shape[1])
+    out[keep] = Vh[:k].T @ (s / (s * s + lam_e * lam_e) * (U[:, :k].T @ x))
+    return out, lam_e
+
+
+@pytest.mark.parametrize("policy", ["singular_value", "manipulability"])
+@pytest.mark.parametrize("n", [7, 6, 4])
+def test_resting_joint_damping_matches_the_svd_of_the_free_columns(rng: np.random.Generator, policy: str,
+                                                                     n: int) -> None:
+    # The Gram-matrix route of resting_joint_damping against numpy's SVD of the free columns, on
+    # matrices whose free columns are near singular, exactly singular or well conditioned.
+    options = SolverOptions(damping=policy, damping_max=0.04, singular_value_threshold=0.05,
+                            manipulability_threshold=1e-3)
+    AT = np.full(n, 0.01)
+    damped = 0
+    for case in range(200):
+        m = 6
+        A = rng.normal(size=(m, n)) * rng.uniform(0.05, 1.0, n)
+        rest = rng.random(n) < 0.3
+        if not rest.any() or rest.all():
+            rest[:] = False
+            rest[int(rng.integers(n))] = True
+        keep = np.flatnonzero(~rest)
+        if case % 3 == 0:  # free columns near (or exactly) rank deficient
+            A[:, keep[0]] = A[:, keep[1:]] @ rng.normal(size=keep.size - 1) + rng.choice([0.0, 1e-9, 1e-3])
+        a = rng.normal(size=n)
+        speed = np.full(2 * n, 1.0)  # the resting joints' side within one tick of braking (<= A T)
+        speed[np.flatnonzero(rest & (a < 0))] = 0.005
+        speed[n + np.flatnonzero(rest & (a > 0))] = 0.005
+        x = rng.normal(size=m) * 0.2
+        lam = float(rng.choice([0.0, 0.01]))
+        out, lam_out = resting_joint_damping(A, a, x, lam, speed, AT, options)
+        ref, lam_ref = _resting_reference(A, x, lam, keep, options)
+        assert lam_out == pytest.approx(lam_ref, rel=1e-9, abs=1e-12)
+        if ref is None:
+            assert out is a
+        else:
+            damped += 1
+            # the solver leaves out directions with s_i <= RANK_RTOL s_max (svd.py), the definition
+            # keeps them: they differ by at most RANK_RTOL s_max |x| / lam_e^2 (module docstring)
+            s_max = float(np.linalg.svd(A[:, keep], compute_uv=False)[0])
+            band = RANK_RTOL * s_max * float(np.linalg.norm(x)) / lam_ref**2
+            np.testing.assert_allclose(out, ref, rtol=1e-8, atol=1e-10 * (1.0 + np.abs(ref).max()) + band)
+    assert damped > 20

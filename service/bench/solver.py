@@ -67,8 +67,9 @@ REPLAY_BLOCK = 40
 WARMUP_REPLAY = 3
 #: Most states of the limits-active trajectory.
 LIMITS_TICKS = 4000
-#: Targets for the 7-joint arm with no limit active (stated by the project).
-TARGETS = {"median_us": 50.0, "p99_us": 150.0, "speedup_vs_straightforward": 4.0, "ratio_to_compiled": 2.0}
+#: Targets for the 7-joint arm with no limit active (stated by the project; ratio_to_compiled: the free
+#: tick at most 1.3x the one built on the compiled library's FK + J in the same run).
+TARGETS = {"median_us": 50.0, "p99_us": 150.0, "speedup_vs_straightforward": 4.0, "ratio_to_compiled": 1.3}
 #: Every feature on.
 BENCH_OPTIONS = SolverOptions(
     damping="singular_value", characteristic_length=0.3, limit_gain=2.0, manipulability_gain=20.0,

@@ -140,7 +140,6 @@ class Pipeline:
         self._pending: deque[tuple[Callable[[int], Any], concurrent.futures.Future]] = deque()
         #: the state message of the last health tick, published on the next tick so that the two reports'
         #: work is not one tick's (0.4-0.7 ms together at 1 kHz on this machine): publish_state's arguments
-        self._state_due: tuple[Any, ...] | None = None
         self.shutdown_why: str | None = None
         self.poll: Poll = lambda: None
         self.publish: Publish = lambda topic, data: None
@@ -281,18 +280,7 @@ class Pipeline:
             if type(result) is dict and "mode" in result:
                 result["mode"] = mode
             fut.set_result(result)
-        due, self._state_due = self._state_due, None
-        if due is not None:  # the state message of the last health tick (docs/protocol.md 7.6)
-            self.reports.publish_state(*due)
-        if self.tick % self.health_every == 0 and q is not None:
-            self.reports.publish_health(wall, q)
-            # its state message: this tick's pose and kinematics (at hand now), published on the next tick
-            # (at once when health goes out every tick)
-            state = (wall, q, qd, self.tick, *self.kinematics(q))
-            if self.health_every == 1:
-                self.reports.publish_state(*state)
-            else:
-                self._state_due = state
+        self.reports.publish_due(wall, q, qd)  # health, and its state message a tick later (7.6)
         rec = self.recorder
         if rec is not None and rec.notice is not None:  # the writer stopped (full disk, size cap)
             self.emit_event("recording_stopped", rec.take_notice())

@@ -40,6 +40,8 @@ class HealthReporter:
         #: the (6, n) task and joint weighting of the foresight, for the options it was made for
         self._weight: np.ndarray | None = None
         self._weight_for: Any = None
+        #: publish_state's arguments for the last health tick, sent on the next tick (docs/protocol.md 7.6)
+        self._state_due: tuple[Any, ...] | None = None
 
     def measure(self, q: np.ndarray) -> dict[str, Any]:
         """Health measures at q as encode_health's keyword arguments: from this tick's resolution when
@@ -102,6 +104,23 @@ class HealthReporter:
         p.publish(topic, data)
         tel.out_seq[kind] += 1
         tel.counts[f"{kind}_messages"] += 1
+
+    def publish_due(self, wall: int, q: np.ndarray | None, qd: np.ndarray) -> None:
+        """After each tick (wall: its stamp, ns; q (n,) its joint state or None; qd (n,) its rates): the
+        state message held from the last health tick, then on a health tick its health message; that
+        tick's state (pose and kinematics, at hand now) goes out on the next tick, so the two reports'
+        work never falls in one tick (at once when health goes out every tick)."""
+        p = self.p
+        due, self._state_due = self._state_due, None
+        if due is not None:
+            self.publish_state(*due)
+        if p.tick % p.health_every == 0 and q is not None:
+            self.publish_health(wall, q)
+            state = (wall, q, qd, p.tick, *p.kinematics(q))
+            if p.health_every == 1:
+                self.publish_state(*state)
+            else:
+                self._state_due = state
 
     def publish_health(self, wall: int, q: np.ndarray) -> None:
         p = self.p

@@ -51,7 +51,7 @@ import numpy as np
 from twistrate.solver.arm import Arm
 from twistrate.solver.damper import ROW_ACTIVE_TOL, Contacts
 from twistrate.solver.damping import resting_joint_damping, task_coefficients
-from twistrate.solver.errors import InputError, field_error
+from twistrate.solver.finite import HUGE_SQ, SQUARE_SAFE, check_states, raise_non_finite
 from twistrate.solver.jacobians import manipulability_gradient_geometric
 from twistrate.solver.keepout import KeepOut
 from twistrate.solver.kinematics import Frames, forward, geometric_jacobian
@@ -196,21 +196,6 @@ class Resolution:
 
 
 
-#: Factor applied before the sums of squares of the finiteness tests: (1.8e308 * 2^-540)^2 * 9 stays
-#: finite, so a huge finite input never overflows them (no warning); nan and inf still propagate.
-_SQUARE_SAFE = 2.0 ** -540
-
-def _raise_non_finite(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
-    """Raise InputError naming the first non-finite (or overflowing) input field."""
-    for name, value in (("q", q), ("qd_prev", qd_prev), ("twist.linear", twist.linear),
-                        ("twist.angular", twist.angular), ("twist.point", twist.point)):
-        if not np.all(np.isfinite(value)):
-            raise field_error(InputError, name, np.asarray(value).tolist(), "finite numbers only")
-    raise field_error(InputError, "twist", (np.asarray(twist.linear).tolist(),
-                                            np.asarray(twist.angular).tolist()),
-                      "magnitudes whose base-frame conversion stays finite")
-
-
 def resolve(
     arm: Arm,
     q: np.ndarray,
@@ -246,7 +231,7 @@ def resolve_counted(
     Each saturation pass costs one SVD of a reduced Jacobian (see `twistrate.solver.limits`).
     """
     plan = plan_of(arm, options, period)
-    _check_states(q, qd_prev, twist)
+    check_states(q, qd_prev, twist)
     frames = forward(arm, q)
     return _rates(plan, q, qd_prev, twist, options, frames, geometric_jacobian(arm, frames), keepout)
 
@@ -269,18 +254,8 @@ def resolve_from_kinematics(
         rows (v, w). Used by `twistrate bench solver` to time the same tick on compiled kinematics.
     """
     plan = plan_of(arm, options, period)
-    _check_states(q, qd_prev, twist)
+    check_states(q, qd_prev, twist)
     return _rates(plan, q, qd_prev, twist, options, frames, J, keepout)
-
-
-def _check_states(q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist) -> None:
-    # Fast test: nan and inf propagate into the sums of squares. Huge finite values can overflow
-    # them to inf too; only then the exact element test runs (and passes).
-    qs = q * _SQUARE_SAFE
-    ps = qd_prev * _SQUARE_SAFE
-    if not math.isfinite(qs.dot(qs) + ps.dot(ps)) and not (
-            np.isfinite(q).all() and np.isfinite(qd_prev).all()):
-        _raise_non_finite(q, qd_prev, twist)
 
 
 def _rates(
@@ -295,10 +270,19 @@ def _rates(
 ) -> tuple[Resolution, int]:
     """Steps 2-6 of the module docstring, from forward kinematics and J at q (and the keep-out rows)."""
     x = twist_base(twist, frames.T_base_tool)
-    xs = x * _SQUARE_SAFE
-    if not math.isfinite(xs.dot(xs)) and not np.isfinite(x).all():  # as in _check_states
-        _raise_non_finite(q, qd_prev, twist)
+    xs = x * SQUARE_SAFE
+    if not math.isfinite(xsq := xs.dot(xs)) and not np.isfinite(x).all():  # as in check_states
+        raise_non_finite(q, qd_prev, twist)
+    if xsq > HUGE_SQ:  # |x| > 1e150: products may overflow, to the rest fallback below, silently
+        with np.errstate(over="ignore", invalid="ignore"):
+            return _solve(plan, q, qd_prev, twist, x, options, frames, J, keepout)
+    return _solve(plan, q, qd_prev, twist, x, options, frames, J, keepout)
 
+
+def _solve(plan: Plan, q: np.ndarray, qd_prev: np.ndarray, twist: DesiredTwist, x: np.ndarray,
+           options: SolverOptions, frames: Frames, J: np.ndarray,
+           keepout: KeepOut | None) -> tuple[Resolution, int]:
+    """`_rates` past its input test; x (6,): the twist in the base frame at the tool point, (v, w)."""
     A = J * plan.weight
     U, s, Vh = svd_full(A)
     n = q.shape[0]

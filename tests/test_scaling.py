@@ -11,6 +11,7 @@ least squares.
 from __future__ import annotations
 
 import dataclasses
+import math
 import warnings
 
 import numpy as np
@@ -244,19 +245,23 @@ def test_no_scale_gives_the_bounded_least_squares_rates() -> None:
 @pytest.mark.parametrize("name", ["reach7", "bench6", "planar3", "rail4"])
 def test_huge_twists_raise_no_numpy_warning(name: str) -> None:
     # Nothing on the tick path may warn (project rule); magnitudes up to the largest double.
+    # Up to 1.7e308 (each component |c| <= mag / 3, so the base-frame conversion stays finite), at home
+    # and at the all-zero posture (singular on these arms: tiny singular values divide the huge twist).
     arm = load_arm(name)
     rng = np.random.default_rng(3)
-    q = np.array(arm.q_home, dtype=float)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        for mag in (1e100, 1e154, 1e155, 1e200, 1e300):
-            for policy in DAMPING_POLICIES:
-                for limits in (True, False):
-                    options = SolverOptions(damping=policy, enforce_limits=limits, manipulability_gain=1.0,
-                                            posture_gain=0.5)
-                    tw = DesiredTwist(rng.normal(size=3) * mag, rng.normal(size=3) * mag)
-                    r = resolve(arm, q, rng.normal(size=arm.n) * 0.1, tw, T, options)
-                    assert np.all(np.isfinite(r.qd)) and 0.0 <= r.scale <= 1.0
+        for q in (np.array(arm.q_home, dtype=float), np.zeros(arm.n)):
+            for mag in (1e100, 1e154, 1e155, 1e200, 1e300, 1e307, 1.7e308):
+                for policy in DAMPING_POLICIES:
+                    for limits in (True, False):
+                        options = SolverOptions(damping=policy, enforce_limits=limits,
+                                                manipulability_gain=1.0,
+                                                posture_gain=0.5)
+                        lin, ang = (np.clip(rng.normal(size=3), -1.0, 1.0) * (mag / 3) for _ in range(2))
+                        r = resolve(arm, q, rng.normal(size=arm.n) * 0.1, DesiredTwist(lin, ang), T, options)
+                        assert np.all(np.isfinite(r.qd)) and 0.0 <= r.scale <= 1.0
+                        assert np.all(np.isfinite(r.twist_achieved)) and math.isfinite(r.damping)
 
 
 def test_values_only_svd_matches_numpy() -> None:

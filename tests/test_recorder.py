@@ -116,3 +116,40 @@ def test_svg_is_well_formed(tmp_path, arm):
     assert root.tag == "{http://www.w3.org/2000/svg}svg"
     assert len(root.findall("{http://www.w3.org/2000/svg}polyline")) >= 5
     assert not math.isnan(float(root.get("height")))
+
+
+def test_the_demo_reports_saturation_figures_counted_by_hand(tmp_path, arm):
+    # The demo report's scale-0 share, peak acceleration and sign changes, read from a recording whose
+    # values are set here so each figure can be counted by hand (definitions: docs/saturation.md).
+    from twistrate.service.bench.saturation import recording_figures
+
+    path = tmp_path / "r.trec"
+    rec = R.Recorder(path, arm, 500.0)
+    T = 1.0 / 500.0
+    q = np.asarray(arm.q_home, dtype=float)
+    lim = np.zeros(arm.n, dtype=np.uint8)
+    tw = np.array([0.1, 0.0, 0.0, 0.0, 0.0, 0.0])
+    rate0 = np.array([0.5, -0.5, 0.3, 0.0, 0.0, 0.0, 0.0]) * arm.v_max  # joint 0 +, 1 -, 2 +
+    ticks = [*range(10), 12, 13]  # ticks 10 and 11 missing from the file
+    for k in ticks:
+        qd = rate0 * (0.5 if k < 5 else -0.5)  # a sign change on joints 0 to 2 at tick 5 (a step of rate0)
+        if k == 12:
+            qd = rate0 * 1.0  # across the gap: a second sign change; its step of 1.5 rate0 is not one tick's
+        if k == 13:
+            qd = rate0 * 0.0  # a step of rate0 to rest (the dead band, 1e-3 v_max: no sign change)
+        mode = "running" if k < 8 else "stopping"
+        scale = 0.0 if k in (2, 3) else (0.4 if k == 4 else 1.0)
+        rec.push(2_000_000 * k, 1_700_000_000_000_000_000, k, mode, "clear", lim, q, qd,
+                 tw if k != 7 else tw * 0.0, tw, scale, 1.0, 0.0, 0.1, 1e-3)
+    rec.close()
+    header, data = R.read_recording(path)
+    m = recording_figures(arm, header, data, 0.3)
+    # running: mode running (ticks 0-7) with a non-zero desired twist (not tick 7) -> 7 ticks
+    assert m["running_ticks"] == 7
+    assert m["scale_zero_fraction"] == pytest.approx(2 / 7)
+    assert m["below_half_fraction"] == pytest.approx(3 / 7)
+    # the largest change between consecutive ticks is rate0 (the flip at 5, the stop at 13); the larger
+    # step from tick 9 to tick 12 spans three periods and is left out
+    expected = float(np.max(np.abs(rate0) / (arm.a_max * T)))
+    assert m["peak_acceleration_ratio"] == pytest.approx(expected)
+    assert m["sign_changes"] == [2, 2, 2, 0, 0, 0, 0]

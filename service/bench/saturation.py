@@ -209,6 +209,32 @@ def motion_figures(arm: Arm, run: dict[str, np.ndarray], characteristic_length: 
     }
 
 
+def recording_figures(arm: Arm, header: dict[str, Any], rec: np.ndarray,
+                      characteristic_length: float) -> dict[str, Any]:
+    """The saturation figures of a service recording (`twistrate.service.recorder`: header and records),
+    as the demo's report prints them: of the running ticks (mode running, a non-zero desired twist),
+    the shares at scale 0 (a keep-out hold included: the recording does not tell it apart) and below
+    half; the peak joint acceleration over its limit (|qd_k - qd_k-1| / (a_max T), consecutive ticks
+    only); sign changes per joint (dead band SIGN_DEADBAND of v_max) and turns of the desired twist."""
+    L = characteristic_length
+    weight = np.array([1.0, 1.0, 1.0, L, L, L])
+    period = 1.0 / float(header["tick_hz"])
+    asked = np.nan_to_num(rec["twist_desired"].astype(float), nan=0.0, posinf=0.0, neginf=0.0)
+    qd, scale = rec["qd"].astype(float), rec["scale"].astype(float)
+    running = (rec["mode"] == header["modes"].index("running")) & (np.abs(asked).max(axis=1) > 0.0)
+    count = max(1, int(running.sum()))
+    step = np.diff(rec["tick"].astype(np.int64)) == 1  # pairs of consecutive ticks
+    acc = np.abs(np.diff(qd, axis=0))[step] / (arm.a_max * period)
+    return {
+        "running_ticks": int(running.sum()),
+        "scale_zero_fraction": float((running & (scale == 0.0)).sum()) / count,
+        "below_half_fraction": float((running & (scale < 0.5)).sum()) / count,
+        "peak_acceleration_ratio": float(acc.max()) if acc.size else 0.0,
+        "sign_changes": [_sign_changes(qd[:, j], SIGN_DEADBAND * float(arm.v_max[j])) for j in range(arm.n)],
+        "asked_direction_changes": _direction_changes(asked[running], weight),
+    }
+
+
 def chatter(sign_changes: list[int], free_sign_changes: list[int]) -> dict[str, Any]:
     """The chatter criterion of one run (module docstring): per joint, the sign changes beyond those of
     the same run without hard limits. Returns {"extra": (n,) max(0, with - without) per joint,

@@ -31,6 +31,7 @@ import zmq
 
 from twistrate.clients.link import Endpoints, Link
 from twistrate.service import wire
+from twistrate.service.bench.saturation import recording_figures
 from twistrate.service.commands.demo_panel import PANEL_COLUMNS as PANEL_COLUMNS
 from twistrate.service.commands.demo_panel import Display, fit
 from twistrate.service.commands.help_text import first_paragraph
@@ -332,6 +333,12 @@ def report(service: Service, source: ScriptedSource, recording: Path | None,
         lines.append(f"  min manipulability {num(s.get('manipulability_min'))}, min sigma_min "
                      f"{num(s.get('sigma_min_min'))} m, min scale {num(s.get('scale_min'))}")
         lines.append(f"  max damping {num(s.get('damping_max'))} m (lambda)")
+        m = recording_figures(service.pipeline.arm, header, rec,  # the bench solver's own counts
+                              service.pipeline.options.characteristic_length)
+        lines.append(f"  running ticks at scale 0 {100 * m['scale_zero_fraction']:.2f} % (a keep-out hold "
+                     f"included), below half {100 * m['below_half_fraction']:.2f} %; peak joint acceleration "
+                     f"/ limit {m['peak_acceleration_ratio']:.3f}; rate sign changes per joint "
+                     f"{m['sign_changes']} (twistrate bench solver compares them with a pass without limits)")
         lines.append("  time in health states: " + ", ".join(f"{k} {v:.2f} s"
                                                         for k, v in s.get("time_in_health_s", {}).items()))
         lines.append(f"  recording: {recording}  (summary: twistrate record --summary {recording})")

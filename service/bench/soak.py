@@ -104,6 +104,9 @@ def _driver_main(config_path: str, ep_file: str) -> int:
     try:
         driver.run()
     finally:
+        # deliver what is still queued (counted as sent): with linger 0 a loaded machine's last states
+        # were dropped at exit, 41 of 3.4 million in a 60-minute soak, and the intake identity failed
+        pub.close(linger=2000)
         print(json.dumps({"joints_sent": driver.seq, "commands_received": driver.received}), flush=True)
         driver.close()
     return 0

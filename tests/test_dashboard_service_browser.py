@@ -44,6 +44,21 @@ def _attr_is(page, attr: str, value: str) -> None:
     )
 
 
+def _watching_page(stack, tmp_path, fleet, run, problems: list[str], **feed_options):
+    """The dashboard on `run`'s service (arm "cell-a") opened in the browser, its console errors and
+    warnings and page errors appended to `problems`: (page, the fleet's view of the arm)."""
+    feed = WireFeed("cell-a", run.endpoints, **feed_options)
+    _, url = stack.enter_context(served(Dashboard(fleet, [feed])))
+    page = stack.enter_context(browser_page(str(tmp_path / "profile")))
+    page.on(
+        "console",
+        lambda m: problems.append(f"{m.type}: {m.text}") if m.type in ("error", "warning") else None,
+    )
+    page.on("pageerror", lambda e: problems.append(f"pageerror: {e}"))
+    page.goto(url + "/")
+    return page, fleet.arm("cell-a")
+
+
 def test_dashboard_against_a_running_service(tmp_path):
     fleet = Fleet(gone_after_s=1.0)
     shots = tmp_path / "screens"
@@ -53,16 +68,7 @@ def test_dashboard_against_a_running_service(tmp_path):
         service = contextlib.ExitStack()  # closed by hand below: the service stops while the page watches
         stack.callback(service.close)
         run = service.enter_context(running_service(make_config()))
-        feed = WireFeed("cell-a", run.endpoints, thresholds=(0.06, 0.015))
-        _, url = stack.enter_context(served(Dashboard(fleet, [feed])))
-        page = stack.enter_context(browser_page(str(tmp_path / "profile")))
-        page.on(
-            "console",
-            lambda m: problems.append(f"{m.type}: {m.text}") if m.type in ("error", "warning") else None,
-        )
-        page.on("pageerror", lambda e: problems.append(f"pageerror: {e}"))
-        view = fleet.arm("cell-a")
-        page.goto(url + "/")
+        page, view = _watching_page(stack, tmp_path, fleet, run, problems, thresholds=(0.06, 0.015))
         _attr_is(page, "mode", "disabled")
         _attr_is(page, "health", "clear")
         page.wait_for_function(
@@ -205,16 +211,7 @@ def test_dashboard_shows_the_nearest_keepout_pair_and_the_damper_holding_the_sca
     d_i, d_s = KEEPOUT["influence_m"], KEEPOUT["security_m"]
     with contextlib.ExitStack() as stack:
         run = stack.enter_context(running_service(make_config(simulation={"lag_s": 0.0}, keepout=KEEPOUT)))
-        feed = WireFeed("cell-a", run.endpoints, thresholds=(0.06, 0.015))
-        _, url = stack.enter_context(served(Dashboard(fleet, [feed])))
-        page = stack.enter_context(browser_page(str(tmp_path / "profile")))
-        page.on(
-            "console",
-            lambda m: problems.append(f"{m.type}: {m.text}") if m.type in ("error", "warning") else None,
-        )
-        page.on("pageerror", lambda e: problems.append(f"pageerror: {e}"))
-        view = fleet.arm("cell-a")
-        page.goto(url + "/")
+        page, view = _watching_page(stack, tmp_path, fleet, run, problems, thresholds=(0.06, 0.015))
         _attr_is(page, "mode", "disabled")
         _box_is(page, "ko", "clear")
         page.wait_for_function(  # the arm op's joint names have come: the link is drawn in the 3-D view
@@ -308,13 +305,11 @@ def test_dashboard_shows_a_self_collision_pair_and_marks_both_links(tmp_path):
     fleet = Fleet(gone_after_s=1.0)
     shots = tmp_path / "screens"
     shots.mkdir()
+    problems: list[str] = []
     with contextlib.ExitStack() as stack:
         cfg = make_config(simulation={"lag_s": 0.0}, keepout=SELF_KEEPOUT)
         run = stack.enter_context(running_service(cfg))
-        _, url = stack.enter_context(served(Dashboard(fleet, [WireFeed("cell-a", run.endpoints)])))
-        page = stack.enter_context(browser_page(str(tmp_path / "profile")))
-        view = fleet.arm("cell-a")
-        page.goto(url + "/")
+        page, view = _watching_page(stack, tmp_path, fleet, run, problems)
         _attr_is(page, "mode", "disabled")
         _box_is(page, "ko", "clear")
         link = run.link()
@@ -345,3 +340,4 @@ def test_dashboard_shows_a_self_collision_pair_and_marks_both_links(tmp_path):
     assert marked == f"{segment[m.group(1)]},{segment[m.group(2)]}", (marked, box)
     assert box["limiting"].startswith("keep-out damper, "), box
     assert (shots / "self-held.png").stat().st_size > 10_000
+    assert problems == [], problems

@@ -111,31 +111,41 @@ def test_status_line_shows_error_twist_and_service() -> None:
         assert part in line, part
 
 
+class _QuietLink:
+    """A stand-in for the runner's Link (the calls it makes): no service, nothing ever received; each
+    twist calls `on_twist()`, whose result is the twist's seq."""
+
+    def __init__(self, on_twist) -> None:
+        self.on_twist = on_twist
+
+    def wait_ready(self, timeout_s: float) -> None: ...
+    def claim(self, client: str, lease_ms: int) -> str: return "token"
+    def enable(self) -> str: return "running"
+    def disable(self) -> str: return "idle"
+    def release(self) -> None: ...
+
+    def receive(self, timeout_s: float) -> None:
+        from twistrate.clients.link import LinkTimeoutError
+
+        raise LinkTimeoutError("none")
+
+    def send_twist(self, linear, angular, frame="base", point=None) -> int:
+        return self.on_twist()
+
+
 def test_the_loop_collects_garbage_only_after_a_twist_and_restores_the_collector() -> None:
     # The runner turns automatic collection off for its loop and collects right after a twist went out
     # (runner.GC_YOUNG_EVERY); the process's collector is as it was once the run ends (common practice
     # for a latency-bound Python loop, as the service's tick does).
     import gc
 
-    from twistrate.clients.link import LinkTimeoutError
     from twistrate.clients.vservo.runner import GC_YOUNG_EVERY, Runner
 
-    class Link:
-        def __init__(self) -> None:
-            self.automatic: list[bool] = []
+    automatic: list[bool] = []  # the collector's state at each twist
 
-        def wait_ready(self, timeout_s: float) -> None: ...
-        def claim(self, client: str, lease_ms: int) -> str: return "token"
-        def enable(self) -> str: return "running"
-        def disable(self) -> str: return "idle"
-        def release(self) -> None: ...
-
-        def receive(self, timeout_s: float) -> None:
-            raise LinkTimeoutError("none")
-
-        def send_twist(self, linear, angular, frame="base", point=None) -> int:
-            self.automatic.append(gc.isenabled())
-            return len(self.automatic)
+    def on_twist() -> int:
+        automatic.append(gc.isenabled())
+        return len(automatic)
 
     class Feed:
         received, refused = 0, {}
@@ -145,12 +155,12 @@ def test_the_loop_collects_garbage_only_after_a_twist_and_restores_the_collector
 
     doc = _doc()
     doc["run"]["rate_hz"] = 1000.0
-    link = Link()
+    link = _QuietLink(on_twist)
     collections = sum(g["collections"] for g in gc.get_stats())  # explicit collections count too
     assert gc.isenabled()
     outcome = Runner(vc.config_from_dict(doc), link, Feed(), out=None).run(0.2)  # type: ignore[arg-type]
     assert outcome.reason == "time" and outcome.twists > 2 * GC_YOUNG_EVERY
-    assert not any(link.automatic[:outcome.twists])  # automatic collection off in the loop
+    assert not any(automatic[:outcome.twists])  # automatic collection off in the loop
     assert sum(g["collections"] for g in gc.get_stats()) >= collections + outcome.twists // GC_YOUNG_EVERY
     assert gc.isenabled() and gc.get_freeze_count() == 0
 
@@ -232,27 +242,16 @@ def test_the_runner_reports_each_answered_frame_after_its_twist() -> None:
     # answers a new frame (wall clock: taken <= sent); the keep-alive twists are not reported.
     import time
 
-    from twistrate.clients.link import LinkTimeoutError
     from twistrate.clients.vservo.feed import PointsMessage
     from twistrate.clients.vservo.runner import Runner
 
     sent: list[int] = []
     events: list[str] = []
 
-    class Link:
-        def wait_ready(self, timeout_s: float) -> None: ...
-        def claim(self, client: str, lease_ms: int) -> str: return "token"
-        def enable(self) -> str: return "running"
-        def disable(self) -> str: return "idle"
-        def release(self) -> None: ...
-
-        def receive(self, timeout_s: float) -> None:
-            raise LinkTimeoutError("none")
-
-        def send_twist(self, linear, angular, frame="base", point=None) -> int:
-            sent.append(len(sent) + 1)
-            events.append("twist")
-            return sent[-1]
+    def on_twist() -> int:
+        sent.append(len(sent) + 1)
+        events.append("twist")
+        return sent[-1]
 
     class Feed:
         received, refused, arrived_ns, calls = 0, {}, 0, 0
@@ -271,7 +270,7 @@ def test_the_runner_reports_each_answered_frame_after_its_twist() -> None:
     reports: list[tuple[int, int, int, int]] = []
     doc = _doc()
     doc["run"]["rate_hz"] = 200.0
-    runner = Runner(vc.config_from_dict(doc), Link(), Feed(), out=None, track=True,  # type: ignore[arg-type]
+    runner = Runner(vc.config_from_dict(doc), _QuietLink(on_twist), Feed(), out=None, track=True,  # type: ignore[arg-type]
                     on_sent=lambda *r: (reports.append(r), events.append("report")),
                     on_wait=lambda: events.append("wait"))
     outcome = runner.run(0.2)

@@ -24,6 +24,7 @@ from typing import TextIO
 import numpy as np
 
 from twistrate.clients.link import Link, LinkTimeoutError
+from twistrate.clients.threads import thread_ids
 from twistrate.clients.vservo import config as vc
 from twistrate.clients.vservo.errorlog import ErrorLog
 from twistrate.clients.vservo.features import ServoState
@@ -92,7 +93,7 @@ class Timings:
     def _open(self) -> None:
         try:
             self._own = os.open(f"{self.proc}/thread-self/schedstat", os.O_RDONLY)
-            for tid in os.listdir(f"{self.proc}/self/task"):
+            for tid in thread_ids(proc=self.proc) or ():
                 self._all.append(os.open(f"{self.proc}/self/task/{tid}/schedstat", os.O_RDONLY))
         except OSError:
             self._own = -1

@@ -18,6 +18,8 @@ import contextlib
 import os
 from dataclasses import dataclass, field
 
+from twistrate.clients.threads import thread_ids
+
 #: Prefix of the names libzmq gives its I/O threads.
 ZMQ_IO_PREFIX = "ZMQbg/IO"
 
@@ -40,19 +42,7 @@ class Realtime:
 
 
 def _zmq_io_threads(proc: str = "/proc") -> list[int]:
-    out = []
-    try:
-        tids = os.listdir(f"{proc}/self/task")
-    except OSError:
-        return out
-    for tid in tids:
-        try:
-            with open(f"{proc}/self/task/{tid}/comm") as f:
-                if f.read().startswith(ZMQ_IO_PREFIX):
-                    out.append(int(tid))
-        except (OSError, ValueError):
-            continue
-    return out
+    return thread_ids(ZMQ_IO_PREFIX, proc) or []
 
 
 def realtime(priority: int) -> Realtime:

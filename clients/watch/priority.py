@@ -10,6 +10,8 @@ import argparse
 import contextlib
 import os
 
+from twistrate.clients.threads import thread_ids
+
 #: niceness the dashboard adds to its own at start (os.nice): on a machine it shares with a service,
 #: the scheduler then favours the service's normally scheduled threads (its control plane, ZeroMQ's
 #: I/O) and its tick thread's wake-ups over the dashboard's (docs/dashboard.md, "Its cost")
@@ -28,10 +30,7 @@ def lower_priority(increment: int) -> int:
     if increment <= 0:
         return os.getpriority(os.PRIO_PROCESS, 0)
     target = min(19, os.getpriority(os.PRIO_PROCESS, 0) + increment)
-    try:
-        threads = [int(t) for t in os.listdir("/proc/self/task")]
-    except OSError:  # no /proc: this thread only
-        threads = [0]
+    threads = thread_ids() or [0]  # no /proc: this thread only
     for tid in threads:
         with contextlib.suppress(OSError):
             if os.getpriority(os.PRIO_PROCESS, tid) < target:
